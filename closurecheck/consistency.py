@@ -1,0 +1,502 @@
+"""Consistency checks for loop-closure candidates against odometry and each other.
+
+Two tests decide which registered loop closures can be trusted together:
+
+* :func:`odometry_gate` compares each closure with the relative pose that the
+  odometry chain predicts between its two nodes (chi-square test on the
+  squared Mahalanobis distance, 3 degrees of freedom).
+* :func:`pairwise_consistency` is the pairwise test of PCM (Mangelson, Cheng,
+  Ozog, Ng, Eustice, "Pairwise Consistent Measurement Set Maximization for
+  Robust Multi-robot Map Merging", ICRA 2018): two closures are consistent
+  when the cycle they close through the odometry composes to the identity
+  within its propagated uncertainty.  The largest mutually consistent set is
+  then a maximum clique of the resulting graph (:mod:`closurecheck.clique`).
+
+Inputs are plain arrays.  A closure k joins keyframe-chain nodes ``src[k]``
+and ``dst[k]`` (0-based indices into ``poses``, either order), with the
+registered delta ``deltas[k] = src^-1 ∘ dst`` (metres, metres, radians, in the
+src frame) and its covariance ``covariances[k]`` on ``[x, y, theta]`` in the
+src frame.  The odometry chain is ``poses`` (N, 3) in one fixed frame plus
+``prefix = se2.chain_prefix(poses, step_covariances)``.
+
+Independence assumptions (first order throughout): registration errors of
+different closures are independent of each other and of the odometry; the
+odometry steps are independent of each other.  Nothing else is assumed: in
+particular when the two odometry segments of a PCM cycle share steps, their
+correlation is accounted for exactly (to first order) by default, see
+:func:`pair_distances`.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.sparse
+import scipy.stats
+
+from . import se2
+from .errors import InputError
+
+__all__ = [
+    "ConsistencyOptions",
+    "OdometryGate",
+    "PairConsistency",
+    "chi2_threshold",
+    "odometry_gate",
+    "pair_distances",
+    "pairwise_consistency",
+]
+
+
+@dataclass(frozen=True)
+class ConsistencyOptions:
+    """Thresholds of the consistency checks.
+
+    gate_probability:
+        Probability mass of chi-square(3) accepted by the odometry gate; a
+        correct closure fails it with probability ``1 - gate_probability``.
+    pair_probability:
+        The same for the pairwise (PCM) cycle test.
+    informative_max_std_m:
+        The odometry gate only says something when the chain between the two
+        nodes is well known: above this positional standard deviation (metres,
+        square root of the largest eigenvalue of the predicted delta's xy
+        covariance) the gate is reported as not informative.
+    informative_max_std_rad:
+        The same bound on the predicted heading's standard deviation (radians).
+    pair_shared_odometry:
+        True: account for odometry steps shared by the two segments of a PCM
+        cycle (exact first-order covariance).  False: treat the two segments as
+        independent, as is common practice in PCM implementations; that
+        overstates the cycle covariance when the segments overlap in opposite
+        directions and understates it when they overlap in the same direction.
+    pairs_per_block:
+        Pairs evaluated per vectorised block; bounds the working memory
+        (roughly 1 kB per pair).
+    """
+
+    gate_probability: float = 0.99
+    pair_probability: float = 0.99
+    informative_max_std_m: float = 1.0
+    informative_max_std_rad: float = 0.25
+    pair_shared_odometry: bool = True
+    pairs_per_block: int = 100_000
+
+    def __post_init__(self):
+        for name in ("gate_probability", "pair_probability"):
+            p = getattr(self, name)
+            if not (isinstance(p, (int, float)) and 0.0 < p < 1.0):
+                raise InputError(f"{name} must be a probability strictly between 0 and 1, got {p!r}")
+        for name in ("informative_max_std_m", "informative_max_std_rad"):
+            v = getattr(self, name)
+            if not (isinstance(v, (int, float)) and v > 0.0):
+                raise InputError(f"{name} must be a positive number, got {v!r}")
+        if not (isinstance(self.pairs_per_block, int) and self.pairs_per_block >= 1):
+            raise InputError(f"pairs_per_block must be a positive integer, got {self.pairs_per_block!r}")
+
+
+def chi2_threshold(dof: int, probability: float) -> float:
+    """Quantile of the chi-square distribution: the squared Mahalanobis
+    distance below which a correct measurement with ``dof`` degrees of freedom
+    falls with the given probability (e.g. 7.815 for 3 DoF at 0.95)."""
+    if not (isinstance(dof, (int, np.integer)) and dof >= 1):
+        raise InputError(f"degrees of freedom must be a positive integer, got {dof!r}")
+    if not (0.0 < probability < 1.0):
+        raise InputError(f"probability must be strictly between 0 and 1, got {probability!r}")
+    return float(scipy.stats.chi2.ppf(probability, dof))
+
+
+@dataclass(frozen=True)
+class OdometryGate:
+    """Per-closure result of :func:`odometry_gate` (K closures).
+
+    distance_sq: (K,) squared Mahalanobis distance (dimensionless).
+    threshold: chi-square(3) quantile at ``gate_probability``.
+    passed: (K,) ``distance_sq <= threshold``.
+    informative: (K,) the odometry chain is tight enough for the gate to
+        mean something; a verdict should rely on ``passed`` only where this
+        is True.
+    predicted: (K, 3) odometry-predicted delta ``src^-1 ∘ dst`` in the src frame.
+    predicted_covariance: (K, 3, 3) its covariance on [x, y, theta], src frame.
+    chain_std_m: (K,) positional standard deviation of the prediction (metres).
+    chain_std_rad: (K,) heading standard deviation of the prediction (radians).
+    """
+
+    distance_sq: np.ndarray
+    threshold: float
+    passed: np.ndarray
+    informative: np.ndarray
+    predicted: np.ndarray
+    predicted_covariance: np.ndarray
+    chain_std_m: np.ndarray
+    chain_std_rad: np.ndarray
+
+
+@dataclass(frozen=True)
+class PairConsistency:
+    """Result of :func:`pairwise_consistency` for K closures.
+
+    adjacency: (K, K) ``scipy.sparse.csr_array`` of bool, symmetric, empty
+        diagonal; True where the two closures pass the pairwise test.
+    distance_sq: (K, K) dense float array of the cycle's squared Mahalanobis
+        distance, symmetric (the value computed for i < j is mirrored), zero
+        on the diagonal.  Memory is 8 K^2 bytes (32 MB for K = 2000).
+    threshold: chi-square(3) quantile at ``pair_probability``.
+    """
+
+    adjacency: scipy.sparse.csr_array
+    distance_sq: np.ndarray
+    threshold: float
+
+
+# --------------------------------------------------------------------------
+# validation at the public boundary
+
+
+def _check_inputs(src, dst, deltas, covariances, poses, prefix):
+    poses = np.asarray(poses, dtype=float)
+    prefix = np.asarray(prefix, dtype=float)
+    if poses.ndim != 2 or poses.shape[1] != 3 or len(poses) < 1:
+        raise InputError(f"odometry poses must have shape (N, 3) with N >= 1, got {poses.shape}")
+    n = len(poses)
+    if prefix.shape != (n, 3, 3):
+        raise InputError(f"odometry prefix must have shape ({n}, 3, 3) to match the poses, got {prefix.shape}")
+    if not (np.all(np.isfinite(poses)) and np.all(np.isfinite(prefix))):
+        raise InputError("odometry poses and prefix must be finite")
+    src = np.asarray(src)
+    dst = np.asarray(dst)
+    if src.ndim != 1 or dst.shape != src.shape:
+        raise InputError(f"closure src and dst must be 1-D arrays of equal length, got {src.shape} and {dst.shape}")
+    k = len(src)
+    for name, idx in (("src", src), ("dst", dst)):
+        if k and not np.issubdtype(idx.dtype, np.integer):
+            raise InputError(f"closure {name} must hold integer node indices, got dtype {idx.dtype}")
+        if k and (idx.min() < 0 or idx.max() >= n):
+            raise InputError(f"closure {name} indices must lie in [0, {n - 1}], got range [{idx.min()}, {idx.max()}]")
+    src = src.astype(np.intp)
+    dst = dst.astype(np.intp)
+    deltas = np.asarray(deltas, dtype=float)
+    covariances = np.asarray(covariances, dtype=float)
+    if deltas.shape != (k, 3):
+        raise InputError(f"closure deltas must have shape ({k}, 3), got {deltas.shape}")
+    if covariances.shape != (k, 3, 3):
+        raise InputError(f"closure covariances must have shape ({k}, 3, 3), got {covariances.shape}")
+    if not (np.all(np.isfinite(deltas)) and np.all(np.isfinite(covariances))):
+        raise InputError("closure deltas and covariances must be finite")
+    if k:
+        asym = np.abs(covariances - np.swapaxes(covariances, 1, 2)).max(axis=(1, 2))
+        scale = np.abs(covariances).max(axis=(1, 2))
+        bad = np.flatnonzero(asym > 1e-9 * np.maximum(scale, 1e-300))
+        if len(bad):
+            raise InputError(f"closure covariance {bad[0]} is not symmetric")
+        sym = 0.5 * (covariances + np.swapaxes(covariances, 1, 2))
+        bad = np.flatnonzero(np.linalg.eigvalsh(sym)[:, 0] <= 0.0)
+        if len(bad):
+            raise InputError(f"closure covariance {bad[0]} is not positive definite")
+        covariances = sym
+    return src, dst, deltas, covariances, poses, prefix
+
+
+# --------------------------------------------------------------------------
+# small vectorised helpers
+
+
+def _frame(theta):
+    """blockdiag(R(theta), 1) of shape (..., 3, 3).
+
+    Maps a right-tangent perturbation tau of a pose p to the change of p's
+    ``[x, y, theta]``: ``p ∘ Exp(tau) ≈ p + F(theta_p) tau``.
+    """
+    theta = np.asarray(theta, dtype=float)
+    m = np.zeros(theta.shape + (3, 3))
+    c, s = np.cos(theta), np.sin(theta)
+    m[..., 0, 0] = c
+    m[..., 0, 1] = -s
+    m[..., 1, 0] = s
+    m[..., 1, 1] = c
+    m[..., 2, 2] = 1.0
+    return m
+
+
+def _t(m):
+    return np.swapaxes(m, -1, -2)
+
+
+def _quad_inv_sym3(c, h):
+    """``h^T C^-1 h`` for stacks of symmetric positive definite 3x3 C.
+
+    The adjugate formula is elementwise, several times faster than a batched
+    LAPACK solve on tiny matrices.
+    """
+    a, b, cc = c[..., 0, 0], c[..., 0, 1], c[..., 0, 2]
+    d, e, f = c[..., 1, 1], c[..., 1, 2], c[..., 2, 2]
+    A = d * f - e * e
+    B = cc * e - b * f
+    C = b * e - cc * d
+    D = a * f - cc * cc
+    E = b * cc - a * e
+    F = a * d - b * b
+    det = a * A + b * B + cc * C
+    x, y, z = h[..., 0], h[..., 1], h[..., 2]
+    num = A * x * x + D * y * y + F * z * z + 2.0 * (B * x * y + C * x * z + E * y * z)
+    return num / det
+
+
+# --------------------------------------------------------------------------
+# odometry gate
+
+
+def _predicted(poses, prefix, src, dst):
+    """Odometry prediction of ``src^-1 ∘ dst`` and its covariance in the src frame."""
+    lo = np.minimum(src, dst)
+    hi = np.maximum(src, dst)
+    delta, cov = se2.chain_relative(poses, prefix, lo, hi)
+    flip = src > dst
+    if np.any(flip):
+        # chain_relative needs lo <= hi: for src > dst it returns dst^-1 ∘ src
+        # in the dst frame; the wanted delta is its inverse, whose covariance
+        # follows through the Jacobian of inversion, J = d inv(p) / dp
+        # (= the first Jacobian of between(p, identity)).
+        d = delta[flip]
+        j_inv, _ = se2.between_jacobians(d, np.zeros_like(d))
+        delta = delta.copy()
+        cov = cov.copy()
+        delta[flip] = se2.inverse(d)
+        cov[flip] = j_inv @ cov[flip] @ _t(j_inv)
+    return delta, 0.5 * (cov + _t(cov))
+
+
+def odometry_gate(src, dst, deltas, covariances, poses, prefix, options: ConsistencyOptions = ConsistencyOptions()):
+    """Chi-square gate of each loop closure against the odometry prediction.
+
+    Parameters
+    ----------
+    src, dst : (K,) int arrays
+        Node indices into ``poses``; any order (src > dst is allowed).
+    deltas : (K, 3) array
+        Registered ``src^-1 ∘ dst`` [m, m, rad] in the src frame.
+    covariances : (K, 3, 3) array
+        Their covariances on [x, y, theta] in the src frame (SPD).
+    poses : (N, 3) array
+        Odometry keyframe poses in one fixed frame.
+    prefix : (N, 3, 3) array
+        ``se2.chain_prefix(poses, step_covariances)``.
+    options : ConsistencyOptions
+
+    Returns
+    -------
+    OdometryGate
+        The error is ``e = between(predicted, delta)`` (the measured delta seen
+        from the predicted one, [m, m, rad]); its covariance is the first-order
+        sum of the measurement's and the odometry chain's contributions
+        (independent), and ``distance_sq = e^T S^-1 e``.
+    """
+    src, dst, deltas, covariances, poses, prefix = _check_inputs(src, dst, deltas, covariances, poses, prefix)
+    threshold = chi2_threshold(3, options.gate_probability)
+    pred, pred_cov = _predicted(poses, prefix, src, dst)
+    err = se2.between(pred, deltas)
+    j_pred, j_meas = se2.between_jacobians(pred, deltas)
+    s = j_pred @ pred_cov @ _t(j_pred) + j_meas @ covariances @ _t(j_meas)
+    d2 = _quad_inv_sym3(0.5 * (s + _t(s)), err) if len(src) else np.zeros(0)
+    xy = pred_cov[:, :2, :2]
+    # Largest eigenvalue of each symmetric 2x2 block in closed form.
+    half_tr = 0.5 * (xy[:, 0, 0] + xy[:, 1, 1])
+    gap = np.sqrt((0.5 * (xy[:, 0, 0] - xy[:, 1, 1])) ** 2 + xy[:, 0, 1] ** 2)
+    std_m = np.sqrt(np.maximum(half_tr + gap, 0.0))
+    std_rad = np.sqrt(np.maximum(pred_cov[:, 2, 2], 0.0))
+    informative = (std_m <= options.informative_max_std_m) & (std_rad <= options.informative_max_std_rad)
+    return OdometryGate(
+        distance_sq=d2,
+        threshold=threshold,
+        passed=d2 <= threshold,
+        informative=informative,
+        predicted=pred,
+        predicted_covariance=pred_cov,
+        chain_std_m=std_m,
+        chain_std_rad=std_rad,
+    )
+
+
+# --------------------------------------------------------------------------
+# pairwise (PCM) consistency
+
+
+@dataclass(frozen=True)
+class _ClosureTerms:
+    """Per-closure quantities that make each pair O(1) (see pair_distances)."""
+
+    src: np.ndarray  # (K,)
+    dst: np.ndarray  # (K,)
+    src_pose: np.ndarray  # (K, 3) odometry pose x_a of the src node
+    ad_src: np.ndarray  # (K, 3, 3) Ad(x_a)
+    mismatch_inv: np.ndarray  # (K, 3) M^-1 with M = x_a ∘ z ∘ x_b^-1
+    ad_mismatch_inv: np.ndarray  # (K, 3, 3) Ad(M^-1)
+    world_cov: np.ndarray  # (K, 3, 3) Ad(x_b) Sigma_tau Ad(x_b)^T
+
+
+def _closure_terms(src, dst, deltas, covariances, poses):
+    xa = poses[src]
+    xb = poses[dst]
+    mismatch = se2.compose(se2.compose(xa, deltas), se2.inverse(xb))
+    minv = se2.inverse(mismatch)
+    f = _frame(deltas[:, 2])
+    sigma_tau = _t(f) @ covariances @ f  # right-tangent covariance of z
+    ad_b = se2.adjoint(xb)
+    return _ClosureTerms(
+        src=src,
+        dst=dst,
+        src_pose=xa,
+        ad_src=se2.adjoint(xa),
+        mismatch_inv=minv,
+        ad_mismatch_inv=se2.adjoint(minv),
+        world_cov=ad_b @ sigma_tau @ _t(ad_b),
+    )
+
+
+def _pair_block(t: _ClosureTerms, prefix, i, j, shared_odometry):
+    """Squared Mahalanobis distance of the PCM cycle for closure pairs (i, j).
+
+    Closure i joins a -> b with delta z_i, closure j joins c -> d with z_j.
+    The cycle a -> b -> d -> c -> a is ``E = z_i ∘ T_bd ∘ z_j^-1 ∘ T_ca``
+    with odometry deltas T.  Writing ``M = x_a ∘ z ∘ x_b^-1`` (identity for a
+    closure that agrees with the odometry) it equals
+    ``E = x_a^-1 ∘ M_i ∘ M_j^-1 ∘ x_a``.
+
+    Perturbing z_i, z_j on the right by tau_i, tau_j and odometry step k by a
+    world-frame (left) perturbation eta_k (what se2.chain_prefix sums) gives,
+    exactly to first order, the world-frame perturbation of ``M_i M_j^-1``:
+
+        w = Ad(M_i) [m + Ad(M_j^-1) v],
+        m = Ad(x_b) tau_i - Ad(x_d) tau_j + sum_k alpha_k eta_k,
+        v = sum_k beta_k eta_k,
+
+    where alpha_k = +1 / -1 for steps on the segment b..d traversed forward /
+    backward (0 elsewhere) and beta_k likewise for c..a.  Because every
+    quantity is a congruence of the same vector, the distance is
+    ``h^T C^-1 h`` with ``h = Ad(M_j^-1 ∘ x_a) F(theta_E)^T e`` (e = params
+    of E) and
+
+        C = V_i + V_j + D_bd + Y D_ca Y^T + X Y^T + Y X,    Y = Ad(M_j^-1),
+
+    D the prefix-sum covariance of each segment and X the signed prefix-sum
+    covariance of the steps the two segments share (zero when
+    ``shared_odometry`` is False, i.e. the segments treated as independent).
+    """
+    a, b = t.src[i], t.dst[i]
+    c, d = t.src[j], t.dst[j]
+    xa = t.src_pose[i]
+    g = se2.compose(se2.inverse(t.mismatch_inv[i]), t.mismatch_inv[j])
+    e = se2.between(xa, se2.compose(g, xa))
+    y = t.ad_mismatch_inv[j]
+    u = np.einsum("...ji,...j->...i", _frame(e[:, 2]), e)  # F(theta_E)^T e
+    h = np.einsum("...ij,...j->...i", y, np.einsum("...ij,...j->...i", t.ad_src[i], u))
+
+    lo1, hi1 = np.minimum(b, d), np.maximum(b, d)
+    lo2, hi2 = np.minimum(c, a), np.maximum(c, a)
+    d_bd = prefix[hi1] - prefix[lo1]
+    d_ca = prefix[hi2] - prefix[lo2]
+    cov = t.world_cov[i] + t.world_cov[j] + d_bd + y @ d_ca @ _t(y)
+    if shared_odometry:
+        ov_lo = np.maximum(lo1, lo2)
+        ov_hi = np.minimum(hi1, hi2)
+        has = ov_hi > ov_lo
+        if np.any(has):
+            sign = np.sign(d - b) * np.sign(a - c)
+            k = np.flatnonzero(has)
+            x = (sign[k, None, None]) * (prefix[ov_hi[k]] - prefix[ov_lo[k]])
+            xy = x @ _t(y[k])
+            cov[k] += xy + _t(xy)
+    return _quad_inv_sym3(cov, h)
+
+
+def pair_distances(
+    src, dst, deltas, covariances, poses, prefix, first, second, shared_odometry: bool = True
+):
+    """Squared Mahalanobis distance of the PCM cycle for the given closure pairs.
+
+    Parameters
+    ----------
+    src, dst, deltas, covariances, poses, prefix
+        As in :func:`odometry_gate` (K closures, N odometry nodes).
+    first, second : (P,) int arrays
+        Closure indices of each pair (i, j); for closure i = (a, b) and
+        j = (c, d) the cycle is a -> b (closure i) -> d (odometry) -> c
+        (closure j, backwards) -> a (odometry).
+    shared_odometry : bool
+        See :class:`ConsistencyOptions.pair_shared_odometry`.
+
+    Returns
+    -------
+    (P,) array of squared Mahalanobis distances of the cycle error
+    ``e = params(z_i ∘ T_bd ∘ z_j^-1 ∘ T_ca)`` ([m, m, rad] in the frame of
+    node a) under its first-order covariance.  Chi-square(3) distributed for
+    correct closures with correct covariances.  The value for (j, i) equals
+    that of (i, j) to first order in the cycle error, not bit for bit.
+    """
+    src, dst, deltas, covariances, poses, prefix = _check_inputs(src, dst, deltas, covariances, poses, prefix)
+    k = len(src)
+    first = np.asarray(first)
+    second = np.asarray(second)
+    if first.ndim != 1 or second.shape != first.shape:
+        raise InputError(f"pair index arrays must be 1-D of equal length, got {first.shape} and {second.shape}")
+    if len(first) and (
+        not np.issubdtype(first.dtype, np.integer)
+        or not np.issubdtype(second.dtype, np.integer)
+        or min(first.min(), second.min()) < 0
+        or max(first.max(), second.max()) >= k
+    ):
+        raise InputError(f"pair indices must be integers in [0, {k - 1}]")
+    if not len(first):
+        return np.zeros(0)
+    terms = _closure_terms(src, dst, deltas, covariances, poses)
+    return _pair_block(terms, prefix, first.astype(np.intp), second.astype(np.intp), shared_odometry)
+
+
+def _upper_pairs(k, start, stop, row_offsets):
+    """(i, j) with i < j for flat upper-triangle indices start..stop-1."""
+    p = np.arange(start, stop, dtype=np.int64)
+    i = np.searchsorted(row_offsets, p, side="right") - 1
+    j = p - row_offsets[i] + i + 1
+    return i.astype(np.intp), j.astype(np.intp)
+
+
+def pairwise_consistency(src, dst, deltas, covariances, poses, prefix, options: ConsistencyOptions = ConsistencyOptions()):
+    """Pairwise (PCM) consistency graph of K loop closures.
+
+    Arguments as in :func:`odometry_gate`.  Every unordered pair i < j is
+    tested once with :func:`pair_distances` (cycle starting at closure i's
+    src node), in blocks of ``options.pairs_per_block`` pairs.  Two closures
+    are consistent when the distance is at most the chi-square(3) quantile at
+    ``options.pair_probability``.
+
+    Returns
+    -------
+    PairConsistency
+    """
+    src, dst, deltas, covariances, poses, prefix = _check_inputs(src, dst, deltas, covariances, poses, prefix)
+    k = len(src)
+    threshold = chi2_threshold(3, options.pair_probability)
+    dist = np.zeros((k, k))
+    if k < 2:
+        return PairConsistency(scipy.sparse.csr_array((k, k), dtype=bool), dist, threshold)
+    terms = _closure_terms(src, dst, deltas, covariances, poses)
+    rows = np.arange(k, dtype=np.int64)
+    row_offsets = rows * (k - 1) - rows * (rows - 1) // 2  # first flat index of row i
+    total = k * (k - 1) // 2
+    keep_i, keep_j = [], []
+    for start in range(0, total, options.pairs_per_block):
+        i, j = _upper_pairs(k, start, min(start + options.pairs_per_block, total), row_offsets)
+        d2 = _pair_block(terms, prefix, i, j, options.pair_shared_odometry)
+        dist[i, j] = d2
+        ok = d2 <= threshold
+        keep_i.append(i[ok])
+        keep_j.append(j[ok])
+    dist = dist + dist.T
+    ii = np.concatenate(keep_i)
+    jj = np.concatenate(keep_j)
+    data = np.ones(2 * len(ii), dtype=bool)
+    adjacency = scipy.sparse.csr_array(
+        (data, (np.concatenate([ii, jj]), np.concatenate([jj, ii]))), shape=(k, k), dtype=bool
+    )
+    return PairConsistency(adjacency=adjacency, distance_sq=dist, threshold=threshold)
