@@ -70,7 +70,8 @@ def _cmd_convert(args) -> int:
     from .scanlog import write_scanlog
 
     log, summary = recordings.read_recording(
-        args.recording, scan_topic=args.scan_topic, odom_topic=args.odom_topic, mount=args.mount)
+        args.recording, scan_topic=args.scan_topic, odom_topic=args.odom_topic, mount=args.mount,
+        options=recordings.RecordingOptions(max_odom_gap_s=args.max_odom_gap))
     write_scanlog(args.out, log, decimals=None)
     if not args.quiet:
         print(summary.describe())
@@ -102,6 +103,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="number of scans (default: the scenario's own route length)")
     p.set_defaults(func=_cmd_simulate)
 
+    from .recordings import RecordingOptions  # rosbags itself is imported only when converting
+
     p = sub.add_parser("convert", parents=[common],
                        help="write a scan log from a robot recording (ROS 1 bag, ROS 2 MCAP or SQLite)")
     p.add_argument("recording", help="recording file or ROS 2 bag folder")
@@ -110,6 +113,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--odom-topic", default=None, help="odometry topic (auto-detected when there is one)")
     p.add_argument("--mount", type=_pose_arg, default=None,
                    help="sensor pose on the robot as x,y,theta (metres, radians)")
+    p.add_argument("--max-odom-gap", type=float, default=RecordingOptions.max_odom_gap_s, metavar="SECONDS",
+                   help="drop scans inside odometry gaps longer than this (default: %(default)s s)")
     p.set_defaults(func=_cmd_convert)
     return parser
 

@@ -470,7 +470,8 @@ def _assemble(path: Path, storage: str, s: _Streams, mount, options: RecordingOp
         raise InputError(
             f"no scan can be paired with odometry: scans span {scan_ns[0] * 1e-9:.3f}..{scan_ns[-1] * 1e-9:.3f} s, "
             f"odometry spans {odom_ns[0] * 1e-9:.3f}..{odom_ns[-1] * 1e-9:.3f} s "
-            f"({pairing.in_gaps} scans fall in odometry gaps over {options.max_odom_gap_s:g} s)", path)
+            f"({pairing.in_gaps} scans fall in odometry gaps over {options.max_odom_gap_s:g} s"
+            + ("; allow longer gaps with --max-odom-gap" if pairing.in_gaps else "") + ")", path)
 
     lo, hi, varied, from_data = _sensor_limits(s, path)
     sensor = Sensor(first_angle=s.angle_min, angle_step=s.angle_increment, beams=s.ranges.shape[1],

@@ -358,6 +358,19 @@ def test_scans_in_odometry_gaps_are_dropped(tmp_path, scene):
     assert s2.largest_odom_gap_s == pytest.approx((hi_edge - lo_edge) * 1e-9, abs=1e-9)
 
 
+def test_cli_max_odom_gap_option(tmp_path, scene, capsys):
+    cli = _cli()
+    log, ns, odom_ns, odom_poses = scene
+    gap = (odom_ns > T0_NS + 1_500_000_000) & (odom_ns < T0_NS + 2_300_000_000)
+    rec = recording_from_log(tmp_path, "ros1", log, ns, odom_ns[~gap], odom_poses[~gap])
+    strict, relaxed = tmp_path / "strict.jsonl", tmp_path / "relaxed.jsonl"
+    assert cli.main(["convert", str(rec), "--out", str(strict), "-q"]) == 0
+    assert cli.main(["convert", str(rec), "--out", str(relaxed), "-q", "--max-odom-gap", "1.5"]) == 0
+    assert len(read_scanlog(relaxed)) == len(read_scanlog(strict)) + 8
+    assert cli.main(["convert", str(rec), "--out", str(strict), "--max-odom-gap", "0"]) == 2
+    assert "max_odom_gap_s must be a positive number" in capsys.readouterr().err
+
+
 def test_topic_choice_by_name_and_errors_list_candidates(tmp_path, scene):
     log, ns, odom_ns, odom_poses = scene
     m = _Msgs(False)
