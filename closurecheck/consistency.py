@@ -19,6 +19,10 @@ src frame) and its covariance ``covariances[k]`` on ``[x, y, theta]`` in the
 src frame.  The odometry chain is ``poses`` (N, 3) in one fixed frame plus
 ``prefix = se2.chain_prefix(poses, step_covariances)``.
 
+The PCM test first turns every closure to run from its earlier to its later
+node, so the result does not depend on the direction a registration ran and
+the cycle uses the shortest odometry segments (see :func:`pair_distances`).
+
 Independence assumptions (first order throughout): registration errors of
 different closures are independent of each other and of the odometry; the
 odometry steps are independent of each other.  Nothing else is assumed: in
@@ -68,9 +72,9 @@ class ConsistencyOptions:
     pair_shared_odometry:
         True: account for odometry steps shared by the two segments of a PCM
         cycle (exact first-order covariance).  False: treat the two segments as
-        independent, as is common practice in PCM implementations; that
-        overstates the cycle covariance when the segments overlap in opposite
-        directions and understates it when they overlap in the same direction.
+        independent, as is common practice in PCM implementations; with the
+        orientation used here (see pair_distances) overlapping segments run in
+        opposite directions, so this overstates the cycle covariance.
     pairs_per_block:
         Pairs evaluated per vectorised block; bounds the working memory
         (roughly 1 kB per pair).
@@ -335,7 +339,32 @@ class _ClosureTerms:
     world_cov: np.ndarray  # (K, 3, 3) Ad(x_b) Sigma_tau Ad(x_b)^T
 
 
+def _oriented(src, dst, deltas, covariances):
+    """Closures turned to run from their earlier to their later node.
+
+    For src > dst the delta is inverted and its covariance carried through
+    the Jacobian of inversion (into the frame of the new src).  Pairing the
+    earlier ends with each other and the later ends with each other is the
+    matching of the four nodes with the shortest total odometry, so the PCM
+    cycle uses the tightest odometry segments whatever direction the
+    registration happened to run.
+    """
+    flip = src > dst
+    if not np.any(flip):
+        return src, dst, deltas, covariances
+    src, dst = np.where(flip, dst, src), np.where(flip, src, dst)
+    deltas = deltas.copy()
+    covariances = covariances.copy()
+    d = deltas[flip]
+    j_inv, _ = se2.between_jacobians(d, np.zeros_like(d))
+    deltas[flip] = se2.inverse(d)
+    c = j_inv @ covariances[flip] @ _t(j_inv)
+    covariances[flip] = 0.5 * (c + _t(c))
+    return src, dst, deltas, covariances
+
+
 def _closure_terms(src, dst, deltas, covariances, poses):
+    src, dst, deltas, covariances = _oriented(src, dst, deltas, covariances)
     xa = poses[src]
     xb = poses[dst]
     mismatch = se2.compose(se2.compose(xa, deltas), se2.inverse(xb))
@@ -357,7 +386,8 @@ def _closure_terms(src, dst, deltas, covariances, poses):
 def _pair_block(t: _ClosureTerms, prefix, i, j, shared_odometry):
     """Squared Mahalanobis distance of the PCM cycle for closure pairs (i, j).
 
-    Closure i joins a -> b with delta z_i, closure j joins c -> d with z_j.
+    Closure i joins a -> b with delta z_i, closure j joins c -> d with z_j
+    (both already oriented by _oriented).
     The cycle a -> b -> d -> c -> a is ``E = z_i ∘ T_bd ∘ z_j^-1 ∘ T_ca``
     with odometry deltas T.  Writing ``M = x_a ∘ z ∘ x_b^-1`` (identity for a
     closure that agrees with the odometry) it equals
@@ -420,9 +450,13 @@ def pair_distances(
     src, dst, deltas, covariances, poses, prefix
         As in :func:`odometry_gate` (K closures, N odometry nodes).
     first, second : (P,) int arrays
-        Closure indices of each pair (i, j); for closure i = (a, b) and
-        j = (c, d) the cycle is a -> b (closure i) -> d (odometry) -> c
-        (closure j, backwards) -> a (odometry).
+        Closure indices of each pair (i, j).  Each closure is first turned
+        to run from its earlier node to its later one (src < dst; the delta
+        inverted and its covariance transformed where needed).  For
+        closure i = (a, b) and j = (c, d) so oriented, the cycle is a -> b
+        (closure i) -> d (odometry) -> c (closure j, backwards) -> a
+        (odometry): earlier ends joined to each other, later ends to each
+        other, the shortest odometry the four nodes allow.
     shared_odometry : bool
         See :class:`ConsistencyOptions.pair_shared_odometry`.
 
@@ -431,8 +465,14 @@ def pair_distances(
     (P,) array of squared Mahalanobis distances of the cycle error
     ``e = params(z_i ∘ T_bd ∘ z_j^-1 ∘ T_ca)`` ([m, m, rad] in the frame of
     node a) under its first-order covariance.  Chi-square(3) distributed for
-    correct closures with correct covariances.  The value for (j, i) equals
-    that of (i, j) to first order in the cycle error, not bit for bit.
+    correct closures with correct covariances.  The value for (j, i), or
+    with a closure given in the other direction, equals that of (i, j) to
+    first order in the cycle error, not bit for bit.
+
+    With this orientation the two odometry segments can only share steps
+    when traversed in opposite directions (two closures that do not overlap
+    in time); ``shared_odometry=False`` then treats them as independent and
+    overstates the cycle covariance (a conservative, weaker test).
     """
     src, dst, deltas, covariances, poses, prefix = _check_inputs(src, dst, deltas, covariances, poses, prefix)
     k = len(src)
