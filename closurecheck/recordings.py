@@ -38,7 +38,7 @@ MISSING_EXTRA = "reading robot recordings needs the optional extra: pip install 
 _ROS1_MAGIC = b"#ROSBAG V2.0"
 _MCAP_MAGIC = b"\x89MCAP0\r\n"
 _SQLITE_MAGIC = b"SQLite format 3\x00"
-_SUFFIXES = {".bag": "ROS 1 bag", ".mcap": "ROS 2 bag (MCAP)", ".db3": "ROS 2 bag (SQLite)"}
+_SUFFIXES = {".bag": "ROS 1 bag", ".mcap": "ROS 2 MCAP file", ".db3": "ROS 2 SQLite file"}
 _TOPIC_LIST_MAX = 8
 
 
@@ -312,8 +312,8 @@ class _Streams:
     ranges: np.ndarray             # (N, beams) float32, NaN = no return
     angle_min: float
     angle_increment: float
-    range_min: np.ndarray          # (N,) float32
-    range_max: np.ndarray          # (N,) float32
+    range_min: np.ndarray          # (N,) float64 holding float32 values
+    range_max: np.ndarray          # (N,) float64 holding float32 values
     frame_id: str
     odom_ns: np.ndarray
     odom_rec_ns: np.ndarray
@@ -351,8 +351,18 @@ def _read_streams(rb: _Rosbags, path: Path, target: Path, storage: str, scan_top
     poses[bad_q, 2] = np.nan  # a zero quaternion has no heading
     return _Streams(scan_name, odom_name, np.asarray(scans.stamps, np.int64), np.asarray(scans.rec, np.int64),
                     scans.ranges(), scans.angle_min, scans.angle_increment,
-                    np.asarray(scans.rmin, np.float32), np.asarray(scans.rmax, np.float32), scans.frame_id,
+                    np.asarray(scans.rmin, np.float64), np.asarray(scans.rmax, np.float64), scans.frame_id,
                     np.asarray(odom_ns, np.int64), np.asarray(odom_rec, np.int64), poses)
+
+
+def _float32_value(v) -> float:
+    """The shortest decimal that reads back as the same float32.
+
+    Message fields are float32, so 0.05 arrives as 0.0500000007...; the
+    shortest round-trip decimal is the value the driver meant and keeps the
+    log header readable, and it maps back to the identical float32.
+    """
+    return float(str(np.float32(v)))
 
 
 def _stamp_ns(stamp) -> int:
@@ -397,7 +407,7 @@ class _ScanCollector:
     def add(self, msg, rec_ns: int) -> None:
         self.count += 1
         ranges = np.asarray(msg.ranges, dtype=np.float32)
-        a0, da = float(msg.angle_min), float(msg.angle_increment)
+        a0, da = _float32_value(msg.angle_min), _float32_value(msg.angle_increment)
         if self.count == 1:
             if len(ranges) == 0:
                 raise InputError(f"laser scan topic {self.topic}: message 1 has no ranges", self.path)
@@ -422,8 +432,8 @@ class _ScanCollector:
         self.rows.append(ranges.astype(np.float32, copy=False))
         self.stamps.append(_stamp_ns(msg.header.stamp))
         self.rec.append(int(rec_ns))
-        self.rmin.append(float(lo))
-        self.rmax.append(float(hi))
+        self.rmin.append(_float32_value(lo))
+        self.rmax.append(_float32_value(hi))
 
     def ranges(self) -> np.ndarray:
         return np.stack(self.rows) if self.rows else np.empty((0, 0), np.float32)
@@ -444,7 +454,7 @@ def _sensor_limits(s: _Streams, path) -> tuple[float, float, bool, bool]:
     lo = max(0.0, float(np.nanmin(s.range_min))) if np.isfinite(s.range_min).any() else 0.0
     from_data = len(finite_max) == 0
     if from_data:
-        hi = float(np.nanmax(s.ranges)) if np.isfinite(s.ranges).any() else math.nan
+        hi = _float32_value(np.nanmax(s.ranges)) if np.isfinite(s.ranges).any() else math.nan
     else:
         hi = float(finite_max.max())
     if not (math.isfinite(hi) and hi > lo):

@@ -215,12 +215,13 @@ def test_round_trip_matches_original(tmp_path, scene, fmt):
     assert summary.scan_messages == N_SCANS and summary.odom_messages == len(odom_ns)
     assert summary.scan_topic == "/scan" and summary.odom_topic == "/odom"
 
-    # Beam geometry survives the float32 message fields.
+    # Beam geometry survives the float32 message fields: the header holds the
+    # shortest decimal of each float32 value, which reads back as that value.
     assert out.sensor.beams == SENSOR.beams
-    assert out.sensor.first_angle == float(np.float32(SENSOR.first_angle))
-    assert out.sensor.angle_step == float(np.float32(SENSOR.angle_step))
-    assert out.sensor.min_range == float(np.float32(SENSOR.min_range))
-    assert out.sensor.max_range == float(np.float32(SENSOR.max_range))
+    for key in ("first_angle", "angle_step", "min_range", "max_range"):
+        got, sent = getattr(out.sensor, key), np.float32(getattr(SENSOR, key))
+        assert np.float32(got) == sent and got == float(str(sent)), key
+    assert out.sensor.first_angle == SENSOR.first_angle and out.sensor.max_range == SENSOR.max_range
 
     # Ranges: float32 in the message and in the log, so they must be identical;
     # every spelling of "no return" (NaN, inf, below min, above max) became NaN.
