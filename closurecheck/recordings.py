@@ -427,6 +427,9 @@ class _ScanCollector:
                                  f"angle_increment={da:.7g}, the first had {self.angle_min:.7g}, "
                                  f"{self.angle_increment:.7g} (the beam angles must not change)", self.path)
         lo, hi = np.float32(msg.range_min), np.float32(msg.range_max)
+        # A NaN limit means no limit on that side (rather than "every beam is out of range").
+        lo = lo if np.isfinite(lo) else np.float32(0.0)
+        hi = hi if not np.isnan(hi) else np.float32(np.inf)
         with np.errstate(invalid="ignore"):
             ranges = np.where((ranges >= lo) & (ranges <= hi) & np.isfinite(ranges), ranges, np.float32(np.nan))
         self.rows.append(ranges.astype(np.float32, copy=False))
@@ -460,7 +463,7 @@ def _sensor_limits(s: _Streams, path) -> tuple[float, float, bool, bool]:
     if not (math.isfinite(hi) and hi > lo):
         raise InputError(f"laser scan topic {s.scan_topic}: unusable range limits "
                          f"(range_min={lo:g}, range_max={hi:g})", path)
-    varied = bool(np.ptp(s.range_min) > 0 or np.ptp(s.range_max) > 0) if len(s.range_min) > 1 else False
+    varied = bool((s.range_min != s.range_min[0]).any() or (s.range_max != s.range_max[0]).any())
     return lo, hi, varied, from_data
 
 

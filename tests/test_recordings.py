@@ -344,6 +344,39 @@ def test_zero_header_stamps_fall_back_to_receive_times(tmp_path, scene):
     np.testing.assert_allclose(out.t, ns[inside] * 1e-9, atol=1e-6)
 
 
+@pytest.mark.parametrize("range_max", [float("inf"), float("nan")])
+def test_unbounded_range_max_uses_the_largest_range(tmp_path, scene, range_max):
+    log, ns, odom_ns, odom_poses = scene
+    m = _Msgs(False)
+    s = log.sensor
+    msgs = [("/scan", t, m.scan(t, r, s.first_angle, s.angle_step, 0.0, range_max)) for t, r in zip(ns, log.ranges)]
+    msgs += [("/odom", t, m.odom(t, *p)) for t, p in zip(odom_ns, odom_poses)]
+    rec = write_bag(tmp_path / "unbounded", "mcap", {"/scan": SCAN_T, "/odom": ODOM_T}, msgs)
+    out, summary = read_recording(rec)
+    inside = (ns >= odom_ns[0]) & (ns <= odom_ns[-1])
+    assert summary.max_range_from_data and "largest range" in summary.describe()
+    assert np.float32(out.sensor.max_range) == np.nanmax(log.ranges) and out.sensor.min_range == 0.0
+    np.testing.assert_array_equal(out.ranges, log.ranges[inside])
+
+
+def test_each_scan_is_masked_with_its_own_range_limits(tmp_path, scene):
+    log, ns, odom_ns, odom_poses = scene
+    m = _Msgs(True)
+    s = log.sensor
+    short = np.arange(len(ns)) % 2 == 1  # every other message claims a 5 m range_max
+    msgs = [("/scan", t, m.scan(t, r, s.first_angle, s.angle_step, s.min_range, 5.0 if sh else s.max_range))
+            for t, r, sh in zip(ns, log.ranges, short)]
+    msgs += [("/odom", t, m.odom(t, *p)) for t, p in zip(odom_ns, odom_poses)]
+    rec = write_bag(tmp_path / "limits", "ros1", {"/scan": SCAN_T, "/odom": ODOM_T}, msgs)
+    out, summary = read_recording(rec)
+    inside = (ns >= odom_ns[0]) & (ns <= odom_ns[-1])
+    expected = log.ranges.copy()
+    expected[short] = np.where(expected[short] <= 5.0, expected[short], np.nan)
+    assert summary.range_limits_varied and out.sensor.max_range == s.max_range
+    assert (np.isnan(expected) & ~np.isnan(log.ranges)).sum() > 50  # the 5 m limit did remove beams
+    np.testing.assert_array_equal(out.ranges, expected[inside])
+
+
 def test_scans_in_odometry_gaps_are_dropped(tmp_path, scene):
     log, ns, odom_ns, odom_poses = scene
     gap = (odom_ns > T0_NS + 1_500_000_000) & (odom_ns < T0_NS + 2_300_000_000)  # 0.8 s without odometry
