@@ -155,8 +155,9 @@ def test_matches_brute_force_loop_on_random_scenes(max_range):
     poses = np.column_stack([rng.uniform(-14, 14, size=(30, 2)), rng.uniform(-np.pi, np.pi, 30)])
     bearings = np.linspace(-3 * np.pi / 4, 3 * np.pi / 4, 37)
     want = _brute(poses, bearings, segs, circ, max_range)
-    # tiny chunks exercise the chunking and the per-chunk culling
-    got = cast(poses, bearings, segs, circ, max_range=max_range, options=CastOptions(chunk_elements=500))
+    # tiny chunks exercise the batching and the per-chunk culling
+    got = cast(poses, bearings, segs, circ, max_range=max_range,
+               options=CastOptions(poses_per_chunk=7, chunk_elements=500))
     assert got.shape == (30, 37) and got.dtype == np.float64
     np.testing.assert_array_equal(np.isinf(got), np.isinf(want))
     fin = np.isfinite(want)
@@ -170,7 +171,8 @@ def test_culling_does_not_change_results_along_a_long_route():
     xs = np.linspace(-40, 40, 200)
     poses = np.column_stack([xs, 3 * np.sin(xs / 5), np.linspace(-3, 3, 200)])
     bearings = np.linspace(-np.pi, np.pi, 90, endpoint=False)
-    culled = cast(poses, bearings, segs, circ, max_range=10.0, options=CastOptions(chunk_elements=20_000))
+    culled = cast(poses, bearings, segs, circ, max_range=10.0,
+                  options=CastOptions(poses_per_chunk=5, chunk_elements=2_000))
     full = cast(poses, bearings, segs, circ)
     full[full > 10.0] = np.inf
     np.testing.assert_array_equal(culled, full)
@@ -182,7 +184,7 @@ def test_cast_per_pose_uses_each_poses_own_shapes():
     bearings = np.linspace(-np.pi, np.pi, 24, endpoint=False)
     segs = np.stack([_random_scene(rng, n_seg=3, n_circ=0, extent=5.0)[0] for _ in range(12)])
     circs = np.stack([_random_scene(rng, n_seg=0, n_circ=2, extent=5.0)[1] for _ in range(12)])
-    got = cast_per_pose(poses, bearings, segs, circs, options=CastOptions(chunk_elements=100))
+    got = cast_per_pose(poses, bearings, segs, circs, options=CastOptions(poses_per_chunk=5, chunk_elements=100))
     for i in range(12):
         np.testing.assert_array_equal(got[i], cast(poses[i], bearings, segs[i], circs[i]))
 
@@ -197,3 +199,37 @@ def test_single_pose_returns_one_row_and_bad_shapes_raise():
         cast([0.0, 0.0, 0.0], [0.0], _square(1.0), max_range=0.0)
     with pytest.raises(InputError):
         cast([0.0, np.nan, 0.0], [0.0], _square(1.0))
+
+
+def test_beams_aimed_exactly_at_room_corners_hit_the_corner():
+    # From the centre of a square of half-width h the corners lie at h * sqrt(2) on the diagonals.
+    h = 2.0
+    got = cast([0.0, 0.0, 0.0], np.array([-3, -1, 1, 3]) * np.pi / 4, _square(h))
+    np.testing.assert_allclose(got, h * np.sqrt(2.0), rtol=1e-12)
+
+
+def test_any_bearing_layout_gives_the_same_ranges():
+    # Bearings may be unsorted, beyond +-pi or a full turn; each beam's range depends only on its direction.
+    rng = np.random.default_rng(21)
+    segs, circ = _random_scene(rng, n_seg=15, n_circ=4, extent=6.0)
+    poses = np.column_stack([rng.uniform(-5, 5, size=(8, 2)), rng.uniform(-np.pi, np.pi, 8)])
+    bearings = rng.uniform(-np.pi, np.pi, 50)
+    ref = cast(poses, bearings, segs, circ)
+    np.testing.assert_allclose(cast(poses, bearings + 2 * np.pi, segs, circ), ref, rtol=1e-9)
+    np.testing.assert_allclose(cast(poses, bearings - 4 * np.pi, segs, circ), ref, rtol=1e-9)
+    perm = rng.permutation(50)
+    np.testing.assert_array_equal(cast(poses, bearings[perm], segs, circ), ref[:, perm])
+    full = np.linspace(0.0, 2 * np.pi, 73)  # first and last beam point the same way
+    both = cast(poses, full, segs, circ)
+    np.testing.assert_allclose(both[:, 0], both[:, -1], rtol=1e-9)
+    np.testing.assert_array_equal(np.isinf(both), np.isinf(_brute(poses, full, segs, circ, np.inf)))
+
+
+def test_chunk_sizes_do_not_change_results():
+    rng = np.random.default_rng(8)
+    segs, circ = _random_scene(rng, n_seg=40, n_circ=8, extent=15.0)
+    poses = np.column_stack([rng.uniform(-15, 15, size=(40, 2)), rng.uniform(-np.pi, np.pi, 40)])
+    bearings = np.linspace(-3 * np.pi / 4, 3 * np.pi / 4, 181)
+    a = cast(poses, bearings, segs, circ, max_range=12.0)
+    b = cast(poses, bearings, segs, circ, max_range=12.0, options=CastOptions(poses_per_chunk=1, chunk_elements=1))
+    np.testing.assert_array_equal(a, b)
