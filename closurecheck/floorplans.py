@@ -158,6 +158,11 @@ def _rotated_rect(cx, cy, length, width, angle) -> list:
     return _chain(*corners, closed=True)
 
 
+def _summary(builder) -> str:
+    """First line of a builder's docstring, without the full stop: the plan's one-line description."""
+    return builder.__doc__.strip().split("\n")[0].strip().rstrip(".")
+
+
 def _plan(name, description, segments, circles, route, movers, max_range_m) -> FloorPlan:
     return FloorPlan(
         name=name,
@@ -227,15 +232,18 @@ def warehouse() -> FloorPlan:
 
     xa = [_RACK_X0 + _RACK_DEPTH + _AISLE_WIDTH / 2 + i * (_RACK_DEPTH + _AISLE_WIDTH) for i in range(5)]
     ys, yn = 4.0, 35.0
+    apron_turn = [(40.0, ys), (42.0, 5.0), (41.5, 7.0), (39.5, 7.0)]
     # Round A: west along the south cross aisle, aisles up/down/up/down/up, east bay southwards,
-    # turn, east bay northwards; round B: aisles down/up/down/up/down, back to the dock apron.
+    # turn, east bay northwards; round B: aisles down/up/down/up/down, turn on the dock apron;
+    # round C: aisles 4 and 5 (counting from the west) up and down again as in round B, turn on the apron.
     route = [(38.0, ys)]
     for i, x in enumerate(xa):
         route += [(x, ys), (x, yn)] if i % 2 == 0 else [(x, yn), (x, ys)]
     route += [(38.0, yn), (38.0, 9.0), (37.0, 7.0), (35.0, 7.0), (34.0, 9.0), (34.0, yn)]
     for i, x in enumerate(xa):
         route += [(x, yn), (x, ys)] if i % 2 == 0 else [(x, ys), (x, yn)]
-    route += [(40.0, ys), (42.0, 5.0), (41.5, 7.0), (39.5, 7.0)]
+    route += apron_turn
+    route += [(xa[3], ys), (xa[3], yn), (xa[4], yn), (xa[4], ys)] + apron_turn
 
     movers = [
         Mover("walker in the north cross aisle", "person", np.array([(12.0, 33.4), (30.0, 33.4)]), 1.2),
@@ -244,7 +252,7 @@ def warehouse() -> FloorPlan:
         Mover("tugger cart in the south cross aisle", "cart", np.array([(13.0, 6.6), (36.0, 6.6)]), 1.5,
               start_m=10.0, length_m=2.2, width_m=1.1),
     ]
-    return _plan("warehouse", warehouse.__doc__.split("\n")[0].strip(), segs, circles, route, movers, 20.0)
+    return _plan("warehouse", _summary(warehouse), segs, circles, route, movers, 20.0)
 
 
 # --------------------------------------------------------------------------- ring corridor
@@ -309,7 +317,7 @@ def ring() -> FloorPlan:
         Mover("trolley in the hall", "cart", np.array([(57.5, 9.0), (57.5, 19.0)]), 0.8,
               length_m=1.2, width_m=0.7),
     ]
-    return _plan("ring", ring.__doc__.split("\n")[0].strip(), segs, circles, route, movers, 20.0)
+    return _plan("ring", _summary(ring), segs, circles, route, movers, 20.0)
 
 
 # --------------------------------------------------------------------------- yard
@@ -362,7 +370,7 @@ def yard() -> FloorPlan:
         Mover("worker by the lone container", "person", np.array([(18.0, 44.0), (38.0, 44.0)]), 1.3,
               start_m=5.0),
     ]
-    return _plan("yard", yard.__doc__.split("\n")[0].strip(), segs, circles, route, movers, 30.0)
+    return _plan("yard", _summary(yard), segs, circles, route, movers, 30.0)
 
 
 FLOORPLANS = {"warehouse": warehouse, "ring": ring, "yard": yard}

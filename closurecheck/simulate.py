@@ -70,8 +70,8 @@ class SimOptions:
     odom_translation_m_per_sqrt_m: float = 0.01
     odom_heading_rad_per_sqrt_m: float = 0.0005
     odom_heading_rad_per_sqrt_rad: float = 0.005
-    odom_heading_bias_rad_per_m: float = 0.0006
-    odom_distance_scale_error: float = 0.003
+    odom_heading_bias_rad_per_m: float = 0.0004
+    odom_distance_scale_error: float = 0.002
     scans_per_block: int = 256
 
     def sensor(self, plan: FloorPlan) -> Sensor:
