@@ -123,6 +123,11 @@ def test_segment_behind_or_beside_is_missed_and_endpoints_hit():
     assert np.isinf(got[1])
     assert got[2] == pytest.approx(math.hypot(2.0, 1.0))
     assert np.isinf(got[3])
+    # a micrometre either side of the end point at (2, 1): just inside hits, just outside misses
+    edge = cast([0.0, 0.0, 0.0], [math.atan2(1.0 - 1e-6, 2.0), math.atan2(1.0 + 1e-6, 2.0)], seg)
+    assert edge[0] == pytest.approx(math.hypot(2.0, 1.0 - 1e-6)) and np.isinf(edge[1])
+    ring = cast([0.0, 0.0, 0.0], [math.asin(0.5) - 1e-7, math.asin(0.5) + 1e-7], None, [[2.0, 0.0, 1.0]])
+    assert np.isfinite(ring[0]) and np.isinf(ring[1])  # tangent at asin(r / d)
 
 
 def test_hits_beyond_max_range_are_inf():

@@ -13,7 +13,7 @@ from closurecheck.cli import main
 from closurecheck.errors import InputError
 from closurecheck.floorplans import FLOORPLANS
 from closurecheck.scanlog import read_scanlog, write_scanlog
-from closurecheck.simulate import (DEFAULT_SCENARIO, SCENARIOS, SimOptions, drive, odometry,
+from closurecheck.simulate import (DEFAULT_SCENARIO, SCENARIOS, SimOptions, corrupt, drive, odometry,
                                    odometry_drift, render, simulate_log)
 
 # Fewer beams keep the statistical tests fast; the geometry is the same.
@@ -87,8 +87,8 @@ def test_sensor_options_override_beams_and_the_yard_sees_farther():
     assert simulate_log("yard", scans=2, options=FAST).sensor.max_range == 30.0
 
 
-def _residuals(log, options):
-    plan = SCENARIOS[log.source.split("-")[1]]()
+def _residuals(name, log, options):
+    plan = SCENARIOS[name]()
     clean = render(plan, log.truth, log.t, log.sensor, options)
     return clean, log.ranges.astype(np.float64) - clean
 
@@ -97,7 +97,7 @@ def test_range_noise_is_gaussian_with_the_configured_std():
     opts = SimOptions(beams=181, range_resolution_m=0.0, dropout_probability=0.0,
                       burst_probability_per_scan=0.0)
     log = simulate_log("warehouse", seed=11, scans=60, options=opts)
-    clean, res = _residuals(log, opts)
+    clean, res = _residuals("warehouse", log, opts)
     inner = np.isfinite(clean) & (clean > 0.2) & (clean < log.sensor.max_range - 0.2)
     assert np.isnan(log.ranges[inner]).sum() == 0  # no dropouts configured
     r = res[inner]
@@ -118,7 +118,7 @@ def test_ranges_are_rounded_to_the_sensor_resolution():
 def test_single_beam_dropouts_occur_at_the_configured_rate():
     opts = SimOptions(beams=181, dropout_probability=0.01, burst_probability_per_scan=0.0)
     log = simulate_log("warehouse", seed=4, scans=120, options=opts)
-    clean, _ = _residuals(log, opts)
+    clean, _ = _residuals("warehouse", log, opts)
     inner = np.isfinite(clean) & (clean > 0.2) & (clean < log.sensor.max_range - 0.2)
     lost = int(np.isnan(log.ranges[inner]).sum())
     # exact binomial test (scipy.stats.binomtest) of the dropout count against p = 0.01
@@ -128,19 +128,27 @@ def test_single_beam_dropouts_occur_at_the_configured_rate():
 
 def test_dropout_bursts_are_contiguous_runs_of_the_configured_length():
     opts = SimOptions(beams=181, dropout_probability=0.0, burst_probability_per_scan=1.0,
-                      burst_min_beams=5, burst_max_beams=12)
-    log = simulate_log("ring", seed=6, scans=40, options=opts)
-    clean, _ = _residuals(log, opts)
-    lost = np.isnan(log.ranges) & np.isfinite(clean) & (clean > 0.2) & (clean < log.sensor.max_range - 0.2)
-    for row, c in zip(lost, clean):
+                      burst_min_beams=5, burst_max_beams=12, scans_per_block=64)
+    sensor = opts.sensor(FLOORPLANS["ring"]())
+    clean = np.full((64, 181), 5.0)  # every beam would return
+    out = corrupt(clean, np.random.default_rng(1), np.random.default_rng(2), sensor, opts)
+    lengths = []
+    for row in np.isnan(out):
         idx = np.flatnonzero(row)
-        assert len(idx) > 0
-        span = idx.max() - idx.min() + 1
-        assert span <= 12
-        hits = np.isfinite(c[idx.min():idx.max() + 1])
-        assert row[idx.min():idx.max() + 1][hits].all()  # no return inside the run
-        if 5 <= idx.min() and idx.max() < len(row) - 5:
-            assert span >= 5 or not np.isfinite(c[idx.min() - 5:idx.max() + 5]).all()
+        assert len(idx) > 0 and np.all(np.diff(idx) == 1)  # one contiguous run per scan
+        if idx.max() < 180:  # runs cut short by the last beam may be shorter
+            assert 5 <= len(idx) <= 12
+            lengths.append(len(idx))
+    assert len(set(lengths)) > 3  # lengths vary over the configured range
+
+
+def test_dropout_count_on_a_plain_wall_follows_the_binomial_law():
+    opts = SimOptions(beams=181, dropout_probability=0.02, burst_probability_per_scan=0.0, scans_per_block=200)
+    sensor = opts.sensor(FLOORPLANS["ring"]())
+    out = corrupt(np.full((200, 181), 5.0), np.random.default_rng(3), np.random.default_rng(4), sensor, opts)
+    lost = int(np.isnan(out).sum())
+    # exact binomial test (scipy.stats.binomtest) against p = 0.02
+    assert stats.binomtest(lost, out.size, 0.02).pvalue > 1e-3
 
 
 def test_odometry_noise_matches_the_header_model():
