@@ -29,6 +29,9 @@ def atomic_open(path, mode: str = "w", *, compress: bool | None = None, encoding
         compress = path.name.endswith(".gz")
     directory = path.parent if str(path.parent) else Path(".")
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=directory)
+    # mkstemp creates owner-only files; outputs should get the usual
+    # permissions that the user's umask gives a new file.
+    os.chmod(tmp, 0o666 & ~_umask())
     raw = os.fdopen(fd, "wb")
     try:
         # mtime=0 keeps gzip output byte-identical across runs.
@@ -49,6 +52,12 @@ def atomic_open(path, mode: str = "w", *, compress: bool | None = None, encoding
         with contextlib.suppress(FileNotFoundError):
             os.unlink(tmp)
         raise
+
+
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
 
 
 def write_text(path, text: str) -> None:
