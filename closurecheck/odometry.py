@@ -74,6 +74,10 @@ class OdometryNoise:
         """The model as the ``odometry_noise`` header object."""
         return {k: float(getattr(self, k)) for k in _MODEL_KEYS}
 
+    def at_least(self, other: "OdometryNoise") -> "OdometryNoise":
+        """Model with each coefficient the larger of this one's and ``other``'s."""
+        return OdometryNoise(*(max(getattr(self, f.name), getattr(other, f.name)) for f in fields(self)))
+
     def step_covariance(self, distance_m, rotation_rad) -> np.ndarray:
         """Covariance (..., 3, 3) of steps with the given path length and turn.
 
