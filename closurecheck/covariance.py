@@ -26,7 +26,11 @@ Two covariances on [x, y, theta] in the target frame are offered:
   usual Gauss-Newton approximation.
 
 ``sigma^2`` is estimated from the residuals, ``sum_i w_i r_i^2 / v_i / (n - 3)``
-(n - 3: three parameters were fitted).
+(n - 3: three parameters were fitted), divided by the kernel's Gaussian
+consistency constant ``E[w u^2]``; both covariances treat the final robust
+weights as fixed and are multiplied by the kernel's efficiency ratio kappa
+(see :func:`kernel_moments`), so that they match the robust estimator's
+asymptotic variance for Gaussian noise.
 
 Degeneracy: the Hessian is expressed in scaled coordinates (x, y, L * theta),
 ``L`` the root-mean-square distance of the source points from the sensor, so
@@ -41,6 +45,7 @@ squared so that it is never falsely small there.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import lru_cache
 
 import numpy as np
 
@@ -93,10 +98,47 @@ def hessian(jac, omega):
     return (jac * omega[:, None]).T @ jac
 
 
-def noise_variance(residuals, omega, n_params: int = 3) -> float:
-    """Residual-based estimate of sigma^2 (m^2) with the n - p degrees-of-freedom correction."""
+def noise_variance(residuals, omega, weighted_second_moment: float = 1.0, n_params: int = 3) -> float:
+    """Residual-based estimate of sigma^2 (m^2) with the n - p degrees-of-freedom correction.
+
+    ``omega`` are the total weights ``w_i / v_i``.  Robust weights shrink
+    the weighted sum of squares: for Gaussian residuals its expectation is
+    ``sigma^2 E[w(u) u^2]`` per residual, so the sum is divided by that
+    ``weighted_second_moment`` (from :func:`kernel_moments`) to stay
+    consistent.
+    """
     dof = max(len(residuals) - n_params, 1)
-    return float(np.dot(omega, residuals * residuals) / dof)
+    return float(np.dot(omega, residuals * residuals) / (dof * weighted_second_moment))
+
+
+@lru_cache(maxsize=32)
+def kernel_moments(kernel) -> tuple[float, float]:
+    """Gaussian consistency constants of a robust kernel (closurecheck.kernels.Kernel).
+
+    For u ~ N(0, 1) (a residual over its robust scale), with IRLS weight
+    ``w(u)`` and influence ``psi(u) = u w(u)``, returns
+
+    * ``E[w u^2]``: makes the weighted residual variance consistent
+      (see :func:`noise_variance`);
+    * ``kappa = (E[psi^2] / E[psi']^2) / (E[w^2] / E[w]^2)``: ratio of the
+      M-estimator's asymptotic variance (P. J. Huber, "Robust Statistics",
+      1981, ch. 7) to the variance a weighted least-squares fit with the
+      same weights held fixed would have.  The covariance formulas below
+      treat the final weights as fixed, so they are multiplied by kappa
+      (about 1.04 for Huber at 1.345).
+
+    Computed once per kernel by quadrature on a fine grid over [-12, 12].
+    """
+    u = np.linspace(-12.0, 12.0, 240_001)
+    du = u[1] - u[0]
+    phi = np.exp(-0.5 * u * u) / np.sqrt(2.0 * np.pi) * du
+    w = kernel.weight(u)
+    psi = u * w
+    dpsi = np.gradient(psi, du)
+    e_w, e_w2, e_wu2 = (phi * w).sum(), (phi * w * w).sum(), (phi * w * u * u).sum()
+    e_psi2, e_dpsi = (phi * psi * psi).sum(), (phi * dpsi).sum()
+    kappa = (e_psi2 / e_dpsi ** 2) / (e_w2 / e_w ** 2)
+    return float(e_wu2), float(kappa)
 
 
 def censi_middle(jac, omega, src_coef, nbr_index, nbr_coef, n_target: int):
@@ -129,13 +171,14 @@ def censi_middle(jac, omega, src_coef, nbr_index, nbr_coef, n_target: int):
 
 
 def analyse(h, middle, sigma2: float, n_corr: int, length_m: float, *, method: str,
-            degeneracy_threshold: float, unobservable_sigma_m: float) -> CovarianceEstimate:
+            degeneracy_threshold: float, unobservable_sigma_m: float, kappa: float = 1.0) -> CovarianceEstimate:
     """Covariance from the Hessian (and Censi's middle term), with degeneracy guard.
 
     ``h`` (3, 3) is the Gauss-Newton Hessian, ``middle`` the output of
     :func:`censi_middle` (ignored for ``method="hessian"``), ``sigma2`` the
     noise variance (m^2), ``n_corr`` the number of correspondences and
-    ``length_m`` the length scale for theta (metres).
+    ``length_m`` the length scale for theta (metres) and ``kappa`` the
+    kernel's efficiency ratio (:func:`kernel_moments`).
     """
     scale = np.array([1.0, 1.0, 1.0 / length_m])
     hs = h * scale[:, None] * scale[None, :] / max(n_corr, 1)
@@ -153,9 +196,9 @@ def analyse(h, middle, sigma2: float, n_corr: int, length_m: float, *, method: s
     inv_s = (evecs / np.maximum(evals, floor)) @ evecs.T / max(n_corr, 1)   # (D H D)^-1 scaled
     if method == "censi":
         ms = middle * scale[:, None] * scale[None, :]
-        cov_s = sigma2 * inv_s @ ms @ inv_s
+        cov_s = kappa * sigma2 * inv_s @ ms @ inv_s
     else:
-        cov_s = sigma2 * inv_s
+        cov_s = kappa * sigma2 * inv_s
     if weak.any():
         v = evecs[:, weak]
         cov_s = cov_s + (unobservable_sigma_m ** 2) * (v @ v.T)

@@ -75,7 +75,8 @@ class RegistrationOptions:
         max_correspondence_m: pairs farther apart are not matched.
         max_normal_angle_rad: pairs whose normals (both facing their sensors)
             differ by more are not matched; rejects the far side of a thin
-            wall.
+            wall.  Source points without a line are then not matched either;
+            a value >= pi switches the check off and matches every point.
         kernel: robust kernel name (closurecheck.kernels), e.g. ``"huber"``,
             ``"cauchy"``, ``"l2"``.
         kernel_scale: kernel threshold in robust standard deviations
@@ -486,22 +487,24 @@ def _failed(x, it) -> _Solution:
 def _associate(src: PreparedScan, tgt: PreparedScan, x, opt, cos_max):
     """Point-to-line correspondences of the source under pose x (vectorised).
 
+    With the normal check on, only source points on straight structure take
+    part: a point without a line of its own (a corner, clutter) cannot be
+    checked and is the typical false match across a corner or a thin wall.
     Returns (i, j, p, u, ln): source indices, target line indices, the
     source points and beam directions, and the target line rows.
     """
     c, s = np.cos(x[2]), np.sin(x[2])
     rot_t = np.array([[c, s], [-s, c]])
-    pw = src.points @ rot_t + x[:2]
+    cand = src.line_index if cos_max is not None else np.arange(len(src.points))
+    pw = src.points[cand] @ rot_t + x[:2]
     _, j = tgt.tree.query(pw, distance_upper_bound=opt.max_correspondence_m)
     ok = j < len(tgt.line_index)
     if cos_max is not None:
         jj = np.where(ok, j, 0)
-        rn = src.normals @ rot_t
-        agree = (rn * tgt.line[jj, 2:4]).sum(axis=1)
-        # Source points without a line of their own cannot be checked.
-        ok &= (agree >= cos_max) | ~src.has_line
-    i = np.flatnonzero(ok)
-    j = j[i]
+        agree = ((src.normals[cand] @ rot_t) * tgt.line[jj, 2:4]).sum(axis=1)
+        ok &= agree >= cos_max
+    i = cand[ok]
+    j = j[ok]
     return i, j, src.points[i], src.beams[i], tgt.line[j]
 
 
@@ -631,7 +634,8 @@ def _finish(src: PreparedScan, tgt: PreparedScan, sol: _Solution, opt: Registrat
                          "within max_correspondence_m of the guess")
     om = sol.w / sol.v
     h = _cov.hessian(sol.jac, om)
-    sigma2 = _cov.noise_variance(sol.r, om)
+    e_wu2, kappa = _cov.kernel_moments(kernel_from_name(opt.kernel, opt.kernel_scale))
+    sigma2 = _cov.noise_variance(sol.r, om, e_wu2)
     middle = None
     if opt.covariance == "censi":
         coef_t = -tgt.nbr_nu[sol.tgt] * (tgt.nbr_inv_count[sol.tgt][:, None]
@@ -639,7 +643,7 @@ def _finish(src: PreparedScan, tgt: PreparedScan, sol: _Solution, opt: Registrat
         middle = _cov.censi_middle(sol.jac, om, sol.src_coef, tgt.nbr_index[sol.tgt], coef_t, len(tgt.points))
     est = _cov.analyse(h, middle, sigma2, n, src.length_m, method=opt.covariance,
                        degeneracy_threshold=opt.degeneracy_threshold,
-                       unobservable_sigma_m=opt.unobservable_sigma_m)
+                       unobservable_sigma_m=opt.unobservable_sigma_m, kappa=kappa)
     z = np.abs(sol.r / np.sqrt(sol.v))
     inl = z <= opt.inlier_sigmas * sol.scale
     rmse = float(np.sqrt(np.mean(sol.r[inl] ** 2))) if inl.any() else float("nan")

@@ -109,20 +109,26 @@ def _open3d_point_to_point(source, target, guess, max_corr):
 def test_agrees_with_open3d_point_to_point(pairs):
     # Reference library: open3d (open3d-cpu 0.20) registration_icp with
     # TransformationEstimationPointToPoint on the same clouds and guesses.
-    # Point-to-point carries a sampling bias of a few centimetres on noisy
-    # scans, so agreement is asked to 3 cm / 0.5 degree; a wrong frame
+    # Point-to-point carries a bias of a centimetre or two on noisy,
+    # partially overlapping scans (it grows with the correspondence
+    # distance), so agreement is asked to 3 cm / 1 degree; a wrong frame
     # convention or a wrong Jacobian would be off by decimetres.
     max_corr = 0.2
+    ours_err, ref_err = [], []
     for target, source, truth in pairs:
         guess = truth + np.array([0.08, -0.06, 0.03])
         ref, fitness = _open3d_point_to_point(source, target, guess, max_corr)
         ours = register(source, target, guess, coarse=False, max_correspondence_m=max_corr)
         assert np.hypot(*(ours.delta[:2] - ref[:2])) < 0.03
-        assert angle_err(ours.delta[2], ref[2]) < np.radians(0.5)
+        assert angle_err(ours.delta[2], ref[2]) < np.radians(1.0)
+        ours_err.append(np.hypot(*(ours.delta[:2] - truth[:2])))
+        ref_err.append(np.hypot(*(ref[:2] - truth[:2])))
         # open3d's fitness is the fraction of source points with a partner
-        # within max_corr; ours also drops corners and clutter without a line.
-        assert ours.overlap <= fitness + 1e-9
-        assert ours.overlap > fitness - 0.15
+        # within max_corr; ours also leaves out corners and clutter (no
+        # line) and pairs whose normals disagree.
+        assert fitness - 0.2 < ours.overlap <= fitness + 1e-9
+    # The point-to-line metric is the more accurate of the two here.
+    assert np.mean(ours_err) < np.mean(ref_err)
 
 
 def test_point_to_point_option_recovers_transform(pairs):
