@@ -28,6 +28,7 @@ of the search to a few big-integer operations per vertex.
 
 from __future__ import annotations
 
+import bisect
 import time
 from dataclasses import dataclass
 
@@ -44,29 +45,37 @@ class CliqueOptions:
     """Budget and tie rules of :func:`max_clique`.
 
     max_expansions:
-        Search nodes (greedy colourings) the exact search may expand, both
-        phases together.  Deterministic: the same input and budget always give
-        the same answer.
+        Search nodes (greedy colourings) the search for the maximum may
+        expand.  Deterministic: the same input and budget always give the
+        same answer.
+    tie_max_expansions:
+        Search nodes the tie phase (rule 3 of the module docstring) may
+        expand once the maximum is proven.  Dense graphs with many optimal
+        cliques can need many; when the budget runs out the result keeps
+        ``exact=True`` but reports ``canonical=False``.
     max_seconds:
-        Optional wall-clock budget in seconds; None means no time limit.  A
-        time limit makes the outcome depend on machine speed.
+        Optional wall-clock budget in seconds for both phases; None means no
+        time limit.  A time limit makes the outcome depend on machine speed.
     weight_tie_rtol:
         Summed weights within this relative tolerance count as equal, so that
         the summation order cannot change the answer.
     canonical:
-        After the maximum is proven, run the second phase that picks the
-        lexicographically smallest optimal clique.  False returns whichever
-        optimal clique the search met first (still deterministic).
+        Run the tie phase.  False returns the optimal clique the search met
+        first (improved by single swaps towards smaller indices; still
+        deterministic, but dependent on the search order).
     """
 
     max_expansions: int = 1_000_000
+    tie_max_expansions: int = 100_000
     max_seconds: float | None = None
     weight_tie_rtol: float = 1e-9
     canonical: bool = True
 
     def __post_init__(self):
-        if not (isinstance(self.max_expansions, (int, np.integer)) and self.max_expansions >= 0):
-            raise InputError(f"max_expansions must be a non-negative integer, got {self.max_expansions!r}")
+        for name in ("max_expansions", "tie_max_expansions"):
+            v = getattr(self, name)
+            if not (isinstance(v, (int, np.integer)) and v >= 0):
+                raise InputError(f"{name} must be a non-negative integer, got {v!r}")
         if self.max_seconds is not None and not (
             isinstance(self.max_seconds, (int, float)) and self.max_seconds > 0
         ):
@@ -262,9 +271,9 @@ def _heuristic(g: _Graph):
 
 
 class _Budget:
-    def __init__(self, options: CliqueOptions):
-        self.left = int(options.max_expansions)
-        self.deadline = None if options.max_seconds is None else time.perf_counter() + options.max_seconds
+    def __init__(self, expansions, deadline):
+        self.left = int(expansions)
+        self.deadline = deadline
         self.used = 0
 
     def spend(self) -> bool:
@@ -401,110 +410,194 @@ def _exact(g: _Graph, start, budget: _Budget):
     return best, best_size, best_w, finished, root_colours
 
 
-def _canonical(a, w, weighted, core, size, min_weight, budget: _Budget):
-    """Lexicographically smallest clique with ``size`` vertices and summed
-    weight >= min_weight, in original vertex indices, or None if the budget
-    runs out.
+def _lex_less(path_sorted, extra, best):
+    """Is sorted(path_sorted ∪ extra) lexicographically smaller than best?
 
-    Depth-first search that branches on candidates in increasing index and
-    only extends a clique with larger indices, so cliques are met in
-    lexicographic order and the first one that qualifies is the answer.
-    Bounds: colouring the candidates greedily from the highest index down
-    gives, for each candidate v, the number of colours among candidates >= v,
-    an upper bound on the clique that can still be built from v on.
+    ``path_sorted`` and ``extra`` are sorted lists of original indices, best
+    a sorted list of the same total length.
     """
-    n = a.shape[0]
-    keep = np.flatnonzero(core >= size - 1)
-    keep_bits = _bits(keep, n)
-    nbr = [0] * n
-    for v in keep.tolist():
-        nbr[v] = _bits(a.indices[a.indptr[v] : a.indptr[v + 1]], n) & keep_bits
-    wl = w.tolist()
+    i = j = 0
+    for b in best:
+        if i < len(path_sorted) and (j >= len(extra) or path_sorted[i] < extra[j]):
+            x = path_sorted[i]
+            i += 1
+        else:
+            x = extra[j]
+            j += 1
+        if x != b:
+            return x < b
+    return False
 
-    def bounds(p_bits, r):
-        """Branch list [(v, bound)] ascending, cut where r + bound < size,
-        plus the node's weight bound and whether p_bits is a clique."""
-        colour_of = {}
-        q = p_bits
-        k = 0
-        class_max = []
-        singletons = True
-        while q:
-            k += 1
-            u_bits = q
-            cmax = 0.0
-            count = 0
-            while u_bits:
-                v = u_bits.bit_length() - 1
-                bit = 1 << v
-                u_bits ^= bit
-                u_bits &= ~nbr[v]
-                q ^= bit
-                colour_of[v] = k
-                count += 1
-                if wl[v] > cmax:
-                    cmax = wl[v]
-            class_max.append(cmax)
-            singletons = singletons and count == 1
+
+def _lex_improve(g: _Graph, members, min_weight):
+    """Cheap local improvement of a maximum clique towards the tie rule:
+    swap a member for a smaller-index non-member adjacent to all the others
+    while the weight stays above min_weight.  Positions in, positions out."""
+    idx = g.order
+    bits = 0
+    for p in members:
+        bits |= 1 << p
+    weight = sum(g.wpos[p] for p in members)
+    by_index = g.pos.tolist()  # positions in increasing original index
+    improved = True
+    while improved:
+        improved = False
+        for u in by_index:
+            ub = 1 << u
+            if bits & ub:
+                continue
+            missing = bits & ~g.nbr[u]
+            if missing and not (missing & (missing - 1)):
+                m = missing.bit_length() - 1
+                if idx[m] > idx[u] and weight - g.wpos[m] + g.wpos[u] >= min_weight:
+                    bits ^= missing | ub
+                    weight += g.wpos[u] - g.wpos[m]
+                    improved = True
+                    break
+    return _members_of(bits)
+
+
+def _lex_colour(g: _Graph, p_bits):
+    """Greedy colour classes of p_bits (position order) for the tie phase.
+
+    Returns (verts, cols, class_min, class_wmax, singletons): all vertices in
+    class order with their colour, and per class (index k - 1) the smallest
+    original index and the largest weight of its members.
+    """
+    nbr, wpos, order = g.nbr, g.wpos, g.order
+    verts, cols, class_min, class_wmax = [], [], [], []
+    q = p_bits
+    k = 0
+    singletons = True
+    while q:
+        k += 1
+        u_bits = q
+        cmin = g.n
+        cmax = 0.0
+        count = 0
+        while u_bits:
+            low = u_bits & -u_bits
+            v = low.bit_length() - 1
+            u_bits ^= low
+            u_bits &= ~nbr[v]
+            q ^= low
+            count += 1
+            verts.append(v)
+            cols.append(k)
+            if order[v] < cmin:
+                cmin = int(order[v])
+            if wpos[v] > cmax:
+                cmax = wpos[v]
+        class_min.append(cmin)
+        class_wmax.append(cmax)
+        singletons = singletons and count == 1
+    return verts, cols, class_min, class_wmax, singletons
+
+
+def _tie_break(g: _Graph, size, min_weight, incumbent, budget: _Budget):
+    """Lexicographically smallest clique (sorted original indices) with
+    ``size`` vertices and summed weight >= min_weight; positions or None if
+    the budget runs out.
+
+    Branch and bound in the same position order and colouring as the main
+    search, starting from ``incumbent`` (such a clique).  A branch whose
+    candidates lie in colour classes 1..c can at best complete the path with
+    one vertex from each of ``need`` distinct classes, so (i) its weight is at
+    most the sum of the ``need`` largest class maxima and (ii) the sorted
+    clique is, element by element, no smaller than the path merged with the
+    ``need`` smallest class minima (the k-th smallest index of any valid
+    completion is at least the k-th smallest class minimum).  Both bounds
+    only weaken as c decreases, so the first failing branch ends the node.
+    """
+    order = g.order
+    best_pos = _lex_improve(g, incumbent, min_weight)
+    best = sorted(int(order[p]) for p in best_pos)
+    version = [0]
+    weighted = g.weighted
+    nbr, wpos = g.nbr, g.wpos
+
+    def offer(positions, weight):
+        nonlocal best_pos, best
+        if len(positions) != size or (weighted and weight < min_weight):
+            return
+        cand = sorted(int(order[p]) for p in positions)
+        if cand < best:
+            best_pos, best = list(positions), cand
+            version[0] += 1
+
+    def floor_level(frame, r, path_sorted, w_path):
+        """Smallest colour c such that a branch of colour >= c passes both bounds."""
+        if frame[6] == version[0]:
+            return frame[5]
+        class_min, class_wmax = frame[3], frame[4]
         need = size - r
-        wbound = sum(sorted(class_max, reverse=True)[:need]) if weighted else 0.0
-        seen = set()
-        ascending = []
-        for v in sorted(colour_of, reverse=True):
-            seen.add(colour_of[v])
-            ascending.append((v, len(seen)))
-        ascending.reverse()
-        cut = [(v, b) for v, b in ascending if r + b >= size]
-        return cut, wbound, singletons
 
+        def ok(c):
+            if weighted and w_path + sum(sorted(class_wmax[:c], reverse=True)[:need]) < min_weight:
+                return False
+            return _lex_less(path_sorted, sorted(class_min[:c])[:need], best)
+
+        lo, hi = max(need, 1), len(class_min)
+        if hi < lo or not ok(hi):
+            level = hi + 1
+        else:
+            while lo < hi:  # ok is monotone in c
+                mid = (lo + hi) // 2
+                if ok(mid):
+                    hi = mid
+                else:
+                    lo = mid + 1
+            level = lo
+        frame[5], frame[6] = level, version[0]
+        return level
+
+    root = g.prefix_mask(size - 1)
     if not budget.spend():
         return None
-    branches, wbound, single = bounds(keep_bits, 0)
-    path, path_w = [], [0.0]
-
-    def accept(members, weight):
-        return len(members) == size and (not weighted or weight >= min_weight)
-
+    verts, cols, cmin, cwmax, single = _lex_colour(g, root)
     if single:
-        members = _members_of(keep_bits)[:size]
-        return members if accept(members, sum(wl[u] for u in members)) else None
-    if weighted and wbound < min_weight:
-        return None
-    stack = [[branches, 0, keep_bits]]
+        return best_pos  # the candidates form one clique: nothing to choose
+    # frame: [verts, cols, p_bits, class_min, class_wmax, floor, floor_version, idx]
+    stack = [[verts, cols, root, cmin, cwmax, 0, -1, len(verts) - 1]]
+    path, path_w, path_sorted = [], [0.0], []
     while stack:
         frame = stack[-1]
-        if frame[1] >= len(frame[0]):
+        idx = frame[7]
+        r = len(path)
+        go = idx >= 0 and r + frame[1][idx] >= size
+        if go:
+            go = frame[1][idx] >= floor_level(frame, r, path_sorted, path_w[-1])
+        if not go:
             stack.pop()
             if path:
-                path.pop()
+                v_old = path.pop()
                 path_w.pop()
+                path_sorted.remove(int(order[v_old]))
             continue
-        v, _ = frame[0][frame[1]]
-        frame[1] += 1
-        p_bits = frame[2] & ~((1 << (v + 1)) - 1)  # candidates above v
+        v = frame[0][idx]
+        frame[7] = idx - 1
+        p_bits = frame[2]
         child = p_bits & nbr[v]
-        r = len(path) + 1
-        wr = path_w[-1] + wl[v]
-        if r == size:
-            if accept(path + [v], wr):
-                return path + [v]
+        frame[2] = p_bits ^ (1 << v)
+        wr = path_w[-1] + wpos[v]
+        if r + 1 == size:
+            offer(path + [v], wr)
             continue
         if not child:
             continue
         if not budget.spend():
             return None
-        cut, wbound, single = bounds(child, r)
+        verts, cols, cmin, cwmax, single = _lex_colour(g, child)
         if single:
-            members = path + [v] + _members_of(child)[: size - r]
-            if accept(members, wr + sum(wl[u] for u in members[r:])):
-                return members
-            continue
-        if not cut or (weighted and wr + wbound < min_weight):
+            members = _members_of(child)
+            if r + 1 + len(members) == size:
+                offer(path + [v] + members, wr + sum(wpos[u] for u in members))
             continue
         path.append(v)
         path_w.append(wr)
-        stack.append([cut, 0, child])
-    return None
+        bisect.insort(path_sorted, int(order[v]))
+        stack.append([verts, cols, child, cmin, cwmax, 0, -1, len(verts) - 1])
+    return best_pos
 
 
 def _result(members, w, exact, canonical, expansions, upper_bound):
@@ -517,6 +610,67 @@ def _result(members, w, exact, canonical, expansions, upper_bound):
         upper_bound=int(upper_bound),
         weight=float(w[m].sum()) if len(m) else 0.0,
     )
+
+
+def _complement_components(nbr, n):
+    """Connected components of the complement graph (bitset search).
+
+    Any two vertices in different components are adjacent, so a maximum
+    clique is the union of a maximum clique of each component.  Components
+    come in order of their smallest vertex, each as a sorted list.
+    """
+    remaining = (1 << n) - 1
+    comps = []
+    while remaining:
+        low = remaining & -remaining
+        remaining ^= low
+        comp = low
+        frontier = [low.bit_length() - 1]
+        while frontier:
+            v = frontier.pop()
+            new = remaining & ~nbr[v]
+            if new:
+                remaining ^= new
+                comp |= new
+                frontier.extend(_members_of(new))
+        comps.append(_members_of(comp))
+    return comps
+
+
+@dataclass
+class _PartResult:
+    members: list  # original indices
+    size: int
+    finished: bool
+    canonical: bool
+    upper: int
+
+
+def _solve_part(a, w, weighted, seed, budget, tie_budget, options):
+    """Both phases on one complement component (CSR ``a``, local indices).
+
+    ``seed`` is a clique (local indices) the answer must not fall below.
+    """
+    g = _Graph(a, w, weighted)
+    start = _heuristic(g)
+    seed_pos = [int(p) for p in g.pos[seed]]
+    seed_w = sum(g.wpos[p] for p in seed_pos)
+    if _better(len(seed_pos), seed_w, start[1], start[2], weighted):
+        start = (seed_pos, len(seed_pos), seed_w)
+    core_bound = int(g.core.max()) + 1
+    if start[1] == core_bound and not weighted:
+        best, size, weight, finished, root_colours = start[0], start[1], start[2], True, start[1]
+    else:
+        best, size, weight, finished, root_colours = _exact(g, start, budget)
+    if not finished:
+        upper = max(size, min(core_bound, root_colours))
+        return _PartResult(g.order[best].tolist(), size, False, False, upper)
+    min_weight = weight - options.weight_tie_rtol * max(1.0, abs(weight))
+    if options.canonical:
+        found = _tie_break(g, size, min_weight, best, tie_budget)
+        if found is not None:
+            return _PartResult(g.order[found].tolist(), size, True, True, size)
+    return _PartResult(g.order[_lex_improve(g, best, min_weight)].tolist(), size, True, False, size)
 
 
 def heuristic_clique(adjacency, weights=None) -> CliqueResult:
@@ -574,22 +728,36 @@ def max_clique(adjacency, weights=None, options: CliqueOptions = CliqueOptions()
     w, weighted = _weights(weights, n)
     if n == 0:
         return _result([], w, True, True, 0, 0)
-    budget = _Budget(options)
+    deadline = None if options.max_seconds is None else time.perf_counter() + options.max_seconds
+    budget = _Budget(options.max_expansions, deadline)
+    tie_budget = _Budget(options.tie_max_expansions, deadline)
     g = _Graph(a, w, weighted)
-    start = _heuristic(g)
-    core_bound = int(g.core.max()) + 1
-    if start[1] == core_bound and not weighted:
-        best, size, weight, finished, root_colours = start[0], start[1], start[2], True, start[1]
-    else:
-        best, size, weight, finished, root_colours = _exact(g, start, budget)
-    members = g.order[best]
+    seed, seed_size, _ = _heuristic(g)
+    # Every clique at least as large as the heuristic's lies among the
+    # vertices of core number >= seed_size - 1; split those by the
+    # components of their complement graph and solve each part alone.
+    keep = np.flatnonzero(g.core >= seed_size - 1)
+    seed_orig = np.sort(g.order[seed])
+    local = np.full(n, -1, dtype=np.intp)
+    local[keep] = np.arange(len(keep))
+    sub = a[keep][:, keep]
+    sub_bits = [_bits(sub.indices[sub.indptr[v] : sub.indptr[v + 1]], len(keep)) for v in range(len(keep))]
+    members, finished, canonical, upper = [], True, True, 0
+    for comp in _complement_components(sub_bits, len(keep)):
+        idx = keep[comp]
+        if len(comp) == 1:
+            members.append(int(idx[0]))
+            upper += 1
+            continue
+        part_seed = local[np.intersect1d(seed_orig, idx)]
+        comp_local = np.full(len(keep), -1, dtype=np.intp)
+        comp_local[comp] = np.arange(len(comp))
+        part = _solve_part(sub[comp][:, comp], w[idx], weighted, comp_local[part_seed], budget, tie_budget, options)
+        members.extend(idx[part.members].tolist())
+        finished &= part.finished
+        canonical &= part.canonical
+        upper += part.upper
+    expansions = budget.used + tie_budget.used
     if not finished:
-        upper = max(size, min(core_bound, root_colours))
-        return _result(members, w, False, False, budget.used, upper)
-    canonical = False
-    if options.canonical:
-        min_weight = weight - options.weight_tie_rtol * max(1.0, abs(weight))
-        found = _canonical(a, w, weighted, g.core, size, min_weight, budget)
-        if found is not None:
-            members, canonical = found, True
-    return _result(members, w, True, canonical, budget.used, size)
+        return _result(members, w, False, False, expansions, max(upper, len(members)))
+    return _result(members, w, True, canonical, expansions, len(members))

@@ -93,6 +93,42 @@ def test_weights_break_size_ties_only():
     assert max_clique(b, weights=[1, 1, 1, 1, 1, 2]).members.tolist() == [3, 4, 5]
 
 
+def join(rng, sizes, p):
+    """Random graphs on consecutive vertex blocks, every cross-block pair
+    joined: the complement splits into (at least) one component per block."""
+    n = sum(sizes)
+    a = np.ones((n, n), dtype=bool)
+    start = 0
+    for m in sizes:
+        a[start : start + m, start : start + m] = random_graph(rng, m, p)
+        start += m
+    np.fill_diagonal(a, False)
+    perm = rng.permutation(n)
+    return a[np.ix_(perm, perm)]
+
+
+@pytest.mark.parametrize("weighted", [False, True])
+def test_graphs_whose_complement_splits_follow_the_tie_rule(weighted):
+    rng = np.random.default_rng(18)
+    for _ in range(8):
+        a = join(rng, rng.integers(1, 12, size=3), float(rng.choice([0.3, 0.6, 0.9])))
+        w = rng.integers(1, 4, len(a)).astype(float) if weighted else None
+        res = max_clique(a, weights=w)
+        _, ref = reference_choice(a, w)
+        assert res.exact and res.canonical
+        assert tuple(res.members.tolist()) == ref
+
+
+def test_tie_phase_budget_only_affects_canonical_flag():
+    rng = np.random.default_rng(19)
+    a = random_graph(rng, 60, 0.8)
+    full = max_clique(a)
+    quick = max_clique(a, options=CliqueOptions(tie_max_expansions=0))
+    assert full.canonical and quick.exact and not quick.canonical
+    assert quick.size == full.size and is_clique(a, quick.members)
+    assert max_clique(a, options=CliqueOptions(tie_max_expansions=0)).members.tolist() == quick.members.tolist()
+
+
 def test_heuristic_returns_a_clique_no_larger_than_the_maximum():
     for _, n, p, a in random_cases(seed=14, count=60):
         h = heuristic_clique(a)
