@@ -60,10 +60,11 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.spatial
 import scipy.stats
+from sklearn.decomposition import PCA
 from sklearn.neighbors import NearestNeighbors
 
 from . import se2
-from .descriptors import DescriptorOptions, ScanDescriptors, describe, estimate_yaw
+from .descriptors import DescriptorOptions, ScanDescriptors, describe, estimate_yaw_pairs
 from .errors import InputError
 from .keyframes import odometry_travel
 from .odometry import OdometryChain, OdometryNoise, noise_from_header
@@ -101,6 +102,10 @@ class CandidateOptions:
         chain positions to a better one are skipped.
     yaw_hypotheses : yaw hypotheses kept per candidate.
     tree : scikit-learn tree for descriptor search ("kd_tree" or "ball_tree").
+    search_dims : principal components of the descriptors searched by the
+        tree (:func:`search_space`); 0 searches the full descriptors.
+    block_keyframes : keyframes processed together (bounds the working
+        memory, not the results).
     """
 
     exclude_time_s: float = 20.0
@@ -118,6 +123,8 @@ class CandidateOptions:
     suppress_keyframes: int = 4
     yaw_hypotheses: int = 3
     tree: str = "kd_tree"
+    search_dims: int = 12
+    block_keyframes: int = 2048
 
     def __post_init__(self):
         for name in ("exclude_time_s", "exclude_travel_m"):
@@ -133,11 +140,11 @@ class CandidateOptions:
             if not (isinstance(v, (int, float)) and math.isfinite(v) and v >= 0):
                 raise InputError(f"candidate option {name} must be a finite number >= 0, got {v!r}")
         for name in ("descriptor_neighbours", "proximity_neighbours", "suppress_keyframes",
-                     "max_ungated_per_keyframe"):
+                     "max_ungated_per_keyframe", "search_dims"):
             v = getattr(self, name)
             if not (isinstance(v, int) and not isinstance(v, bool) and v >= 0):
                 raise InputError(f"candidate option {name} must be an integer >= 0, got {v!r}")
-        for name in ("max_per_keyframe", "yaw_hypotheses"):
+        for name in ("max_per_keyframe", "yaw_hypotheses", "block_keyframes"):
             v = getattr(self, name)
             if not (isinstance(v, int) and not isinstance(v, bool) and v >= 1):
                 raise InputError(f"candidate option {name} must be an integer >= 1, got {v!r}")
@@ -227,32 +234,34 @@ def _knn_outside_gap(query, k, count, t, travel, options, max_distance=np.inf):
     of rows (including the row itself).  Neighbours in the gap are dropped;
     rows left with fewer than k neighbours are asked again with twice as many
     until they have k or their search covered every point (or reached
-    ``max_distance``).  Returns (dist (count, k), idx (count, k)) padded with
-    inf / -1, sorted by distance.
+    ``max_distance``).  Rows are processed ``block_keyframes`` at a time so
+    the working memory does not grow with the log.  Returns (dist (count,
+    k), idx (count, k)) padded with inf / -1, sorted by distance.
     """
     out_d = np.full((count, k), np.inf)
     out_i = np.full((count, k), -1, dtype=np.int64)
     if k == 0 or count < 2:
         return out_d, out_i
-    rows = np.arange(count)
-    n = min(count, 2 * k + 8)
-    while len(rows):
-        d, idx = query(rows, n)
-        idx = np.asarray(idx, dtype=np.int64)
-        ok = np.isfinite(d) & (idx >= 0) & (idx < count)
-        safe = np.where(ok, idx, 0)
-        ok &= ~excluded(t, travel, rows[:, None], safe, options)
-        # Keep the first k valid neighbours of each row, in distance order.
-        order = np.argsort(~ok, axis=1, kind="stable")[:, :k]
-        got_d = np.where(np.take_along_axis(ok, order, 1), np.take_along_axis(d, order, 1), np.inf)
-        got_i = np.where(np.isfinite(got_d), np.take_along_axis(safe, order, 1), -1)
-        width = got_d.shape[1]
-        out_d[rows, :width] = got_d
-        out_i[rows, :width] = got_i
-        enough = ok.sum(axis=1) >= k
-        exhausted = (n >= count) | (d[:, -1] > max_distance) | ~np.isfinite(d[:, -1])
-        rows = rows[~(enough | exhausted)]
-        n = min(count, 2 * n)
+    for start in range(0, count, options.block_keyframes):
+        rows = np.arange(start, min(start + options.block_keyframes, count))
+        n = min(count, 2 * k + 8)
+        while len(rows):
+            d, idx = query(rows, n)
+            idx = np.asarray(idx, dtype=np.int64)
+            ok = np.isfinite(d) & (idx >= 0) & (idx < count)
+            safe = np.where(ok, idx, 0)
+            ok &= ~excluded(t, travel, rows[:, None], safe, options)
+            # Keep the first k valid neighbours of each row, in distance order.
+            order = np.argsort(~ok, axis=1, kind="stable")[:, :k]
+            got_d = np.where(np.take_along_axis(ok, order, 1), np.take_along_axis(d, order, 1), np.inf)
+            got_i = np.where(np.isfinite(got_d), np.take_along_axis(safe, order, 1), -1)
+            width = got_d.shape[1]
+            out_d[rows, :width] = got_d
+            out_i[rows, :width] = got_i
+            enough = ok.sum(axis=1) >= k
+            exhausted = (n >= count) | (d[:, -1] > max_distance) | ~np.isfinite(d[:, -1])
+            rows = rows[~(enough | exhausted)]
+            n = min(count, 2 * n)
     return out_d, out_i
 
 
@@ -283,9 +292,36 @@ def descriptor_neighbours(vectors, t, travel, options: CandidateOptions = Candid
     return _knn_outside_gap(query, k, count, t, travel, options)
 
 
+def search_space(vectors, options: CandidateOptions = CandidateOptions()) -> np.ndarray:
+    """Descriptors projected on their ``search_dims`` leading principal components.
+
+    Tree search is only faster than brute force in few dimensions; the
+    descriptors' variance sits in a few directions, so searching the
+    leading principal components (computed from these descriptors with
+    scikit-learn's PCA) keeps the neighbours while the search stays near
+    O(K log K).  ``search_dims = 0`` (or at least the descriptor length)
+    searches the full vectors.
+    """
+    vectors = np.asarray(vectors, dtype=np.float64)
+    dims = options.search_dims
+    if dims == 0 or dims >= vectors.shape[1] or len(vectors) <= dims:
+        return vectors
+    return PCA(n_components=dims, svd_solver="full").fit_transform(vectors)
+
+
 def _mahalanobis_sq3(e, c):
-    """``e^T C^-1 e`` for stacks of symmetric positive definite 3x3 C."""
-    return np.einsum("...i,...i->...", e, np.linalg.solve(c, e[..., None])[..., 0])
+    """``e^T C^-1 e`` for stacks of symmetric positive definite 3x3 C.
+
+    The adjugate formula works element by element, several times faster
+    than a batched LAPACK solve on millions of tiny matrices.
+    """
+    a, b, cc = c[..., 0, 0], c[..., 0, 1], c[..., 0, 2]
+    d, f, g = c[..., 1, 1], c[..., 1, 2], c[..., 2, 2]
+    A, B, C = d * g - f * f, cc * f - b * g, b * f - cc * d
+    D, E, F = a * g - cc * cc, b * cc - a * f, a * d - b * b
+    det = a * A + b * B + cc * C
+    x, y, z = e[..., 0], e[..., 1], e[..., 2]
+    return (A * x * x + D * y * y + F * z * z + 2.0 * (B * x * y + C * x * z + E * y * z)) / det
 
 
 def gate_distance_sq(chain: OdometryChain, i, j, options: CandidateOptions = CandidateOptions()) -> np.ndarray:
@@ -299,8 +335,10 @@ def gate_distance_sq(chain: OdometryChain, i, j, options: CandidateOptions = Can
     j = np.asarray(j, dtype=np.int64)
     if i.size == 0:
         return np.zeros(i.shape)
-    delta, cov = chain.relative_by_index(np.minimum(i, j), np.maximum(i, j))
-    return _mahalanobis_sq3(delta, cov + _near_covariance(options))
+    shape = np.broadcast(i, j).shape
+    i, j = np.broadcast_to(i, shape).reshape(-1), np.broadcast_to(j, shape).reshape(-1)
+    delta, cov = chain.forward(np.minimum(i, j), np.maximum(i, j))
+    return _mahalanobis_sq3(delta, cov + _near_covariance(options)).reshape(shape)
 
 
 def _pose_points(poses, options: CandidateOptions) -> np.ndarray:
@@ -340,10 +378,12 @@ def proximity_neighbours(chain: OdometryChain, t, travel, options: CandidateOpti
         return tree.query(pts[rows], k=n, distance_upper_bound=radius)
 
     _, idx = _knn_outside_gap(query, k, count, t, travel, options, max_distance=radius)
-    rows = np.broadcast_to(np.arange(count)[:, None], idx.shape)
-    have = idx >= 0
     m2 = np.full(idx.shape, np.inf)
-    m2[have] = gate_distance_sq(chain, rows[have], idx[have], options)
+    for start in range(0, count, options.block_keyframes):
+        part = idx[start:start + options.block_keyframes]
+        rows = np.broadcast_to(np.arange(start, start + len(part))[:, None], part.shape)
+        have = part >= 0
+        m2[start:start + len(part)][have] = gate_distance_sq(chain, rows[have], part[have], options)
     m2[m2 > options.gate_threshold] = np.inf
     order = np.argsort(m2, axis=1, kind="stable")
     m2 = np.take_along_axis(m2, order, 1)
@@ -422,8 +462,7 @@ def _pair_fields(src_pos, dst_pos, chain, desc, options):
     ddist = np.linalg.norm(desc.vectors[src_pos] - desc.vectors[dst_pos], axis=1)
     m2 = gate_distance_sq(chain, src_pos, dst_pos, options)
     odo, cov = chain.relative_by_index(src_pos, dst_pos)
-    yaw, score = estimate_yaw(desc.sectors[src_pos], desc.sectors[dst_pos], count=h)
-    yaw, score = yaw.reshape(-1, h), score.reshape(-1, h)
+    yaw, score = estimate_yaw_pairs(desc.sectors, src_pos, dst_pos, count=h)
     return ddist, m2, odo, yaw, score, _guess(odo, cov, yaw, m2 <= options.gate_threshold, options)
 
 
@@ -478,22 +517,25 @@ def propose(t, travel, descriptors: ScanDescriptors, chain: OdometryChain,
                          f"{len(descriptors)} descriptors and {count} chain nodes; they must match")
     if count < 2:
         return empty_candidates(options.yaw_hypotheses)
-    d_desc, idx_desc = descriptor_neighbours(descriptors.vectors, t, travel, options)
+    d_desc, idx_desc = descriptor_neighbours(search_space(descriptors.vectors, options), t, travel, options)
     _, idx_prox = proximity_neighbours(chain, t, travel, options)
-    part = _union_rows(idx_desc, idx_prox)
-    rows = np.broadcast_to(np.arange(count)[:, None], part.shape)
-    have = part >= 0
-    m2 = np.full(part.shape, np.inf)
-    dd = np.full(part.shape, np.inf)
-    m2[have] = gate_distance_sq(chain, rows[have], part[have], options)
-    dd[have] = np.linalg.norm(descriptors.vectors[rows[have]] - descriptors.vectors[part[have]], axis=1)
-    gated = m2 <= options.gate_threshold
     # Descriptor distances are scaled by the typical distance to the best
     # match, so the weighting does not depend on the descriptor's units.
     best = d_desc[:, 0][np.isfinite(d_desc[:, 0])] if d_desc.shape[1] else np.zeros(0)
     d_ref = float(np.median(best)) if len(best) and np.median(best) > 0 else 1.0
-    score = rank_score(m2, dd / d_ref, options)
-    chosen, chosen_score = _select(part, score, gated, options)
+    chosen = np.full((count, options.max_per_keyframe), -1, dtype=np.int64)
+    chosen_score = np.full(chosen.shape, np.inf)
+    for start in range(0, count, options.block_keyframes):
+        stop = min(start + options.block_keyframes, count)
+        part = _union_rows(idx_desc[start:stop], idx_prox[start:stop])
+        rows = np.broadcast_to(np.arange(start, stop)[:, None], part.shape)
+        have = part >= 0
+        m2 = np.full(part.shape, np.inf)
+        dd = np.full(part.shape, np.inf)
+        m2[have] = gate_distance_sq(chain, rows[have], part[have], options)
+        dd[have] = np.linalg.norm(descriptors.vectors[rows[have]] - descriptors.vectors[part[have]], axis=1)
+        score = rank_score(m2, dd / d_ref, options)
+        chosen[start:stop], chosen_score[start:stop] = _select(part, score, m2 <= options.gate_threshold, options)
     q = np.broadcast_to(np.arange(count)[:, None], chosen.shape)
     keep = chosen >= 0
     a, b, s = q[keep], chosen[keep], chosen_score[keep]

@@ -83,7 +83,7 @@ class DescriptorOptions:
     compress_offset: float = 0.01
     yaw_sectors: int = 360
     yaw_min_overlap: float = 0.25
-    batch_scans: int = 1024
+    batch_scans: int = 256
 
     def __post_init__(self):
         if not (isinstance(self.rings, int) and self.rings >= 1):
@@ -312,4 +312,23 @@ def estimate_yaw(sig_a, sig_b, count: int = 3, min_separation_rad: float = math.
             work[rows[:, None], cols] = -np.inf
     if single:
         return yaw[0], score[0]
+    return yaw, score
+
+
+def estimate_yaw_pairs(sectors, a, b, count: int = 3, min_separation_rad: float = math.radians(10.0),
+                       options: DescriptorOptions = DescriptorOptions(), batch_pairs: int = 1024):
+    """:func:`estimate_yaw` for pairs of rows of one signature table.
+
+    ``sectors`` (K, S) signatures, ``a`` and ``b`` (P,) row indices; the
+    result is the yaw of ``a^-1 ∘ b`` for each pair.  Rows are gathered one
+    batch at a time, so memory stays bounded for any number of pairs.
+    """
+    a = np.asarray(a, dtype=np.int64).reshape(-1)
+    b = np.asarray(b, dtype=np.int64).reshape(-1)
+    yaw = np.full((len(a), count), np.nan)
+    score = np.full((len(a), count), -np.inf)
+    for start in range(0, len(a), batch_pairs):
+        stop = start + batch_pairs
+        yaw[start:stop], score[start:stop] = estimate_yaw(
+            sectors[a[start:stop]], sectors[b[start:stop]], count, min_separation_rad, options, batch_pairs)
     return yaw, score

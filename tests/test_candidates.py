@@ -201,13 +201,35 @@ def test_proposals_on_a_loop_find_the_revisits_within_budget(loop):
     assert len(c) <= opts.max_per_keyframe * len(kf)
     # Source flags describe the pair: the proximity bit is the gate's verdict.
     np.testing.assert_array_equal((c.sources & SOURCE_PROXIMITY) > 0, c.gate_distance_sq <= opts.gate_threshold)
-    _, idx = descriptor_neighbours(data.descriptors.vectors, data.t, data.travel, opts)
+    _, idx = descriptor_neighbours(cand.search_space(data.descriptors.vectors, opts), data.t, data.travel, opts)
     listed = {(min(r, q), max(r, q)) for r, row in enumerate(idx) for q in row if q >= 0}
     np.testing.assert_array_equal((c.sources & SOURCE_DESCRIPTOR) > 0,
                                   [(min(x, y), max(x, y)) in listed for x, y in zip(a, b)])
     r = evaluate.candidate_recall(kf, log.truth[kf], data.t, data.travel, c.src, c.dst, opts)
     assert r.events >= 5
     assert r.recall >= 0.95
+
+
+def test_search_space_keeps_most_full_descriptor_neighbours(loop):
+    _, _, data = loop
+    opts = CandidateOptions()
+    full = descriptor_neighbours(data.descriptors.vectors, data.t, data.travel, opts)[1]
+    reduced_vectors = cand.search_space(data.descriptors.vectors, opts)
+    assert reduced_vectors.shape == (len(full), opts.search_dims)
+    reduced = descriptor_neighbours(reduced_vectors, data.t, data.travel, opts)[1]
+    overlap = np.mean([len(set(f) & set(r)) / len(f) for f, r in zip(full, reduced)])
+    assert overlap > 0.8
+    same = cand.search_space(data.descriptors.vectors, CandidateOptions(search_dims=0))
+    np.testing.assert_array_equal(same, data.descriptors.vectors)
+
+
+def test_blocks_do_not_change_the_proposals(loop):
+    _, _, data = loop
+    one = propose_for(data, CandidateOptions())
+    many = propose_for(data, CandidateOptions(block_keyframes=7))
+    np.testing.assert_array_equal(one.src, many.src)
+    np.testing.assert_array_equal(one.dst, many.dst)
+    np.testing.assert_array_equal(one.guess, many.guess)
 
 
 def test_guess_is_closer_to_truth_than_raw_odometry(loop):

@@ -6,7 +6,8 @@ import numpy as np
 import pytest
 
 from closurecheck import raycast, se2
-from closurecheck.descriptors import DescriptorOptions, correlate_signatures, describe, estimate_yaw
+from closurecheck.descriptors import (DescriptorOptions, correlate_signatures, describe, estimate_yaw,
+                                      estimate_yaw_pairs)
 from closurecheck.errors import InputError
 from closurecheck.scanlog import Sensor
 
@@ -138,6 +139,17 @@ def test_batches_do_not_change_results():
     many = describe(r, PARTIAL, DescriptorOptions(batch_scans=2))
     np.testing.assert_array_equal(one.vectors, many.vectors)
     np.testing.assert_array_equal(one.sectors, many.sectors)
+
+
+def test_yaw_for_index_pairs_equals_yaw_of_gathered_rows():
+    poses = np.column_stack([np.linspace(1, 9, 6), np.full(6, 3.2), np.linspace(-3, 3, 6)])
+    sig = describe(scans(poses, PARTIAL), PARTIAL).sectors
+    a = np.array([0, 1, 2, 5, 4, 3, 0])
+    b = np.array([1, 2, 3, 0, 4, 5, 5])
+    yaw, score = estimate_yaw_pairs(sig, a, b, count=2, batch_pairs=3)
+    ref_yaw, ref_score = estimate_yaw(sig[a], sig[b], count=2)
+    np.testing.assert_array_equal(yaw, ref_yaw)
+    np.testing.assert_array_equal(score, ref_score)
 
 
 def test_wrong_beam_count_is_input_error():

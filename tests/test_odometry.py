@@ -116,3 +116,19 @@ def test_chain_rejects_non_keyframes():
 def test_bad_noise_values_raise_input_error():
     with pytest.raises(InputError):
         OdometryNoise(translation_m_per_sqrt_m=-1.0)
+
+
+def test_forward_equals_the_se2_chain_relative_formula():
+    # The element-by-element fast path against se2.chain_relative (stacked
+    # 3x3 products), on a chain that wraps its heading many times.
+    rng = np.random.default_rng(7)
+    steps = np.column_stack([rng.uniform(0.2, 0.8, 200), rng.normal(0, 0.1, 200), rng.normal(0.3, 0.4, 200)])
+    odom, _ = se2.chain(steps)
+    chain = OdometryChain.build(odom, np.arange(len(odom)), OdometryNoise())
+    i = rng.integers(0, 201, 500)
+    j = rng.integers(0, 201, 500)
+    lo, hi = np.minimum(i, j), np.maximum(i, j)
+    delta, cov = chain.forward(lo, hi)
+    ref_delta, ref_cov = se2.chain_relative(chain.poses, chain.prefix, lo, hi)
+    np.testing.assert_allclose(delta, ref_delta, atol=1e-12)
+    np.testing.assert_allclose(cov, ref_cov, rtol=1e-9, atol=1e-12 * np.abs(ref_cov).max())
