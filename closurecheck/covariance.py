@@ -171,37 +171,52 @@ def censi_middle(jac, omega, src_coef, nbr_index, nbr_coef, n_target: int):
 
 
 def analyse(h, middle, sigma2: float, n_corr: int, length_m: float, *, method: str,
-            degeneracy_threshold: float, unobservable_sigma_m: float, kappa: float = 1.0) -> CovarianceEstimate:
+            degeneracy_threshold: float, unobservable_sigma_m: float, kappa: float = 1.0,
+            points_per_normal: float = 1.0) -> CovarianceEstimate:
     """Covariance from the Hessian (and Censi's middle term), with degeneracy guard.
 
     ``h`` (3, 3) is the Gauss-Newton Hessian, ``middle`` the output of
     :func:`censi_middle` (ignored for ``method="hessian"``), ``sigma2`` the
-    noise variance (m^2), ``n_corr`` the number of correspondences and
+    noise variance (m^2), ``n_corr`` the number of correspondences,
     ``length_m`` the length scale for theta (metres) and ``kappa`` the
     kernel's efficiency ratio (:func:`kernel_moments`).
+
+    Inflation: along a weak eigenvector v the covariance gains
+    ``unobservable_sigma_m^2``.  The eigenvector itself comes from noisy
+    normals and is tilted from the truly unconstrained direction, so an
+    error along the true direction (as large as the initial guess's) would
+    leak into the directions the covariance calls precise.  First-order
+    eigenvector perturbation gives the tilt towards another eigenvector u_k
+    a variance ``tau_k^2 = (lambda_weak / lambda_k) * points_per_normal / n``
+    (the weak eigenvalue is the normals' scatter; ``points_per_normal``
+    readings share each independent normal estimate), so each u_k also gains
+    ``unobservable_sigma_m^2 tau_k^2``: a cone around v rather than a line.
     """
     scale = np.array([1.0, 1.0, 1.0 / length_m])
-    hs = h * scale[:, None] * scale[None, :] / max(n_corr, 1)
-    evals, evecs = np.linalg.eigh(hs)
+    per = 1.0 / max(n_corr, 1)
+    evals, evecs = np.linalg.eigh(h * scale[:, None] * scale[None, :] * per)
     evals = np.maximum(evals, 0.0)
     top = evals[-1] if evals[-1] > 0 else 1.0
     degeneracy = float(evals[0] / top)
     weak = evals < degeneracy_threshold * top
 
     # Invert in scaled, per-correspondence units, where a degenerate Hessian
-    # has a tiny but well-defined eigenvalue; a pseudo-inverse keeps the
-    # computation finite when it is exactly zero, and the inflation below
-    # then supplies the large variance.
-    floor = 1e-12 * top
-    inv_s = (evecs / np.maximum(evals, floor)) @ evecs.T / max(n_corr, 1)   # (D H D)^-1 scaled
+    # has a tiny but well-defined eigenvalue; a floored eigen-inverse keeps
+    # the computation finite when it is exactly zero, and the inflation
+    # below then supplies the large variance.
+    inv_s = (evecs / np.maximum(evals, 1e-12 * top)) @ evecs.T * per      # (D H D)^-1
     if method == "censi":
         ms = middle * scale[:, None] * scale[None, :]
         cov_s = kappa * sigma2 * inv_s @ ms @ inv_s
     else:
         cov_s = kappa * sigma2 * inv_s
     if weak.any():
-        v = evecs[:, weak]
-        cov_s = cov_s + (unobservable_sigma_m ** 2) * (v @ v.T)
+        big = unobservable_sigma_m ** 2
+        for w in np.flatnonzero(weak):
+            cov_s = cov_s + big * np.outer(evecs[:, w], evecs[:, w])
+            for k in np.flatnonzero(~weak):
+                tau2 = evals[w] / evals[k] * points_per_normal * per
+                cov_s = cov_s + big * tau2 * np.outer(evecs[:, k], evecs[:, k])
     cov = cov_s * scale[:, None] * scale[None, :]
     cov = 0.5 * (cov + cov.T)
     return CovarianceEstimate(

@@ -65,6 +65,9 @@ class RegistrationOptions:
             across the line to its spread along it (square root of the
             eigenvalue ratio); thicker neighbourhoods (corners, clutter,
             curved objects) give no line.
+        line_model: ``"quadratic"`` fits the offset across each local line
+            as a parabola along it, so curved surfaces are followed rather
+            than replaced by chords; ``"line"`` uses the straight line.
         point_noise: ``"range"`` (noise along each beam) or ``"isotropic"``.
         min_incidence_cos: floor on |cos| of the angle between a beam and the
             line normal in the noise model, so that grazing readings are not
@@ -101,6 +104,8 @@ class RegistrationOptions:
             below which a direction counts as unconstrained.
         unobservable_sigma_m: standard deviation added along unconstrained
             directions (metres; theta scaled by the scan's length scale).
+            ICP leaves the estimate near its start there (the guess or the
+            coarse hypothesis), so this should exceed that start's error.
 
     Coarse stage (Olson 2009)
         coarse: run the coarse search around each seed before ICP.
@@ -122,6 +127,7 @@ class RegistrationOptions:
     line_radius_m: float = 0.3
     min_line_points: int = 5
     max_line_thickness: float = 0.3
+    line_model: str = "quadratic"
     point_noise: str = "range"
     min_incidence_cos: float = 0.2
 
@@ -141,7 +147,7 @@ class RegistrationOptions:
 
     covariance: str = "censi"
     degeneracy_threshold: float = 0.01
-    unobservable_sigma_m: float = 10.0
+    unobservable_sigma_m: float = 5.0
 
     coarse: bool = True
     coarse_window_m: float = 3.5
@@ -183,6 +189,8 @@ class RegistrationOptions:
                 raise InputError(f"registration option {name} must be an integer >= {low}, got {v!r}")
         if self.min_line_points > self.line_neighbours:
             raise InputError("registration option min_line_points must not exceed line_neighbours")
+        if self.line_model not in ("quadratic", "line"):
+            raise InputError(f"line_model must be 'quadratic' or 'line', got {self.line_model!r}")
         if self.point_noise not in ("range", "isotropic"):
             raise InputError(f"point_noise must be 'range' or 'isotropic', got {self.point_noise!r}")
         if self.method not in ("point_to_line", "point_to_point"):
@@ -196,6 +204,7 @@ class RegistrationOptions:
     def preparation_key(self) -> tuple:
         """The settings that shape a :class:`PreparedScan` (scans must agree on them)."""
         return (self.line_neighbours, self.line_radius_m, self.min_line_points, self.max_line_thickness,
+                self.line_model,
                 self.point_noise, self.min_incidence_cos, self.coarse_resolution_m, self.coarse_sigma_m,
                 self.coarse_block_cells, self.coarse_max_points)
 
@@ -220,17 +229,21 @@ class PreparedScan:
     has_line : (N,) bool, the point lies on locally straight structure.
     line_index : (M,) indices of the points with a line.
     tree : cKDTree over ``points[line_index]``.
-    line : (M, 7) per line point: centroid x, y, normal x, y and the noise
-        coefficients c0, c1, c2 of the fitted line (see covariance.py).
+    line : (M, 14) per line point: centroid x, y, normal x, y, the local
+        model's coefficients b0, b1, b2 (offset across the line at along-line
+        position s is ``b0 + b1 s + b2 s^2`` within the readings' extent and
+        continues along the tangent beyond it), the six entries
+        Q00, Q01, Q02, Q11, Q12, Q22 of its variance ``sigma^2 phi Q phi^T``
+        and the extent e (m).
     nbr_index : (M, k) indices into ``points`` of the readings that fitted
-        each line; nbr_nu : (M, k) their normal-direction sensitivity (zero
-        for unused slots); nbr_slope : (M, k) their along-line offset divided
-        by the sum of squared offsets (1/m); nbr_inv_count : (M,) 1 / number
-        of readings used.
+        each line; nbr_nu : (M, k) their sensitivity across the line (zero
+        for unused slots); nbr_weights : (M, k, 3) each reading's weight in
+        the fitted coefficients (b0, b1, b2).
     coarse_points : (K, 2) downsampled points for the coarse search.
     grid : the likelihood grid (closurecheck.coarse.LikelihoodGrid) or None.
     length_m : root-mean-square range of the points (metres).
     radius_m : largest range of the points (metres).
+    point_noise : the noise model the line coefficients were built for.
     key : the preparation settings (RegistrationOptions.preparation_key()).
     """
 
@@ -244,12 +257,12 @@ class PreparedScan:
     line: np.ndarray
     nbr_index: np.ndarray
     nbr_nu: np.ndarray
-    nbr_slope: np.ndarray
-    nbr_inv_count: np.ndarray
+    nbr_weights: np.ndarray
     coarse_points: np.ndarray
     grid: _coarse.LikelihoodGrid | None
     length_m: float
     radius_m: float
+    point_noise: str
     key: tuple
 
     def __len__(self) -> int:
@@ -422,27 +435,40 @@ def _prepare(pts, opt: RegistrationOptions, with_grid: bool) -> PreparedScan:
 
     li = line_index
     nidx = idx[li]
-    nused = used[li]
+    nused = used[li].astype(float)
     n_l = normal[li]
     t_l = tangent[li]
     c_l = centroid[li]
-    q = pts[nidx]                                                       # (M, k, 2)
-    a = ((q - c_l[:, None, :]) * t_l[:, None, :]).sum(axis=-1) * nused   # along-line offsets (m)
+    dev = pts[nidx] - c_l[:, None, :]                                    # (M, k, 2)
+    a = (dev * t_l[:, None, :]).sum(axis=-1) * nused                     # along the line (m)
+    h = (dev * n_l[:, None, :]).sum(axis=-1) * nused                     # across it (m)
+    # Local model h = f(a) fitted by least squares: a straight line
+    # [1, a] or, by default, a parabola [1, a, a^2] so that a curved surface
+    # (a round column) is not replaced by its chord.  Beyond the readings'
+    # extent e = max |a| the parabola continues along its tangent, never
+    # extrapolating a noisy curvature: with m = clip(s, -e, e) the basis is
+    # phi(s) = [1, s, 2 m s - m^2].  wts[l] = (X^T X)^-1 x_l gives
+    # f(s) = sum_l h_l (wts_l . phi(s)), the fit's linear dependence on each
+    # reading, which the covariance needs.
+    quadratic = opt.line_model == "quadratic"
+    cols = [nused, a, a * a if quadratic else np.zeros_like(a)]
+    x = np.stack(cols, axis=-1)                                           # (M, k, 3)
+    xtx = np.einsum("mki,mkj->mij", x, x)
+    if not quadratic:
+        xtx[:, 2, 2] = 1.0
+    wts = np.einsum("mij,mkj->mki", np.linalg.pinv(xtx), x)              # (M, k, 3)
+    beta = np.einsum("mki,mk->mi", wts, h)
+    extent = np.abs(a).max(axis=1)
     if opt.point_noise == "range":
         nu = np.abs((beams[nidx] * n_l[:, None, :]).sum(axis=-1))
         nu = np.maximum(nu, opt.min_incidence_cos)
     else:
         nu = np.ones_like(a)
     nu = nu * nused
-    inv_count = 1.0 / count[li]
-    slope = a / np.maximum((a * a).sum(axis=1), 1e-18)[:, None]
-    nu2 = nu * nu
-    # Variance (units of sigma^2) of the fitted line's offset at along-line
-    # position s: sum_l nu_l^2 (1/k + s a_l / sum a^2)^2 = c0 + c1 s + c2 s^2.
-    c0 = nu2.sum(axis=1) * inv_count ** 2
-    c1 = 2.0 * (nu2 * slope).sum(axis=1) * inv_count
-    c2 = (nu2 * slope * slope).sum(axis=1)
-    line = np.column_stack([c_l, n_l, c0, c1, c2])
+    # Variance (units of sigma^2) of f(s): phi Q phi^T with Q = sum_l nu_l^2 wts_l wts_l^T.
+    q = np.einsum("mk,mki,mkj->mij", nu * nu, wts, wts)
+    line = np.column_stack([c_l, n_l, beta, q[:, 0, 0], q[:, 0, 1], q[:, 0, 2], q[:, 1, 1], q[:, 1, 2],
+                            q[:, 2, 2], extent])
 
     normals = np.where(has_line[:, None], normal, 0.0)
     coarse_pts = _coarse.downsample(pts, 2.0 * opt.coarse_resolution_m, opt.coarse_max_points)
@@ -452,9 +478,10 @@ def _prepare(pts, opt: RegistrationOptions, with_grid: bool) -> PreparedScan:
     return PreparedScan(
         points=pts, beams=beams, normals=normals, thickness=thickness, has_line=has_line,
         line_index=line_index, tree=cKDTree(pts[line_index]), line=line,
-        nbr_index=nidx, nbr_nu=nu, nbr_slope=slope, nbr_inv_count=inv_count,
+        nbr_index=nidx, nbr_nu=nu, nbr_weights=wts,
         coarse_points=coarse_pts, grid=grid,
-        length_m=float(np.sqrt(np.mean(rng * rng))), radius_m=float(rng.max()), key=opt.preparation_key(),
+        length_m=float(np.sqrt(np.mean(rng * rng))), radius_m=float(rng.max()), point_noise=opt.point_noise,
+        key=opt.preparation_key(),
     )
 
 
@@ -473,7 +500,7 @@ class _Solution:
     v: np.ndarray         # (n,) residual variance units
     w: np.ndarray         # (n,) robust weights
     jac: np.ndarray       # (n, 3)
-    s_along: np.ndarray   # (n,) along-line offsets (m)
+    s_along: np.ndarray   # (n, 2) along-line offsets s (m) and the basis phi_2(s) (m^2)
     src_coef: np.ndarray  # (n,) source-noise sensitivity
     scale: float          # robust residual scale (m)
 
@@ -509,7 +536,13 @@ def _associate(src: PreparedScan, tgt: PreparedScan, x, opt, cos_max):
 
 
 def _linearise(pairs, x, opt, range_noise: bool):
-    """Residuals, variance units, Jacobians, along-line offsets and source sensitivities at pose x."""
+    """Residuals, variance units, Jacobians, along-line offsets and source sensitivities at pose x.
+
+    The residual is the source point's offset across the target's local
+    line minus the local model's offset there, ``r = n.(p - c) - f(s)``
+    with ``s = t.(p - c)``; its gradient with respect to the point is
+    ``g = n - f'(s) t``.
+    """
     _, _, p, u, ln = pairs
     c, s = np.cos(x[2]), np.sin(x[2])
     rot_t = np.array([[c, s], [-s, c]])
@@ -517,16 +550,22 @@ def _linearise(pairs, x, opt, range_noise: bool):
     nx, ny = ln[:, 2], ln[:, 3]
     dx = rp[:, 0] + (x[0] - ln[:, 0])
     dy = rp[:, 1] + (x[1] - ln[:, 1])
-    r = nx * dx + ny * dy
     s_al = ny * dx - nx * dy            # t = (n_y, -n_x), as in _line_features
+    m = np.clip(s_al, -ln[:, 13], ln[:, 13])
+    phi2 = (2.0 * s_al - m) * m
+    r = nx * dx + ny * dy - (ln[:, 4] + s_al * ln[:, 5] + phi2 * ln[:, 6])
+    fp = ln[:, 5] + 2.0 * ln[:, 6] * m
+    gx = nx - fp * ny
+    gy = ny + fp * nx
     if range_noise:
         ub = u @ rot_t
-        sc = np.maximum(np.abs(nx * ub[:, 0] + ny * ub[:, 1]), opt.min_incidence_cos)
+        sc = np.maximum(np.abs(gx * ub[:, 0] + gy * ub[:, 1]), opt.min_incidence_cos)
     else:
-        sc = np.ones_like(r)
-    v = sc * sc + ln[:, 4] + s_al * (ln[:, 5] + s_al * ln[:, 6])
-    jac = np.column_stack([nx, ny, ny * rp[:, 0] - nx * rp[:, 1]])
-    return r, v, jac, s_al, sc
+        sc = np.hypot(gx, gy)
+    v = sc * sc + (ln[:, 7] + s_al * (2.0 * ln[:, 8] + s_al * ln[:, 10])
+                   + phi2 * (2.0 * ln[:, 9] + 2.0 * s_al * ln[:, 11] + phi2 * ln[:, 12]))
+    jac = np.column_stack([gx, gy, gy * rp[:, 0] - gx * rp[:, 1]])
+    return r, v, jac, np.stack([s_al, phi2], axis=1), sc
 
 
 def _robust(r, v, opt, kernel):
@@ -539,7 +578,7 @@ def _robust(r, v, opt, kernel):
 def _icp_line(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions, kernel) -> _Solution:
     x = np.array(x0, dtype=float)
     cos_max = np.cos(opt.max_normal_angle_rad) if opt.max_normal_angle_rad < np.pi else None
-    range_noise = src.key[4] == "range"
+    range_noise = src.point_noise == "range"
     lscale = np.array([1.0, 1.0, src.length_m ** 2])
     converged = False
     it = 0
@@ -611,7 +650,7 @@ def _icp_point(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOption
     pairs = _associate(src, tgt, x, opt, cos_max)
     if len(pairs[0]) < 3:
         return _failed(x, it)
-    r, v, jac, s_al, sc = _linearise(pairs, x, opt, src.key[4] == "range")
+    r, v, jac, s_al, sc = _linearise(pairs, x, opt, src.point_noise == "range")
     w, scale = _robust(r, v, opt, kernel)
     return _Solution(x, converged, it, pairs[0], pairs[1], r, v, w, jac, s_al, sc, scale)
 
@@ -638,12 +677,14 @@ def _finish(src: PreparedScan, tgt: PreparedScan, sol: _Solution, opt: Registrat
     sigma2 = _cov.noise_variance(sol.r, om, e_wu2)
     middle = None
     if opt.covariance == "censi":
-        coef_t = -tgt.nbr_nu[sol.tgt] * (tgt.nbr_inv_count[sol.tgt][:, None]
-                                         + sol.s_along[:, None] * tgt.nbr_slope[sol.tgt])
+        w = tgt.nbr_weights[sol.tgt]
+        basis = sol.s_along                               # (n, 2): s and the third basis function
+        coef_t = -tgt.nbr_nu[sol.tgt] * (w[..., 0] + basis[:, :1] * w[..., 1] + basis[:, 1:] * w[..., 2])
         middle = _cov.censi_middle(sol.jac, om, sol.src_coef, tgt.nbr_index[sol.tgt], coef_t, len(tgt.points))
     est = _cov.analyse(h, middle, sigma2, n, src.length_m, method=opt.covariance,
                        degeneracy_threshold=opt.degeneracy_threshold,
-                       unobservable_sigma_m=opt.unobservable_sigma_m, kappa=kappa)
+                       unobservable_sigma_m=opt.unobservable_sigma_m, kappa=kappa,
+                       points_per_normal=float(opt.line_neighbours))
     z = np.abs(sol.r / np.sqrt(sol.v))
     inl = z <= opt.inlier_sigmas * sol.scale
     rmse = float(np.sqrt(np.mean(sol.r[inl] ** 2))) if inl.any() else float("nan")

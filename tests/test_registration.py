@@ -179,7 +179,7 @@ def test_symmetric_room_is_reported_ambiguous():
     # The same poses in the workshop plan, which has no such symmetry.
     res2 = register(scan(b, rng), scan(a, rng), seeds, coarse=False)
     assert np.hypot(*(res2.delta[:2] - truth[:2])) < 0.01
-    assert res2.ambiguity < 0.35
+    assert res2.ambiguity < 0.5
 
 
 def test_prepared_scans_are_reused(pairs):
