@@ -453,11 +453,14 @@ def _prepare(pts, opt: RegistrationOptions, with_grid: bool) -> PreparedScan:
     quadratic = opt.line_model == "quadratic"
     cols = [nused, a, a * a if quadratic else np.zeros_like(a)]
     x = np.stack(cols, axis=-1)                                           # (M, k, 3)
-    xtx = np.einsum("mki,mkj->mij", x, x)
+    xt = x.transpose(0, 2, 1)
+    xtx = xt @ x
     if not quadratic:
         xtx[:, 2, 2] = 1.0
-    wts = np.einsum("mij,mkj->mki", np.linalg.pinv(xtx), x)              # (M, k, 3)
-    beta = np.einsum("mki,mk->mi", wts, h)
+    # A relative ridge keeps the solve defined for a degenerate spread.
+    xtx += (1e-12 * np.trace(xtx, axis1=1, axis2=2))[:, None, None] * np.eye(3)
+    wts = x @ np.linalg.inv(xtx)                                         # (M, k, 3), inverse is symmetric
+    beta = (h[:, None, :] @ wts)[:, 0, :]
     extent = np.abs(a).max(axis=1)
     if opt.point_noise == "range":
         nu = np.abs((beams[nidx] * n_l[:, None, :]).sum(axis=-1))
@@ -466,7 +469,7 @@ def _prepare(pts, opt: RegistrationOptions, with_grid: bool) -> PreparedScan:
         nu = np.ones_like(a)
     nu = nu * nused
     # Variance (units of sigma^2) of f(s): phi Q phi^T with Q = sum_l nu_l^2 wts_l wts_l^T.
-    q = np.einsum("mk,mki,mkj->mij", nu * nu, wts, wts)
+    q = (wts * (nu * nu)[..., None]).transpose(0, 2, 1) @ wts
     line = np.column_stack([c_l, n_l, beta, q[:, 0, 0], q[:, 0, 1], q[:, 0, 2], q[:, 1, 1], q[:, 1, 2],
                             q[:, 2, 2], extent])
 
