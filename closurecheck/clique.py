@@ -15,12 +15,25 @@ with
   BBMC, 2011), seeded by the heuristic and pruned by core numbers, under a
   budget of node expansions (and optionally seconds).
 
-The answer is canonical, i.e. independent of the search order:
+Consistency graphs of loop closures are nearly complete among the correct
+closures (a correct pair fails a 0.99 test 1% of the time), which makes
+colouring bounds weak.  Their complement, however, is sparse and falls apart:
+two vertices in different connected components of the complement are
+adjacent, so the search runs on each component alone (closures consistent
+with every other candidate form single-vertex components and need no search).
+
+The rule that picks the answer (``CliqueResult.canonical`` True):
 
 1. the largest number of vertices;
 2. among those, the largest summed vertex weight (when weights are given;
-   sums equal within ``weight_tie_rtol`` relative count as equal);
+   sums equal within ``weight_tie_rtol`` relative count as equal, compared
+   per complement component);
 3. among those, the lexicographically smallest sorted list of indices.
+
+Rule 3 is a separate tie phase with its own budget; on dense graphs with
+very many optimal cliques it can run out, and the result is then an optimal
+clique that the (deterministic) search reached, with ``canonical`` False.
+The same input and options always give the same members either way.
 
 Vertex sets are Python integers used as bitsets, which keeps the inner loops
 of the search to a few big-integer operations per vertex.

@@ -334,7 +334,8 @@ class _ClosureTerms:
     dst: np.ndarray  # (K,)
     src_pose: np.ndarray  # (K, 3) odometry pose x_a of the src node
     ad_src: np.ndarray  # (K, 3, 3) Ad(x_a)
-    mismatch_inv: np.ndarray  # (K, 3) M^-1 with M = x_a ∘ z ∘ x_b^-1
+    mismatch: np.ndarray  # (K, 3) M = x_a ∘ z ∘ x_b^-1
+    mismatch_inv: np.ndarray  # (K, 3) M^-1
     ad_mismatch_inv: np.ndarray  # (K, 3, 3) Ad(M^-1)
     world_cov: np.ndarray  # (K, 3, 3) Ad(x_b) Sigma_tau Ad(x_b)^T
 
@@ -377,6 +378,7 @@ def _closure_terms(src, dst, deltas, covariances, poses):
         dst=dst,
         src_pose=xa,
         ad_src=se2.adjoint(xa),
+        mismatch=mismatch,
         mismatch_inv=minv,
         ad_mismatch_inv=se2.adjoint(minv),
         world_cov=ad_b @ sigma_tau @ _t(ad_b),
@@ -416,7 +418,7 @@ def _pair_block(t: _ClosureTerms, prefix, i, j, shared_odometry):
     a, b = t.src[i], t.dst[i]
     c, d = t.src[j], t.dst[j]
     xa = t.src_pose[i]
-    g = se2.compose(se2.inverse(t.mismatch_inv[i]), t.mismatch_inv[j])
+    g = se2.compose(t.mismatch[i], t.mismatch_inv[j])
     e = se2.between(xa, se2.compose(g, xa))
     y = t.ad_mismatch_inv[j]
     u = np.einsum("...ji,...j->...i", _frame(e[:, 2]), e)  # F(theta_E)^T e
