@@ -8,6 +8,7 @@ from __future__ import annotations
 import argparse
 import sys
 import traceback
+from pathlib import Path
 
 from . import __version__
 from .errors import EXIT_BAD_INPUT, EXIT_INTERNAL, EXIT_OK, InputError
@@ -65,13 +66,111 @@ def _cmd_simulate(args) -> int:
     return EXIT_OK
 
 
+def _recording_choice(args):
+    from .inputs import RecordingChoice
+
+    return RecordingChoice(scan_topic=args.scan_topic, odom_topic=args.odom_topic, mount=args.mount,
+                           max_odom_gap_s=args.max_odom_gap)
+
+
+def _run_config(args):
+    """Defaults, then --config FILE, then the command-line options."""
+    from .config import load_toml, merge
+    from .pipeline import RunConfig
+
+    config = RunConfig()
+    if args.config:
+        config = merge(config, load_toml(args.config), path=args.config)
+    updates: dict = {}
+
+    def put(section, key, value):
+        if value is not None:
+            if section is None:
+                updates[key] = value
+            else:
+                updates.setdefault(section, {})[key] = value
+
+    put(None, "jobs", args.jobs)
+    put("keyframes", "min_travel_m", args.keyframe_travel)
+    put("keyframes", "min_rotation_rad", args.keyframe_rotation)
+    put("odometry", "translation_m_per_sqrt_m", args.odom_translation_noise)
+    put("odometry", "heading_rad_per_sqrt_m", args.odom_heading_noise)
+    put("odometry", "heading_rad_per_sqrt_rad", args.odom_turn_noise)
+    put("candidates", "max_per_keyframe", args.max_candidates)
+    put("verify", "min_overlap", args.min_overlap)
+    put("verify", "max_rmse_m", args.max_rmse)
+    put("verify", "gate_probability", args.gate_probability)
+    put("verify", "pair_probability", args.pair_probability)
+    put("verify", "residual_probability", args.residual_probability)
+    return merge(config, updates) if updates else config
+
+
+def _cmd_run(args) -> int:
+    from .pipeline import run_paths
+    from .progress import Progress
+
+    config = _run_config(args)
+    progress = Progress(quiet=args.quiet, verbose=args.verbose)
+    try:
+        result = run_paths(args.logs, args.out, config, candidates=args.candidates, choice=_recording_choice(args),
+                           dask=args.dask, report=not args.no_report, progress=progress)
+    finally:
+        progress.close()
+    if not args.quiet:
+        print(result.text)
+    for message in result.errors:
+        print(f"closurecheck: error: {message}", file=sys.stderr)
+    return EXIT_BAD_INPUT if result.errors else EXIT_OK
+
+
+def _cmd_demo(args) -> int:
+    from .pipeline import DEMO_LOG
+
+    args.logs = [str(DEMO_LOG)]
+    code = _cmd_run(args)
+    if code == EXIT_OK:
+        print(f"report: {Path(args.out).resolve() / 'report.html'}")
+    return code
+
+
+def _cmd_score(args) -> int:
+    import json
+
+    from .atomic import write_text
+    from .inputs import load_input
+    from .scoring import format_score, score_pairs, score_run_dir
+
+    run_dir = Path(args.run_dir)
+    log_path = args.log
+    if log_path is None:
+        try:
+            log_path = json.loads((run_dir / "summary.json").read_text())["log_path"]
+        except (OSError, ValueError, KeyError, TypeError):
+            raise InputError("cannot tell which log this run used; pass --log LOG", run_dir) from None
+    log, _ = load_input(log_path, _recording_choice(args))
+    if args.candidates:
+        from .keyframes import select_keyframes
+        from .pairs import read_pairs
+
+        pairs = read_pairs(args.candidates, len(log))
+        score = score_pairs(log, pairs, select_keyframes(log.odom))
+    else:
+        score = score_run_dir(run_dir, log)
+    if args.json:
+        write_text(args.json, json.dumps(score, indent=1, default=float) + "\n")
+    if not args.quiet:
+        print(format_score(score))
+    return EXIT_OK
+
+
 def _cmd_convert(args) -> int:
     from . import recordings
     from .scanlog import write_scanlog
 
+    opts = recordings.RecordingOptions() if args.max_odom_gap is None else \
+        recordings.RecordingOptions(max_odom_gap_s=args.max_odom_gap)
     log, summary = recordings.read_recording(
-        args.recording, scan_topic=args.scan_topic, odom_topic=args.odom_topic, mount=args.mount,
-        options=recordings.RecordingOptions(max_odom_gap_s=args.max_odom_gap))
+        args.recording, scan_topic=args.scan_topic, odom_topic=args.odom_topic, mount=args.mount, options=opts)
     write_scanlog(args.out, log, decimals=None)
     if not args.quiet:
         print(summary.describe())
@@ -87,8 +186,70 @@ def build_parser() -> argparse.ArgumentParser:
     common = argparse.ArgumentParser(add_help=False)
     common.add_argument("-q", "--quiet", action="store_true", help="print only errors")
     common.add_argument("-v", "--verbose", action="store_true", help="more detail; tracebacks on errors")
+    rec = argparse.ArgumentParser(add_help=False)
+    g = rec.add_argument_group("robot recordings (ROS 1 bag, ROS 2 MCAP or SQLite)")
+    g.add_argument("--scan-topic", default=None, help="laser scan topic (auto-detected when there is one)")
+    g.add_argument("--odom-topic", default=None, help="odometry topic (auto-detected when there is one)")
+    g.add_argument("--mount", type=_pose_arg, default=None,
+                   help="sensor pose on the robot as x,y,theta (metres, radians); write --mount=-0.1,0,0 "
+                        "when it starts with a minus")
+    g.add_argument("--max-odom-gap", type=float, default=None, metavar="SECONDS",
+                   help="drop scans inside odometry gaps longer than this (default: 0.5 s)")
+    runopts = argparse.ArgumentParser(add_help=False)
+    runopts.add_argument("--out", required=True, help="output directory (created if missing)")
+    runopts.add_argument("--candidates", default=None, metavar="PAIRS.csv",
+                         help="verify these pairs (columns from,to[,dx,dy,dtheta]) instead of proposing")
+    runopts.add_argument("--config", default=None, metavar="FILE.toml",
+                         help="settings file; a run's own config.toml reproduces it")
+    runopts.add_argument("--jobs", type=int, default=None, help="worker processes (default: all cores)")
+    runopts.add_argument("--dask", default=None, metavar="ADDRESS",
+                         help="run registration on Dask: 'local' or tcp://HOST:PORT (needs the dask extra)")
+    runopts.add_argument("--no-report", action="store_true", help="skip report.html (faster)")
+    t = runopts.add_argument_group("main thresholds (all settings: --config)")
+    t.add_argument("--keyframe-travel", type=float, default=None, metavar="M",
+                   help="odometry travel that makes a new keyframe (default 0.5 m)")
+    t.add_argument("--keyframe-rotation", type=float, default=None, metavar="RAD",
+                   help="turn that makes a new keyframe (default 0.349 rad = 20 deg)")
+    t.add_argument("--odom-translation-noise", type=float, default=None, metavar="M_PER_SQRT_M",
+                   help="odometry position noise per sqrt(metre) (default: log header, else 0.03)")
+    t.add_argument("--odom-heading-noise", type=float, default=None, metavar="RAD_PER_SQRT_M",
+                   help="odometry heading noise per sqrt(metre) (default: log header, else 0.01)")
+    t.add_argument("--odom-turn-noise", type=float, default=None, metavar="RAD_PER_SQRT_RAD",
+                   help="odometry heading noise per sqrt(radian turned) (default: log header, else 0.03)")
+    t.add_argument("--max-candidates", type=int, default=None, metavar="N",
+                   help="candidates proposed per keyframe at most")
+    t.add_argument("--min-overlap", type=float, default=None, metavar="FRACTION",
+                   help="fraction of points that must match after registration")
+    t.add_argument("--max-rmse", type=float, default=None, metavar="M",
+                   help="largest point-to-line RMS residual after registration")
+    t.add_argument("--gate-probability", type=float, default=None, metavar="P",
+                   help="chi-square probability of the odometry gate")
+    t.add_argument("--pair-probability", type=float, default=None, metavar="P",
+                   help="chi-square probability of the pairwise cycle test")
+    t.add_argument("--residual-probability", type=float, default=None, metavar="P",
+                   help="chi-square probability of the residual test after optimisation")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     sub.required = True
+
+    p = sub.add_parser("run", parents=[common, runopts, rec],
+                       help="verify loop closures of scan logs and write graph, verdicts and report")
+    p.add_argument("logs", nargs="+", metavar="LOG",
+                   help="scan log(s), robot recording(s) or folder(s) of them; several give one output "
+                        "folder each under --out plus an index page")
+    p.set_defaults(func=_cmd_run)
+
+    p = sub.add_parser("demo", parents=[common, runopts],
+                       help="run the whole job on the shipped demo log")
+    p.set_defaults(func=_cmd_demo, scan_topic=None, odom_topic=None, mount=None, max_odom_gap=None)
+
+    p = sub.add_parser("score", parents=[common, rec],
+                       help="score a run (or a candidate list) against the log's ground truth")
+    p.add_argument("run_dir", metavar="RUN_DIR", help="output directory of closurecheck run")
+    p.add_argument("--log", default=None, help="the run's log (default: the one recorded in RUN_DIR)")
+    p.add_argument("--candidates", default=None, metavar="PAIRS.csv",
+                   help="score this candidate list (another front-end's proposals) instead of the run")
+    p.add_argument("--json", default=None, metavar="FILE", help="also write the scores as JSON")
+    p.set_defaults(func=_cmd_score)
 
     p = sub.add_parser("info", parents=[common], help="check a scan log and summarise it")
     p.add_argument("log", help="scan log (.jsonl or .jsonl.gz)")
@@ -103,18 +264,10 @@ def build_parser() -> argparse.ArgumentParser:
                    help="number of scans (default: the scenario's own route length)")
     p.set_defaults(func=_cmd_simulate)
 
-    from .recordings import RecordingOptions  # rosbags itself is imported only when converting
-
-    p = sub.add_parser("convert", parents=[common],
+    p = sub.add_parser("convert", parents=[common, rec],
                        help="write a scan log from a robot recording (ROS 1 bag, ROS 2 MCAP or SQLite)")
     p.add_argument("recording", help="recording file or ROS 2 bag folder")
     p.add_argument("--out", required=True, help="output scan log (.jsonl or .jsonl.gz)")
-    p.add_argument("--scan-topic", default=None, help="laser scan topic (auto-detected when there is one)")
-    p.add_argument("--odom-topic", default=None, help="odometry topic (auto-detected when there is one)")
-    p.add_argument("--mount", type=_pose_arg, default=None,
-                   help="sensor pose on the robot as x,y,theta (metres, radians)")
-    p.add_argument("--max-odom-gap", type=float, default=RecordingOptions.max_odom_gap_s, metavar="SECONDS",
-                   help="drop scans inside odometry gaps longer than this (default: %(default)s s)")
     p.set_defaults(func=_cmd_convert)
     return parser
 
