@@ -569,7 +569,8 @@ def external_candidates(pairs: ExternalPairs, descriptors: ScanDescriptors, chai
     Every scan id of ``pairs`` must be a keyframe of ``chain`` (use
     :func:`closurecheck.keyframes.merge_keyframes` with ``pairs.scan_ids``
     before building the chain and the descriptors).  ``descriptors`` are in
-    chain order.  The file's guess is used where given.
+    chain order.  The file's guess is used where given.  No exclusion gap
+    or budget applies: every listed pair is a candidate.
     """
     try:
         a = chain.index_of(pairs.src)
