@@ -80,6 +80,9 @@ class RegistrationOptions:
             differ by more are not matched; rejects the far side of a thin
             wall.  Source points without a line are then not matched either;
             a value >= pi switches the check off and matches every point.
+        max_extrapolation_m: a source point must fall within the target
+            line's support (the extent of the readings that fitted it) plus
+            this margin, measured along the line.
         kernel: robust kernel name (closurecheck.kernels), e.g. ``"huber"``,
             ``"cauchy"``, ``"l2"``.
         kernel_scale: kernel threshold in robust standard deviations
@@ -95,7 +98,7 @@ class RegistrationOptions:
             unconstrained direction small.
         inlier_sigmas: a correspondence is an inlier when its normalised
             residual is within this many robust standard deviations.
-        fit_sigma_m: residual scale of the fit score used to rank hypotheses.
+        fit_sigma_m: distance scale of the fit score used to rank hypotheses.
 
     Covariance
         covariance: ``"censi"`` (Censi 2007 closed form, accounts for shared
@@ -134,6 +137,7 @@ class RegistrationOptions:
     method: str = "point_to_line"
     max_correspondence_m: float = 0.5
     max_normal_angle_rad: float = 1.0
+    max_extrapolation_m: float = 0.0
     kernel: str = "huber"
     kernel_scale: float = 1.345
     min_noise_m: float = 0.001
@@ -143,7 +147,7 @@ class RegistrationOptions:
     reassociate_m: float = 0.01
     damping: float = 1e-3
     inlier_sigmas: float = 3.0
-    fit_sigma_m: float = 0.05
+    fit_sigma_m: float = 0.1
 
     covariance: str = "censi"
     degeneracy_threshold: float = 0.01
@@ -176,7 +180,7 @@ class RegistrationOptions:
         for name in positive:
             if not getattr(self, name) > 0:
                 raise InputError(f"registration option {name} must be positive, got {getattr(self, name)!r}")
-        nonneg = ("damping", "degeneracy_threshold", "coarse_window_m", "coarse_window_rad",
+        nonneg = ("damping", "degeneracy_threshold", "max_extrapolation_m", "coarse_window_m", "coarse_window_rad",
                   "coarse_angle_step_rad")
         for name in nonneg:
             if not getattr(self, name) >= 0:
@@ -293,8 +297,9 @@ class Registration:
         scaled coordinates (x, y, L theta).
     degeneracy : smallest / largest eigenvalue (0 = a direction is unconstrained).
     degenerate : the covariance was inflated along an unconstrained direction.
-    fit_score : fraction of source points explained by the target, each
-        weighted by ``exp(-r^2 / (2 fit_sigma_m^2))``; used to rank hypotheses.
+    fit_score : fraction of source points explained by the target: the mean
+        over all source points of ``exp(-d^2 / (2 fit_sigma_m^2))``, d the
+        distance to the nearest target point; used to rank hypotheses.
     second_fit_score : fit score of the best distinct competing hypothesis
         (0 when every hypothesis converged to the winner; NaN when only one
         hypothesis was tried).
@@ -369,6 +374,23 @@ def _as_seeds(guess) -> np.ndarray:
 # --------------------------------------------------------------------------- preparation
 
 
+def _pca(nb, used):
+    """Centroid, unit normal and scatter eigenvalues of masked neighbourhoods (N, k, 2)."""
+    wt = used.astype(float)
+    count = np.maximum(wt.sum(axis=1), 1.0)
+    centroid = (nb * wt[..., None]).sum(axis=1) / count[:, None]
+    dev = (nb - centroid[:, None, :]) * wt[..., None]
+    sxx = (dev[..., 0] ** 2).sum(axis=1)
+    syy = (dev[..., 1] ** 2).sum(axis=1)
+    sxy = (dev[..., 0] * dev[..., 1]).sum(axis=1)
+    # Closed-form eigen-decomposition of the 2x2 scatter matrix.
+    half_tr = 0.5 * (sxx + syy)
+    rad = np.hypot(0.5 * (sxx - syy), sxy)
+    phi = 0.5 * np.arctan2(2.0 * sxy, sxx - syy)
+    normal = np.stack([-np.sin(phi), np.cos(phi)], axis=1)
+    return centroid, normal, np.maximum(half_tr - rad, 0.0), half_tr + rad
+
+
 def _line_features(points, beams, opt: RegistrationOptions):
     """Fit a line to each point's neighbourhood; vectorised over all points."""
     n = len(points)
@@ -379,21 +401,8 @@ def _line_features(points, beams, opt: RegistrationOptions):
     used = idx < n
     idx = np.where(used, idx, 0)
     count = used.sum(axis=1)
-    wt = used.astype(float)
     nb = points[idx]                                                        # (N, k, 2)
-    centroid = (nb * wt[..., None]).sum(axis=1) / count[:, None]
-    dev = (nb - centroid[:, None, :]) * wt[..., None]
-    sxx = (dev[..., 0] ** 2).sum(axis=1)
-    syy = (dev[..., 1] ** 2).sum(axis=1)
-    sxy = (dev[..., 0] * dev[..., 1]).sum(axis=1)
-    # Closed-form eigen-decomposition of the 2x2 scatter matrix.
-    half_tr = 0.5 * (sxx + syy)
-    rad = np.hypot(0.5 * (sxx - syy), sxy)
-    lam_max = half_tr + rad
-    lam_min = np.maximum(half_tr - rad, 0.0)
-    phi = 0.5 * np.arctan2(2.0 * sxy, sxx - syy)
-    tangent = np.stack([np.cos(phi), np.sin(phi)], axis=1)
-    normal = np.stack([-tangent[:, 1], tangent[:, 0]], axis=1)
+    centroid, normal, lam_min, lam_max = _pca(nb, used)
     # Normals face the sensor (the frame origin), so that two scans seeing
     # opposite faces of a thin wall have opposite normals.
     flip = (normal * centroid).sum(axis=1) > 0
@@ -529,13 +538,18 @@ def _associate(src: PreparedScan, tgt: PreparedScan, x, opt, cos_max):
     pw = src.points[cand] @ rot_t + x[:2]
     _, j = tgt.tree.query(pw, distance_upper_bound=opt.max_correspondence_m)
     ok = j < len(tgt.line_index)
+    jj = np.where(ok, j, 0)
+    ln = tgt.line[jj]
     if cos_max is not None:
-        jj = np.where(ok, j, 0)
-        agree = ((src.normals[cand] @ rot_t) * tgt.line[jj, 2:4]).sum(axis=1)
+        agree = ((src.normals[cand] @ rot_t) * ln[:, 2:4]).sum(axis=1)
         ok &= agree >= cos_max
+    # Only points that fall along the target line's own support (plus a
+    # margin): beyond it the target never saw the surface, and a fit that
+    # caught a corner would be extrapolated.
+    along = np.abs(ln[:, 3] * (pw[:, 0] - ln[:, 0]) - ln[:, 2] * (pw[:, 1] - ln[:, 1]))
+    ok &= along <= ln[:, 13] + opt.max_extrapolation_m
     i = cand[ok]
-    j = j[ok]
-    return i, j, src.points[i], src.beams[i], tgt.line[j]
+    return i, j[ok], src.points[i], src.beams[i], ln[ok]
 
 
 def _linearise(pairs, x, opt, range_noise: bool):
@@ -658,10 +672,22 @@ def _icp_point(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOption
     return _Solution(x, converged, it, pairs[0], pairs[1], r, v, w, jac, s_al, sc, scale)
 
 
-def _fit_score(sol: _Solution, n_source: int, opt: RegistrationOptions) -> float:
-    if len(sol.r) == 0:
-        return 0.0
-    return float(np.exp(-0.5 * (sol.r / opt.fit_sigma_m) ** 2).sum() / n_source)
+def _fit_score(src: PreparedScan, tgt: PreparedScan, x, opt: RegistrationOptions) -> float:
+    """Mean over the evenly spread source points of ``exp(-d^2 / (2 fit_sigma_m^2))`` at pose x.
+
+    ``d`` is the distance to the nearest target point on straight structure;
+    the source points are the coarse stage's (one per cell), so that densely
+    sampled walls near the sensor do not outweigh the rest of the scan.
+    Point-to-point distances, unlike the point-to-line residuals, penalise a
+    hypothesis slid along a wall beyond where the target saw it, which is
+    what a look-alike alternative in a corridor or a row of doorways does.
+    """
+    c, s = np.cos(x[2]), np.sin(x[2])
+    pts = src.coarse_points
+    pw = pts @ np.array([[c, s], [-s, c]]) + x[:2]
+    d, _ = tgt.tree.query(pw, distance_upper_bound=4.0 * opt.fit_sigma_m)
+    d = d[np.isfinite(d)]
+    return float(np.exp(-0.5 * (d / opt.fit_sigma_m) ** 2).sum() / len(pts))
 
 
 def _same(a, b, opt) -> bool:
@@ -672,8 +698,7 @@ def _same(a, b, opt) -> bool:
 def _finish(src: PreparedScan, tgt: PreparedScan, sol: _Solution, opt: RegistrationOptions, **extra) -> Registration:
     n = len(sol.r)
     if n < 3:
-        raise InputError("registration found fewer than 3 correspondences; the scans do not overlap "
-                         "within max_correspondence_m of the guess")
+        return _no_overlap(src, sol, opt, **extra)
     om = sol.w / sol.v
     h = _cov.hessian(sol.jac, om)
     e_wu2, kappa = _cov.kernel_moments(kernel_from_name(opt.kernel, opt.kernel_scale))
@@ -702,6 +727,26 @@ def _finish(src: PreparedScan, tgt: PreparedScan, sol: _Solution, opt: Registrat
         iterations=sol.iterations, inlier_fraction=float(inl.mean()), correspondences=n,
         sigma_m=est.sigma_m, eigenvalues=evals, weakest_direction=weak, degeneracy=est.degeneracy,
         degenerate=est.degenerate, **extra,
+    )
+
+
+def _no_overlap(src: PreparedScan, sol: _Solution, opt: RegistrationOptions, **extra) -> Registration:
+    """Result for a start from which fewer than 3 correspondences were found.
+
+    Not an input error: two valid scans simply do not overlap there.  The
+    pose is the last iterate, every direction counts as unconstrained.
+    """
+    big = opt.unobservable_sigma_m ** 2
+    cov = np.diag([big, big, big / src.length_m ** 2])
+    delta = sol.x.copy()
+    evals = np.zeros(3)
+    weak = np.array([1.0, 0.0, 0.0])
+    for arr in (delta, cov, evals, weak):
+        arr.flags.writeable = False
+    return Registration(
+        delta=delta, covariance=cov, rmse=float("nan"), overlap=len(sol.r) / len(src.points), converged=False,
+        iterations=sol.iterations, inlier_fraction=0.0, correspondences=len(sol.r), sigma_m=float("nan"),
+        eigenvalues=evals, weakest_direction=weak, degeneracy=0.0, degenerate=True, **extra,
     )
 
 
@@ -758,7 +803,7 @@ def register_prepared(source: PreparedScan, target: PreparedScan, guess=(0.0, 0.
         coarse_second = float(records[keep[1], 0]) if len(keep) > 1 else float("nan")
 
     sols = [refine(source, target, x0, options, kernel) for x0 in starts]
-    fits = np.array([_fit_score(s, len(source.points), options) for s in sols])
+    fits = np.array([_fit_score(source, target, s.x, options) for s in sols])
     best = int(np.argmax(fits))
     second = float("nan")
     if len(sols) > 1:
@@ -792,8 +837,12 @@ def register(source_xy, target_xy, guess=(0.0, 0.0, 0.0), options: RegistrationO
     taken at pose b; ``covariance`` (3, 3) on (x, y, theta) in the target
     frame; ``rmse`` (m), ``overlap``, ``converged`` and quality figures.
 
+    When no start finds at least 3 correspondences the result has
+    ``converged=False``, ``overlap`` near 0 and a covariance of
+    ``unobservable_sigma_m`` in every direction.
+
     Raises InputError for arrays that are not (N, 2) with N >= 3 finite
-    points, a bad guess, bad options or scans without overlap.
+    points, a scan without straight structure, a bad guess or bad options.
     """
     opt = options if options is not None else DEFAULT_OPTIONS
     if overrides:

@@ -233,13 +233,19 @@ def test_bad_options_raise_input_error(pairs, override):
         register(source, target, **override)
 
 
-def test_collinear_points_have_nothing_to_register():
+def test_scans_without_overlap_give_a_failed_result_not_an_error():
     pts = np.column_stack([np.linspace(0, 1, 50), np.zeros(50)])
     far = pts + [0.0, 5.0]
     # A single straight line is usable (it has line features) but a scan
     # far from every line of the other finds no correspondences.
-    with pytest.raises(InputError, match="correspondences"):
-        register(far, pts, coarse=False)
+    res = register(far, pts, coarse=False)
+    assert not res.converged and res.correspondences < 3 and res.overlap < 0.1
+    assert np.all(np.sqrt(np.diag(res.covariance)[:2]) >= RegistrationOptions().unobservable_sigma_m)
+    np.linalg.cholesky(res.information)
+
+
+def test_scan_without_straight_structure_is_an_input_error():
+    pts = np.column_stack([np.linspace(0, 1, 50), np.zeros(50)])
     scattered = np.random.default_rng(0).uniform(-5, 5, (40, 2))
     with pytest.raises(InputError, match="straight structure"):
         register(scattered, pts)
