@@ -29,9 +29,10 @@ Ranking and budget.  Each keyframe pools its descriptor and proximity
 candidates and scores every one by :func:`rank_score`: the gate statistic
 (relative to the threshold) plus the squared descriptor distance (relative
 to the typical best-match distance); candidates outside the gate get a
-fixed penalty instead of the gate term.  In ascending score it keeps at
-most ``max_per_keyframe``, of which at most ``max_ungated_per_keyframe``
-outside the gate, skipping any candidate within ``suppress_keyframes``
+fixed penalty instead of the gate term; candidates scoring above
+``max_score`` are dropped.  In ascending score it keeps at most
+``max_per_keyframe``, of which at most ``max_ungated_per_keyframe`` outside
+the gate, skipping any candidate within ``suppress_keyframes``
 chain positions of one already kept: a revisit of a place visited several
 times before must reach *each* earlier pass, and look-alike places far away
 in odometry must not use up the budget.  The kept pairs of all keyframes
@@ -98,6 +99,12 @@ class CandidateOptions:
     descriptor_weight : weight w of the descriptor term in the score
         (:func:`rank_score`).
     ungated_penalty : score added to candidates that fail the gate.
+    max_score : candidates scoring above this are not proposed at all, so a
+        keyframe without a plausible revisit does not fill its budget with
+        implausible ones.  32 was chosen on the simulated scenarios
+        (benchmarks/candidates.py: it drops about a third of the proposals
+        and no more than 1-2 % of the revisit events); a huge value
+        disables it.
     suppress_keyframes : candidates of one keyframe closer than this many
         chain positions to a better one are skipped.
     yaw_hypotheses : yaw hypotheses kept per candidate.
@@ -120,6 +127,7 @@ class CandidateOptions:
     max_ungated_per_keyframe: int = 1
     descriptor_weight: float = 1.0
     ungated_penalty: float = 1.0
+    max_score: float = 32.0
     suppress_keyframes: int = 4
     yaw_hypotheses: int = 3
     tree: str = "kd_tree"
@@ -135,6 +143,9 @@ class CandidateOptions:
             v = getattr(self, name)
             if not (isinstance(v, (int, float)) and math.isfinite(v) and v > 0):
                 raise InputError(f"candidate option {name} must be a positive finite number, got {v!r}")
+        if not (isinstance(self.max_score, (int, float)) and self.max_score > 0):
+            raise InputError(f"candidate option max_score must be a positive number (inf allowed), "
+                             f"got {self.max_score!r}")
         for name in ("descriptor_weight", "ungated_penalty"):
             v = getattr(self, name)
             if not (isinstance(v, (int, float)) and math.isfinite(v) and v >= 0):
@@ -424,6 +435,7 @@ def _select(part, score, gated, options: CandidateOptions):
     partners (K, max_per_keyframe), -1-padded, and their scores.
     """
     count = len(part)
+    part = np.where(score <= options.max_score, part, -1)
     score = np.where(part >= 0, score, np.inf)
     order = np.argsort(score, axis=1, kind="stable")
     part = np.take_along_axis(part, order, 1)

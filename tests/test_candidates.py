@@ -246,9 +246,22 @@ def test_guess_is_closer_to_truth_than_raw_odometry(loop):
 
 def test_max_per_keyframe_bounds_the_proposals(loop):
     _, kf, data = loop
-    few = propose_for(data, CandidateOptions(max_per_keyframe=1))
-    many = propose_for(data, CandidateOptions(max_per_keyframe=4))
+    few = propose_for(data, CandidateOptions(max_per_keyframe=1, max_score=1e9))
+    many = propose_for(data, CandidateOptions(max_per_keyframe=4, max_score=1e9))
     assert len(few) <= len(kf) < len(many) <= 4 * len(kf)
+
+
+def test_max_score_drops_implausible_candidates(loop):
+    _, _, data = loop
+    strict = propose_for(data, CandidateOptions(max_score=2.0))
+    loose = propose_for(data, CandidateOptions(max_score=1e9))
+    assert np.all(strict.score <= 2.0)
+    assert len(strict) < len(loose) and np.any(loose.score > 2.0)
+    # Dropping candidates only frees budget: a keyframe keeps a pair it would
+    # keep anyway, so the strict set's best pairs are all in the loose set.
+    loose_keys = set(zip(loose.src.tolist(), loose.dst.tolist()))
+    best = strict.score <= np.median(strict.score)
+    assert all(k in loose_keys for k in zip(strict.src[best].tolist(), strict.dst[best].tolist()))
 
 
 def test_external_pairs_keep_orientation_and_merge_with_proposals(loop):
