@@ -56,7 +56,7 @@ def monte_carlo():
         e[2] = se2.wrap(e[2])
         errs.append(e)
         covs.append(res.covariance)
-        if k < 100:
+        if k < 60:
             covs_h.append(register_prepared(pb, pa, guess, opt_h).covariance)
     return np.array(errs), np.array(covs), np.array(covs_h)
 
