@@ -9,25 +9,29 @@ and a source scan B taken at pose b, ``T`` estimates ``a^-1 ∘ b``
 Stages
 ------
 1. Per-scan preparation (:func:`prepare_scan`, done once per scan and reused
-   for every pair it takes part in): a kd-tree over the points that lie on
-   locally straight structure, a line fitted to each point's neighbourhood
-   (centroid, normal facing the sensor, thickness), the noise coefficients of
-   each fitted line, a downsampled copy for the coarse stage and the
-   likelihood grid of closurecheck/coarse.py.
+   for every pair it takes part in): a local line fitted to each point's
+   neighbourhood (centroid, normal facing the sensor, thickness; by default
+   with a quadratic term so that curved surfaces are followed, not replaced
+   by chords), each reading's influence on those fits (for the covariance),
+   a kd-tree over the points that lie on such lines, an evenly spread subset
+   and the likelihood grid of closurecheck/coarse.py.
 2. Optional coarse stage (Olson 2009 correlative matching) around each seed
    guess, keeping the best few distinct hypotheses.
 3. Point-to-line ICP (A. Censi, "An ICP variant using a point-to-line
-   metric", ICRA 2008) from each hypothesis: nearest line point by kd-tree,
-   gating by distance and normal agreement, residual = distance of the
-   transformed source point to the target's fitted line, each residual
-   weighted by the inverse of its predicted variance and by a robust kernel
-   (closurecheck/kernels.py) whose scale comes from the median absolute
-   deviation of the residuals, damped Gauss-Newton step on [x, y, theta].
-   Point-to-point ICP (closed-form 2D Procrustes step) is available as an
-   option.
-4. The refined hypotheses are ranked by their fit; the best is returned with
-   its covariance (closurecheck/covariance.py) and the gap to the best
-   distinct competitor.
+   metric", ICRA 2008) from each hypothesis: nearest line point by kd-tree;
+   a match needs both points on lines, normals that agree (both face their
+   sensors, so the two faces of a thin wall never match) and the source
+   point inside the target line's support; residual = offset of the
+   transformed source point from the target's local line, weighted by the
+   inverse of its predicted variance and by a robust kernel
+   (closurecheck/kernels.py) scaled by the median absolute deviation;
+   damped Gauss-Newton steps on [x, y, theta], re-associating only after
+   the pose has moved by ``reassociate_m``.  Point-to-point ICP
+   (closed-form 2D Procrustes step) is available as an option.
+4. The refined hypotheses are ranked by a point-distance fit score; the
+   best is returned with its covariance (closurecheck/covariance.py: the
+   Censi closed form by default) and the gap to the best distinct
+   competitor.
 
 Noise model: each reading has Gaussian range noise along its beam (the beam
 direction is the point's direction from the sensor, the origin of its scan

@@ -80,6 +80,18 @@ def test_known_transforms_recovered_from_nearby_guess(pairs):
         assert not res.degenerate
 
 
+@pytest.mark.parametrize("override", [
+    {"point_noise": "isotropic"}, {"kernel": "cauchy", "kernel_scale": 2.385}, {"kernel": "l2"},
+    {"line_model": "line"}, {"covariance": "hessian"}, {"max_normal_angle_rad": np.pi},
+])
+def test_option_variants_recover_transforms(pairs, override):
+    for target, source, truth in pairs[:3]:
+        res = register(source, target, truth + np.array([0.1, -0.1, 0.04]), coarse=False, **override)
+        assert np.hypot(*(res.delta[:2] - truth[:2])) < 0.01
+        assert angle_err(res.delta[2], truth[2]) < np.radians(0.1)
+        np.linalg.cholesky(res.information)
+
+
 def test_delta_is_pose_of_source_in_target_frame(pairs):
     # Swapping the roles must give the inverse pose (a^-1 ∘ b vs b^-1 ∘ a).
     target, source, truth = pairs[0]
