@@ -172,10 +172,13 @@ class RegistrationOptions:
     def __post_init__(self):
         for f in fields(self):
             v = getattr(self, f.name)
-            if isinstance(v, bool) or isinstance(v, str):
+            kind = type(f.default)
+            if kind is bool or kind is str:
+                if not isinstance(v, kind):
+                    raise InputError(f"registration option {f.name} must be a {kind.__name__}, got {v!r}")
                 continue
-            if not np.isfinite(v):
-                raise InputError(f"registration option {f.name} must be finite, got {v!r}")
+            if isinstance(v, bool) or not isinstance(v, (int, float, np.integer, np.floating)) or not np.isfinite(v):
+                raise InputError(f"registration option {f.name} must be a finite number, got {v!r}")
         positive = ("line_radius_m", "max_line_thickness", "max_correspondence_m", "max_normal_angle_rad",
                     "kernel_scale", "min_noise_m", "tolerance_m", "tolerance_rad", "inlier_sigmas",
                     "reassociate_m",

@@ -237,7 +237,8 @@ def test_bad_guess_raises_input_error(pairs, guess):
 
 @pytest.mark.parametrize("override", [
     {"max_correspondence_m": -1.0}, {"kernel": "nonsense"}, {"method": "plane"}, {"covariance": "guess"},
-    {"max_iterations": 0}, {"coarse_window_m": float("nan")}, {"not_an_option": 1},
+    {"max_iterations": 0}, {"coarse_window_m": float("nan")}, {"not_an_option": 1}, {"kernel_scale": "1.3"},
+    {"coarse": "yes"}, {"max_iterations": 2.5},
 ])
 def test_bad_options_raise_input_error(pairs, override):
     target, source, _ = pairs[0]
