@@ -24,7 +24,7 @@ The normalised residual of an edge is its Mahalanobis distance
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 import scipy.sparse as sp
@@ -96,8 +96,11 @@ class GncOptions:
     max_rounds : upper bound on weight updates.
     weight_tolerance : the TLS schedule stops once every weight is within
         this of 0 or 1.
-    solver : Levenberg-Marquardt settings for each weighted solve (warm
-        started, so a few iterations suffice).
+    iterations_per_round : LM iterations of the weighted solve in each round
+        (warm started; the paper solves each round to optimality, but one or
+        two steps track the slowly moving optimum just as well here).
+    solver : Levenberg-Marquardt settings of the initial least-squares solve
+        and of the final solve with the last weights.
     """
 
     surrogate: str = "geman_mcclure"
@@ -106,7 +109,8 @@ class GncOptions:
     mu_factor: float = 1.4
     max_rounds: int = 200
     weight_tolerance: float = 1e-6
-    solver: SolverOptions = field(default_factory=lambda: SolverOptions(max_iterations=8))
+    iterations_per_round: int = 2
+    solver: SolverOptions = field(default_factory=SolverOptions)
 
     def __post_init__(self):
         if self.surrogate not in ("geman_mcclure", "truncated_least_squares"):
@@ -117,6 +121,8 @@ class GncOptions:
             raise InputError(f"inlier_bound must be positive, got {self.inlier_bound!r}")
         if not self.mu_factor > 1.0:
             raise InputError(f"mu_factor must be > 1, got {self.mu_factor!r}")
+        if self.iterations_per_round < 1 or self.max_rounds < 0:
+            raise InputError("iterations_per_round must be >= 1 and max_rounds >= 0")
 
     @property
     def bound(self) -> float:
@@ -303,9 +309,9 @@ class _Layout:
         self.grad_valid = (np.stack([vi, vj], axis=1)[:, :, None] >= 0).repeat(POSE_DOF, axis=2).reshape(-1)
         self.grad_rows = grow.reshape(-1)[self.grad_valid]
 
-    def matrix(self, blocks):
-        data = np.bincount(self.slot, weights=blocks.reshape(-1)[self.block_valid], minlength=self.nnz)
-        return data
+    def assemble(self, blocks):
+        """CSC data array of the normal matrix from (E, 4, 3, 3) edge blocks."""
+        return np.bincount(self.slot, weights=blocks.reshape(-1)[self.block_valid], minlength=self.nnz)
 
     def csc(self, data):
         return sp.csc_matrix((data, self.indices, self.indptr), shape=(self.size, self.size))
@@ -328,14 +334,15 @@ class _Graph:
         self.n = len(poses)
         self.src, self.dst = src, dst
         self.delta, self.information, self.robust = delta, information, robust
-        self._layouts = {}
+        self._layout_key = self._layout = None
 
     def layout(self, active):
-        key = active.tobytes()
-        if key not in self._layouts:
-            free = _reachable_free(self.n, self.src, self.dst, active)
-            self._layouts = {key: _Layout(self.n, self.src, self.dst, free)}
-        return self._layouts[key]
+        """Layout for the nodes reachable through ``active`` edges; reused while that set is unchanged."""
+        free = _reachable_free(self.n, self.src, self.dst, active)
+        key = free.tobytes()
+        if key != self._layout_key:
+            self._layout_key, self._layout = key, _Layout(self.n, self.src, self.dst, free)
+        return self._layout
 
     def errors(self, poses):
         pred = se2.between(poses[self.src], poses[self.dst])
@@ -354,7 +361,7 @@ class _Graph:
         blocks = np.stack([ja_t @ wa, hij, np.swapaxes(hij, 1, 2), np.swapaxes(jb, 1, 2) @ wb], axis=1)
         # W symmetric: J^T W e = (W J)^T e.
         gblocks = np.stack([np.einsum("eki,ek->ei", wa, e), np.einsum("eki,ek->ei", wb, e)], axis=1)
-        return layout.matrix(blocks), layout.gradient(gblocks)
+        return layout.assemble(blocks), layout.gradient(gblocks)
 
 
 def _solve(layout, data, rhs, options):
@@ -573,12 +580,13 @@ def optimize_gnc(poses, src, dst, delta, information, robust=None,
             # All residuals inside the bound: least squares is already the answer.
             mu = c2 / (2.0 * r2_max - c2) if 2.0 * r2_max > c2 else None
         rounds = 0
+        per_round = replace(options.solver, max_iterations=options.iterations_per_round)
         while mu is not None and rounds < options.max_rounds:
             rounds += 1
             weights = np.ones(e_count)
             weights[robust] = _gnc_weights(s[robust], mu, c2, options.surrogate)
             wf, cf = fixed(weights)
-            x, its, cost, _, conv = _levenberg_marquardt(graph, x, wf, cf, active, options.solver)
+            x, its, cost, _, conv = _levenberg_marquardt(graph, x, wf, cf, active, per_round)
             total_its += its
             _, s = graph.errors(x)
             if options.surrogate == "geman_mcclure":
@@ -590,6 +598,11 @@ def optimize_gnc(poses, src, dst, delta, information, robust=None,
                 if np.all(np.minimum(wr, 1.0 - wr) <= options.weight_tolerance):
                     break
                 mu *= options.mu_factor
+        if rounds:
+            # Converge the weighted problem at the final weights.
+            x, its, cost, _, conv = _levenberg_marquardt(graph, x, wf, cf, active, options.solver)
+            total_its += its
+            _, s = graph.errors(x)
     return GraphSolution(_readonly(x), total_its, float(cost), float(initial_cost), bool(conv),
                          _readonly(weights), _readonly(s))
 
