@@ -90,8 +90,8 @@ class Kernel:
         Normalised residual (dimensionless, e.g. Mahalanobis distance) where
         down-weighting sets in; must be positive.
     alpha : float, optional
-        Shape parameter of the ``"barron"`` kernel (may be ``-inf``); unused
-        by the other kernels.
+        Shape parameter of the ``"barron"`` kernel, in [-inf, 2]; unused by
+        the other kernels.  Weights of every kernel lie in [0, 1].
     """
 
     name: str
@@ -104,8 +104,10 @@ class Kernel:
         if not (np.isfinite(self.scale) and self.scale > 0):
             raise InputError(f"kernel scale must be a positive finite number, got {self.scale!r}")
         if self.name == "barron":
-            if self.alpha is None or np.isnan(self.alpha) or self.alpha == np.inf:
-                raise InputError(f"the barron kernel needs a shape alpha in [-inf, inf), got {self.alpha!r}")
+            # alpha > 2 is defined in the paper but grows faster than L2: it
+            # would up-weight large residuals, the opposite of a robust kernel.
+            if self.alpha is None or not self.alpha <= 2.0:
+                raise InputError(f"the barron kernel needs a shape alpha in [-inf, 2], got {self.alpha!r}")
 
     def rho(self, x):
         """Kernel cost of normalised residuals ``x`` (any shape); ``~ x**2/2`` near 0."""

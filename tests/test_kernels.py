@@ -115,7 +115,7 @@ def test_weight_is_one_near_zero_and_falls_for_large_errors(kernel):
         np.testing.assert_allclose(w, 1.0)
         return
     # Monotone non-increasing in |x| and clearly below 1 far out.
-    assert np.all(np.diff(w) <= 1e-15)
+    assert np.all(np.diff(w) <= 1e-15) and np.all(w >= 0.0)
     assert w[-1] < 0.1
     np.testing.assert_allclose(kernel.weight(-X), w)
     np.testing.assert_allclose(kernel.rho(-X), kernel.rho(X))
@@ -172,3 +172,7 @@ def test_kernel_from_name_aliases_and_errors():
         kernel_from_name("huber", float("nan"))
     with pytest.raises(InputError):
         kernel_from_name("barron", 1.0)
+    with pytest.raises(InputError):
+        kernel_from_name("barron", 1.0, alpha=3.0)
+    with pytest.raises(InputError):
+        kernel_from_name("barron", 1.0, alpha=float("nan"))
