@@ -13,6 +13,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from . import se2
 from .registration import PreparedScan, RegistrationOptions, prepare_scan, register_prepared
 
 # Registration needs a few points to fit three parameters; scans with fewer
@@ -62,12 +63,17 @@ def empty_results(p: int) -> PairResults:
         degeneracy=np.full(p, np.nan), iterations=np.zeros(p, np.int64), fit_score=np.full(p, np.nan))
 
 
-def seeds_for(guess: np.ndarray, yaw: np.ndarray) -> np.ndarray:
-    """Registration seeds of one pair: the guess, plus the guess turned to
-    each further yaw hypothesis of the descriptors (radians)."""
-    seeds = [guess]
-    for h in yaw[1:]:
-        if np.isfinite(h):
+def seeds_for(guess: np.ndarray, yaw: np.ndarray, window_rad: float) -> np.ndarray:
+    """Registration seeds of one pair (radians, metres, src frame).
+
+    The guess, plus the guess turned to each further yaw hypothesis of the
+    descriptors that the coarse search around the seeds so far would not
+    reach (more than ``window_rad`` away): every seed costs a full coarse
+    search, and one that lies inside another's window adds nothing.
+    """
+    seeds = [np.asarray(guess, dtype=float)]
+    for h in yaw:
+        if np.isfinite(h) and all(abs(se2.wrap(h - s[2])) > window_rad for s in seeds):
             seeds.append(np.array([guess[0], guess[1], h]))
     return np.asarray(seeds, dtype=float)
 

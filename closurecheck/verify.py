@@ -24,14 +24,17 @@ covariances on [x, y, theta] in the src frame.
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass, field
 
 import numpy as np
+from scipy.stats import chi2
 
 from . import se2
 from .clique import CliqueOptions, max_clique
 from .consistency import ConsistencyOptions, odometry_gate, pairwise_consistency
 from .kernels import kernel_from_name
+from .mapgate import map_gate_distance, relative_posterior
 from .optimize import GncOptions, SolverOptions, optimize_gnc, prune_inconsistent_edges
 
 
@@ -64,7 +67,7 @@ class VerifyOptions:
     residual_probability : chi-square probability of the final per-edge test.
     """
 
-    min_overlap: float = 0.6
+    min_overlap: float = 0.3
     max_rmse_m: float = 0.08
     max_ambiguity: float = 0.95
     reject_degenerate: bool = True
@@ -79,6 +82,12 @@ class VerifyOptions:
     kernel: str = "cauchy"
     kernel_scale: float = 3.0
     residual_probability: float = 0.999
+    min_closures_for_scale: int = 10
+    max_odometry_scale: float = 100.0
+    extend_with_map: bool = True
+    map_probability: float = 0.999
+    map_max_std_m: float = 0.25
+    map_rounds: int = 3
 
 
 @dataclass(frozen=True, eq=False)
@@ -100,6 +109,7 @@ class Verification:
     poses: np.ndarray
     clique_exact: bool
     clique_size: int
+    odometry_scale: float = 1.0
     notes: tuple = field(default_factory=tuple)
 
 
@@ -111,6 +121,96 @@ def odometry_edges(odom_poses: np.ndarray, step_covariances: np.ndarray):
     delta = se2.between(odom_poses[:-1], odom_poses[1:])
     info = np.linalg.inv(step_covariances)
     return src, dst, delta, 0.5 * (info + np.swapaxes(info, -1, -2))
+
+
+def _loop_information(cov):
+    info = np.linalg.inv(cov)
+    return 0.5 * (info + np.swapaxes(info, -1, -2))
+
+
+def _graph_edges(odom_poses, step_covariances, src, dst, delta, covariance, members):
+    o_src, o_dst, o_delta, o_info = odometry_edges(odom_poses, step_covariances)
+    e_src = np.concatenate([o_src, src[members]])
+    e_dst = np.concatenate([o_dst, dst[members]])
+    e_delta = np.concatenate([o_delta, delta[members]])
+    e_info = np.concatenate([o_info, _loop_information(covariance[members])])
+    robust = np.r_[np.zeros(len(o_src), bool), np.ones(len(members), bool)]
+    return e_src, e_dst, e_delta, e_info, robust, len(o_src)
+
+
+def _optimise_closures(members, src, dst, delta, covariance, odom_poses, step_covariances,
+                       options: VerifyOptions):
+    """GNC then the residual test on odometry + the closures ``members``.
+
+    Returns (kept (len(members),) bool, poses (N, 3), gnc weights, residuals
+    (len(members),) squared Mahalanobis at the final poses, NaN if dropped by GNC).
+    """
+    n_m = len(members)
+    gnc_w = np.full(n_m, np.nan)
+    res = np.full(n_m, np.nan)
+    if n_m == 0:
+        return np.zeros(0, bool), np.array(odom_poses, dtype=float), gnc_w, res
+    e_src, e_dst, e_delta, e_info, robust, n_o = _graph_edges(odom_poses, step_covariances, src, dst, delta,
+                                                              covariance, members)
+    start = np.array(odom_poses, dtype=float)
+    keep = np.ones(n_m, dtype=bool)
+    if options.use_gnc:
+        gnc = optimize_gnc(start, e_src, e_dst, e_delta, e_info, robust,
+                           GncOptions(inlier_probability=options.residual_probability))
+        gnc_w = np.array(gnc.weights[n_o:])
+        keep = gnc_w >= options.gnc_min_weight
+        start = np.array(gnc.poses)
+    sel = np.r_[np.ones(n_o, bool), keep]
+    kernel = kernel_from_name(options.kernel, options.kernel_scale)
+    pr = prune_inconsistent_edges(start, e_src[sel], e_dst[sel], e_delta[sel], e_info[sel], robust[sel], kernel,
+                                  probability=options.residual_probability, options=SolverOptions())
+    kept = keep.copy()
+    kept[np.flatnonzero(keep)] = pr.kept[n_o:]
+    res[np.flatnonzero(keep)] = pr.solution.residuals_sq[n_o:]
+    return kept, np.array(pr.solution.poses), gnc_w, res
+
+
+def odometry_scale(chi2_values, options: VerifyOptions) -> float:
+    """A posteriori variance factor of the odometry model, from verified closures.
+
+    The squared Mahalanobis distances of verified closures from the
+    odometry prediction follow chi-square(3) when the odometry model is
+    honest; their median over the chi-square(3) median estimates by how much
+    the model's covariance is too small (robust form of the variance-factor
+    estimate of least-squares adjustment).  Never below 1 (the model is
+    trusted when it is not contradicted), at most ``max_odometry_scale``.
+    """
+    x = np.asarray(chi2_values, dtype=float)
+    x = x[np.isfinite(x)]
+    if len(x) < options.min_closures_for_scale:
+        return 1.0
+    factor = float(np.median(x) / chi2.median(3))
+    return float(np.clip(factor, 1.0, options.max_odometry_scale))
+
+
+def _consistency_pass(alive0, src, dst, delta, covariance, odom_poses, step_covariances, options, cons, figures):
+    """Odometry gate and PCM over the candidates ``alive0``; returns (reason updates, clique result)."""
+    k = len(src)
+    reason = np.full(k, "", dtype=object)
+    prefix = se2.chain_prefix(odom_poses, step_covariances)
+    alive = np.flatnonzero(alive0)
+    if len(alive):
+        gate = odometry_gate(src[alive], dst[alive], delta[alive], covariance[alive], odom_poses, prefix, cons)
+        figures["odometry_chi2"][alive] = gate.distance_sq
+        figures["odometry_informative"][alive] = gate.informative
+        reason[alive[gate.informative & ~gate.passed]] = "odometry_gate"
+    alive = np.flatnonzero(alive0 & (reason == ""))
+    clique = None
+    if len(alive):
+        pc = pairwise_consistency(src[alive], dst[alive], delta[alive], covariance[alive], odom_poses, prefix, cons)
+        figures["pair_support"][alive] = np.asarray(pc.adjacency.sum(axis=1)).ravel()
+        clique = max_clique(pc.adjacency, options=CliqueOptions(max_expansions=options.clique_max_expansions))
+        out = np.ones(len(alive), dtype=bool)
+        out[clique.members] = False
+        if clique.size < options.min_clique_size:
+            out[:] = True
+        reason[alive[out]] = "pair_inconsistent"
+    return reason, clique
 
 
 def verify(src, dst, delta, covariance, quality: dict, odom_poses, step_covariances,
@@ -126,7 +226,6 @@ def verify(src, dst, delta, covariance, quality: dict, odom_poses, step_covarian
     k = len(src)
     n = len(odom_poses)
     reason = np.full(k, "accepted", dtype=object)
-    figures: dict[str, np.ndarray] = {}
     notes: list[str] = []
 
     def reject(mask, code):
@@ -142,97 +241,85 @@ def verify(src, dst, delta, covariance, quality: dict, odom_poses, step_covarian
     reject(np.isfinite(amb) & (amb > options.max_ambiguity), "ambiguous")
     if options.reject_degenerate:
         reject(np.asarray(quality["degenerate"], dtype=bool), "degenerate")
-
-    # Self-pairs and exact duplicates (same unordered pair) keep the first.
-    same = src == dst
-    reject(same, "duplicate")
+    reject(src == dst, "duplicate")
     lo, hi = np.minimum(src, dst), np.maximum(src, dst)
     _, first = np.unique(lo * (n + 1) + hi, return_index=True)
     dup = np.ones(k, dtype=bool)
     dup[first] = False
     reject(dup, "duplicate")
+    plausible = reason == "accepted"
 
-    prefix = se2.chain_prefix(odom_poses, step_covariances)
+    figures = {name: np.full(k, np.nan) for name in
+               ("odometry_chi2", "pair_support", "map_chi2", "map_std_m", "gnc_weight", "graph_chi2")}
+    figures["odometry_informative"] = np.zeros(k, dtype=bool)
     cons = ConsistencyOptions(gate_probability=options.gate_probability,
                               pair_probability=options.pair_probability,
                               informative_max_std_m=options.gate_max_chain_std_m,
                               informative_max_std_rad=options.gate_max_chain_std_rad)
-    figures["odometry_chi2"] = np.full(k, np.nan)
-    figures["odometry_informative"] = np.zeros(k, dtype=bool)
-    alive = np.flatnonzero(reason == "accepted")
-    if len(alive):
-        gate = odometry_gate(src[alive], dst[alive], delta[alive], covariance[alive], odom_poses, prefix, cons)
-        figures["odometry_chi2"][alive] = gate.distance_sq
-        figures["odometry_informative"][alive] = gate.informative
-        bad = np.zeros(k, dtype=bool)
-        bad[alive] = gate.informative & ~gate.passed
-        reject(bad, "odometry_gate")
 
-    figures["pair_support"] = np.full(k, np.nan)
-    alive = np.flatnonzero(reason == "accepted")
-    clique_exact, clique_size = True, 0
-    if len(alive):
-        pc = pairwise_consistency(src[alive], dst[alive], delta[alive], covariance[alive], odom_poses, prefix, cons)
-        degree = np.asarray(pc.adjacency.sum(axis=1)).ravel()
-        figures["pair_support"][alive] = degree
-        # Among equally large consistent sets prefer the one with the better fits.
-        weights = np.asarray(quality["overlap"], float)[alive]
-        res = max_clique(pc.adjacency, weights=np.nan_to_num(weights, nan=0.0),
-                         options=CliqueOptions(max_expansions=options.clique_max_expansions))
-        clique_exact, clique_size = res.exact, res.size
-        if not res.exact:
-            notes.append(f"the maximum-clique search hit its budget of {options.clique_max_expansions} "
-                         f"expansions; the consistent set of {res.size} closures is the best found, "
-                         f"at most {res.upper_bound} is possible")
-        out = np.ones(len(alive), dtype=bool)
-        out[res.members] = False
-        if res.size < options.min_clique_size:
-            out[:] = True
-        bad = np.zeros(k, dtype=bool)
-        bad[alive] = out
-        reject(bad, "pair_inconsistent")
+    # Pass 1, strict: the odometry model as given decides the core set.
+    upd, clique = _consistency_pass(plausible, src, dst, delta, covariance, odom_poses, step_covariances,
+                                    options, cons, figures)
+    first_pass = np.where(upd == "", "accepted", upd)
+    alive = np.flatnonzero(plausible & (first_pass == "accepted"))
+    kept, poses, gnc_w, res = _optimise_closures(alive, src, dst, delta, covariance, odom_poses,
+                                                 step_covariances, options)
+    core = alive[kept]
+    first_pass[alive[~kept]] = "graph_residual"
 
-    o_src, o_dst, o_delta, o_info = odometry_edges(odom_poses, step_covariances)
-    figures["gnc_weight"] = np.full(k, np.nan)
-    figures["graph_chi2"] = np.full(k, np.nan)
-    alive = np.flatnonzero(reason == "accepted")
-    poses = np.array(odom_poses, dtype=float)
-    if len(alive):
-        l_info = np.linalg.inv(covariance[alive])
-        l_info = 0.5 * (l_info + np.swapaxes(l_info, -1, -2))
-        e_src = np.concatenate([o_src, src[alive]])
-        e_dst = np.concatenate([o_dst, dst[alive]])
-        e_delta = np.concatenate([o_delta, delta[alive]])
-        e_info = np.concatenate([o_info, l_info])
-        robust = np.r_[np.zeros(len(o_src), bool), np.ones(len(alive), bool)]
-        start = poses
-        if options.use_gnc:
-            gnc = optimize_gnc(poses, e_src, e_dst, e_delta, e_info, robust,
-                               GncOptions(inlier_probability=options.residual_probability))
-            w = gnc.weights[len(o_src):]
-            figures["gnc_weight"][alive] = w
-            bad = np.zeros(k, dtype=bool)
-            bad[alive] = w < options.gnc_min_weight
-            reject(bad, "graph_residual")
-            start = gnc.poses
-            keep = w >= options.gnc_min_weight
-            alive = alive[keep]
-            e_src = np.concatenate([o_src, src[alive]])
-            e_dst = np.concatenate([o_dst, dst[alive]])
-            e_delta = np.concatenate([o_delta, delta[alive]])
-            e_info = np.concatenate([o_info, l_info[keep]])
-            robust = np.r_[np.zeros(len(o_src), bool), np.ones(len(alive), bool)]
-        kernel = kernel_from_name(options.kernel, options.kernel_scale)
-        pr = prune_inconsistent_edges(start, e_src, e_dst, e_delta, e_info, robust, kernel,
-                                      probability=options.residual_probability, options=SolverOptions())
-        loop_res = pr.solution.residuals_sq[len(o_src):]
-        figures["graph_chi2"][alive] = loop_res
-        bad = np.zeros(k, dtype=bool)
-        bad[alive] = ~pr.kept[len(o_src):]
-        reject(bad, "graph_residual")
-        poses = np.array(pr.solution.poses)
-        if len(pr.removed):
-            notes.append(f"{len(pr.removed)} closure(s) failed the residual test after optimisation")
+    # The verified core measures how honest the odometry model is.
+    scale = odometry_scale(figures["odometry_chi2"][core], options)
+    scaled = step_covariances * scale
+    if scale > 1.0:
+        notes.append(f"odometry covariance scaled by {scale:.2f} (a posteriori variance factor from "
+                     f"{len(core)} verified closures)")
+
+    members = core
+    retry = np.flatnonzero(plausible & np.isin(first_pass, ("odometry_gate", "pair_inconsistent")))
+    for _ in range(options.map_rounds if options.extend_with_map else 0):
+        # Candidates the odometry could not vouch for, gated against the map
+        # that the closures verified so far pin down.  Only where the map is
+        # tight: where it is loose, a look-alike offset would pass unseen.
+        if not len(members) or not len(retry):
+            break
+        kept2, poses_core, _, _ = _optimise_closures(members, src, dst, delta, covariance, odom_poses, scaled,
+                                                     dataclasses.replace(options, use_gnc=False))
+        members = members[kept2]
+        e_src, e_dst, e_delta, e_info, _, _ = _graph_edges(odom_poses, scaled, src, dst, delta, covariance,
+                                                           members)
+        rel, rel_cov = relative_posterior(poses_core, e_src, e_dst, e_delta, e_info, src[retry], dst[retry])
+        d2 = map_gate_distance(rel, rel_cov, delta[retry], covariance[retry])
+        std = np.sqrt(np.linalg.eigvalsh(rel_cov[:, :2, :2])[:, -1])
+        figures["map_chi2"][retry] = d2
+        figures["map_std_m"][retry] = std
+        ok = (d2 <= chi2.ppf(options.map_probability, 3)) & (std <= options.map_max_std_m)
+        if not ok.any():
+            break
+        members = np.union1d(members, retry[ok])
+        retry = retry[~ok]
+    joined = len(np.setdiff1d(members, core))
+    if joined:
+        notes.append(f"{joined} closure(s) verified against the map of the first {len(core)} (map gate)")
+
+    kept, poses, gnc_w, res = _optimise_closures(members, src, dst, delta, covariance, odom_poses, scaled,
+                                                 options)
+    figures["gnc_weight"][members] = gnc_w
+    figures["graph_chi2"][members] = res
+    final = np.full(k, "", dtype=object)
+    final[members[kept]] = "accepted"
+    final[members[~kept]] = "graph_residual"
+    reason = np.where(reason != "accepted", reason,
+                      np.where(final != "", final,
+                               np.where(first_pass == "accepted", "graph_residual", first_pass)))
+    removed = int((reason == "graph_residual").sum())
+    if removed:
+        notes.append(f"{removed} closure(s) failed the residual test after optimisation")
+    clique_exact = True if clique is None else clique.exact
+    if clique is not None and not clique.exact:
+        notes.append(f"the maximum-clique search hit its budget of {options.clique_max_expansions} expansions; "
+                     f"the consistent set of {clique.size} closures is the best found, at most "
+                     f"{clique.upper_bound} is possible")
     accepted = reason == "accepted"
     return Verification(reason=reason.astype(str), accepted=accepted, figures=figures, poses=poses,
-                        clique_exact=clique_exact, clique_size=clique_size, notes=tuple(notes))
+                        clique_exact=clique_exact, clique_size=0 if clique is None else clique.size,
+                        odometry_scale=scale, notes=tuple(notes))
