@@ -112,7 +112,10 @@ def _cmd_run(args) -> int:
     config = _run_config(args)
     progress = Progress(quiet=args.quiet, verbose=args.verbose)
     try:
+        if args.also_propose and not args.candidates:
+            raise InputError("--also-propose goes with --candidates PAIRS.csv")
         result = run_paths(args.logs, args.out, config, candidates=args.candidates, choice=_recording_choice(args),
+                           also_propose=args.also_propose,
                            dask=args.dask, report=not args.no_report, progress=progress)
     finally:
         progress.close()
@@ -201,6 +204,8 @@ def build_parser() -> argparse.ArgumentParser:
                          help="verify these pairs (columns from,to[,dx,dy,dtheta]) instead of proposing")
     runopts.add_argument("--config", default=None, metavar="FILE.toml",
                          help="settings file; a run's own config.toml reproduces it")
+    runopts.add_argument("--also-propose", action="store_true",
+                         help="with --candidates: verify the file's pairs and the tool's own proposals together")
     runopts.add_argument("--jobs", type=int, default=None, help="worker processes (default: all cores)")
     runopts.add_argument("--dask", default=None, metavar="ADDRESS",
                          help="run registration on Dask: 'local' or tcp://HOST:PORT (needs the dask extra)")
@@ -283,6 +288,14 @@ def main(argv=None) -> int:
         if verbose:
             traceback.print_exc()
         print(f"closurecheck: error: {exc}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    except OSError as exc:
+        # Disk full, permission denied, a path that is a file: the user's
+        # environment, not a bug; atomic writes left earlier outputs intact.
+        if verbose:
+            traceback.print_exc()
+        where = f" {exc.filename}" if getattr(exc, "filename", None) else ""
+        print(f"closurecheck: error: cannot access{where}: {exc.strerror or exc}", file=sys.stderr)
         return EXIT_BAD_INPUT
     except KeyboardInterrupt:
         print("closurecheck: interrupted; finished outputs were kept, nothing was half-written",

@@ -17,8 +17,8 @@ import numpy as np
 
 from . import __version__, se2
 from .atomic import write_text
-from .candidates import (CandidateOptions, CandidateSet, external_candidates, prepare, propose_for,
-                         proposal_noise)
+from .candidates import (CandidateOptions, CandidateSet, external_candidates, merge_candidates, prepare,
+                         propose_for, proposal_noise)
 from .config import merge, to_toml
 from .descriptors import DescriptorOptions
 from .errors import InputError
@@ -134,11 +134,11 @@ def _register_all(log: ScanLog, cands: CandidateSet, config: RunConfig, runner, 
 
 
 def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPairs | None = None,
-            runner=None, progress=None) -> RunOutcome:
+            runner=None, progress=None, also_propose: bool = False) -> RunOutcome:
     """Run the pipeline on a scan log held in memory.
 
     ``external`` replaces the proposed candidates with the pairs of a CSV
-    (contract section 4).  ``runner`` executes the registration batches
+    (contract section 4), or joins them when ``also_propose`` is set.  ``runner`` executes the registration batches
     (serial, local pool or Dask; :mod:`closurecheck.parallel`).
     """
     if len(log) < 2:
@@ -153,6 +153,8 @@ def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPai
     if external is not None:
         cands = st.run("candidates", external_candidates, external, data.descriptors, data.chain,
                        config.candidates)
+        if also_propose:
+            cands = merge_candidates(cands, st.run("candidates", propose_for, data, config.candidates))
     else:
         cands = st.run("candidates", propose_for, data, config.candidates)
 
@@ -341,7 +343,7 @@ def format_summary(info: dict, paths: dict) -> str:
 
 
 def run_one(path, out_dir, config: RunConfig, *, candidates=None, choice=None, runner=None, report=True,
-            progress=None):
+            progress=None, also_propose=False):
     """Load one input, run the pipeline and write its outputs. Returns (outcome, paths, info)."""
     from .inputs import RecordingChoice, load_input
     from .pairs import read_pairs
@@ -353,7 +355,7 @@ def run_one(path, out_dir, config: RunConfig, *, candidates=None, choice=None, r
         if progress is not None:
             progress.info(note)
     external = read_pairs(candidates, len(log)) if candidates else None
-    outcome = run_log(log, config, external=external, runner=runner, progress=progress)
+    outcome = run_log(log, config, external=external, runner=runner, progress=progress, also_propose=also_propose)
     if load_notes:
         outcome = dataclasses.replace(outcome, notes=tuple(load_notes) + outcome.notes)
     score = None
@@ -370,7 +372,7 @@ def run_one(path, out_dir, config: RunConfig, *, candidates=None, choice=None, r
 
 
 def run_paths(paths, out, config: RunConfig = RunConfig(), *, candidates=None, choice=None, dask=None,
-              report=True, progress=None) -> BatchResult:
+              report=True, progress=None, also_propose=False) -> BatchResult:
     """``closurecheck run``: one input into ``out``, or several into ``out/<name>/``.
 
     A failing input is reported and does not stop the others; with several
@@ -391,7 +393,8 @@ def run_paths(paths, out, config: RunConfig = RunConfig(), *, candidates=None, c
             target = out if len(files) == 1 else out / _stem(path)
             try:
                 outcome, written, info = run_one(path, target, config, candidates=candidates, choice=choice,
-                                                 runner=runner, report=report, progress=progress)
+                                                 runner=runner, report=report, progress=progress,
+                                                 also_propose=also_propose)
             except InputError as exc:
                 if len(files) == 1:
                     raise
