@@ -63,8 +63,11 @@ class RunConfig:
     # Candidates arrive with guesses good to a metre or so (odometry shrunk
     # towards "same place", descriptor yaw), so the coarse search needs a
     # smaller window than registration's own default for arbitrary pairs;
-    # a third of the area costs a third of the time.
-    registration: RegistrationOptions = RegistrationOptions(coarse_window_m=2.0, coarse_window_rad=0.6)
+    # a third of the area costs a third of the time.  A fixed 0.01 rad
+    # angle step keeps long-range scans (30 m) from multiplying the angles
+    # searched; ICP refines the angle anyway.
+    registration: RegistrationOptions = RegistrationOptions(coarse_window_m=2.0, coarse_window_rad=0.6,
+                                                            coarse_angle_step_rad=0.01)
     verify: VerifyOptions = VerifyOptions()
 
     def __post_init__(self):
