@@ -26,7 +26,7 @@ from collections import OrderedDict
 
 from . import __version__
 from .errors import InputError
-from .parallel import CACHE_SCANS, ScanCache, as_table, batch_slices, run_batch, single_thread_blas
+from .parallel import CACHE_SCANS, OrderedPairs, ScanCache, as_table, batch_slices, run_batch, single_thread_blas
 
 MISSING_EXTRA = "--dask needs the optional extra: pip install 'closurecheck[dask]'"
 
@@ -149,9 +149,11 @@ class DaskRunner:
         client = self.client
         token = uuid.uuid4().hex
         table = client.scatter(as_table(points), broadcast=True, hash=False)
-        slices = batch_slices(len(src), self.workers, batch_pairs)
-        futures = [client.submit(_dask_batch, token, table, options, self.cache_scans, src[sl], dst[sl], seeds[sl],
-                                 key=f"closurecheck-batch-{token}-{k}") for k, sl in enumerate(slices)]
+        work = OrderedPairs(src, dst, seeds)
+        slices = batch_slices(len(work), self.workers, batch_pairs)
+        futures = [client.submit(_dask_batch, token, table, options, self.cache_scans, work.src[sl], work.dst[sl],
+                                 work.seeds[sl], key=f"closurecheck-batch-{token}-{k}")
+                   for k, sl in enumerate(slices)]
         order = {f.key: k for k, f in enumerate(futures)}
         parts: list = [None] * len(slices)
         try:
@@ -159,14 +161,14 @@ class DaskRunner:
                 k = order[fut.key]
                 parts[k] = fut.result()
                 if progress is not None:
-                    progress.advance("registration", slices[k].stop - slices[k].start, len(src))
+                    progress.advance("registration", slices[k].stop - slices[k].start, len(work))
         finally:
             client.cancel(futures + [table])
             try:
                 self.last_builds = sum(client.run(_forget, token).values())
             except Exception:  # noqa: BLE001 - a worker lost meanwhile keeps nothing of ours worth reporting
                 pass
-        return [r for part in parts for r in part]
+        return work.restore([r for part in parts for r in part])
 
     def close(self):
         """Close the client and, for ``local``, shut the embedded cluster down."""

@@ -12,8 +12,9 @@ the pool's initializer receives it, Dask scatters it to every worker.  Each
 worker prepares a scan (kd-tree, line fits, coarse grid) the first time one
 of its batches needs it and keeps the most recently used ones for later
 batches (:class:`ScanCache`, bounded so memory does not grow with the log).
-Pairs arrive ordered by keyframe, so neighbouring pairs share scans and
-contiguous batches reuse the cache well.
+The runners register the pairs in an order that keeps pairs sharing scans
+together (:func:`locality_order`), so the cache rarely prepares a scan twice,
+and hand the results back in the input order.
 
 BLAS runs on one thread inside every runner: the matrices of one pair are
 small, and with one process per core a threaded BLAS only oversubscribes
@@ -31,6 +32,8 @@ from concurrent.futures import ProcessPoolExecutor, as_completed
 from dataclasses import dataclass
 
 import numpy as np
+from scipy import sparse
+from scipy.sparse.csgraph import reverse_cuthill_mckee
 
 from .errors import InputError
 from .pairwise_registration import MIN_POINTS, register_batch
@@ -141,6 +144,52 @@ def run_batch(cache: ScanCache, src, dst, seeds) -> list:
     return register_batch(prepared, src, dst, seeds, cache.options)
 
 
+def locality_order(src, dst) -> np.ndarray:
+    """Permutation of the pairs that keeps pairs sharing a scan close together.
+
+    A place visited on several passes is paired with scans from all of
+    them, so in the candidates' own order (by the newer scan) a scan's pairs
+    lie far apart and a bounded cache prepares it again and again.  The
+    reverse Cuthill-McKee ordering of the graph (scans as vertices, pairs as
+    edges) numbers the scans so that every pair joins two nearby numbers
+    (a small bandwidth); sorting the pairs by their lower number, then the
+    higher, makes each scan's pairs a short run.
+    """
+    src = np.asarray(src, dtype=np.int64)
+    dst = np.asarray(dst, dtype=np.int64)
+    n = len(src)
+    if n < 3:
+        return np.arange(n)
+    ids, inv = np.unique(np.concatenate([src, dst]), return_inverse=True)
+    s, d = inv[:n], inv[n:]
+    m = len(ids)
+    adjacency = sparse.csr_matrix((np.ones(2 * n, dtype=np.int8), (np.concatenate([s, d]), np.concatenate([d, s]))),
+                                  shape=(m, m))
+    rank = np.empty(m, dtype=np.int64)
+    rank[reverse_cuthill_mckee(adjacency, symmetric_mode=True)] = np.arange(m)
+    a, b = rank[s], rank[d]
+    return np.lexsort((np.maximum(a, b), np.minimum(a, b)))
+
+
+class OrderedPairs:
+    """The pairs in locality order, and the way back to the input order."""
+
+    def __init__(self, src, dst, seeds):
+        self.order = locality_order(src, dst)
+        self.src = np.asarray(src)[self.order]
+        self.dst = np.asarray(dst)[self.order]
+        self.seeds = [seeds[k] for k in self.order]
+
+    def __len__(self) -> int:
+        return len(self.order)
+
+    def restore(self, results: list) -> list:
+        out: list = [None] * len(results)
+        for k, r in zip(self.order, results):
+            out[k] = r
+        return out
+
+
 def single_thread_blas():
     """Context manager limiting BLAS/OpenMP pools to one thread (no-op without threadpoolctl)."""
     try:
@@ -176,13 +225,14 @@ class SerialRunner:
     def register(self, points, src, dst, seeds, options, batch_pairs, progress=None):
         """Per-pair result tuples (or None) in input order; see pairwise_registration.register_batch."""
         cache = ScanCache(as_table(points), options, self.cache_scans)
+        work = OrderedPairs(src, dst, seeds)
         out = []
         with single_thread_blas():
-            for sl in batch_slices(len(src), 1, batch_pairs):
-                out.extend(run_batch(cache, src[sl], dst[sl], seeds[sl]))
-                _advance(progress, sl, len(src))
+            for sl in batch_slices(len(work), 1, batch_pairs):
+                out.extend(run_batch(cache, work.src[sl], work.dst[sl], work.seeds[sl]))
+                _advance(progress, sl, len(work))
         self.last_builds = cache.builds
-        return out
+        return work.restore(out)
 
     def close(self):
         pass
@@ -195,7 +245,9 @@ def _pool_init(table, options, cache_scans):
 
 
 def _pool_batch(src, dst, seeds):
-    return run_batch(_WORKER["cache"], src, dst, seeds)
+    cache = _WORKER["cache"]
+    out = run_batch(cache, src, dst, seeds)
+    return os.getpid(), cache.builds, out
 
 
 def _pool_context():
@@ -224,30 +276,39 @@ class PoolRunner:
             raise InputError(f"--jobs must be >= 0 (0 = all cores), got {workers}")
         self.workers = workers or os.cpu_count() or 1
         self.cache_scans = cache_scans
+        self.last_builds = 0
 
     def register(self, points, src, dst, seeds, options, batch_pairs, progress=None):
         """Per-pair result tuples (or None) in input order; see pairwise_registration.register_batch."""
         if len(src) == 0:
             return []
         if self.workers == 1:
-            return SerialRunner(self.cache_scans).register(points, src, dst, seeds, options, batch_pairs,
-                                                           progress)
+            serial = SerialRunner(self.cache_scans)
+            out = serial.register(points, src, dst, seeds, options, batch_pairs, progress)
+            self.last_builds = serial.last_builds
+            return out
         table = as_table(points)
-        slices = batch_slices(len(src), self.workers, batch_pairs)
+        work = OrderedPairs(src, dst, seeds)
+        slices = batch_slices(len(work), self.workers, batch_pairs)
         parts: list = [None] * len(slices)
+        builds: dict = {}
         with ProcessPoolExecutor(max_workers=min(self.workers, len(slices)), mp_context=_pool_context(),
                                  initializer=_pool_init, initargs=(table, options, self.cache_scans)) as pool:
-            futures = {pool.submit(_pool_batch, src[sl], dst[sl], seeds[sl]): k for k, sl in enumerate(slices)}
+            futures = {pool.submit(_pool_batch, work.src[sl], work.dst[sl], work.seeds[sl]): k
+                       for k, sl in enumerate(slices)}
             try:
                 for fut in as_completed(futures):
                     k = futures[fut]
-                    parts[k] = fut.result()
-                    _advance(progress, slices[k], len(src))
+                    pid, built, parts[k] = fut.result()
+                    builds[pid] = max(builds.get(pid, 0), built)
+                    _advance(progress, slices[k], len(work))
             except BaseException:
                 for fut in futures:
                     fut.cancel()
                 raise
-        return [r for part in parts for r in part]
+        # Scans prepared over all workers (a scan may be prepared in several).
+        self.last_builds = sum(builds.values())
+        return work.restore([r for part in parts for r in part])
 
     def close(self):
         pass
