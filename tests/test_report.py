@@ -415,7 +415,7 @@ def test_thresholds_are_optional(tmp_path):
 
 CHROMIUM_FLAGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
                   "--disable-background-networking", "--disable-component-update", "--disable-sync",
-                  "--hide-scrollbars", "--window-size=1400,3000"]
+                  "--disable-dev-shm-usage", "--hide-scrollbars", "--window-size=1400,3000"]
 
 # Runs inside a copy of the report once everything (pictures included) has
 # loaded, and writes what it found into the page for --dump-dom.
