@@ -94,9 +94,10 @@ def main(argv=None) -> int:
     names = list(READERS)[:1] if args.skip_reference else list(READERS)
     rows = [measure(n, path) for n in names]
     size_mb = os.path.getsize(path) / 2**20
+    with open(path, "rb") as fh:
+        kind = "gzip" if fh.read(2) == b"\x1f\x8b" else "plain"
     lines = [
-        f"Log: {rows[0]['scans']} scans x {rows[0]['beams']} beams, {size_mb:.0f} MB on disk"
-        f" ({'gzip' if open(path, 'rb').read(2) == b'\\x1f\\x8b' else 'plain'}).",
+        f"Log: {rows[0]['scans']} scans x {rows[0]['beams']} beams, {size_mb:.0f} MB on disk ({kind}).",
         "",
         "| reader | load time (s) | peak RSS (MB) | RSS added by loading (MB) |",
         "| --- | ---: | ---: | ---: |",

@@ -262,14 +262,15 @@ def write_outputs(outcome: RunOutcome, out_dir, *, report: bool = True, score: d
     paths["summary"] = out_dir / "summary.json"
     write_text(paths["summary"], json.dumps(info, indent=1, default=_json_default) + "\n")
     if report:
-        from .report import ReportData, build_report
+        from .report import ReportData, build_report, check_thresholds
 
         data = ReportData(
             log_name=outcome.log.source or "scan log", ids=outcome.keyframes, odom=outcome.odom,
             poses=outcome.poses, scan_points=[outcome.log.points(int(i)) for i in outcome.keyframes],
             verdicts=v, summary=_summary_rows(info), timings=outcome.timings, score=score,
             truth=outcome.log.truth[outcome.keyframes] if outcome.log.has_truth else None,
-            config_text=to_toml(outcome.config), notes=list(outcome.notes))
+            config_text=to_toml(outcome.config), notes=list(outcome.notes),
+            thresholds=check_thresholds(outcome.config.verify))
         paths["report"] = build_report(out_dir, data)
     return paths
 

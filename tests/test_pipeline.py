@@ -17,19 +17,11 @@ from closurecheck import cli
 from closurecheck.config import load_toml, merge
 from closurecheck.graphio import read_graph
 from closurecheck.pipeline import RunConfig
-from closurecheck.scanlog import write_scanlog
-from closurecheck.simulate import simulate_log
-
-SCENARIO, SEED, SCANS = "ring", 11, 900
 
 
 @pytest.fixture(scope="module")
-def run(tmp_path_factory):
-    base = tmp_path_factory.mktemp("e2e")
-    log_path = base / "ring.jsonl.gz"
-    write_scanlog(log_path, simulate_log(SCENARIO, seed=SEED, scans=SCANS))
-    out = base / "out"
-    assert cli.main(["run", str(log_path), "--out", str(out), "-q"]) == 0
+def run(e2e_run):
+    base, log_path, out = e2e_run
     score_json = base / "score.json"
     assert cli.main(["score", str(out), "--json", str(score_json), "-q"]) == 0
     return {"log": log_path, "out": out, "score": json.loads(score_json.read_text())}

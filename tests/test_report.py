@@ -465,19 +465,11 @@ def _run_chromium(binary, profile, args, timeout=180):
 
 
 @pytest.fixture(scope="module")
-def real_run(tmp_path_factory):
+def real_run(e2e_run, tmp_path_factory):
     if _chromium() is None:
         pytest.skip("headless Chromium not found (install the Debian package 'chromium'; scripts/test.sh does)")
-    from closurecheck import cli
-    from closurecheck.scanlog import write_scanlog
-    from closurecheck.simulate import simulate_log
-
-    base = tmp_path_factory.mktemp("browser")
-    log = base / "ring.jsonl.gz"
-    write_scanlog(log, simulate_log("ring", seed=11, scans=900))
-    out = base / "out"
-    assert cli.main(["run", str(log), "--out", str(out), "-q"]) == 0
-    return base, out
+    _, _, out = e2e_run
+    return tmp_path_factory.mktemp("browser"), out
 
 
 @pytest.mark.browser
