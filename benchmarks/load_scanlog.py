@@ -44,16 +44,22 @@ shape = ranges.shape
 """,
 }
 
+# Peak memory from /proc (VmHWM): unlike getrusage's ru_maxrss it is not
+# inherited from the parent across fork and exec.
 CHILD = """
-import resource, sys, time
+import sys, time
 sys.path.insert(0, {root!r})
 PATH = {path!r}
-base = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+def hwm():
+    for line in open('/proc/self/status'):
+        if line.startswith('VmHWM:'):
+            return int(line.split()[1]) / 1024.0
+base = hwm()
 t0 = time.perf_counter()
 {body}
 dt = time.perf_counter() - t0
-peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
-print(dt, peak / 1024.0, (peak - base) / 1024.0, shape[0], shape[1])
+peak = hwm()
+print(dt, peak, peak - base, shape[0], shape[1])
 """
 
 
@@ -99,7 +105,7 @@ def main(argv=None) -> int:
     lines = [
         f"Log: {rows[0]['scans']} scans x {rows[0]['beams']} beams, {size_mb:.0f} MB on disk ({kind}).",
         "",
-        "| reader | load time (s) | peak RSS (MB) | RSS added by loading (MB) |",
+        "| reader | load time (s) | peak RSS (MB) | peak RSS added by loading (MB) |",
         "| --- | ---: | ---: | ---: |",
     ]
     for r in rows:
