@@ -26,7 +26,7 @@ from .graphio import PoseGraph, write_graph
 from .keyframes import KeyframeOptions, merge_keyframes, select_keyframes
 from .odometry import OdometryNoise, keyframe_step_covariances, noise_from_header
 from .pairs import ExternalPairs, write_candidates
-from .pairwise_registration import PairResults, collect, register_batch, seeds_for
+from .pairwise_registration import PairResults, collect, seeds_for
 from .registration import RegistrationOptions
 from .scanlog import ScanLog
 from .verdicts import VerdictTable

@@ -695,7 +695,6 @@ def build_report(out_dir, data: ReportData, *, table_limit: int = 5000) -> Path:
         nav.append(("config", "Settings"))
     lead = (f"{n_acc} of {len(v)} loop-closure candidates were verified and kept in graph.json; "
             f"the other {len(v) - n_acc} were rejected by the check named in their reason.")
-    key_acc = f'<span style="background:{ACCEPT_COLOUR}"></span>verified'
     key_rej = "".join(f'<span style="background:{c}"></span>{html.escape(lab)}' for _, _, c, lab in REJECT_GROUPS)
     parts = [
         "<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
