@@ -83,7 +83,9 @@ class DaskRunner:
 
     address : ``"local"`` (embedded cluster of ``workers`` single-threaded
         processes, 0 = all cores) or ``"tcp://HOST:PORT"`` of a running
-        scheduler (``workers`` is then ignored: the cluster has its own).
+        scheduler (``workers`` is then ignored: the cluster has its own;
+        workers started with ``--nthreads 1`` and one per core suit this
+        work best, as the registration of a pair holds the GIL most of the time).
     Raises InputError when Dask is not installed, the address is malformed,
     the scheduler cannot be reached, or its workers cannot run closurecheck.
     """
@@ -138,7 +140,8 @@ class DaskRunner:
         if wrong:
             raise InputError(f"the Dask workers at {self.address} run closurecheck {', '.join(wrong)}, "
                              f"this is {__version__}; install the same version on them")
-        self.workers = len(versions)
+        # Batches are cut for the tasks that can run at once: threads over all workers.
+        self.workers = max(1, sum(self.client.nthreads().values()))
 
     def register(self, points, src, dst, seeds, options, batch_pairs, progress=None):
         """Per-pair result tuples (or None) in input order; see pairwise_registration.register_batch."""

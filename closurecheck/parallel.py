@@ -266,7 +266,9 @@ class PoolRunner:
     """A local process pool with ``workers`` processes (0 = all cores).
 
     A pool is started for each ``register`` call (one per log) and receives
-    that log's points once, in its initializer.
+    that log's points once, in its initializer.  As with any process pool,
+    a script that uses it needs the ``if __name__ == "__main__":`` guard
+    (workers import the main module).
     """
 
     name = "local pool"
@@ -303,8 +305,7 @@ class PoolRunner:
                     builds[pid] = max(builds.get(pid, 0), built)
                     _advance(progress, slices[k], len(work))
             except BaseException:
-                for fut in futures:
-                    fut.cancel()
+                pool.shutdown(wait=False, cancel_futures=True)
                 raise
         # Scans prepared over all workers (a scan may be prepared in several).
         self.last_builds = sum(builds.values())

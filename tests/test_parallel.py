@@ -88,11 +88,32 @@ def test_dask_local_cluster_matches_serial(case):
         distributed = run_log(case["log"], CONFIG, external=case["pairs"], runner=runner)
         # Each worker dropped the log's prepared scans once the log was done.
         left = runner.client.run(_cached_runs)
+        # A second client reaching the same cluster by its tcp:// address, as
+        # `--dask tcp://HOST:PORT` does, on a few pairs.
+        remote = DaskRunner(runner.cluster.scheduler_address)
+        try:
+            assert remote.workers == 2
+            few = _few_pairs(case)
+            by_address = remote.register(*few, CONFIG.registration, 2)
+        finally:
+            remote.close()
     finally:
         runner.close()
     _assert_same_run(case["serial"], distributed)
     assert runner.last_builds >= len(np.union1d(case["pairs"].src, case["pairs"].dst))
     assert left and set(left.values()) == {0}
+    reference = SerialRunner().register(*few, CONFIG.registration, 2)
+    assert len(by_address) == len(reference)
+    for ra, rb in zip(reference, by_address):
+        assert (ra is None) == (rb is None)
+        assert ra is None or all(np.array_equal(x, y) for x, y in zip(ra, rb))
+
+
+def _few_pairs(case, n=6):
+    log, pairs = case["log"], case["pairs"]
+    src, dst = pairs.src[:n], pairs.dst[:n]
+    points = {int(i): log.points(int(i)) for i in np.union1d(src, dst)}
+    return points, src, dst, [np.zeros((1, 3))] * n
 
 
 def _cached_runs():
