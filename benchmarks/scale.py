@@ -36,8 +36,8 @@ The 20,000-scan size takes many minutes; ``--sizes 1000`` is a quick check.
 from __future__ import annotations
 
 import argparse
-import os
 import json
+import os
 import platform
 import subprocess
 import sys
@@ -62,7 +62,7 @@ GUESS_NOISE = (0.10, 0.10, 0.0523599)  # 10 cm per axis, 3 degrees
 
 def _load() -> str:
     try:
-        return "%.1f/%.1f/%.1f" % os.getloadavg()
+        return "/".join(f"{v:.1f}" for v in os.getloadavg())
     except OSError:
         return "n/a"
 
@@ -143,7 +143,7 @@ def child_run(args) -> None:
         profiler.stop()
         Path(args.profile_out).write_text(profiler.output_text(unicode=False, color=False, show_all=False))
     timings = {"read": t_read, **outcome.timings, "score": t_score, "write": t_write}
-    _emit({"scans": len(log), "keyframes": int(len(outcome.keyframes)), "candidates": int(len(v)),
+    _emit({"scans": len(log), "keyframes": len(outcome.keyframes), "candidates": len(v),
            "accepted": int(v.accepted.sum()), "false_closures": score.get("false_closures"),
            "timings": timings, "total": total, "main_cpu": time.process_time() - cpu0,
            "main_maxrss_mb": _rusage_mb(), "main_peak_by_stage": memory.peaks})
@@ -153,7 +153,7 @@ def _candidate_block(log, pairs: int):
     """A contiguous block of ``pairs`` candidates from the middle of the log's proposals, with seeds."""
     import numpy as np
 
-    from closurecheck.candidates import prepare, propose_for, proposal_noise
+    from closurecheck.candidates import prepare, proposal_noise, propose_for
     from closurecheck.keyframes import select_keyframes
     from closurecheck.pairwise_registration import seeds_for
     from closurecheck.pipeline import RunConfig, effective_noise
@@ -216,11 +216,19 @@ def child_icp(args) -> None:
     import statistics
 
     import numpy as np
-    from registration import _cloud, errors, open3d_icp  # benchmarks/registration.py (sets OMP threads)
+    from registration import (  # benchmarks/registration.py (sets OMP threads)
+        _cloud,
+        errors,
+        open3d_icp,
+    )
 
     from closurecheck import se2
     from closurecheck.inputs import load_input
-    from closurecheck.registration import RegistrationOptions, prepare_scan, register_prepared
+    from closurecheck.registration import (
+        RegistrationOptions,
+        prepare_scan,
+        register_prepared,
+    )
 
     log, _ = load_input(args.log)
     with open(Path(args.run_dir) / "candidates.csv", newline="") as fh:
@@ -386,7 +394,8 @@ def render(args, runs: dict, speed: dict | None, icp: dict | None, profiles: dic
     if 5000 in runs and 20000 in runs:
         a, b = runs[5000], runs[20000]
         ratio = (b["total"] / b["scans"]) / (a["total"] / a["scans"])
-        lines.append(f"| time per scan 20,000 / 5,000 <= {TARGET_RATIO} | {ratio:.2f} | {verdict(ratio <= TARGET_RATIO)} |")
+        lines.append(f"| time per scan 20,000 / 5,000 <= {TARGET_RATIO} | {ratio:.2f} | "
+                     f"{verdict(ratio <= TARGET_RATIO)} |")
         for s in ("registration", "verification"):
             rs = (b["timings"][s] / b["scans"]) / (a["timings"][s] / a["scans"])
             lines.append(f"| (the same ratio for the {s} stage) | {rs:.2f} | |")
@@ -399,12 +408,13 @@ def render(args, runs: dict, speed: dict | None, icp: dict | None, profiles: dic
                      f"{speed['speedup']:.2f}x | {verdict(speed['speedup'] >= TARGET_SPEEDUP)} |")
     if speed is not None:
         r = speed["result"]
-        lines += ["", "## Registration with 1 and with %d workers" % args.jobs, "",
+        lines += ["", f"## Registration with 1 and with {args.jobs} workers", "",
                   f"{r['pairs']} contiguous candidate pairs (of {r['of']}) of the {speed['size']}-scan log, "
                   f"{r['scans']} scans; started after waiting {speed['waited']:.0f} s for the load average to "
-                  f"fall below 1 (at most {args.quiet_wait:.0f} s); one process, runs in the order below ('scans prepared': over all workers; each "
-                  "worker prepares the scans its batches need and keeps the last 256).  The pool's time includes "
-                  "starting its workers and sending them the scans.  Results identical to the serial run: "
+                  f"fall below 1 (at most {args.quiet_wait:.0f} s); one process, runs in the order below "
+                  "('scans prepared': over all workers; each worker prepares the scans its batches need and "
+                  "keeps the last 256).  The pool's time includes starting its workers and sending them the "
+                  "scans.  Results identical to the serial run: "
                   f"**{'yes' if r['identical'] else 'NO'}**.", "",
                   "| run | runner | wall s | ms / pair | scans prepared | load before |", "|---|---|---|---|---|---|"]
         for k, run in enumerate(r["runs"]):
@@ -427,7 +437,8 @@ def render(args, runs: dict, speed: dict | None, icp: dict | None, profiles: dic
                   "| | ours (point-to-line) | open3d (point-to-point) |", "|---|---|---|",
                   f"| median time per pair | {1e3 * np.median(ours):.2f} ms | {1e3 * np.median(ref):.2f} ms |",
                   f"| mean time per pair | {1e3 * ours.mean():.2f} ms | {1e3 * ref.mean():.2f} ms |",
-                  f"| median translation error | {100 * np.median(rows[:, 0]):.2f} cm | {100 * np.median(rows[:, 2]):.2f} cm |",
+                  f"| median translation error | {100 * np.median(rows[:, 0]):.2f} cm | "
+                  f"{100 * np.median(rows[:, 2]):.2f} cm |",
                   f"| median rotation error | {np.median(rows[:, 1]):.3f} deg | {np.median(rows[:, 3]):.3f} deg |",
                   "",
                   f"Time ratio ours / open3d: **{ours.sum() / ref.sum():.2f}** (total), "

@@ -18,6 +18,7 @@ only here.
 
 from __future__ import annotations
 
+import contextlib
 import logging
 import os
 import threading
@@ -167,18 +168,15 @@ class DaskRunner:
                     progress.advance("registration", slices[k].stop - slices[k].start, len(work))
         finally:
             client.cancel(futures + [table])
-            try:
+            # A worker lost meanwhile keeps nothing of ours worth reporting.
+            with contextlib.suppress(Exception):
                 self.last_builds = sum(client.run(_forget, token).values())
-            except Exception:  # noqa: BLE001 - a worker lost meanwhile keeps nothing of ours worth reporting
-                pass
         return work.restore([r for part in parts for r in part])
 
     def close(self):
         """Close the client and, for ``local``, shut the embedded cluster down."""
         for obj in (getattr(self, "client", None), self.cluster):
             if obj is not None:
-                try:
+                with contextlib.suppress(Exception):  # closing is best effort
                     obj.close()
-                except Exception:  # noqa: BLE001 - closing is best effort
-                    pass
         self.cluster = None

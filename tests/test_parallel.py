@@ -17,7 +17,7 @@ import sys
 import numpy as np
 import pytest
 
-from closurecheck.candidates import prepare, propose_for, proposal_noise
+from closurecheck.candidates import prepare, proposal_noise, propose_for
 from closurecheck.errors import InputError
 from closurecheck.keyframes import select_keyframes
 from closurecheck.pairs import ExternalPairs
