@@ -428,7 +428,9 @@ def write_index(out: Path, outcomes) -> Path:
                         f"{html.escape(error)}</td></tr>")
             continue
         info = summary(outcome)
-        rows.append(f"<tr><td><a href='{html.escape(name)}/report.html'>{html.escape(name)}</a></td>"
+        # Without --no-report the report is the page to open; otherwise the summary.
+        target = "report.html" if (out / name / "report.html").exists() else "summary.json"
+        rows.append(f"<tr><td><a href='{html.escape(name)}/{target}'>{html.escape(name)}</a></td>"
                     f"<td>{info['keyframes']}</td><td>{info['candidates']}</td><td>{info['accepted']}</td>"
                     f"<td>{info['correction_max_m']:.2f} m</td></tr>")
     from .report import SAFETY_TEXT
