@@ -120,7 +120,7 @@ def score_closures(log, keyframes, src, dst, accepted, delta, covariance, poses=
 
 
 def read_verdicts(path):
-    """Read a run's candidates.csv: (src, dst, accepted, delta, covariance diagonal or NaN)."""
+    """Read a run's candidates.csv: (src, dst, accepted, delta) as arrays (delta NaN where none)."""
     path = Path(path)
     try:
         text = path.read_text(encoding="utf-8")
