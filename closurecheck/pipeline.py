@@ -188,7 +188,11 @@ def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPai
 
 
 def _graph(log, keyframes, odom, step_cov, ver: Verification, v: VerdictTable) -> PoseGraph:
-    o_src, o_dst, o_delta, o_info = odometry_edges(odom, step_cov)
+    # The odometry edges are the ones the poses were optimised with: heading
+    # drift removed and the covariance calibrated, so that a downstream
+    # solver reaches the same optimum.  Nodes keep the input odometry.
+    used = odom if ver.odometry_poses is None else ver.odometry_poses
+    o_src, o_dst, o_delta, o_info = odometry_edges(used, step_cov * ver.odometry_scale)
     acc = np.flatnonzero(v.accepted)
     l_info = np.linalg.inv(v.covariance[acc]) if len(acc) else np.zeros((0, 3, 3))
     checks = tuple({} for _ in o_src) + tuple(v.checks(int(k)) for k in acc)
@@ -200,6 +204,13 @@ def _graph(log, keyframes, odom, step_cov, ver: Verification, v: VerdictTable) -
         delta=np.concatenate([o_delta, v.delta[acc]]),
         information=np.concatenate([o_info, l_info]),
         checks=checks, source=log.source)
+
+
+def _drift_summary(drift) -> dict:
+    deg_per_100m = float(np.degrees(drift.rate_rad_per_m) * 100.0)
+    std = float(np.degrees(drift.std_rad_per_m) * 100.0) if np.isfinite(drift.std_rad_per_m) else None
+    return {"deg_per_100m": deg_per_100m, "std_deg_per_100m": std, "closures": drift.closures,
+            "removed": drift.applied}
 
 
 def summary(outcome: RunOutcome) -> dict:
@@ -218,6 +229,7 @@ def summary(outcome: RunOutcome) -> dict:
         "reasons": v.counts(),
         "consistent_set_exact": bool(outcome.verification.clique_exact),
         "odometry_scale": float(outcome.verification.odometry_scale),
+        "odometry_heading_drift": _drift_summary(outcome.verification.heading_drift),
         "correction_max_m": float(shift.max()) if len(shift) else 0.0,
         "correction_mean_m": float(shift.mean()) if len(shift) else 0.0,
         "timings_s": {k: round(s, 3) for k, s in outcome.timings.items()},
