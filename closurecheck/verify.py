@@ -255,6 +255,70 @@ def _strict_pass(plausible, src, dst, delta, covariance, odom_poses, step_covari
     return first_pass, clique, alive[kept]
 
 
+@dataclass(frozen=True, eq=False)
+class _Stage:
+    first_pass: np.ndarray
+    clique: object
+    core: np.ndarray
+    scale: float
+    members: np.ndarray
+    figures: dict
+    notes: tuple
+
+
+def _core_and_map(plausible, src, dst, delta, covariance, step_covariances, options, odom_poses) -> _Stage:
+    """Strict pass, odometry variance factor and map gate on one odometry."""
+    k = len(src)
+    notes = []
+    figures = {name: np.full(k, np.nan) for name in
+               ("odometry_chi2", "pair_support", "map_chi2", "map_std_m", "gnc_weight", "graph_chi2")}
+    figures["odometry_informative"] = np.zeros(k, dtype=bool)
+    cons = ConsistencyOptions(gate_probability=options.gate_probability,
+                              pair_probability=options.pair_probability,
+                              informative_max_std_m=options.gate_max_chain_std_m,
+                              informative_max_std_rad=options.gate_max_chain_std_rad)
+
+    # Pass 1, strict: the odometry model as given decides the core set.
+    first_pass, clique, core = _strict_pass(plausible, src, dst, delta, covariance, odom_poses, step_covariances,
+                                            options, cons, figures)
+
+    # The verified core measures how honest the odometry model is.
+    scale = odometry_scale(figures["odometry_chi2"][core], options)
+    scaled = step_covariances * scale
+    if scale > 1.0:
+        notes.append(f"odometry covariance scaled by {scale:.2f} (a posteriori variance factor from "
+                     f"{len(core)} verified closures)")
+
+    members = core
+    retry = np.flatnonzero(plausible & np.isin(first_pass, ("odometry_gate", "pair_inconsistent")))
+    for _ in range(options.map_rounds if options.extend_with_map else 0):
+        # Candidates the odometry could not vouch for, gated against the map
+        # that the closures verified so far pin down.  Only where the map is
+        # tight: where it is loose, a look-alike offset would pass unseen.
+        if not len(members) or not len(retry):
+            break
+        kept2, poses_core, _, _ = _optimise_closures(members, src, dst, delta, covariance, odom_poses, scaled,
+                                                     dataclasses.replace(options, use_gnc=False))
+        members = members[kept2]
+        e_src, e_dst, e_delta, e_info, _, _ = _graph_edges(odom_poses, scaled, src, dst, delta, covariance,
+                                                           members)
+        rel, rel_cov = relative_posterior(poses_core, e_src, e_dst, e_delta, e_info, src[retry], dst[retry])
+        d2 = map_gate_distance(rel, rel_cov, delta[retry], covariance[retry])
+        std = np.sqrt(np.linalg.eigvalsh(rel_cov[:, :2, :2])[:, -1])
+        figures["map_chi2"][retry] = d2
+        figures["map_std_m"][retry] = std
+        ok = (d2 <= chi2.ppf(options.map_probability, 3)) & (std <= options.map_max_std_m)
+        if not ok.any():
+            break
+        members = np.union1d(members, retry[ok])
+        retry = retry[~ok]
+    joined = len(np.setdiff1d(members, core))
+    if joined:
+        notes.append(f"{joined} closure(s) verified against the map of the first {len(core)} (map gate)")
+    return _Stage(first_pass=first_pass, clique=clique, core=core, scale=scale, members=members, figures=figures,
+                  notes=tuple(notes))
+
+
 def verify(src, dst, delta, covariance, quality: dict, odom_poses, step_covariances,
            options: VerifyOptions = VerifyOptions()) -> Verification:
     """Run the checks of the module docstring and optimise the graph.
@@ -291,68 +355,27 @@ def verify(src, dst, delta, covariance, quality: dict, odom_poses, step_covarian
     reject(dup, "duplicate")
     plausible = reason == "accepted"
 
-    figures = {name: np.full(k, np.nan) for name in
-               ("odometry_chi2", "pair_support", "map_chi2", "map_std_m", "gnc_weight", "graph_chi2")}
-    figures["odometry_informative"] = np.zeros(k, dtype=bool)
-    cons = ConsistencyOptions(gate_probability=options.gate_probability,
-                              pair_probability=options.pair_probability,
-                              informative_max_std_m=options.gate_max_chain_std_m,
-                              informative_max_std_rad=options.gate_max_chain_std_rad)
-
-    # Pass 1, strict: the odometry model as given decides the core set.
-    first_pass, clique, core = _strict_pass(plausible, src, dst, delta, covariance, odom_poses, step_covariances,
-                                            options, cons, figures)
+    args = (plausible, src, dst, delta, covariance, step_covariances, options)
+    stage = _core_and_map(*args, odom_poses)
     drift = NO_DRIFT
     if options.calibrate_heading_drift:
-        drift = estimate_heading_drift(odom_poses, step_covariances, src[core], dst[core], delta[core],
-                                       covariance[core], DriftOptions(min_significance=options.drift_min_significance))
+        m = stage.members
+        drift = estimate_heading_drift(odom_poses, step_covariances, src[m], dst[m], delta[m], covariance[m],
+                                       DriftOptions(min_significance=options.drift_min_significance))
     if drift.applied:
         # A systematic heading drift bends long odometry stretches beyond
-        # what the noise model allows; without it the strict pass sees the
-        # odometry as it should have been.
+        # what the noise model allows, so the strict pass rejected closures
+        # over long stretches; without it the whole decision is taken again
+        # on the odometry as it should have been.
         odom_poses = remove_heading_drift(odom_poses, drift.rate_rad_per_m)
-        for name in ("odometry_chi2", "pair_support"):
-            figures[name][:] = np.nan
-        figures["odometry_informative"][:] = False
         notes.append(f"odometry heading drift of {np.degrees(drift.rate_rad_per_m) * 100:.3f} deg per 100 m "
                      f"(+/- {np.degrees(drift.std_rad_per_m) * 100:.3f}) measured by {drift.closures} verified "
                      "closures and removed")
-        first_pass, clique, core = _strict_pass(plausible, src, dst, delta, covariance, odom_poses,
-                                                step_covariances, options, cons, figures)
-
-    # The verified core measures how honest the odometry model is.
-    scale = odometry_scale(figures["odometry_chi2"][core], options)
+        stage = _core_and_map(*args, odom_poses)
+    notes.extend(stage.notes)
+    figures, members, scale, first_pass, clique = (stage.figures, stage.members, stage.scale, stage.first_pass,
+                                                   stage.clique)
     scaled = step_covariances * scale
-    if scale > 1.0:
-        notes.append(f"odometry covariance scaled by {scale:.2f} (a posteriori variance factor from "
-                     f"{len(core)} verified closures)")
-
-    members = core
-    retry = np.flatnonzero(plausible & np.isin(first_pass, ("odometry_gate", "pair_inconsistent")))
-    for _ in range(options.map_rounds if options.extend_with_map else 0):
-        # Candidates the odometry could not vouch for, gated against the map
-        # that the closures verified so far pin down.  Only where the map is
-        # tight: where it is loose, a look-alike offset would pass unseen.
-        if not len(members) or not len(retry):
-            break
-        kept2, poses_core, _, _ = _optimise_closures(members, src, dst, delta, covariance, odom_poses, scaled,
-                                                     dataclasses.replace(options, use_gnc=False))
-        members = members[kept2]
-        e_src, e_dst, e_delta, e_info, _, _ = _graph_edges(odom_poses, scaled, src, dst, delta, covariance,
-                                                           members)
-        rel, rel_cov = relative_posterior(poses_core, e_src, e_dst, e_delta, e_info, src[retry], dst[retry])
-        d2 = map_gate_distance(rel, rel_cov, delta[retry], covariance[retry])
-        std = np.sqrt(np.linalg.eigvalsh(rel_cov[:, :2, :2])[:, -1])
-        figures["map_chi2"][retry] = d2
-        figures["map_std_m"][retry] = std
-        ok = (d2 <= chi2.ppf(options.map_probability, 3)) & (std <= options.map_max_std_m)
-        if not ok.any():
-            break
-        members = np.union1d(members, retry[ok])
-        retry = retry[~ok]
-    joined = len(np.setdiff1d(members, core))
-    if joined:
-        notes.append(f"{joined} closure(s) verified against the map of the first {len(core)} (map gate)")
 
     kept, poses, gnc_w, res = _optimise_closures(members, src, dst, delta, covariance, odom_poses, scaled,
                                                  options)
