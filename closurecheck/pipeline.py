@@ -30,7 +30,7 @@ from .pairwise_registration import PairResults, collect, seeds_for
 from .registration import RegistrationOptions
 from .scanlog import ScanLog
 from .verdicts import VerdictTable
-from .verify import Verification, VerifyOptions, odometry_edges, verify
+from .verify import Verification, VerifyOptions, closure_covariances, odometry_edges, verify
 
 
 @dataclass(frozen=True)
@@ -168,7 +168,8 @@ def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPai
     index = {int(s): k for k, s in enumerate(keyframes)}
     src_idx = np.array([index[int(s)] for s in cands.src], dtype=np.intp)
     dst_idx = np.array([index[int(d)] for d in cands.dst], dtype=np.intp)
-    ver = st.run("verification", verify, src_idx, dst_idx, regs.delta, regs.covariance, regs.quality(),
+    closure_cov = closure_covariances(regs.covariance, config.verify)
+    ver = st.run("verification", verify, src_idx, dst_idx, regs.delta, closure_cov, regs.quality(),
                  odom, step_cov, config.verify)
 
     figures = dict(regs.figures())
@@ -177,7 +178,7 @@ def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPai
     figures["odometry_gap_m"] = np.hypot(cands.odometry_delta[:, 0], cands.odometry_delta[:, 1])
     verdicts = VerdictTable(src=cands.src, dst=cands.dst, origin=np.asarray(cands.source_names(), dtype=object),
                             accepted=ver.accepted, reason=ver.reason, delta=regs.delta,
-                            covariance=regs.covariance, figures=figures)
+                            covariance=closure_cov, figures=figures)
     graph = _graph(log, keyframes, odom, step_cov, ver, verdicts)
     notes = list(ver.notes)
     if external is not None:

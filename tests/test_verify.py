@@ -157,3 +157,18 @@ def test_heading_drift_is_measured_and_removed(scene):
     # The graph is built on the corrected odometry; without calibration on the input.
     assert ate_rmse(on.odometry_poses, scene["truth"]) < ate_rmse(odom, scene["truth"])
     np.testing.assert_array_equal(off.odometry_poses, odom)
+
+
+def test_closure_floor_adds_the_unmodelled_error_in_quadrature():
+    from closurecheck.verify import closure_covariances
+
+    rng = np.random.default_rng(4)
+    a = rng.normal(size=(5, 3, 3)) * 1e-3
+    cov = a @ np.swapaxes(a, 1, 2) + np.eye(3) * 1e-8
+    opts = VerifyOptions(closure_floor_m=0.002, closure_floor_rad=0.001)
+    out = closure_covariances(cov, opts)
+    np.testing.assert_allclose(out - cov, np.broadcast_to(np.diag([4e-6, 4e-6, 1e-6]), cov.shape), atol=1e-18)
+    # A floor only ever makes a closure less certain: every direction's variance grows.
+    assert np.all(np.linalg.eigvalsh(out - cov) > 0)
+    np.testing.assert_array_equal(closure_covariances(cov, VerifyOptions(closure_floor_m=0.0, closure_floor_rad=0.0)),
+                                  cov)
