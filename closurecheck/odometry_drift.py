@@ -47,12 +47,18 @@ class DriftOptions:
         unmodelled disturbance, e.g. a wheel slip).
     max_closures : at most this many closures enter the fit (its
         covariance is dense, K x K).
+    consensus_sigmas, consensus_margin : the first guess from unverified
+        candidates (:func:`heading_drift_consensus`): a candidate votes for
+        the rates within this many standard deviations of its residual, and
+        the winner needs this many times the votes of zero drift.
     """
 
     min_closures: int = 10
     min_significance: float = 3.0
     outlier_sigmas: float = 4.0
     max_closures: int = 1500
+    consensus_sigmas: float = 3.0
+    consensus_margin: float = 1.5
 
 
 @dataclass(frozen=True)
@@ -156,6 +162,53 @@ def estimate_heading_drift(odom_poses, step_covariances, src, dst, delta, covari
     std = float(np.sqrt(max(reduced, 1.0) / info))
     applied = abs(rate) >= options.min_significance * std
     return HeadingDrift(rate_rad_per_m=rate, std_rad_per_m=std, closures=len(idx), applied=bool(applied))
+
+
+def heading_drift_consensus(odom_poses, step_covariances, src, dst, delta, covariance,
+                            options: DriftOptions = DriftOptions()) -> float:
+    """A first guess of the heading drift rate (rad/m) from unverified candidates.
+
+    Where the odometry drifts by several degrees per 100 m, the strict
+    odometry gate rejects every closure over a long stretch and no verified
+    closure is left to measure the drift from.  Candidates can still vote:
+    each one is consistent with the rates for which its heading residual
+    minus rate times travel lies within ``consensus_sigmas`` of its standard
+    deviation, an interval of rates; the rate inside the most intervals wins
+    (a sweep over the interval ends).  Look-alike places rarely disturb the
+    vote: a neighbouring aisle is wrong in position, not in heading.
+
+    Returns the rate when it gathers at least ``min_closures`` votes and at
+    least ``consensus_margin`` times the votes of zero drift; otherwise 0.
+    Parameters as :func:`estimate_heading_drift`.
+    """
+    src = np.asarray(src, dtype=np.intp)
+    dst = np.asarray(dst, dtype=np.intp)
+    if len(src) < options.min_closures:
+        return 0.0
+    odom_poses = np.asarray(odom_poses, dtype=float)
+    travel = chain_travel(odom_poses)
+    signed = travel[dst] - travel[src]
+    resid = se2.wrap(odom_poses[dst, 2] - odom_poses[src, 2] - np.asarray(delta, float)[:, 2])
+    cum_var = np.r_[0.0, np.cumsum(np.asarray(step_covariances, float)[:, 2, 2])]
+    sd = np.sqrt(np.abs(cum_var[dst] - cum_var[src]) + np.asarray(covariance, float)[:, 2, 2])
+    ok = np.abs(signed) > 0
+    signed, resid, sd = signed[ok], resid[ok], sd[ok]
+    a = (resid - options.consensus_sigmas * sd) / signed
+    b = (resid + options.consensus_sigmas * sd) / signed
+    lo, hi = np.minimum(a, b), np.maximum(a, b)
+    at_zero = int(np.sum((lo <= 0.0) & (hi >= 0.0)))
+    # Sweep: +1 at each interval start, -1 after each end; starts first on ties.
+    ends = np.r_[lo, hi]
+    step = np.r_[np.ones(len(lo), int), -np.ones(len(hi), int)]
+    order = np.lexsort((-step, ends))
+    count = np.cumsum(step[order])
+    best = int(np.argmax(count))
+    votes = int(count[best])
+    if votes < options.min_closures or votes < options.consensus_margin * max(at_zero, 1):
+        return 0.0
+    # The middle of the best-supported stretch of rates.
+    right = ends[order][best + 1] if best + 1 < len(ends) else ends[order][best]
+    return float(0.5 * (ends[order][best] + right))
 
 
 def remove_heading_drift(odom_poses, rate_rad_per_m: float) -> np.ndarray:

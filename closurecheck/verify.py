@@ -40,6 +40,7 @@ from .odometry_drift import (
     DriftOptions,
     HeadingDrift,
     estimate_heading_drift,
+    heading_drift_consensus,
     remove_heading_drift,
 )
 from .optimize import GncOptions, SolverOptions, optimize_gnc, prune_inconsistent_edges
@@ -382,22 +383,36 @@ def verify(src, dst, delta, covariance, quality: dict, odom_poses, step_covarian
     plausible = reason == "accepted"
 
     args = (plausible, src, dst, delta, covariance, step_covariances, options)
+    drift_options = DriftOptions(min_significance=options.drift_min_significance)
+    odom_in = np.asarray(odom_poses, dtype=float)
+    guess = 0.0
+    if options.calibrate_heading_drift:
+        # A drift of several degrees per 100 m would leave the strict pass
+        # nothing to measure it from; the candidates' headings give a first
+        # guess to start from.
+        p = np.flatnonzero(plausible)
+        guess = heading_drift_consensus(odom_in, step_covariances, src[p], dst[p], delta[p], covariance[p],
+                                        drift_options)
+    odom_poses = remove_heading_drift(odom_in, guess) if guess else odom_in
     stage = _core_and_map(*args, odom_poses)
     drift = NO_DRIFT
     if options.calibrate_heading_drift:
+        # The verified closures measure the drift of the input odometry; a
+        # systematic drift bends long stretches beyond what the noise model
+        # allows, so the whole decision is taken again on the odometry as it
+        # should have been (or as it was, when the first guess is not borne
+        # out).
         m = stage.members
-        drift = estimate_heading_drift(odom_poses, step_covariances, src[m], dst[m], delta[m], covariance[m],
-                                       DriftOptions(min_significance=options.drift_min_significance))
+        drift = estimate_heading_drift(odom_in, step_covariances, src[m], dst[m], delta[m], covariance[m],
+                                       drift_options)
+        rate = drift.rate_rad_per_m if drift.applied else 0.0
+        if rate != guess:
+            odom_poses = remove_heading_drift(odom_in, rate) if rate else odom_in
+            stage = _core_and_map(*args, odom_poses)
     if drift.applied:
-        # A systematic heading drift bends long odometry stretches beyond
-        # what the noise model allows, so the strict pass rejected closures
-        # over long stretches; without it the whole decision is taken again
-        # on the odometry as it should have been.
-        odom_poses = remove_heading_drift(odom_poses, drift.rate_rad_per_m)
         notes.append(f"odometry heading drift of {np.degrees(drift.rate_rad_per_m) * 100:.3f} deg per 100 m "
                      f"(+/- {np.degrees(drift.std_rad_per_m) * 100:.3f}) measured by {drift.closures} verified "
                      "closures and removed")
-        stage = _core_and_map(*args, odom_poses)
     notes.extend(stage.notes)
     figures, members, scale, first_pass, clique = (stage.figures, stage.members, stage.scale, stage.first_pass,
                                                    stage.clique)

@@ -16,6 +16,7 @@ from closurecheck.odometry_drift import (
     DriftOptions,
     chain_travel,
     estimate_heading_drift,
+    heading_drift_consensus,
     remove_heading_drift,
 )
 from closurecheck.simulate import simulate_log
@@ -121,3 +122,27 @@ def test_too_few_closures(route):
     src, dst, delta, cov = closures(route, 0.0, np.random.default_rng(1))
     est = estimate_heading_drift(odom, step_cov, src[:5], dst[:5], delta[:5], cov[:5], DriftOptions(min_closures=10))
     assert not est.applied and est.rate_rad_per_m == 0.0
+
+
+def with_wrong_headings(route, src, dst, delta, cov, share, rng):
+    """Add candidates between random keyframes with random relative poses (wrong registrations)."""
+    n = len(route["truth"])
+    extra = int(len(src) * share / (1 - share))
+    a = rng.integers(50, n, extra)
+    b = (a * rng.uniform(0.0, 0.9, extra)).astype(int)
+    d = np.column_stack([rng.uniform(-3, 3, extra), rng.uniform(-3, 3, extra), rng.uniform(-np.pi, np.pi, extra)])
+    return (np.r_[src, a], np.r_[dst, b], np.r_[delta, d], np.r_[cov, np.repeat(cov[:1], extra, 0)])
+
+
+@pytest.mark.parametrize("rate", [0.0, 0.001, 0.005])
+def test_consensus_finds_a_large_drift_among_wrong_candidates(route, rate):
+    # 5e-3 rad/m is about 29 degrees per 100 m: every long closure is far
+    # outside the odometry gate, yet the candidates' headings agree on it.
+    rng = np.random.default_rng(6)
+    odom, step_cov = drifted_odometry(route, rate, 0.0005, rng)
+    src, dst, delta, cov = with_wrong_headings(route, *closures(route, np.radians(0.05), rng), 0.8, rng)
+    guess = heading_drift_consensus(odom, step_cov, src, dst, delta, cov)
+    if rate == 0.0:
+        assert guess == 0.0 or abs(guess) < 1e-4
+    else:
+        assert guess == pytest.approx(rate, rel=0.1)

@@ -159,6 +159,21 @@ def test_heading_drift_is_measured_and_removed(scene):
     np.testing.assert_array_equal(off.odometry_poses, odom)
 
 
+def test_a_large_heading_drift_is_found_from_the_candidates(scene):
+    # 0.0025 rad/m more (about 14 degrees per 100 m): the strict pass alone
+    # verifies nothing; the candidates' headings give the first guess.
+    from closurecheck.odometry_drift import remove_heading_drift
+
+    odom = remove_heading_drift(scene["odom"], -0.0025)
+    src, dst, delta, cov, quality, label = make_closures(scene, 0.9, seed=12)
+    on = verify(src, dst, delta, cov, quality, odom, scene["step_cov"])
+    off = verify(src, dst, delta, cov, quality, odom, scene["step_cov"],
+                 VerifyOptions(calibrate_heading_drift=False))
+    assert not np.any(on.accepted & ~label)
+    assert on.accepted[label].mean() >= 0.9
+    assert off.accepted[label].mean() < 0.5
+
+
 def test_closure_floor_adds_the_unmodelled_error_in_quadrature():
     from closurecheck.verify import closure_covariances
 
