@@ -75,13 +75,35 @@ class SparseInverse:
             raise ValueError("node index out of range")
         b = self.block_size
         out = np.empty((len(rows), b, b))
+        # The common ancestors of two nodes are a prefix of both root paths (root first): count them, and
+        # batch pairs with similar counts so each batch sums over few depths.
+        anc_r = self.ancestor[rows]
+        common = np.count_nonzero((anc_r == self.ancestor[cols]) & (anc_r >= 0), axis=1)
+        by_common = np.argsort(common, kind="stable")
         for start in range(0, len(rows), _PAIR_BATCH):
-            r, c = rows[start:start + _PAIR_BATCH], cols[start:start + _PAIR_BATCH]
-            ar, ac = self.ancestor[r], self.ancestor[c]
-            common = (ar == ac) & (ar >= 0)
-            t_len = self.scaled.shape[1]
-            vr = (self.scaled[r] * common[:, :, None, None]).reshape(len(r), t_len * b, b)
-            out[start:start + _PAIR_BATCH] = np.swapaxes(vr, 1, 2) @ self.scaled[c].reshape(len(c), t_len * b, b)
+            sel = by_common[start:start + _PAIR_BATCH]
+            t_len = int(common[sel].max())
+            r, c = rows[sel], cols[sel]
+            if t_len == 0:
+                out[sel] = 0.0
+                continue
+            inside = np.arange(t_len)[None, :] < common[sel][:, None]
+            vr = (self.scaled[r, :t_len] * inside[:, :, None, None]).reshape(len(r), t_len * b, b)
+            out[sel] = np.swapaxes(vr, 1, 2) @ self.scaled[c, :t_len].reshape(len(c), t_len * b, b)
+        return out
+
+    def diagonal(self, nodes=None) -> np.ndarray:
+        """Diagonal blocks ``S[q, q]`` for ``nodes`` (default: all) as an (M, b, b) array."""
+        nodes = np.arange(len(self.ancestor)) if nodes is None else np.asarray(nodes, dtype=np.int64).ravel()
+        if len(nodes) and (nodes.min() < 0 or nodes.max() >= len(self.ancestor)):
+            raise ValueError("node index out of range")
+        b = self.block_size
+        t_len = self.scaled.shape[1]
+        out = np.empty((len(nodes), b, b))
+        # Rows below a node's own depth are zero, so every stored row of its path counts.
+        for start in range(0, len(nodes), _PAIR_BATCH):
+            v = self.scaled[nodes[start:start + _PAIR_BATCH]].reshape(-1, t_len * b, b)
+            out[start:start + _PAIR_BATCH] = np.swapaxes(v, 1, 2) @ v
         return out
 
 
@@ -273,9 +295,8 @@ def _factor(h, b, order, struct, counts, height):
         off = ok & (p != q)[None, :]
         tgt[off] = slot(rows[off], colq[off])
         uniq, inv = np.unique(tgt.ravel(), return_inverse=True)
-        acc = np.zeros((len(uniq), b, b))
-        np.add.at(acc, inv, upd.reshape(-1, b, b))
-        store[uniq] -= acc
+        flat = (inv[:, None] * (b * b) + np.arange(b * b)[None, :]).ravel()
+        store[uniq] -= np.bincount(flat, weights=upd.ravel(), minlength=len(uniq) * b * b).reshape(-1, b, b)
     return d_inv, lblocks
 
 

@@ -49,6 +49,8 @@ def test_every_block_equals_the_dense_inverse(n, b, extra, components, seed):
     rows, cols = np.meshgrid(np.arange(n), np.arange(n), indexing="ij")
     got = inv.blocks(rows.ravel(), cols.ravel()).reshape(n, n, b, b)
     np.testing.assert_allclose(got, expected, rtol=0, atol=1e-10 * np.abs(expected).max())
+    diag = inv.diagonal()
+    np.testing.assert_allclose(diag, expected[np.arange(n), np.arange(n)], rtol=0, atol=1e-10 * np.abs(expected).max())
 
 
 def test_nested_dissection_keeps_a_long_chain_shallow():
