@@ -323,7 +323,8 @@ def test_disconnected_node_keeps_its_pose(small_graph):
 
 
 @pytest.mark.parametrize("options", [SolverOptions(permc_spec="COLAMD"),
-                                     SolverOptions(linear_solver="spsolve", permc_spec="COLAMD")])
+                                     SolverOptions(linear_solver="spsolve", permc_spec="COLAMD"),
+                                     SolverOptions(supernode_relax=20, panel_size=10)])
 def test_linear_solver_choices_agree(small_graph, options):
     truth, (initial, src, dst, delta, info, robust) = small_graph
     a = optimize_graph(initial, src, dst, delta, info, robust)
@@ -407,3 +408,5 @@ def test_bad_input_raises_input_error(small_graph):
         GncOptions(surrogate="median")
     with pytest.raises(InputError):
         SolverOptions(linear_solver="dense")
+    with pytest.raises(InputError):
+        SolverOptions(panel_size=0)
