@@ -38,11 +38,11 @@ from scipy.spatial import cKDTree
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from closurecheck import se2  # noqa: E402
-from closurecheck.keyframes import select_keyframes  # noqa: E402
-from closurecheck.odometry import keyframe_step_covariances, noise_from_header  # noqa: E402
-from closurecheck.optimize import normal_matrix  # noqa: E402
-from closurecheck.simulate import simulate_log  # noqa: E402
+from closurecheck import se2
+from closurecheck.keyframes import select_keyframes
+from closurecheck.odometry import keyframe_step_covariances, noise_from_header
+from closurecheck.optimize import normal_matrix
+from closurecheck.simulate import simulate_log
 
 CACHE = Path("/tmp/wt_map_cache")
 RESULTS = ROOT / "benchmarks" / "results" / "verification_scaling.md"
@@ -68,8 +68,8 @@ def closures(truth, seed: int = 7, per_keyframe: float = 2.0, true_share: float 
     """Candidate closures: true revisits plus runs of look-alike wrong ones (as in tests/test_verify.py)."""
     rng = np.random.default_rng(seed)
     n = len(truth)
-    k = int(round(per_keyframe * n))
-    n_true = int(round(true_share * k))
+    k = round(per_keyframe * n)
+    n_true = round(true_share * k)
     # True revisits: within 1 m and 30 degrees in truth, at least ``min_gap`` keyframes apart.  Like the
     # candidate stage's proximity source, the draw favours revisits with a short odometry chain between them
     # (probability inversely proportional to the gap).
@@ -231,8 +231,77 @@ def posterior_side_by_side(scans: int) -> dict:
         tracemalloc.stop()
     c_old, c_new = results["former"][1], results["current"][1]
     scale = np.abs(c_old).max(axis=(1, 2))
-    out["max_rel_diff"] = float((np.abs(c_new - c_old).max(axis=(1, 2)) / scale).max())
+    diff = np.abs(c_new - c_old).max(axis=(1, 2)) / scale
+    out["max_rel_diff"] = float(diff.max())
+    out.update(refined_errors(args, c_old, c_new, diff))
+    out.update(lm_solve_side_by_side(*args[:5]))
     return out
+
+
+def refined_errors(args, c_old, c_new, diff, sample=15) -> dict:
+    """Errors of both posteriors against block columns of H^-1 refined by three steps of iterative
+    refinement (residuals in float64), on the pairs where they disagree most plus random pairs."""
+    poses, src, dst, delta, information, pi, pj = args
+    pick = np.r_[np.argsort(diff)[-sample:], np.random.default_rng(0).choice(len(pi), sample, replace=False)]
+    pick = pick[(pi[pick] > 0) & (pj[pick] > 0)]
+    h, _ = normal_matrix(poses, src, dst, delta, information)
+    h = h.tocsc()
+    lu = scipy.sparse.linalg.splu(h, permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0,
+                                  options={"SymmetricMode": True})
+    nodes = np.unique(np.r_[pi[pick], pj[pick]])
+    rhs = np.zeros((h.shape[0], 3 * len(nodes)))
+    rhs[(3 * (nodes - 1))[:, None] + np.arange(3), 3 * np.arange(len(nodes))[:, None] + np.arange(3)] = 1.0
+    x = lu.solve(rhs)
+    for _ in range(3):
+        x += lu.solve(rhs - h @ x)
+    column = {node: x[:, 3 * k:3 * k + 3] for k, node in enumerate(nodes)}
+    err = {"former": [], "current": []}
+    for k in pick:
+        i, j = pi[k], pj[k]
+        ja, jb = se2.between_jacobians(poses[i], poses[j])
+        jj = np.hstack([ja, jb])
+        blk = np.block([[column[i][3 * (i - 1):3 * i], column[j][3 * (i - 1):3 * i]],
+                        [column[i][3 * (j - 1):3 * j], column[j][3 * (j - 1):3 * j]]])
+        ref = jj @ blk @ jj.T
+        ref = 0.5 * (ref + ref.T)
+        err["former"].append(np.abs(c_old[k] - ref).max() / np.abs(ref).max())
+        err["current"].append(np.abs(c_new[k] - ref).max() / np.abs(ref).max())
+    return {"refined_pairs": len(pick), "former_err": float(np.max(err["former"])),
+            "current_err": float(np.max(err["current"]))}
+
+
+def lm_solve_side_by_side(poses, src, dst, delta, information, repeats=11) -> dict:
+    """One damped LM solve on the same graph: former (SuperLU with its minimum-degree ordering every time,
+    default supernodes) vs current (closurecheck.optimize: ordering reused, small supernodes)."""
+    from closurecheck import optimize
+
+    args = optimize._validate(poses, src, dst, delta, information, None)
+    graph = optimize._Graph(*args)
+    layout = graph.layout(np.ones(len(args[1]), dtype=bool))
+    e, _ = graph.errors(args[0])
+    data, grad = graph.linearise(args[0], e, np.ones(len(args[1])), layout)
+    data = data.copy()
+    data[layout.diag_slots] *= 1.0 + 1e-5  # LM damping, as in the first iteration
+
+    def former():
+        lu = scipy.sparse.linalg.splu(layout.csc(data), permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0,
+                                      options={"SymmetricMode": True})
+        return lu.solve(-grad)
+
+    def current():
+        return optimize._solve(layout, data, -grad, optimize.SolverOptions())
+
+    current()  # the first solve of a layout computes the ordering
+    times = {"former": [], "current": []}
+    for _ in range(repeats):
+        for name, fn in (("former", former), ("current", current)):
+            t0 = time.perf_counter()
+            fn()
+            times[name].append(time.perf_counter() - t0)
+    x_old, x_new = former(), current()
+    return {"lm_former_ms": 1e3 * float(np.median(times["former"])),
+            "lm_current_ms": 1e3 * float(np.median(times["current"])),
+            "lm_rel_diff": float(np.abs(x_new - x_old).max() / np.abs(x_old).max())}
 
 
 class _Captured(Exception):
@@ -273,17 +342,19 @@ def main(argv=None) -> int:
         "",
         f"`python benchmarks/verification_scaling.py --scans {' '.join(map(str, args.scans))}`",
         "",
-        f"Machine: {platform.machine()}, {__import__('os').cpu_count()} cores shared with other jobs "
-        f"(load average {load} at the start), Python {platform.python_version()}, numpy {np.__version__}, "
-        f"scipy {scipy.__version__}; BLAS limited to 1 thread; whole benchmark "
-        f"{(time.perf_counter() - started) / 60:.1f} min.",
+        (f"Machine: {platform.machine()}, {__import__('os').cpu_count()} cores shared with other jobs "
+         f"(load average {load} at the start), Python {platform.python_version()}, numpy {np.__version__}, "
+         f"scipy {scipy.__version__}; BLAS limited to 1 thread; whole benchmark "
+         f"{(time.perf_counter() - started) / 60:.1f} min."),
         "",
-        "Inputs: simulated 'warehouse' log (seed 3), keyframes, odometry step covariances from the header; "
+        ("Inputs: simulated 'warehouse' log (seed 3), keyframes, odometry step covariances from the header; "
         "about two candidates per keyframe, 30% true revisits (truth + claimed noise), the rest look-alike "
         "closures in consistent runs (as in tests/test_verify.py).  'former' is the map-gate posterior by "
         "SuperLU block-column solves (kept in this script), 'current' is closurecheck.mapgate as committed; "
-        "everything else is the same code.  Each run is a fresh process; peak RSS is that process's maximum "
-        "resident set (the inputs alone take the 'before' figure).",
+        "everything else is the same (current) code, so the GNC and pruning columns include the faster LM "
+        "solves in both rows (their own side by side is under 'Same results').  Each run is a fresh "
+        "process; peak RSS is that process's maximum resident set (the inputs alone take the 'before' "
+        "figure)."),
         "",
         "## verify() end to end and its parts (seconds, wall)",
         "",
@@ -303,7 +374,8 @@ def main(argv=None) -> int:
     for s in args.scans:
         if (s, "former") in by:
             a, b = by[(s, "former")], by[(s, "current")]
-            lines.append(f"- {s} scans: verdicts identical: **{'yes' if np.array_equal(a['reason'], b['reason']) else 'NO'}**; "
+            same = "yes" if np.array_equal(a["reason"], b["reason"]) else "NO"
+            lines.append(f"- {s} scans: verdicts identical: **{same}**; "
                          f"largest pose difference {np.abs(a['poses'] - b['poses']).max():.2e} m")
     for s, d in zip(args.scans, side):
         if d is None:
@@ -312,7 +384,15 @@ def main(argv=None) -> int:
                      f"{d['former_s']:.2f} s / {d['former_peak_mb']:.0f} MB traced peak, current "
                      f"{d['current_s']:.2f} s / {d['current_peak_mb']:.0f} MB; "
                      f"**{d['former_s'] / d['current_s']:.0f}x** faster; largest covariance difference "
-                     f"{d['max_rel_diff']:.1e} of each covariance's largest entry")
+                     f"{d['max_rel_diff']:.1e} of each covariance's largest entry; against iteratively refined "
+                     f"block columns of H^-1 on {d['refined_pairs']} of these pairs (the most disagreeing and "
+                     f"random ones) the largest error is {d['former_err']:.1e} (former) and "
+                     f"{d['current_err']:.1e} (current)")
+        lines.append(f"- {s} scans, one damped LM solve on the same graph (median of 11): former "
+                     f"{d['lm_former_ms']:.1f} ms (SuperLU minimum-degree ordering each time, default supernodes), "
+                     f"current {d['lm_current_ms']:.1f} ms (ordering reused, relax = panel = 3); "
+                     f"**{d['lm_former_ms'] / d['lm_current_ms']:.1f}x**; step difference "
+                     f"{d['lm_rel_diff']:.1e} of the largest component")
     if len(args.scans) >= 2:
         lo, hi = min(args.scans), max(args.scans)
         lines += ["", f"## Scaling {hi} / {lo} scans", "",

@@ -40,7 +40,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import scipy.sparse as sp
-import scipy.sparse.csgraph as csgraph
+from scipy.sparse import csgraph
 
 # Subgraphs of at most this many nodes are not dissected further (their
 # elimination-tree paths are at most this long).

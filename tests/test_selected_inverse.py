@@ -12,7 +12,12 @@ import scipy.sparse.linalg as spla
 from closurecheck import se2
 from closurecheck.mapgate import relative_posterior
 from closurecheck.optimize import normal_matrix
-from closurecheck.selected_inverse import _node_graph, _symbolic, nested_dissection_order, sparse_inverse
+from closurecheck.selected_inverse import (
+    _node_graph,
+    _symbolic,
+    nested_dissection_order,
+    sparse_inverse,
+)
 
 
 def random_block_spd(n, b, extra_pairs, rng, components=1):
