@@ -7,19 +7,43 @@ relative pose ``x_i^-1 ∘ x_j`` follows from the inverse of the gauge-fixed
 normal matrix H (Gauss-Newton's Laplace approximation):
 ``C = J [[S_ii, S_ij], [S_ji, S_jj]] J^T`` with ``S = H^-1`` and J the
 Jacobian of ``between``.  Only the needed 3x3 blocks of ``H^-1`` are
-computed, by sparse LU solves against block columns, so memory stays
-O(N * block) rather than O(N^2).
+computed (:mod:`closurecheck.selected_inverse`: a block LDL^T factor in
+nested-dissection order and the columns of its inverse factor along the
+elimination tree), so time and memory stay near-linear in N rather than
+O(N^2).
 """
 
 from __future__ import annotations
 
 import numpy as np
-import scipy.sparse.linalg
 
 from . import se2
 from .optimize import normal_matrix
+from .selected_inverse import sparse_inverse
 
-_BLOCK_NODES = 128
+
+def _posterior_blocks(h, pair_i, pair_j):
+    """Blocks ``S_ii, S_jj, S_ij`` of ``S = H^-1`` for node pairs (node 0, the gauge, has S = 0).
+
+    H is the gauge-fixed normal matrix (variables: nodes 1..n-1).  The blocks
+    come from :func:`closurecheck.selected_inverse.sparse_inverse`, whose
+    cost grows with the graph's size times its elimination-tree depth, not
+    with the graph's size times the number of nodes asked for.
+    """
+    if h.shape[0] == 0:
+        zero = np.zeros((len(pair_i), 3, 3))
+        return zero, zero.copy(), zero.copy()
+    inverse = sparse_inverse(h, 3)
+    gauge_i, gauge_j = pair_i == 0, pair_j == 0
+    vi, vj = np.maximum(pair_i - 1, 0), np.maximum(pair_j - 1, 0)
+    diag = inverse.diagonal()
+    sii = diag[vi]
+    sjj = diag[vj]
+    sij = inverse.blocks(vi, vj)
+    sii[gauge_i] = 0.0
+    sjj[gauge_j] = 0.0
+    sij[gauge_i | gauge_j] = 0.0
+    return sii, sjj, sij
 
 
 def relative_posterior(poses, src, dst, delta, information, pair_i, pair_j):
@@ -42,34 +66,12 @@ def relative_posterior(poses, src, dst, delta, information, pair_i, pair_j):
     pair_i = np.asarray(pair_i, dtype=np.intp)
     pair_j = np.asarray(pair_j, dtype=np.intp)
     h, _ = normal_matrix(poses, src, dst, delta, information)
-    lu = scipy.sparse.linalg.splu(h.tocsc(), permc_spec="MMD_AT_PLUS_A")
     m = h.shape[0] // 3  # variables are nodes 1..n-1 (node 0 is the gauge)
     if m != n - 1:
         raise ValueError("every node must be connected to node 0")
-
-    diag = np.zeros((n, 3, 3))
-    cross = np.zeros((len(pair_i), 3, 3))
-    needed = np.unique(np.concatenate([pair_i, pair_j]))
-    needed = needed[needed > 0]
-    for start in range(0, len(needed), _BLOCK_NODES):
-        nodes = needed[start:start + _BLOCK_NODES]
-        rhs = np.zeros((3 * m, 3 * len(nodes)))
-        cols = (3 * (nodes - 1))[:, None] + np.arange(3)
-        rhs[cols.ravel(), np.arange(3 * len(nodes))] = 1.0
-        x = lu.solve(rhs)  # columns of H^-1 for these nodes
-        for k, node in enumerate(nodes):
-            block = x[:, 3 * k:3 * k + 3]
-            diag[node] = block[3 * (node - 1):3 * node]
-            # Cross blocks S_ij for the pairs whose j is this node.
-            sel = np.flatnonzero(pair_j == node)
-            ii = pair_i[sel]
-            ok = ii > 0
-            rows = (3 * (ii[ok] - 1))[:, None] + np.arange(3)
-            cross[sel[ok]] = block[rows]
+    sii, sjj, sij = _posterior_blocks(h, pair_i, pair_j)
     rel = se2.between(poses[pair_i], poses[pair_j])
     ja, jb = se2.between_jacobians(poses[pair_i], poses[pair_j])
-    sii, sjj = diag[pair_i], diag[pair_j]
-    sij = cross
     t = np.swapaxes
     cov = ja @ sii @ t(ja, -1, -2) + jb @ sjj @ t(jb, -1, -2) + ja @ sij @ t(jb, -1, -2) + jb @ t(sij, -1, -2) @ t(ja, -1, -2)
     return rel, 0.5 * (cov + t(cov, -1, -2))

@@ -323,12 +323,34 @@ def test_disconnected_node_keeps_its_pose(small_graph):
 
 
 @pytest.mark.parametrize("options", [SolverOptions(permc_spec="COLAMD"),
-                                     SolverOptions(linear_solver="spsolve", permc_spec="COLAMD")])
+                                     SolverOptions(linear_solver="spsolve", permc_spec="COLAMD"),
+                                     SolverOptions(supernode_relax=20, panel_size=10)])
 def test_linear_solver_choices_agree(small_graph, options):
     truth, (initial, src, dst, delta, info, robust) = small_graph
     a = optimize_graph(initial, src, dst, delta, info, robust)
     b = optimize_graph(initial, src, dst, delta, info, robust, options=options)
     assert pose_difference(a.poses, b.poses) < 1e-8
+
+
+def test_reused_ordering_solves_with_the_current_values(small_graph):
+    # The splu path orders the pattern once per layout and reuses it; every later solve must use the new
+    # values.  Reference: scipy.sparse.linalg.spsolve on the same matrices.
+    import scipy.sparse.linalg as spla
+
+    from closurecheck.optimize import _Graph, _solve, _validate
+
+    truth, (initial, src, dst, delta, info, robust) = small_graph
+    graph = _Graph(*_validate(initial, src, dst, delta, info, robust))
+    layout = graph.layout(np.ones(len(src), dtype=bool))
+    e, _ = graph.errors(initial)
+    rng = np.random.default_rng(5)
+    for k in range(3):
+        weights = rng.uniform(0.1, 1.0, len(src))
+        data, grad = graph.linearise(initial, e, weights, layout)
+        x = _solve(layout, data, -grad, SolverOptions())
+        expected = spla.spsolve(layout.csc(data), -grad)
+        np.testing.assert_allclose(x, expected, rtol=1e-9, atol=1e-12 * np.abs(expected).max())
+        assert "MMD_AT_PLUS_A" in layout.orderings
 
 
 def test_iteration_cap_reports_not_converged(small_graph):
@@ -386,3 +408,5 @@ def test_bad_input_raises_input_error(small_graph):
         GncOptions(surrogate="median")
     with pytest.raises(InputError):
         SolverOptions(linear_solver="dense")
+    with pytest.raises(InputError):
+        SolverOptions(panel_size=0)
