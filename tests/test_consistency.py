@@ -403,7 +403,8 @@ def test_graph_is_symmetric_thresholded_and_block_size_independent():
     assert np.array_equal(small.adjacency.toarray(), dense)
     assert np.array_equal(small.distance_sq, res.distance_sq)
     iu, ju = np.triu_indices(k, 1)
-    assert res.distance_sq[iu, ju] == pytest.approx(pair_distances(*scene.args(), iu, ju), rel=1e-12)
+    # The matrix keeps float32 (memory); the test itself was decided in float64.
+    assert res.distance_sq[iu, ju] == pytest.approx(pair_distances(*scene.args(), iu, ju), rel=1e-6)
     assert 0 < dense.sum() < k * (k - 1)
     assert res.threshold == pytest.approx(chi2_threshold(3, 0.99))
 
