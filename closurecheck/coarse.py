@@ -121,15 +121,22 @@ def distinct(records, k: int, sep_m: float, sep_rad: float) -> np.ndarray:
 
 def search(grid: LikelihoodGrid, points, seed, *, window_m: float, window_rad: float,
            angle_step_rad: float, n_best: int, separation_m: float, separation_rad: float):
-    """Best distinct source poses within a window around ``seed``.
+    """Best distinct source poses within a window around ``seed`` (or around each of several seeds).
 
     Parameters
     ----------
     grid : likelihood grid of the target scan.
     points : (N, 2) source points in the source frame (metres), usually
         downsampled with :func:`downsample`.
-    seed : (3,) initial pose of the source in the target frame.
-    window_m, window_rad : half-widths of the search window around the seed
+    seed : (3,) initial pose of the source in the target frame, or (K, 3)
+        several (e.g. one per yaw hypothesis).  Several seeds are searched
+        together, as one window that is the union of theirs: the result is
+        the best distinct poses over the union, and a block around one seed
+        is pruned as soon as any seed has shown it cannot compete, so a
+        seed far from the answer costs little.  A rotation that an earlier
+        seed with the same translation already covers (within half an angle
+        step) is not searched again.
+    window_m, window_rad : half-widths of the search window around each seed
         in x and y (metres) and theta (radians).
     angle_step_rad : rotation step (radians).
     n_best : number of distinct hypotheses to return.
@@ -148,15 +155,14 @@ def search(grid: LikelihoodGrid, points, seed, *, window_m: float, window_rad: f
     distinct leaf.
     """
     pts = np.asarray(points, dtype=float)
-    seed = np.asarray(seed, dtype=float)
+    seeds = np.atleast_2d(np.asarray(seed, dtype=float))
     r = grid.resolution_m
     top_level = len(grid.levels) - 1
     top = 2 ** top_level
     half = int(np.ceil(window_m / r))
     n_top = int(np.ceil((2 * half + 1) / top))
     starts = -half + top * np.arange(n_top)
-    n_ang = int(np.ceil(window_rad / angle_step_rad)) if angle_step_rad > 0 else 0
-    angles = seed[2] + angle_step_rad * np.arange(-n_ang, n_ang + 1)
+    rows = _rotations(seeds, window_rad, angle_step_rad, r)                 # (A, 3) seed x, seed y, theta
 
     # Cells of the rotated source points at zero offset.  Clipping keeps
     # points far outside the grid far enough outside that no offset in the
@@ -164,64 +170,87 @@ def search(grid: LikelihoodGrid, points, seed, *, window_m: float, window_rad: f
     w, h = grid.levels[0].shape
     reach = half + top + 1
     pad = 2 * half + 2 * top + 1
-    c, s = np.cos(angles)[:, None], np.sin(angles)[:, None]
-    wx = c * pts[:, 0] - s * pts[:, 1] + (seed[0] - grid.origin[0])
-    wy = s * pts[:, 0] + c * pts[:, 1] + (seed[1] - grid.origin[1])
-    cx = np.clip(np.floor(wx / r).astype(np.int64), -reach, w - 1 + reach) + pad
-    cy = np.clip(np.floor(wy / r).astype(np.int64), -reach, h - 1 + reach) + pad
+    c, s = np.cos(rows[:, 2]), np.sin(rows[:, 2])
+    rot = np.empty((2, 2, len(rows)))                 # rot[:, 0, a] maps a point to its x, rot[:, 1, a] to y
+    rot[0, 0], rot[1, 0], rot[0, 1], rot[1, 1] = c, -s, s, c
+    cells = ((pts / r) @ rot.reshape(2, -1)).reshape(len(pts), 2, len(rows))        # (N, 2, A) in cells
+    cells += ((rows[:, :2] - grid.origin) / r).T
+    np.floor(cells, out=cells)
+    np.clip(cells, -reach, np.array([[w - 1 + reach], [h - 1 + reach]]), out=cells)
+    cells += pad
     hp = h + 2 * pad
     size = (w + 2 * pad) * hp
-    base = cx * hp + cy                                                     # (A, N)
+    # 32-bit indices halve the memory traffic of the gathers, the search's main cost.
+    index = np.int32 if size * len(grid.levels) < 2 ** 31 else np.int64
+    base = (cells[:, 0] * hp + cells[:, 1]).T.astype(index)                          # (A, N)
     # All pyramid levels, zero padded, in one flat array: level l starts at l * size.
-    stack = np.concatenate([np.pad(g, pad).ravel() for g in grid.levels])
+    stack = np.zeros((len(grid.levels), w + 2 * pad, hp), dtype=np.uint8)
+    stack[:, pad:pad + w, pad:pad + h] = grid.levels
+    stack = stack.ravel()
+    total = np.int32 if len(pts) * _LEVELS < 2 ** 31 else np.int64
 
-    def bounds(lvl, ai, ox, oy):
-        flat = base[ai] + (lvl * size + ox * hp + oy)[:, None]
-        return stack[flat].sum(axis=1, dtype=np.int64)
+    def bounds(nodes):
+        """Sum over the points of each node's level at its offset; nodes are rows [angle, ox, oy, level]."""
+        flat = np.take(base, nodes[:, 0], axis=0)
+        flat += (nodes[:, 3] * size + nodes[:, 1] * hp + nodes[:, 2]).astype(index)[:, None]
+        return np.take(stack, flat).sum(axis=1, dtype=total)
 
-    ta, tx, ty = np.meshgrid(np.arange(len(angles)), starts, starts, indexing="ij")
-    f_ai, f_ox, f_oy = ta.ravel(), tx.ravel(), ty.ravel()
-    f_lvl = np.full(len(f_ai), top_level)
+    ta, tx, ty = np.meshgrid(np.arange(len(rows)), starts, starts, indexing="ij")
+    tops = np.column_stack([ta.ravel(), tx.ravel(), ty.ravel(), np.full(ta.size, top_level)])
     if top_level == 0:
-        inside = (np.abs(f_ox) <= half) & (np.abs(f_oy) <= half)
-        f_ai, f_ox, f_oy, f_lvl = f_ai[inside], f_ox[inside], f_oy[inside], f_lvl[inside]
-    f_b = bounds(f_lvl, f_ai, f_ox, f_oy)
-    leaves = [np.empty((0, 4))]
+        tops = tops[(np.abs(tops[:, 1]) <= half) & (np.abs(tops[:, 2]) <= half)]
+    top_score = bounds(tops)
+    records = np.empty((0, 4))
     if top_level == 0:
-        leaves.append(np.column_stack([f_b, f_ai, f_ox, f_oy]).astype(float))
-        f_b = f_b[:0]
-    records = _poses(np.concatenate(leaves), seed, r, angles)
+        records = _poses(top_score, tops, rows, r)
+        tops, top_score = tops[:0], top_score[:0]
     kth = _kth(records, n_best, separation_m, separation_rad)
-    while len(f_b):
-        if f_b.max() <= kth:
+    # Open blocks by level.  Each round splits the best _BATCH_NODES open blocks of
+    # the finest level that has any that can still beat the k-th best leaf: the
+    # search dives to full resolution in a few rounds, and the leaves it finds
+    # there set a bar that most of the coarse blocks never clear (splitting the
+    # best blocks of all levels first would open most coarse blocks before
+    # the first leaf is reached).
+    open_nodes = [tops[:0]] * top_level + [tops]
+    open_score = [top_score[:0]] * top_level + [top_score]
+    # A block's four children (quadrants): node rows to add to the block's [angle, ox, oy, level].
+    quad = np.array([[0, 0, 0, 0], [0, 0, 1, 0], [0, 1, 0, 0], [0, 1, 1, 0]])
+    split = [None] + [quad * (1 << (lvl - 1)) - np.array([0, 0, 0, 1]) for lvl in range(1, top_level + 1)]
+    while True:
+        for lvl in range(1, top_level + 1):
+            # A block whose bound cannot beat the k-th best distinct leaf holds nothing to find.
+            live = open_score[lvl] > kth
+            if live.any():
+                break
+            open_nodes[lvl], open_score[lvl] = open_nodes[lvl][:0], open_score[lvl][:0]
+        else:
             break
-        take = min(_BATCH_NODES, len(f_b))
-        sel = np.argpartition(-f_b, take - 1)[:take] if take < len(f_b) else np.arange(len(f_b))
-        rest = np.ones(len(f_b), dtype=bool)
-        rest[sel] = False
-        p_ai, p_ox, p_oy, p_lvl = f_ai[sel], f_ox[sel], f_oy[sel], f_lvl[sel]
-        f_ai, f_ox, f_oy, f_lvl, f_b = f_ai[rest], f_ox[rest], f_oy[rest], f_lvl[rest], f_b[rest]
-        # Split each block into its four children one level down.
-        step = 2 ** (p_lvl - 1)
-        c_ai = np.repeat(p_ai, 4)
-        c_ox = np.repeat(p_ox, 4) + np.tile([0, 0, 1, 1], len(p_ai)) * np.repeat(step, 4)
-        c_oy = np.repeat(p_oy, 4) + np.tile([0, 1, 0, 1], len(p_ai)) * np.repeat(step, 4)
-        c_lvl = np.repeat(p_lvl - 1, 4)
-        leaf = c_lvl == 0
-        ok = (c_ox <= half) & (c_oy <= half) & (~leaf | ((c_ox >= -half) & (c_oy >= -half)))
-        c_ai, c_ox, c_oy, c_lvl, leaf = c_ai[ok], c_ox[ok], c_oy[ok], c_lvl[ok], leaf[ok]
-        c_b = bounds(c_lvl, c_ai, c_ox, c_oy)
-        if leaf.any():
-            new = _poses(np.column_stack([c_b[leaf], c_ai[leaf], c_ox[leaf], c_oy[leaf]]).astype(float),
-                         seed, r, angles)
-            records = np.concatenate([records, new[new[:, 0] > kth]])
-            kth = _kth(records, n_best, separation_m, separation_rad)
-        inner = ~leaf & (c_b > kth)
-        f_ai = np.concatenate([f_ai, c_ai[inner]])
-        f_ox = np.concatenate([f_ox, c_ox[inner]])
-        f_oy = np.concatenate([f_oy, c_oy[inner]])
-        f_lvl = np.concatenate([f_lvl, c_lvl[inner]])
-        f_b = np.concatenate([f_b, c_b[inner]])
+        nodes, score = open_nodes[lvl][live], open_score[lvl][live]
+        if len(nodes) > _BATCH_NODES:
+            sel = np.argpartition(-score, _BATCH_NODES - 1)[:_BATCH_NODES]
+            rest = np.ones(len(nodes), dtype=bool)
+            rest[sel] = False
+            parents, open_nodes[lvl], open_score[lvl] = nodes[sel], nodes[rest], score[rest]
+        else:
+            parents, open_nodes[lvl], open_score[lvl] = nodes, nodes[:0], score[:0]
+        kids = (parents[:, None, :] + split[lvl]).reshape(-1, 4)
+        if lvl == 1:
+            ok = (kids[:, 1] <= half) & (kids[:, 2] <= half) & (kids[:, 1] >= -half) & (kids[:, 2] >= -half)
+        else:
+            ok = (kids[:, 1] <= half) & (kids[:, 2] <= half)
+        kids = kids[ok]
+        kid_score = bounds(kids)
+        if lvl == 1:
+            found = kid_score > kth
+            if found.any():
+                records = np.concatenate([records, _poses(kid_score[found], kids[found], rows, r)])
+                kth = _kth(records, n_best, separation_m, separation_rad)
+                # Leaves below the k-th best distinct one can no longer be among the best.
+                records = records[records[:, 0] >= kth]
+        else:
+            inner = kid_score > kth
+            open_nodes[lvl - 1] = np.concatenate([open_nodes[lvl - 1], kids[inner]])
+            open_score[lvl - 1] = np.concatenate([open_score[lvl - 1], kid_score[inner]])
     keep = distinct(records, n_best, separation_m, separation_rad)
     out = records[keep]
     poses = out[:, 1:].copy()
@@ -229,14 +258,31 @@ def search(grid: LikelihoodGrid, points, seed, *, window_m: float, window_rad: f
     return poses, out[:, 0] / (_LEVELS * len(pts))
 
 
-def _poses(rows, seed, r, angles) -> np.ndarray:
-    """[sum score, angle index, x offset, y offset] rows -> [sum score, x, y, theta]."""
-    out = np.empty_like(rows)
-    out[:, 0] = rows[:, 0]
-    out[:, 1] = seed[0] + r * rows[:, 2]
-    out[:, 2] = seed[1] + r * rows[:, 3]
-    out[:, 3] = angles[rows[:, 1].astype(int)]
-    return out
+def _rotations(seeds, window_rad, step, r) -> np.ndarray:
+    """Rows [seed x, seed y, theta] of the angles searched around each seed.
+
+    Each seed gets the regular grid ``theta_seed + step * k``, |k| <= ceil(window / step);
+    an angle within half a step of an earlier seed's grid (same translation within half a
+    cell) is left out, because that seed's search already covers it.
+    """
+    n_ang = int(np.ceil(window_rad / step)) if step > 0 else 0
+    ks = step * np.arange(-n_ang, n_ang + 1)
+    out = []
+    for k, sd in enumerate(seeds):
+        th = sd[2] + ks
+        keep = np.ones(len(th), dtype=bool)
+        for prev in seeds[:k]:
+            if abs(prev[0] - sd[0]) <= 0.5 * r and abs(prev[1] - sd[1]) <= 0.5 * r:
+                gap = np.abs(np.mod(th - prev[2] + np.pi, 2 * np.pi) - np.pi)
+                keep &= gap > n_ang * step + 0.5 * step
+        out.append(np.column_stack([np.full(keep.sum(), sd[0]), np.full(keep.sum(), sd[1]), th[keep]]))
+    return np.concatenate(out)
+
+
+def _poses(score, nodes, rows, r) -> np.ndarray:
+    """Leaf scores and nodes [angle row, ox, oy, level] -> records [sum score, x, y, theta]."""
+    return np.column_stack([score, rows[nodes[:, 0], 0] + r * nodes[:, 1], rows[nodes[:, 0], 1] + r * nodes[:, 2],
+                            rows[nodes[:, 0], 2]]).astype(float)
 
 
 def _kth(records, k, sep_m, sep_rad) -> float:

@@ -792,23 +792,15 @@ def register_prepared(source: PreparedScan, target: PreparedScan, guess=(0.0, 0.
                                       options.coarse_block_cells)
         step = options.coarse_angle_step_rad or _coarse.auto_angle_step(source.coarse_points,
                                                                          options.coarse_resolution_m)
-        found_p, found_s = [], []
-        for seed in seeds:
-            p, s = _coarse.search(grid, source.coarse_points, seed, window_m=options.coarse_window_m,
-                                  window_rad=options.coarse_window_rad, angle_step_rad=step,
-                                  n_best=options.hypotheses, separation_m=options.hypothesis_separation_m,
-                                  separation_rad=options.hypothesis_separation_rad)
-            found_p.append(p)
-            found_s.append(s)
-        poses = np.concatenate(found_p)
-        scores = np.concatenate(found_s)
-        order = np.argsort(-scores, kind="stable")
-        records = np.column_stack([scores[order], poses[order]])
-        keep = _coarse.distinct(records, options.hypotheses, options.hypothesis_separation_m,
-                                 options.hypothesis_separation_rad)
-        starts = records[keep, 1:]
-        coarse_best = float(records[keep[0], 0])
-        coarse_second = float(records[keep[1], 0]) if len(keep) > 1 else float("nan")
+        # One search over the union of the seeds' windows: a block near a wrong seed is pruned by
+        # the hypotheses found near the right one instead of being searched on its own.
+        poses, scores = _coarse.search(grid, source.coarse_points, seeds, window_m=options.coarse_window_m,
+                                       window_rad=options.coarse_window_rad, angle_step_rad=step,
+                                       n_best=options.hypotheses, separation_m=options.hypothesis_separation_m,
+                                       separation_rad=options.hypothesis_separation_rad)
+        starts = poses
+        coarse_best = float(scores[0])
+        coarse_second = float(scores[1]) if len(scores) > 1 else float("nan")
 
     sols = [refine(source, target, x0, options, kernel) for x0 in starts]
     fits = np.array([_fit_score(source, target, s.x, options) for s in sols])
