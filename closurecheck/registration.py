@@ -531,32 +531,39 @@ def _failed(x, it) -> _Solution:
                      float("nan"))
 
 
-def _associate(src: PreparedScan, tgt: PreparedScan, x, opt, cos_max):
+def _candidates(src: PreparedScan, cos_max):
+    """Source points that may be matched: (indices, points, normals), gathered once per ICP run."""
+    cand = src.line_index if cos_max is not None else np.arange(len(src.points))
+    return cand, src.points[cand], src.normals[cand]
+
+
+def _associate(src: PreparedScan, tgt: PreparedScan, x, opt, cos_max, cands=None):
     """Point-to-line correspondences of the source under pose x (vectorised).
 
     With the normal check on, only source points on straight structure take
     part: a point without a line of its own (a corner, clutter) cannot be
     checked and is the typical false match across a corner or a thin wall.
+    ``cands`` is :func:`_candidates` of the source (computed here if None).
     Returns (i, j, p, u, ln): source indices, target line indices, the
     source points and beam directions, and the target line rows.
     """
+    cand, cand_pts, cand_normals = cands if cands is not None else _candidates(src, cos_max)
     c, s = np.cos(x[2]), np.sin(x[2])
     rot_t = np.array([[c, s], [-s, c]])
-    cand = src.line_index if cos_max is not None else np.arange(len(src.points))
-    pw = src.points[cand] @ rot_t + x[:2]
+    pw = cand_pts @ rot_t + x[:2]
     _, j = tgt.tree.query(pw, distance_upper_bound=opt.max_correspondence_m)
-    ok = j < len(tgt.line_index)
-    jj = np.where(ok, j, 0)
-    ln = tgt.line[jj]
-    if cos_max is not None:
-        agree = ((src.normals[cand] @ rot_t) * ln[:, 2:4]).sum(axis=1)
-        ok &= agree >= cos_max
+    hit = np.flatnonzero(j < len(tgt.line_index))
+    j, pw = j[hit], pw[hit]
+    ln = tgt.line[j]
     # Only points that fall along the target line's own support (plus a
     # margin): beyond it the target never saw the surface, and a fit that
     # caught a corner would be extrapolated.
     along = np.abs(ln[:, 3] * (pw[:, 0] - ln[:, 0]) - ln[:, 2] * (pw[:, 1] - ln[:, 1]))
-    ok &= along <= ln[:, 13] + opt.max_extrapolation_m
-    i = cand[ok]
+    ok = along <= ln[:, 13] + opt.max_extrapolation_m
+    if cos_max is not None:
+        agree = ((cand_normals[hit] @ rot_t) * ln[:, 2:4]).sum(axis=1)
+        ok &= agree >= cos_max
+    i = cand[hit[ok]]
     return i, j[ok], src.points[i], src.beams[i], ln[ok]
 
 
@@ -593,9 +600,18 @@ def _linearise(pairs, x, opt, range_noise: bool):
     return r, v, jac, np.stack([s_al, phi2], axis=1), sc
 
 
+def _median(a) -> float:
+    """np.median of a non-empty 1-D array (same value), without its general-case overhead."""
+    k = len(a) // 2
+    if len(a) % 2:
+        return float(np.partition(a, k)[k])
+    part = np.partition(a, [k - 1, k])
+    return float((part[k - 1] + part[k]) / 2)
+
+
 def _robust(r, v, opt, kernel):
     z = r / np.sqrt(v)
-    scale = max(_MAD_TO_SIGMA * float(np.median(np.abs(z))), opt.min_noise_m)
+    scale = max(_MAD_TO_SIGMA * _median(np.abs(z)), opt.min_noise_m)
     w = kernel.weight(z / scale)
     return w, scale
 
@@ -609,11 +625,12 @@ def _icp_line(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions
     it = 0
     pairs = None
     moved = np.inf     # bound on any source point's motion since the last association (m)
+    cands = _candidates(src, cos_max)
     for it in range(1, opt.max_iterations + 1):
         # Re-associating costs a kd-tree query; once the pose moves by less
         # than reassociate_m the nearest lines cannot change enough to matter.
         if moved >= opt.reassociate_m:
-            pairs = _associate(src, tgt, x, opt, cos_max)
+            pairs = _associate(src, tgt, x, opt, cos_max, cands)
             moved = 0.0
         if len(pairs[0]) < 3:
             pairs = None
