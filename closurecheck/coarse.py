@@ -22,7 +22,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import ndimage
 
 _LEVELS = 255
 # Blocks split per vectorised batch: large enough to amortise numpy call
@@ -66,19 +65,31 @@ def build_grid(points, resolution_m: float, sigma_m: float, top_block_cells: int
     lo = pts.min(axis=0) - margin * resolution_m
     shape = tuple((np.floor((pts.max(axis=0) - lo) / resolution_m)).astype(int) + margin + 1)
     cells = np.floor((pts - lo) / resolution_m).astype(np.intp)
-    occupied = np.ones(shape, dtype=bool)
-    occupied[cells[:, 0], cells[:, 1]] = False
-    # Distance (metres) from each cell to the nearest cell holding a point.
-    dist = ndimage.distance_transform_edt(occupied) * resolution_m
-    levels = [np.rint(np.exp(-0.5 * (dist / sigma_m) ** 2) * _LEVELS).astype(np.uint8)]
+    # A cell's value depends only on its distance to the nearest cell holding a
+    # point and is zero beyond about 3.5 sigma, so the grid is the maximum over
+    # the occupied cells of a small kernel stamped around each: the same
+    # values as a distance transform of the whole grid, at a fraction of the cost.
+    k = int(np.ceil(np.sqrt(2.0 * np.log(2.0 * _LEVELS)) * sigma_m / resolution_m)) + 1
+    di, dj = np.meshgrid(np.arange(-k, k + 1), np.arange(-k, k + 1), indexing="ij")
+    dist = np.sqrt((di * di + dj * dj).astype(float)) * resolution_m
+    value = np.rint(np.exp(-0.5 * (dist / sigma_m) ** 2) * _LEVELS).astype(np.uint8)
+    used = value > 0
+    di, dj, value = di[used], dj[used], value[used]
+    occupied = np.unique(cells[:, 0] * shape[1] + cells[:, 1])
+    ti = occupied[:, None] // shape[1] + di
+    tj = occupied[:, None] % shape[1] + dj
+    inside = (ti >= 0) & (ti < shape[0]) & (tj >= 0) & (tj < shape[1])
+    fine = np.zeros(shape, dtype=np.uint8)
+    np.maximum.at(fine.ravel(), (ti * shape[1] + tj)[inside], np.broadcast_to(value, ti.shape)[inside])
+    levels = [fine]
     for lvl in range(1, n_levels):
         # max over [i, i + 2^l) = max of two level l-1 blocks, at i and i + 2^(l-1).
         prev = levels[-1]
         half = 2 ** (lvl - 1)
-        nxt = prev.copy()
-        np.maximum(nxt[:-half], prev[half:], out=nxt[:-half])
-        out = nxt.copy()
-        np.maximum(out[:, :-half], nxt[:, half:], out=out[:, :-half])
+        rows = prev.copy()
+        np.maximum(prev[:-half], prev[half:], out=rows[:-half])
+        out = rows.copy()
+        np.maximum(rows[:, :-half], rows[:, half:], out=out[:, :-half])
         levels.append(out)
     return LikelihoodGrid(origin=lo, resolution_m=float(resolution_m), levels=tuple(levels))
 

@@ -36,9 +36,9 @@ def pair():
     return scan(a, rng), scan(b, rng), se2.between(a, b)
 
 
-def test_grid_values_match_scipy_distances(pair):
+@pytest.mark.parametrize("res, sigma", [(0.1, 0.1), (0.05, 0.13), (0.1, 0.3), (0.1, 0.04)])
+def test_grid_values_match_scipy_distances(pair, res, sigma):
     target, _, _ = pair
-    res, sigma = 0.1, 0.1
     grid = build_grid(target, res, sigma, 8)
     occ = np.unique(np.floor((target - grid.origin) / res).astype(int), axis=0)
     ii, jj = np.meshgrid(*map(np.arange, grid.fine.shape), indexing="ij")
