@@ -263,7 +263,6 @@ def search(grid: LikelihoodGrid, points, seed, *, window_m: float, window_rad: f
             open_score[lvl - 1] = np.concatenate([open_score[lvl - 1], kid_score[inner]])
     out = best.merged
     poses = out[:, 1:4].copy()
-    poses[:, 2] = np.pi - np.mod(np.pi - poses[:, 2], 2 * np.pi)
     return poses, out[:, 0] / (_LEVELS * len(pts))
 
 
@@ -308,6 +307,9 @@ class _Best:
             own = np.concatenate([self.own[j], records[records[:, 4] == j]])
             if len(own) > _MAX_RECORDS:
                 own = own[np.argpartition(-own[:, 0], _MAX_RECORDS - 1)[:_MAX_RECORDS]]
+            # Best first, equal scores in a fixed order of the pose, so that ties are
+            # resolved the same whichever order the leaves were found in.
+            own = own[np.lexsort((own[:, 2], own[:, 1], own[:, 3], -own[:, 0]))]
             keep = distinct(own, self.k, self.sep_m, self.sep_rad)
             self.lists[j] = own[keep]
             self.kth[j] = own[keep[-1], 0] if len(keep) == self.k else -1.0
@@ -315,6 +317,7 @@ class _Best:
             self.own[j] = own[own[:, 0] >= self.kth[j]]
         # The merge of the seeds' lists, as if each seed had been searched on its own.
         union = np.concatenate(self.lists)
+        union[:, 3] = np.pi - np.mod(np.pi - union[:, 3], 2 * np.pi)          # theta in (-pi, pi]
         union = union[np.argsort(-union[:, 0], kind="stable")]
         self.merged = union[distinct(union, self.k, self.sep_m, self.sep_rad)]
         merged_kth = self.merged[-1, 0] if len(self.merged) == self.k else -1.0

@@ -141,6 +141,8 @@ def seeds_brute_force(grid, pts, seeds, window_m, window_rad, step, k, sep_m, se
         rows = brute_force(grid, pts, seed, window_m, window_rad, step)
         lists.append(rows[distinct(rows, k, sep_m, sep_rad)])
     union = np.concatenate(lists)
+    # Merged as search results are: headings wrapped to (-pi, pi] (same formula as the search).
+    union[:, 3] = np.pi - np.mod(np.pi - union[:, 3], 2 * np.pi)
     union = union[np.argsort(-union[:, 0], kind="stable")]
     return union[distinct(union, k, sep_m, sep_rad)]
 
