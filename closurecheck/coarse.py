@@ -8,9 +8,11 @@ for each cell, the maximum of the fine grid over the 2^l x 2^l block of
 cells that starts there; summing level l over the source points bounds the
 fine score of every translation inside that block from above.  For each
 rotation on a regular grid of angles, the translation window is covered by
-top-level blocks, and blocks are split into four children best-bound-first
-until no open block can beat the k-th best distinct hypothesis found so far
-(branch and bound: exact for the grid score).
+top-level blocks, and blocks are split into four children (the best bounds
+of the finest open level first) until no open block can beat the k-th best
+distinct hypothesis found so far (branch and bound on the grid score).
+Several seeds (yaw hypotheses) are searched in one branch and bound whose
+result is each seed's k best, merged.
 
 Frames: the grid lives in the target scan's frame (metres); a hypothesis is
 the pose ``[x, y, theta]`` of the source scan in the target frame.  Scores
