@@ -8,9 +8,11 @@ for each cell, the maximum of the fine grid over the 2^l x 2^l block of
 cells that starts there; summing level l over the source points bounds the
 fine score of every translation inside that block from above.  For each
 rotation on a regular grid of angles, the translation window is covered by
-top-level blocks, and blocks are split into four children best-bound-first
-until no open block can beat the k-th best distinct hypothesis found so far
-(branch and bound: exact for the grid score).
+top-level blocks, and blocks are split into four children (the best bounds
+of the finest open level first) until no open block can beat the k-th best
+distinct hypothesis found so far (branch and bound on the grid score).
+Several seeds (yaw hypotheses) are searched in one branch and bound whose
+result is each seed's k best, merged.
 
 Frames: the grid lives in the target scan's frame (metres); a hypothesis is
 the pose ``[x, y, theta]`` of the source scan in the target frame.  Scores
@@ -22,7 +24,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import ndimage
 
 _LEVELS = 255
 # Blocks split per vectorised batch: large enough to amortise numpy call
@@ -66,19 +67,31 @@ def build_grid(points, resolution_m: float, sigma_m: float, top_block_cells: int
     lo = pts.min(axis=0) - margin * resolution_m
     shape = tuple((np.floor((pts.max(axis=0) - lo) / resolution_m)).astype(int) + margin + 1)
     cells = np.floor((pts - lo) / resolution_m).astype(np.intp)
-    occupied = np.ones(shape, dtype=bool)
-    occupied[cells[:, 0], cells[:, 1]] = False
-    # Distance (metres) from each cell to the nearest cell holding a point.
-    dist = ndimage.distance_transform_edt(occupied) * resolution_m
-    levels = [np.rint(np.exp(-0.5 * (dist / sigma_m) ** 2) * _LEVELS).astype(np.uint8)]
+    # A cell's value depends only on its distance to the nearest cell holding a
+    # point and is zero beyond about 3.5 sigma, so the grid is the maximum over
+    # the occupied cells of a small kernel stamped around each: the same
+    # values as a distance transform of the whole grid, at a fraction of the cost.
+    k = int(np.ceil(np.sqrt(2.0 * np.log(2.0 * _LEVELS)) * sigma_m / resolution_m)) + 1
+    di, dj = np.meshgrid(np.arange(-k, k + 1), np.arange(-k, k + 1), indexing="ij")
+    dist = np.sqrt((di * di + dj * dj).astype(float)) * resolution_m
+    value = np.rint(np.exp(-0.5 * (dist / sigma_m) ** 2) * _LEVELS).astype(np.uint8)
+    used = value > 0
+    di, dj, value = di[used], dj[used], value[used]
+    occupied = np.unique(cells[:, 0] * shape[1] + cells[:, 1])
+    ti = occupied[:, None] // shape[1] + di
+    tj = occupied[:, None] % shape[1] + dj
+    inside = (ti >= 0) & (ti < shape[0]) & (tj >= 0) & (tj < shape[1])
+    fine = np.zeros(shape, dtype=np.uint8)
+    np.maximum.at(fine.ravel(), (ti * shape[1] + tj)[inside], np.broadcast_to(value, ti.shape)[inside])
+    levels = [fine]
     for lvl in range(1, n_levels):
         # max over [i, i + 2^l) = max of two level l-1 blocks, at i and i + 2^(l-1).
         prev = levels[-1]
         half = 2 ** (lvl - 1)
-        nxt = prev.copy()
-        np.maximum(nxt[:-half], prev[half:], out=nxt[:-half])
-        out = nxt.copy()
-        np.maximum(out[:, :-half], nxt[:, half:], out=out[:, :-half])
+        rows = prev.copy()
+        np.maximum(prev[:-half], prev[half:], out=rows[:-half])
+        out = rows.copy()
+        np.maximum(rows[:, :-half], rows[:, half:], out=out[:, :-half])
         levels.append(out)
     return LikelihoodGrid(origin=lo, resolution_m=float(resolution_m), levels=tuple(levels))
 
@@ -121,15 +134,22 @@ def distinct(records, k: int, sep_m: float, sep_rad: float) -> np.ndarray:
 
 def search(grid: LikelihoodGrid, points, seed, *, window_m: float, window_rad: float,
            angle_step_rad: float, n_best: int, separation_m: float, separation_rad: float):
-    """Best distinct source poses within a window around ``seed``.
+    """Best distinct source poses within a window around ``seed`` (or around each of several seeds).
 
     Parameters
     ----------
     grid : likelihood grid of the target scan.
     points : (N, 2) source points in the source frame (metres), usually
         downsampled with :func:`downsample`.
-    seed : (3,) initial pose of the source in the target frame.
-    window_m, window_rad : half-widths of the search window around the seed
+    seed : (3,) initial pose of the source in the target frame, or (K, 3)
+        several (e.g. one per yaw hypothesis).  The result is that of
+        searching each seed's window on its own (its n_best distinct poses)
+        and keeping the n_best distinct poses of all those, best first (ties
+        in seed order).  The seeds are searched together, sharing the bound:
+        a block around one seed is pruned as soon as it can enter neither
+        that seed's own best nor the merged best, so a seed far from the
+        answer costs little.
+    window_m, window_rad : half-widths of the search window around each seed
         in x and y (metres) and theta (radians).
     angle_step_rad : rotation step (radians).
     n_best : number of distinct hypotheses to return.
@@ -143,20 +163,23 @@ def search(grid: LikelihoodGrid, points, seed, *, window_m: float, window_rad: f
     The translation search is branch and bound over a quadtree of blocks:
     a block's bound is the sum over the points of the pyramid level whose
     cells are the maximum over the block, so it is never below the score of
-    any translation inside it; blocks are split best-bound-first, in
-    vectorised batches, until no open block can beat the n_best-th best
-    distinct leaf.
+    any translation inside it.  Blocks are split in vectorised batches, the
+    best bounds of the finest level that has open blocks first (so the
+    search reaches full-resolution leaves within a few batches), until no
+    open block can beat the n_best-th best distinct leaf of its seed, or of
+    the merged list if that is higher.
     """
     pts = np.asarray(points, dtype=float)
-    seed = np.asarray(seed, dtype=float)
+    seeds = np.atleast_2d(np.asarray(seed, dtype=float))
     r = grid.resolution_m
     top_level = len(grid.levels) - 1
     top = 2 ** top_level
     half = int(np.ceil(window_m / r))
     n_top = int(np.ceil((2 * half + 1) / top))
     starts = -half + top * np.arange(n_top)
-    n_ang = int(np.ceil(window_rad / angle_step_rad)) if angle_step_rad > 0 else 0
-    angles = seed[2] + angle_step_rad * np.arange(-n_ang, n_ang + 1)
+    rows = _rotations(seeds, window_rad, angle_step_rad)          # (A, 4) seed x, seed y, theta, seed index
+    row_seed = rows[:, 3].astype(np.intp)
+    best = _Best(len(seeds), n_best, separation_m, separation_rad)
 
     # Cells of the rotated source points at zero offset.  Clipping keeps
     # points far outside the grid far enough outside that no offset in the
@@ -164,84 +187,140 @@ def search(grid: LikelihoodGrid, points, seed, *, window_m: float, window_rad: f
     w, h = grid.levels[0].shape
     reach = half + top + 1
     pad = 2 * half + 2 * top + 1
-    c, s = np.cos(angles)[:, None], np.sin(angles)[:, None]
-    wx = c * pts[:, 0] - s * pts[:, 1] + (seed[0] - grid.origin[0])
-    wy = s * pts[:, 0] + c * pts[:, 1] + (seed[1] - grid.origin[1])
-    cx = np.clip(np.floor(wx / r).astype(np.int64), -reach, w - 1 + reach) + pad
-    cy = np.clip(np.floor(wy / r).astype(np.int64), -reach, h - 1 + reach) + pad
+    c, s = np.cos(rows[:, 2]), np.sin(rows[:, 2])
+    rot = np.empty((2, 2, len(rows)))                 # rot[:, 0, a] maps a point to its x, rot[:, 1, a] to y
+    rot[0, 0], rot[1, 0], rot[0, 1], rot[1, 1] = c, -s, s, c
+    cells = ((pts / r) @ rot.reshape(2, -1)).reshape(len(pts), 2, len(rows))        # (N, 2, A) in cells
+    cells += ((rows[:, :2] - grid.origin) / r).T
+    np.floor(cells, out=cells)
+    np.clip(cells, -reach, np.array([[w - 1 + reach], [h - 1 + reach]]), out=cells)
+    cells += pad
     hp = h + 2 * pad
     size = (w + 2 * pad) * hp
-    base = cx * hp + cy                                                     # (A, N)
+    # 32-bit indices halve the memory traffic of the gathers, the search's main cost.
+    index = np.int32 if size * len(grid.levels) < 2 ** 31 else np.int64
+    base = (cells[:, 0] * hp + cells[:, 1]).T.astype(index)                          # (A, N)
     # All pyramid levels, zero padded, in one flat array: level l starts at l * size.
-    stack = np.concatenate([np.pad(g, pad).ravel() for g in grid.levels])
+    stack = np.zeros((len(grid.levels), w + 2 * pad, hp), dtype=np.uint8)
+    stack[:, pad:pad + w, pad:pad + h] = grid.levels
+    stack = stack.ravel()
+    total = np.int32 if len(pts) * _LEVELS < 2 ** 31 else np.int64
 
-    def bounds(lvl, ai, ox, oy):
-        flat = base[ai] + (lvl * size + ox * hp + oy)[:, None]
-        return stack[flat].sum(axis=1, dtype=np.int64)
+    def bounds(nodes):
+        """Sum over the points of each node's level at its offset; nodes are rows [angle, ox, oy, level]."""
+        flat = np.take(base, nodes[:, 0], axis=0)
+        flat += (nodes[:, 3] * size + nodes[:, 1] * hp + nodes[:, 2]).astype(index)[:, None]
+        return np.take(stack, flat).sum(axis=1, dtype=total)
 
-    ta, tx, ty = np.meshgrid(np.arange(len(angles)), starts, starts, indexing="ij")
-    f_ai, f_ox, f_oy = ta.ravel(), tx.ravel(), ty.ravel()
-    f_lvl = np.full(len(f_ai), top_level)
+    ta, tx, ty = np.meshgrid(np.arange(len(rows)), starts, starts, indexing="ij")
+    tops = np.column_stack([ta.ravel(), tx.ravel(), ty.ravel(), np.full(ta.size, top_level)])
     if top_level == 0:
-        inside = (np.abs(f_ox) <= half) & (np.abs(f_oy) <= half)
-        f_ai, f_ox, f_oy, f_lvl = f_ai[inside], f_ox[inside], f_oy[inside], f_lvl[inside]
-    f_b = bounds(f_lvl, f_ai, f_ox, f_oy)
-    leaves = [np.empty((0, 4))]
+        tops = tops[(np.abs(tops[:, 1]) <= half) & (np.abs(tops[:, 2]) <= half)]
+    top_score = bounds(tops)
     if top_level == 0:
-        leaves.append(np.column_stack([f_b, f_ai, f_ox, f_oy]).astype(float))
-        f_b = f_b[:0]
-    records = _poses(np.concatenate(leaves), seed, r, angles)
-    kth = _kth(records, n_best, separation_m, separation_rad)
-    while len(f_b):
-        if f_b.max() <= kth:
+        best.add(_poses(top_score, tops, rows, r))
+        tops, top_score = tops[:0], top_score[:0]
+    # Open blocks by level.  Each round splits the best _BATCH_NODES open blocks of
+    # the finest level that has any that can still beat the k-th best leaf: the
+    # search dives to full resolution in a few rounds, and the leaves it finds
+    # there set a bar that most of the coarse blocks never clear (splitting the
+    # best blocks of all levels first would open most coarse blocks before
+    # the first leaf is reached).
+    open_nodes = [tops[:0]] * top_level + [tops]
+    open_score = [top_score[:0]] * top_level + [top_score]
+    # A block's four children (quadrants): node rows to add to the block's [angle, ox, oy, level].
+    quad = np.array([[0, 0, 0, 0], [0, 0, 1, 0], [0, 1, 0, 0], [0, 1, 1, 0]])
+    split = [None] + [quad * (1 << (lvl - 1)) - np.array([0, 0, 0, 1]) for lvl in range(1, top_level + 1)]
+    while True:
+        for lvl in range(1, top_level + 1):
+            # A block whose bound cannot beat the k-th best distinct leaf holds nothing to find.
+            live = open_score[lvl] > best.bar[row_seed[open_nodes[lvl][:, 0]]]
+            if live.any():
+                break
+            open_nodes[lvl], open_score[lvl] = open_nodes[lvl][:0], open_score[lvl][:0]
+        else:
             break
-        take = min(_BATCH_NODES, len(f_b))
-        sel = np.argpartition(-f_b, take - 1)[:take] if take < len(f_b) else np.arange(len(f_b))
-        rest = np.ones(len(f_b), dtype=bool)
-        rest[sel] = False
-        p_ai, p_ox, p_oy, p_lvl = f_ai[sel], f_ox[sel], f_oy[sel], f_lvl[sel]
-        f_ai, f_ox, f_oy, f_lvl, f_b = f_ai[rest], f_ox[rest], f_oy[rest], f_lvl[rest], f_b[rest]
-        # Split each block into its four children one level down.
-        step = 2 ** (p_lvl - 1)
-        c_ai = np.repeat(p_ai, 4)
-        c_ox = np.repeat(p_ox, 4) + np.tile([0, 0, 1, 1], len(p_ai)) * np.repeat(step, 4)
-        c_oy = np.repeat(p_oy, 4) + np.tile([0, 1, 0, 1], len(p_ai)) * np.repeat(step, 4)
-        c_lvl = np.repeat(p_lvl - 1, 4)
-        leaf = c_lvl == 0
-        ok = (c_ox <= half) & (c_oy <= half) & (~leaf | ((c_ox >= -half) & (c_oy >= -half)))
-        c_ai, c_ox, c_oy, c_lvl, leaf = c_ai[ok], c_ox[ok], c_oy[ok], c_lvl[ok], leaf[ok]
-        c_b = bounds(c_lvl, c_ai, c_ox, c_oy)
-        if leaf.any():
-            new = _poses(np.column_stack([c_b[leaf], c_ai[leaf], c_ox[leaf], c_oy[leaf]]).astype(float),
-                         seed, r, angles)
-            records = np.concatenate([records, new[new[:, 0] > kth]])
-            kth = _kth(records, n_best, separation_m, separation_rad)
-        inner = ~leaf & (c_b > kth)
-        f_ai = np.concatenate([f_ai, c_ai[inner]])
-        f_ox = np.concatenate([f_ox, c_ox[inner]])
-        f_oy = np.concatenate([f_oy, c_oy[inner]])
-        f_lvl = np.concatenate([f_lvl, c_lvl[inner]])
-        f_b = np.concatenate([f_b, c_b[inner]])
-    keep = distinct(records, n_best, separation_m, separation_rad)
-    out = records[keep]
-    poses = out[:, 1:].copy()
-    poses[:, 2] = np.pi - np.mod(np.pi - poses[:, 2], 2 * np.pi)
+        nodes, score = open_nodes[lvl][live], open_score[lvl][live]
+        if len(nodes) > _BATCH_NODES:
+            sel = np.argpartition(-score, _BATCH_NODES - 1)[:_BATCH_NODES]
+            rest = np.ones(len(nodes), dtype=bool)
+            rest[sel] = False
+            parents, open_nodes[lvl], open_score[lvl] = nodes[sel], nodes[rest], score[rest]
+        else:
+            parents, open_nodes[lvl], open_score[lvl] = nodes, nodes[:0], score[:0]
+        kids = (parents[:, None, :] + split[lvl]).reshape(-1, 4)
+        if lvl == 1:
+            ok = (kids[:, 1] <= half) & (kids[:, 2] <= half) & (kids[:, 1] >= -half) & (kids[:, 2] >= -half)
+        else:
+            ok = (kids[:, 1] <= half) & (kids[:, 2] <= half)
+        kids = kids[ok]
+        kid_score = bounds(kids)
+        if lvl == 1:
+            found = kid_score > best.bar[row_seed[kids[:, 0]]]
+            if found.any():
+                best.add(_poses(kid_score[found], kids[found], rows, r))
+        else:
+            inner = kid_score > best.bar[row_seed[kids[:, 0]]]
+            open_nodes[lvl - 1] = np.concatenate([open_nodes[lvl - 1], kids[inner]])
+            open_score[lvl - 1] = np.concatenate([open_score[lvl - 1], kid_score[inner]])
+    out = best.merged
+    poses = out[:, 1:4].copy()
     return poses, out[:, 0] / (_LEVELS * len(pts))
 
 
-def _poses(rows, seed, r, angles) -> np.ndarray:
-    """[sum score, angle index, x offset, y offset] rows -> [sum score, x, y, theta]."""
-    out = np.empty_like(rows)
-    out[:, 0] = rows[:, 0]
-    out[:, 1] = seed[0] + r * rows[:, 2]
-    out[:, 2] = seed[1] + r * rows[:, 3]
-    out[:, 3] = angles[rows[:, 1].astype(int)]
-    return out
+def _rotations(seeds, window_rad, step) -> np.ndarray:
+    """Rows [seed x, seed y, theta, seed index]: the regular angle grid ``theta_seed + step * k``,
+    |k| <= ceil(window / step), of each seed."""
+    n_ang = int(np.ceil(window_rad / step)) if step > 0 else 0
+    ks = step * np.arange(-n_ang, n_ang + 1)
+    return np.concatenate([np.column_stack([np.full(len(ks), sd[0]), np.full(len(ks), sd[1]), sd[2] + ks,
+                                            np.full(len(ks), k)]) for k, sd in enumerate(seeds)])
 
 
-def _kth(records, k, sep_m, sep_rad) -> float:
-    """Score of the k-th best distinct record (-1 while fewer than k exist)."""
-    if len(records) > _MAX_RECORDS:
-        records = records[np.argpartition(-records[:, 0], _MAX_RECORDS - 1)[:_MAX_RECORDS]]
-    keep = distinct(records, k, sep_m, sep_rad)
-    return float(records[keep[-1], 0]) if len(keep) == k else -1.0
+def _poses(score, nodes, rows, r) -> np.ndarray:
+    """Leaf scores and nodes [angle row, ox, oy, level] -> records [sum score, x, y, theta, seed index]."""
+    return np.column_stack([score, rows[nodes[:, 0], 0] + r * nodes[:, 1], rows[nodes[:, 0], 1] + r * nodes[:, 2],
+                            rows[nodes[:, 0], 2], rows[nodes[:, 0], 3]]).astype(float)
+
+
+class _Best:
+    """Leaves found so far: each seed's n_best distinct ones, their merge, and the pruning bar.
+
+    ``bar[j]`` is the score a leaf of seed j must beat to matter: the higher
+    of the seed's own n_best-th best distinct leaf and that of the merged
+    lists (-1 while a list is short).  As in any branch and bound on the
+    k-th best distinct leaf, a later leaf that suppresses two of the best so
+    far lowers the k-th best again, and a block pruned before may then have
+    held one of the final best; this is rare (one pair in 715 in the
+    comparison against independent searches, a runner-up of a false pair).
+    """
+
+    def __init__(self, n_seeds: int, k: int, sep_m: float, sep_rad: float):
+        self.k, self.sep_m, self.sep_rad = k, sep_m, sep_rad
+        self.own = [np.empty((0, 5))] * n_seeds       # the leaves of each seed that may still matter
+        self.lists = [np.empty((0, 5))] * n_seeds     # each seed's n_best distinct leaves, best first
+        self.kth = np.full(n_seeds, -1.0)
+        self.merged = np.empty((0, 5))
+        self.bar = np.full(n_seeds, -1.0)
+
+    def add(self, records):
+        """Take new leaves (rows [sum score, x, y, theta, seed index]) and update the lists and bars."""
+        for j in np.unique(records[:, 4]).astype(int):
+            own = np.concatenate([self.own[j], records[records[:, 4] == j]])
+            if len(own) > _MAX_RECORDS:
+                own = own[np.argpartition(-own[:, 0], _MAX_RECORDS - 1)[:_MAX_RECORDS]]
+            # Best first, equal scores in a fixed order of the pose, so that ties are
+            # resolved the same whichever order the leaves were found in.
+            own = own[np.lexsort((own[:, 2], own[:, 1], own[:, 3], -own[:, 0]))]
+            keep = distinct(own, self.k, self.sep_m, self.sep_rad)
+            self.lists[j] = own[keep]
+            self.kth[j] = own[keep[-1], 0] if len(keep) == self.k else -1.0
+            # Leaves below the seed's k-th best distinct one can no longer be among its best.
+            self.own[j] = own[own[:, 0] >= self.kth[j]]
+        # The merge of the seeds' lists, as if each seed had been searched on its own.
+        union = np.concatenate(self.lists)
+        union[:, 3] = np.pi - np.mod(np.pi - union[:, 3], 2 * np.pi)          # theta in (-pi, pi]
+        union = union[np.argsort(-union[:, 0], kind="stable")]
+        self.merged = union[distinct(union, self.k, self.sep_m, self.sep_rad)]
+        merged_kth = self.merged[-1, 0] if len(self.merged) == self.k else -1.0
+        self.bar = np.maximum(self.kth, merged_kth)

@@ -68,8 +68,10 @@ def seeds_for(guess: np.ndarray, yaw: np.ndarray, window_rad: float) -> np.ndarr
 
     The guess, plus the guess turned to each further yaw hypothesis of the
     descriptors that the coarse search around the seeds so far would not
-    reach (more than ``window_rad`` away): every seed costs a full coarse
-    search, and one that lies inside another's window adds nothing.
+    reach (more than ``window_rad`` away): every seed widens the coarse
+    search by its own window (the seeds are searched together, so a seed far
+    from the answer is cheap, but not free), and one that lies inside
+    another's window adds nothing.
     """
     seeds = [np.asarray(guess, dtype=float)]
     for h in yaw:

@@ -531,33 +531,41 @@ def _failed(x, it) -> _Solution:
                      float("nan"))
 
 
-def _associate(src: PreparedScan, tgt: PreparedScan, x, opt, cos_max):
+def _candidates(src: PreparedScan, cos_max):
+    """Source points that may be matched: (indices, points, normals), gathered once per ICP run."""
+    cand = src.line_index if cos_max is not None else np.arange(len(src.points))
+    return cand, src.points[cand], src.normals[cand]
+
+
+def _associate(src: PreparedScan, tgt: PreparedScan, x, opt, cos_max, cands=None):
     """Point-to-line correspondences of the source under pose x (vectorised).
 
     With the normal check on, only source points on straight structure take
     part: a point without a line of its own (a corner, clutter) cannot be
     checked and is the typical false match across a corner or a thin wall.
-    Returns (i, j, p, u, ln): source indices, target line indices, the
-    source points and beam directions, and the target line rows.
+    ``cands`` is :func:`_candidates` of the source (computed here if None).
+    Returns (i, j, p, u, lt): source indices, target line indices, the
+    source points and beam directions, and the target line rows transposed
+    to (14, n) (contiguous columns make the per-iteration arithmetic cheaper).
     """
+    cand, cand_pts, cand_normals = cands if cands is not None else _candidates(src, cos_max)
     c, s = np.cos(x[2]), np.sin(x[2])
     rot_t = np.array([[c, s], [-s, c]])
-    cand = src.line_index if cos_max is not None else np.arange(len(src.points))
-    pw = src.points[cand] @ rot_t + x[:2]
+    pw = cand_pts @ rot_t + x[:2]
     _, j = tgt.tree.query(pw, distance_upper_bound=opt.max_correspondence_m)
-    ok = j < len(tgt.line_index)
-    jj = np.where(ok, j, 0)
-    ln = tgt.line[jj]
-    if cos_max is not None:
-        agree = ((src.normals[cand] @ rot_t) * ln[:, 2:4]).sum(axis=1)
-        ok &= agree >= cos_max
+    hit = np.flatnonzero(j < len(tgt.line_index))
+    j, pw = j[hit], pw[hit]
+    ln = tgt.line[j]
     # Only points that fall along the target line's own support (plus a
     # margin): beyond it the target never saw the surface, and a fit that
     # caught a corner would be extrapolated.
     along = np.abs(ln[:, 3] * (pw[:, 0] - ln[:, 0]) - ln[:, 2] * (pw[:, 1] - ln[:, 1]))
-    ok &= along <= ln[:, 13] + opt.max_extrapolation_m
-    i = cand[ok]
-    return i, j[ok], src.points[i], src.beams[i], ln[ok]
+    ok = along <= ln[:, 13] + opt.max_extrapolation_m
+    if cos_max is not None:
+        agree = ((cand_normals[hit] @ rot_t) * ln[:, 2:4]).sum(axis=1)
+        ok &= agree >= cos_max
+    i = cand[hit[ok]]
+    return i, j[ok], src.points[i], src.beams[i], np.ascontiguousarray(ln[ok].T)
 
 
 def _linearise(pairs, x, opt, range_noise: bool):
@@ -568,18 +576,18 @@ def _linearise(pairs, x, opt, range_noise: bool):
     with ``s = t.(p - c)``; its gradient with respect to the point is
     ``g = n - f'(s) t``.
     """
-    _, _, p, u, ln = pairs
+    _, _, p, u, lt = pairs
     c, s = np.cos(x[2]), np.sin(x[2])
     rot_t = np.array([[c, s], [-s, c]])
     rp = p @ rot_t
-    nx, ny = ln[:, 2], ln[:, 3]
-    dx = rp[:, 0] + (x[0] - ln[:, 0])
-    dy = rp[:, 1] + (x[1] - ln[:, 1])
+    nx, ny = lt[2], lt[3]
+    dx = rp[:, 0] + (x[0] - lt[0])
+    dy = rp[:, 1] + (x[1] - lt[1])
     s_al = ny * dx - nx * dy            # t = (n_y, -n_x), as in _line_features
-    m = np.clip(s_al, -ln[:, 13], ln[:, 13])
+    m = np.minimum(np.maximum(s_al, -lt[13]), lt[13])
     phi2 = (2.0 * s_al - m) * m
-    r = nx * dx + ny * dy - (ln[:, 4] + s_al * ln[:, 5] + phi2 * ln[:, 6])
-    fp = ln[:, 5] + 2.0 * ln[:, 6] * m
+    r = nx * dx + ny * dy - (lt[4] + s_al * lt[5] + phi2 * lt[6])
+    fp = lt[5] + 2.0 * lt[6] * m
     gx = nx - fp * ny
     gy = ny + fp * nx
     if range_noise:
@@ -587,15 +595,27 @@ def _linearise(pairs, x, opt, range_noise: bool):
         sc = np.maximum(np.abs(gx * ub[:, 0] + gy * ub[:, 1]), opt.min_incidence_cos)
     else:
         sc = np.hypot(gx, gy)
-    v = sc * sc + (ln[:, 7] + s_al * (2.0 * ln[:, 8] + s_al * ln[:, 10])
-                   + phi2 * (2.0 * ln[:, 9] + 2.0 * s_al * ln[:, 11] + phi2 * ln[:, 12]))
-    jac = np.column_stack([gx, gy, gy * rp[:, 0] - gx * rp[:, 1]])
-    return r, v, jac, np.stack([s_al, phi2], axis=1), sc
+    v = sc * sc + (lt[7] + s_al * (2.0 * lt[8] + s_al * lt[10])
+                   + phi2 * (2.0 * lt[9] + 2.0 * s_al * lt[11] + phi2 * lt[12]))
+    jac = np.empty((len(r), 3))
+    jac[:, 0] = gx
+    jac[:, 1] = gy
+    jac[:, 2] = gy * rp[:, 0] - gx * rp[:, 1]
+    return r, v, jac, (s_al, phi2), sc
+
+
+def _median(a) -> float:
+    """np.median of a non-empty 1-D array (same value), without its general-case overhead."""
+    k = len(a) // 2
+    if len(a) % 2:
+        return float(np.partition(a, k)[k])
+    part = np.partition(a, [k - 1, k])
+    return float((part[k - 1] + part[k]) / 2)
 
 
 def _robust(r, v, opt, kernel):
     z = r / np.sqrt(v)
-    scale = max(_MAD_TO_SIGMA * float(np.median(np.abs(z))), opt.min_noise_m)
+    scale = max(_MAD_TO_SIGMA * _median(np.abs(z)), opt.min_noise_m)
     w = kernel.weight(z / scale)
     return w, scale
 
@@ -605,15 +625,17 @@ def _icp_line(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions
     cos_max = np.cos(opt.max_normal_angle_rad) if opt.max_normal_angle_rad < np.pi else None
     range_noise = src.point_noise == "range"
     lscale = np.array([1.0, 1.0, src.length_m ** 2])
+    lscale_diag = np.diag(lscale)
     converged = False
     it = 0
     pairs = None
     moved = np.inf     # bound on any source point's motion since the last association (m)
+    cands = _candidates(src, cos_max)
     for it in range(1, opt.max_iterations + 1):
         # Re-associating costs a kd-tree query; once the pose moves by less
         # than reassociate_m the nearest lines cannot change enough to matter.
         if moved >= opt.reassociate_m:
-            pairs = _associate(src, tgt, x, opt, cos_max)
+            pairs = _associate(src, tgt, x, opt, cos_max, cands)
             moved = 0.0
         if len(pairs[0]) < 3:
             pairs = None
@@ -624,7 +646,7 @@ def _icp_line(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions
         h = jw.T @ jac
         g = jw.T @ r
         mu = opt.damping * float(np.trace(h / lscale)) / 3.0
-        step = -np.linalg.solve(h + mu * np.diag(lscale), g)
+        step = -np.linalg.solve(h + mu * lscale_diag, g)
         x = x + step
         moved += np.hypot(step[0], step[1]) + src.radius_m * abs(step[2])
         if np.hypot(step[0], step[1]) < opt.tolerance_m and abs(step[2]) < opt.tolerance_rad:
@@ -633,7 +655,7 @@ def _icp_line(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions
     x[2] = np.pi - np.mod(np.pi - x[2], 2 * np.pi)
     if pairs is None:
         return _failed(x, it)
-    return _Solution(x, converged, it, pairs[0], pairs[1], r, v, w, jac, s_al, sc, scale)
+    return _Solution(x, converged, it, pairs[0], pairs[1], r, v, w, jac, np.stack(s_al, axis=1), sc, scale)
 
 
 def _icp_point(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions, kernel) -> _Solution:
@@ -677,7 +699,7 @@ def _icp_point(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOption
         return _failed(x, it)
     r, v, jac, s_al, sc = _linearise(pairs, x, opt, src.point_noise == "range")
     w, scale = _robust(r, v, opt, kernel)
-    return _Solution(x, converged, it, pairs[0], pairs[1], r, v, w, jac, s_al, sc, scale)
+    return _Solution(x, converged, it, pairs[0], pairs[1], r, v, w, jac, np.stack(s_al, axis=1), sc, scale)
 
 
 def _fit_score(src: PreparedScan, tgt: PreparedScan, x, opt: RegistrationOptions) -> float:
@@ -792,23 +814,15 @@ def register_prepared(source: PreparedScan, target: PreparedScan, guess=(0.0, 0.
                                       options.coarse_block_cells)
         step = options.coarse_angle_step_rad or _coarse.auto_angle_step(source.coarse_points,
                                                                          options.coarse_resolution_m)
-        found_p, found_s = [], []
-        for seed in seeds:
-            p, s = _coarse.search(grid, source.coarse_points, seed, window_m=options.coarse_window_m,
-                                  window_rad=options.coarse_window_rad, angle_step_rad=step,
-                                  n_best=options.hypotheses, separation_m=options.hypothesis_separation_m,
-                                  separation_rad=options.hypothesis_separation_rad)
-            found_p.append(p)
-            found_s.append(s)
-        poses = np.concatenate(found_p)
-        scores = np.concatenate(found_s)
-        order = np.argsort(-scores, kind="stable")
-        records = np.column_stack([scores[order], poses[order]])
-        keep = _coarse.distinct(records, options.hypotheses, options.hypothesis_separation_m,
-                                 options.hypothesis_separation_rad)
-        starts = records[keep, 1:]
-        coarse_best = float(records[keep[0], 0])
-        coarse_second = float(records[keep[1], 0]) if len(keep) > 1 else float("nan")
+        # One search over the union of the seeds' windows: a block near a wrong seed is pruned by
+        # the hypotheses found near the right one instead of being searched on its own.
+        poses, scores = _coarse.search(grid, source.coarse_points, seeds, window_m=options.coarse_window_m,
+                                       window_rad=options.coarse_window_rad, angle_step_rad=step,
+                                       n_best=options.hypotheses, separation_m=options.hypothesis_separation_m,
+                                       separation_rad=options.hypothesis_separation_rad)
+        starts = poses
+        coarse_best = float(scores[0])
+        coarse_second = float(scores[1]) if len(scores) > 1 else float("nan")
 
     sols = [refine(source, target, x0, options, kernel) for x0 in starts]
     fits = np.array([_fit_score(source, target, s.x, options) for s in sols])

@@ -175,6 +175,24 @@ def test_several_seeds_pick_the_best_fit(pairs):
     assert res.fit_score > res.second_fit_score
 
 
+def test_coarse_seeds_with_wrong_yaw_do_not_change_the_result(pairs):
+    # Yaw hypotheses far from the truth, searched together with a good seed
+    # in the coarse stage, in any order, give the result of the good seed
+    # alone: their windows hold nothing that fits better.
+    target, source, truth = pairs[0]
+    good = truth + np.array([0.6, -0.4, 0.25])
+    opt = RegistrationOptions(coarse_window_m=1.5, coarse_window_rad=0.4, coarse_angle_step_rad=0.01)
+    pt, ps = prepare_scan(target, opt), prepare_scan(source, opt)
+    alone = register_prepared(ps, pt, good, opt)
+    assert np.hypot(*(alone.delta[:2] - truth[:2])) < 0.01
+    wrong = [good + [0, 0, 1.4], good + [0, 0, -2.2]]
+    for seeds in ([good, *wrong], [wrong[0], good, wrong[1]], [*wrong, good]):
+        res = register_prepared(ps, pt, np.array(seeds), opt)
+        np.testing.assert_allclose(res.delta, alone.delta, atol=1e-6)
+        assert res.coarse_score == alone.coarse_score
+        assert res.fit_score == pytest.approx(alone.fit_score, abs=1e-9)
+
+
 def test_symmetric_room_is_reported_ambiguous():
     # A bare rectangular room looks the same after a half turn about its
     # centre, so the mirrored hypothesis fits almost as well as the true one
