@@ -103,7 +103,7 @@ def _drift(d) -> str:
     if not np.isfinite(d.std_rad_per_m):
         return "—"
     text = f"{np.degrees(d.rate_rad_per_m) * 100:.2f} ± {np.degrees(d.std_rad_per_m) * 100:.2f}"
-    return text if d.applied else text + " (kept)"
+    return text + f", removed {np.degrees(d.removed_rad_per_m) * 100:.2f}"
 
 
 def main(argv=None) -> int:

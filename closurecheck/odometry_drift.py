@@ -70,13 +70,17 @@ class HeadingDrift:
     std_rad_per_m : its standard error (scaled by the fit's reduced
         chi-square when that exceeds 1).
     closures : closures used in the final fit.
-    applied : whether the rate is significant and was removed.
+    applied : whether the rate is significant.
+    removed_rad_per_m : the rate actually removed from the odometry (the
+        estimate, or a first guess within two standard errors of it; 0 when
+        nothing was removed).
     """
 
     rate_rad_per_m: float
     std_rad_per_m: float
     closures: int
     applied: bool
+    removed_rad_per_m: float = 0.0
 
 
 NO_DRIFT = HeadingDrift(0.0, float("nan"), 0, False)
@@ -177,8 +181,9 @@ def heading_drift_consensus(odom_poses, step_covariances, src, dst, delta, covar
     (a sweep over the interval ends).  Look-alike places rarely disturb the
     vote: a neighbouring aisle is wrong in position, not in heading.
 
-    Returns the rate when it gathers at least ``min_closures`` votes and at
-    least ``consensus_margin`` times the votes of zero drift; otherwise 0.
+    Returns the rate (refined by weighted least squares over its voters)
+    when it gathers at least ``min_closures`` votes and at least
+    ``consensus_margin`` times the votes of zero drift; otherwise 0.
     Parameters as :func:`estimate_heading_drift`.
     """
     src = np.asarray(src, dtype=np.intp)
@@ -206,9 +211,13 @@ def heading_drift_consensus(odom_poses, step_covariances, src, dst, delta, covar
     votes = int(count[best])
     if votes < options.min_closures or votes < options.consensus_margin * max(at_zero, 1):
         return 0.0
-    # The middle of the best-supported stretch of rates.
+    # The middle of the best-supported stretch of rates, refined by weighted
+    # least squares over the candidates that voted for it.
     right = ends[order][best + 1] if best + 1 < len(ends) else ends[order][best]
-    return float(0.5 * (ends[order][best] + right))
+    mid = 0.5 * (ends[order][best] + right)
+    voters = (lo <= mid) & (hi >= mid)
+    w = 1.0 / sd[voters] ** 2
+    return float(np.sum(w * signed[voters] * resid[voters]) / np.sum(w * signed[voters] ** 2))
 
 
 def remove_heading_drift(odom_poses, rate_rad_per_m: float) -> np.ndarray:

@@ -211,7 +211,8 @@ def _drift_summary(drift) -> dict:
     deg_per_100m = float(np.degrees(drift.rate_rad_per_m) * 100.0)
     std = float(np.degrees(drift.std_rad_per_m) * 100.0) if np.isfinite(drift.std_rad_per_m) else None
     return {"deg_per_100m": deg_per_100m, "std_deg_per_100m": std, "closures": drift.closures,
-            "removed": drift.applied}
+            "significant": drift.applied,
+            "removed_deg_per_100m": float(np.degrees(drift.removed_rad_per_m) * 100.0)}
 
 
 def summary(outcome: RunOutcome) -> dict:

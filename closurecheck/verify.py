@@ -406,13 +406,23 @@ def verify(src, dst, delta, covariance, quality: dict, odom_poses, step_covarian
         drift = estimate_heading_drift(odom_in, step_covariances, src[m], dst[m], delta[m], covariance[m],
                                        drift_options)
         rate = drift.rate_rad_per_m if drift.applied else 0.0
-        if rate != guess:
+        tolerance = 2.0 * drift.std_rad_per_m if np.isfinite(drift.std_rad_per_m) else 0.0
+        if abs(rate - guess) > tolerance:
             odom_poses = remove_heading_drift(odom_in, rate) if rate else odom_in
             stage = _core_and_map(*args, odom_poses)
-    if drift.applied:
-        notes.append(f"odometry heading drift of {np.degrees(drift.rate_rad_per_m) * 100:.3f} deg per 100 m "
-                     f"(+/- {np.degrees(drift.std_rad_per_m) * 100:.3f}) measured by {drift.closures} verified "
-                     "closures and removed")
+            removed = rate
+        else:
+            # The guess is within two standard errors of the measurement: the
+            # decision already taken on it stands (a second pass costs as
+            # much as the first, and a residual drift this small is what the
+            # odometry variance factor absorbs).
+            removed = guess
+        drift = dataclasses.replace(drift, removed_rad_per_m=float(removed))
+    if drift.removed_rad_per_m:
+        measured = (f"measured {np.degrees(drift.rate_rad_per_m) * 100:.3f} "
+                    f"+/- {np.degrees(drift.std_rad_per_m) * 100:.3f} by {drift.closures} verified closures")
+        notes.append(f"odometry heading drift of {np.degrees(drift.removed_rad_per_m) * 100:.3f} deg per 100 m "
+                     f"removed ({measured})")
     notes.extend(stage.notes)
     figures, members, scale, first_pass, clique = (stage.figures, stage.members, stage.scale, stage.first_pass,
                                                    stage.clique)
