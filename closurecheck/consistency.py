@@ -334,10 +334,8 @@ class _ClosureTerms:
     src: np.ndarray  # (K,)
     dst: np.ndarray  # (K,)
     src_pose: np.ndarray  # (K, 3) odometry pose x_a of the src node
-    ad_src: np.ndarray  # (K, 3, 3) Ad(x_a)
     mismatch: np.ndarray  # (K, 3) M = x_a ∘ z ∘ x_b^-1
     mismatch_inv: np.ndarray  # (K, 3) M^-1
-    ad_mismatch_inv: np.ndarray  # (K, 3, 3) Ad(M^-1)
     world_cov: np.ndarray  # (K, 3, 3) Ad(x_b) Sigma_tau Ad(x_b)^T
 
 
@@ -378,15 +376,72 @@ def _closure_terms(src, dst, deltas, covariances, poses):
         src=src,
         dst=dst,
         src_pose=xa,
-        ad_src=se2.adjoint(xa),
         mismatch=mismatch,
         mismatch_inv=minv,
-        ad_mismatch_inv=se2.adjoint(minv),
         world_cov=ad_b @ sigma_tau @ _t(ad_b),
     )
 
 
-def _pair_block(t: _ClosureTerms, prefix, i, j, shared_odometry):
+# --------------------------------------------------------------------------
+# the pair test, on one (K,) array per scalar (no (P, 3, 3) temporaries)
+
+_SYM = ((0, 0), (0, 1), (0, 2), (1, 1), (1, 2), (2, 2))
+
+
+@dataclass(frozen=True)
+class _ClosureColumns:
+    """Per-closure scalars of :class:`_ClosureTerms`, one (K,) array each."""
+
+    src: np.ndarray
+    dst: np.ndarray
+    xax: np.ndarray
+    xay: np.ndarray
+    ca: np.ndarray  # cos / sin of x_a's heading
+    sa: np.ndarray
+    mx: np.ndarray  # M = x_a ∘ z ∘ x_b^-1
+    my: np.ndarray
+    mt: np.ndarray
+    mc: np.ndarray
+    ms: np.ndarray
+    nx: np.ndarray  # M^-1
+    ny: np.ndarray
+    nt: np.ndarray
+    nc: np.ndarray
+    ns: np.ndarray
+    w: tuple  # world_cov's six upper-triangle entries, (K,) each
+
+
+def _columns(t: _ClosureTerms) -> _ClosureColumns:
+    return _ClosureColumns(
+        src=t.src, dst=t.dst, xax=t.src_pose[:, 0], xay=t.src_pose[:, 1],
+        ca=np.cos(t.src_pose[:, 2]), sa=np.sin(t.src_pose[:, 2]),
+        mx=t.mismatch[:, 0], my=t.mismatch[:, 1], mt=t.mismatch[:, 2],
+        mc=np.cos(t.mismatch[:, 2]), ms=np.sin(t.mismatch[:, 2]),
+        nx=t.mismatch_inv[:, 0], ny=t.mismatch_inv[:, 1], nt=t.mismatch_inv[:, 2],
+        nc=np.cos(t.mismatch_inv[:, 2]), ns=np.sin(t.mismatch_inv[:, 2]),
+        w=tuple(np.ascontiguousarray(t.world_cov[:, r, c]) for r, c in _SYM),
+    )
+
+
+def _prefix_columns(prefix) -> tuple:
+    return tuple(np.ascontiguousarray(prefix[:, r, c]) for r, c in _SYM)
+
+
+def _congruence(c, s, px, py, d):
+    """Upper-triangle entries of ``Y D Y^T`` for ``Y = [[c, -s, px], [s, c, py], [0, 0, 1]]``, D symmetric."""
+    d00, d01, d02, d11, d12, d22 = d
+    # Rows of Y D.
+    a0 = c * d00 - s * d01 + px * d02
+    a1 = c * d01 - s * d11 + px * d12
+    a2 = c * d02 - s * d12 + px * d22
+    b0 = s * d00 + c * d01 + py * d02
+    b1 = s * d01 + c * d11 + py * d12
+    b2 = s * d02 + c * d12 + py * d22
+    return (c * a0 - s * a1 + px * a2, s * a0 + c * a1 + py * a2, a2,
+            s * b0 + c * b1 + py * b2, b2, d22)
+
+
+def _pair_block(t: _ClosureColumns, pc, i, j, shared_odometry):
     """Squared Mahalanobis distance of the PCM cycle for closure pairs (i, j).
 
     Closure i joins a -> b with delta z_i, closure j joins c -> d with z_j
@@ -415,32 +470,70 @@ def _pair_block(t: _ClosureTerms, prefix, i, j, shared_odometry):
     D the prefix-sum covariance of each segment and X the signed prefix-sum
     covariance of the steps the two segments share (zero when
     ``shared_odometry`` is False, i.e. the segments treated as independent).
+
+    Everything is written out per scalar on (P,) arrays (``t`` from
+    :func:`_columns`, ``pc`` the six upper-triangle entries of the prefix
+    sums from :func:`_prefix_columns`): batched 3x3 products on (P, 3, 3)
+    stacks cost several times more, and a long log tests tens of millions
+    of pairs.  E's heading comes from the angle sum, so no trigonometry is
+    evaluated per pair.
     """
+
     a, b = t.src[i], t.dst[i]
     c, d = t.src[j], t.dst[j]
-    xa = t.src_pose[i]
-    g = se2.compose(t.mismatch[i], t.mismatch_inv[j])
-    e = se2.between(xa, se2.compose(g, xa))
-    y = t.ad_mismatch_inv[j]
-    u = np.einsum("...ji,...j->...i", _frame(e[:, 2]), e)  # F(theta_E)^T e
-    h = np.einsum("...ij,...j->...i", y, np.einsum("...ij,...j->...i", t.ad_src[i], u))
-
+    xax, xay, ca, sa = t.xax[i], t.xay[i], t.ca[i], t.sa[i]
+    mci, msi = t.mc[i], t.ms[i]
+    nx, ny, nc, ns = t.nx[j], t.ny[j], t.nc[j], t.ns[j]
+    # g = M_i ∘ M_j^-1, heading via the angle sum (no trigonometry per pair).
+    gx = t.mx[i] + mci * nx - msi * ny
+    gy = t.my[i] + msi * nx + mci * ny
+    cg = mci * nc - msi * ns
+    sg = msi * nc + mci * ns
+    gt = se2.wrap(t.mt[i] + t.nt[j])
+    # e = between(x_a, g ∘ x_a)
+    dx = gx + cg * xax - sg * xay - xax
+    dy = gy + sg * xax + cg * xay - xay
+    ex = ca * dx + sa * dy
+    ey = -sa * dx + ca * dy
+    # u = F(theta_E)^T e, then h = Y Ad(x_a) u with Y = Ad(M_j^-1).
+    u0 = cg * ex + sg * ey
+    u1 = -sg * ex + cg * ey
+    v0 = ca * u0 - sa * u1 + xay * gt
+    v1 = sa * u0 + ca * u1 - xax * gt
+    h0 = nc * v0 - ns * v1 + ny * gt
+    h1 = ns * v0 + nc * v1 - nx * gt
     lo1, hi1 = np.minimum(b, d), np.maximum(b, d)
     lo2, hi2 = np.minimum(c, a), np.maximum(c, a)
-    d_bd = prefix[hi1] - prefix[lo1]
-    d_ca = prefix[hi2] - prefix[lo2]
-    cov = t.world_cov[i] + t.world_cov[j] + d_bd + y @ d_ca @ _t(y)
+    d_ca = tuple(p[hi2] - p[lo2] for p in pc)
+    ydy = _congruence(nc, ns, ny, -nx, d_ca)
+    cov = [t.w[m][i] + t.w[m][j] + (pc[m][hi1] - pc[m][lo1]) + ydy[m] for m in range(6)]
     if shared_odometry:
         ov_lo = np.maximum(lo1, lo2)
         ov_hi = np.minimum(hi1, hi2)
-        has = ov_hi > ov_lo
-        if np.any(has):
-            sign = np.sign(d - b) * np.sign(a - c)
-            k = np.flatnonzero(has)
-            x = (sign[k, None, None]) * (prefix[ov_hi[k]] - prefix[ov_lo[k]])
-            xy = x @ _t(y[k])
-            cov[k] += xy + _t(xy)
-    return _quad_inv_sym3(cov, h)
+        k = np.flatnonzero(ov_hi > ov_lo)
+        if len(k):
+            sign = np.sign(d[k] - b[k]) * np.sign(a[k] - c[k])
+            x = [sign * (p[ov_hi[k]] - p[ov_lo[k]]) for p in pc]
+            x00, x01, x02, x11, x12, x22 = x
+            cnk, snk, pxk, pyk = nc[k], ns[k], ny[k], -nx[k]
+            # Z = Y X; the term is Z + Z^T.
+            z = [[cnk * x00 - snk * x01 + pxk * x02, cnk * x01 - snk * x11 + pxk * x12,
+                  cnk * x02 - snk * x12 + pxk * x22],
+                 [snk * x00 + cnk * x01 + pyk * x02, snk * x01 + cnk * x11 + pyk * x12,
+                  snk * x02 + cnk * x12 + pyk * x22],
+                 [x02, x12, x22]]
+            for m, (r, q) in enumerate(_SYM):
+                cov[m][k] += z[r][q] + z[q][r]
+    c00, c01, c02, c11, c12, c22 = cov
+    A = c11 * c22 - c12 * c12
+    B = c02 * c12 - c01 * c22
+    C = c01 * c12 - c02 * c11
+    D = c00 * c22 - c02 * c02
+    E = c01 * c02 - c00 * c12
+    F = c00 * c11 - c01 * c01
+    det = c00 * A + c01 * B + c02 * C
+    num = A * h0 * h0 + D * h1 * h1 + F * gt * gt + 2.0 * (B * h0 * h1 + C * h0 * gt + E * h1 * gt)
+    return num / det
 
 
 def pair_distances(
@@ -492,8 +585,9 @@ def pair_distances(
         raise InputError(f"pair indices must be integers in [0, {k - 1}]")
     if not len(first):
         return np.zeros(0)
-    terms = _closure_terms(src, dst, deltas, covariances, poses)
-    return _pair_block(terms, prefix, first.astype(np.intp), second.astype(np.intp), shared_odometry)
+    cols = _columns(_closure_terms(src, dst, deltas, covariances, poses))
+    return _pair_block(cols, _prefix_columns(prefix), first.astype(np.intp), second.astype(np.intp),
+                       shared_odometry)
 
 
 def _csr_from_mask(mask, rows_per_block: int = 256):
@@ -548,14 +642,15 @@ def pairwise_consistency(src, dst, deltas, covariances, poses, prefix, options: 
     dist = np.zeros((k, k), dtype=np.float32)
     if k < 2:
         return PairConsistency(scipy.sparse.csr_array((k, k), dtype=bool), dist, threshold)
-    terms = _closure_terms(src, dst, deltas, covariances, poses)
+    cols = _columns(_closure_terms(src, dst, deltas, covariances, poses))
+    pc = _prefix_columns(prefix)
     rows = np.arange(k, dtype=np.int64)
     row_offsets = rows * (k - 1) - rows * (rows - 1) // 2  # first flat index of row i
     total = k * (k - 1) // 2
     mask = np.zeros((k, k), dtype=bool)
     for start in range(0, total, options.pairs_per_block):
         i, j = _upper_pairs(k, start, min(start + options.pairs_per_block, total), row_offsets)
-        d2 = _pair_block(terms, prefix, i, j, options.pair_shared_odometry)
+        d2 = _pair_block(cols, pc, i, j, options.pair_shared_odometry)
         dist[i, j] = d2
         dist[j, i] = d2
         ok = d2 <= threshold
