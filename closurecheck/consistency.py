@@ -234,8 +234,13 @@ def _quad_inv_sym3(c, h):
     The adjugate formula is elementwise, several times faster than a batched
     LAPACK solve on tiny matrices.
     """
-    a, b, cc = c[..., 0, 0], c[..., 0, 1], c[..., 0, 2]
-    d, e, f = c[..., 1, 1], c[..., 1, 2], c[..., 2, 2]
+    entries = (c[..., 0, 0], c[..., 0, 1], c[..., 0, 2], c[..., 1, 1], c[..., 1, 2], c[..., 2, 2])
+    return _quad_inv_entries(entries, h[..., 0], h[..., 1], h[..., 2])
+
+
+def _quad_inv_entries(c, x, y, z):
+    """``h^T C^-1 h`` from C's six upper-triangle entries and h's components (arrays)."""
+    a, b, cc, d, e, f = c
     A = d * f - e * e
     B = cc * e - b * f
     C = b * e - cc * d
@@ -243,7 +248,6 @@ def _quad_inv_sym3(c, h):
     E = b * cc - a * e
     F = a * d - b * b
     det = a * A + b * B + cc * C
-    x, y, z = h[..., 0], h[..., 1], h[..., 2]
     num = A * x * x + D * y * y + F * z * z + 2.0 * (B * x * y + C * x * z + E * y * z)
     return num / det
 
@@ -427,18 +431,19 @@ def _prefix_columns(prefix) -> tuple:
     return tuple(np.ascontiguousarray(prefix[:, r, c]) for r, c in _SYM)
 
 
-def _congruence(c, s, px, py, d):
-    """Upper-triangle entries of ``Y D Y^T`` for ``Y = [[c, -s, px], [s, c, py], [0, 0, 1]]``, D symmetric."""
+def _times_symmetric(c, s, px, py, d):
+    """Rows of ``Y D`` for ``Y = [[c, -s, px], [s, c, py], [0, 0, 1]]`` and D symmetric (six entries)."""
     d00, d01, d02, d11, d12, d22 = d
-    # Rows of Y D.
-    a0 = c * d00 - s * d01 + px * d02
-    a1 = c * d01 - s * d11 + px * d12
-    a2 = c * d02 - s * d12 + px * d22
-    b0 = s * d00 + c * d01 + py * d02
-    b1 = s * d01 + c * d11 + py * d12
-    b2 = s * d02 + c * d12 + py * d22
+    return ((c * d00 - s * d01 + px * d02, c * d01 - s * d11 + px * d12, c * d02 - s * d12 + px * d22),
+            (s * d00 + c * d01 + py * d02, s * d01 + c * d11 + py * d12, s * d02 + c * d12 + py * d22),
+            (d02, d12, d22))
+
+
+def _congruence(c, s, px, py, d):
+    """Upper-triangle entries of ``Y D Y^T`` (Y and D as in :func:`_times_symmetric`)."""
+    (a0, a1, a2), (b0, b1, b2), _ = _times_symmetric(c, s, px, py, d)
     return (c * a0 - s * a1 + px * a2, s * a0 + c * a1 + py * a2, a2,
-            s * b0 + c * b1 + py * b2, b2, d22)
+            s * b0 + c * b1 + py * b2, b2, d[5])
 
 
 def _pair_block(t: _ClosureColumns, pc, i, j, shared_odometry):
@@ -514,26 +519,11 @@ def _pair_block(t: _ClosureColumns, pc, i, j, shared_odometry):
         if len(k):
             sign = np.sign(d[k] - b[k]) * np.sign(a[k] - c[k])
             x = [sign * (p[ov_hi[k]] - p[ov_lo[k]]) for p in pc]
-            x00, x01, x02, x11, x12, x22 = x
-            cnk, snk, pxk, pyk = nc[k], ns[k], ny[k], -nx[k]
             # Z = Y X; the term is Z + Z^T.
-            z = [[cnk * x00 - snk * x01 + pxk * x02, cnk * x01 - snk * x11 + pxk * x12,
-                  cnk * x02 - snk * x12 + pxk * x22],
-                 [snk * x00 + cnk * x01 + pyk * x02, snk * x01 + cnk * x11 + pyk * x12,
-                  snk * x02 + cnk * x12 + pyk * x22],
-                 [x02, x12, x22]]
+            z = _times_symmetric(nc[k], ns[k], ny[k], -nx[k], x)
             for m, (r, q) in enumerate(_SYM):
                 cov[m][k] += z[r][q] + z[q][r]
-    c00, c01, c02, c11, c12, c22 = cov
-    A = c11 * c22 - c12 * c12
-    B = c02 * c12 - c01 * c22
-    C = c01 * c12 - c02 * c11
-    D = c00 * c22 - c02 * c02
-    E = c01 * c02 - c00 * c12
-    F = c00 * c11 - c01 * c01
-    det = c00 * A + c01 * B + c02 * C
-    num = A * h0 * h0 + D * h1 * h1 + F * gt * gt + 2.0 * (B * h0 * h1 + C * h0 * gt + E * h1 * gt)
-    return num / det
+    return _quad_inv_entries(cov, h0, h1, gt)
 
 
 def pair_distances(

@@ -93,6 +93,20 @@ def chain_travel(odom_poses) -> np.ndarray:
     return np.r_[0.0, np.cumsum(np.hypot(steps[:, 0], steps[:, 1]))]
 
 
+def _heading_residuals(odom_poses, step_covariances, src, dst, delta, covariance):
+    """Per closure: signed travel dst - src (m), heading residual odometry - measurement (rad),
+    the chain's cumulative heading variance (N,), and the residual's standard deviation (rad)."""
+    odom_poses = np.asarray(odom_poses, dtype=float)
+    travel = chain_travel(odom_poses)
+    signed = travel[dst] - travel[src]
+    resid = se2.wrap(odom_poses[dst, 2] - odom_poses[src, 2] - np.asarray(delta, float)[:, 2])
+    # Heading variance of a stretch is the sum of its steps' (heading noise
+    # does not depend on the path's shape); cum_var[k] covers steps 0..k-1.
+    cum_var = np.r_[0.0, np.cumsum(np.asarray(step_covariances, float)[:, 2, 2])]
+    sd = np.sqrt(np.abs(cum_var[dst] - cum_var[src]) + np.maximum(np.asarray(covariance, float)[:, 2, 2], 1e-18))
+    return signed, resid, cum_var, sd
+
+
 def estimate_heading_drift(odom_poses, step_covariances, src, dst, delta, covariance,
                            options: DriftOptions = DriftOptions()) -> HeadingDrift:
     """Generalised least-squares heading drift rate from verified closures.
@@ -125,13 +139,7 @@ def estimate_heading_drift(odom_poses, step_covariances, src, dst, delta, covari
     if len(src) > options.max_closures:
         pick = np.sort(np.argsort(src, kind="stable")[np.linspace(0, len(src) - 1, options.max_closures).astype(int)])
         src, dst, delta, covariance = src[pick], dst[pick], delta[pick], covariance[pick]
-    odom_poses = np.asarray(odom_poses, dtype=float)
-    travel = chain_travel(odom_poses)
-    signed = travel[dst] - travel[src]
-    resid = se2.wrap(odom_poses[dst, 2] - odom_poses[src, 2] - delta[:, 2])
-    # Heading variance of a stretch is the sum of its steps' (heading noise
-    # does not depend on the path's shape); cum_var[k] covers steps 0..k-1.
-    cum_var = np.r_[0.0, np.cumsum(np.asarray(step_covariances, float)[:, 2, 2])]
+    signed, resid, cum_var, marginal = _heading_residuals(odom_poses, step_covariances, src, dst, delta, covariance)
     lo, hi = np.minimum(src, dst), np.maximum(src, dst)
     # The residual is odometry minus measurement: a stretch run backwards
     # (src after dst) enters with the opposite sign.
@@ -154,7 +162,6 @@ def estimate_heading_drift(odom_poses, step_covariances, src, dst, delta, covari
             return NO_DRIFT
         rate = float(cx @ resid[idx] / info)
         fitted = resid - rate * signed
-        marginal = np.sqrt(np.abs(cum_var[hi] - cum_var[lo]) + np.maximum(covariance[:, 2, 2], 1e-18))
         keep = np.abs(fitted) <= options.outlier_sigmas * marginal
         if np.array_equal(keep, use):
             break
@@ -190,12 +197,7 @@ def heading_drift_consensus(odom_poses, step_covariances, src, dst, delta, covar
     dst = np.asarray(dst, dtype=np.intp)
     if len(src) < options.min_closures:
         return 0.0
-    odom_poses = np.asarray(odom_poses, dtype=float)
-    travel = chain_travel(odom_poses)
-    signed = travel[dst] - travel[src]
-    resid = se2.wrap(odom_poses[dst, 2] - odom_poses[src, 2] - np.asarray(delta, float)[:, 2])
-    cum_var = np.r_[0.0, np.cumsum(np.asarray(step_covariances, float)[:, 2, 2])]
-    sd = np.sqrt(np.abs(cum_var[dst] - cum_var[src]) + np.asarray(covariance, float)[:, 2, 2])
+    signed, resid, _, sd = _heading_residuals(odom_poses, step_covariances, src, dst, delta, covariance)
     ok = np.abs(signed) > 0
     signed, resid, sd = signed[ok], resid[ok], sd[ok]
     a = (resid - options.consensus_sigmas * sd) / signed

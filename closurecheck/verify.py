@@ -286,7 +286,6 @@ def _strict_pass(plausible, src, dst, delta, covariance, odom_poses, step_covari
 class _Stage:
     first_pass: np.ndarray
     clique: object
-    core: np.ndarray
     scale: float
     members: np.ndarray
     figures: dict
@@ -342,7 +341,7 @@ def _core_and_map(plausible, src, dst, delta, covariance, step_covariances, opti
     joined = len(np.setdiff1d(members, core))
     if joined:
         notes.append(f"{joined} closure(s) verified against the map of the first {len(core)} (map gate)")
-    return _Stage(first_pass=first_pass, clique=clique, core=core, scale=scale, members=members, figures=figures,
+    return _Stage(first_pass=first_pass, clique=clique, scale=scale, members=members, figures=figures,
                   notes=tuple(notes))
 
 
