@@ -43,17 +43,20 @@ sys.path.insert(0, str(ROOT))
 
 from sklearn.neighbors import NearestNeighbors  # noqa: E402
 
-from closurecheck import candidates, descriptors, evaluate, se2, simulate  # noqa: E402
-from closurecheck.keyframes import odometry_travel, select_keyframes  # noqa: E402
-from closurecheck.odometry import OdometryChain, noise_from_header  # noqa: E402
-from closurecheck.scanlog import Sensor  # noqa: E402
+from closurecheck.core import se2  # noqa: E402
+from closurecheck.core.odometry import OdometryChain, noise_from_header  # noqa: E402
+from closurecheck.frontend import candidates, descriptors  # noqa: E402
+from closurecheck.frontend.keyframes import odometry_travel, select_keyframes  # noqa: E402
+from closurecheck.io.scanlog import Sensor  # noqa: E402
+from closurecheck.reporting import ground_truth  # noqa: E402
+from closurecheck.simulation import simulate  # noqa: E402
 
 SCENARIOS = ("warehouse", "ring", "yard")
 YAW_OK_RAD = math.radians(5.0)
 
 
 def _recall(kf, log, data, c, mask, opts):
-    return evaluate.candidate_recall(kf, log.truth[kf], data.t, data.travel, c.src[mask], c.dst[mask], opts)
+    return ground_truth.candidate_recall(kf, log.truth[kf], data.t, data.travel, c.src[mask], c.dst[mask], opts)
 
 
 def scenario_rows(seeds, rounds):
@@ -73,9 +76,9 @@ def scenario_rows(seeds, rounds):
             r = _recall(kf, log, data, c, np.ones(len(c), bool), opts)
             r_desc = _recall(kf, log, data, c, (c.sources & candidates.SOURCE_DESCRIPTOR) > 0, opts)
             r_prox = _recall(kf, log, data, c, (c.sources & candidates.SOURCE_PROXIMITY) > 0, opts)
-            _, dist, positive = evaluate.descriptor_pair_labels(data.descriptors.vectors, log.truth[kf],
+            _, dist, positive = ground_truth.descriptor_pair_labels(data.descriptors.vectors, log.truth[kf],
                                                                 data.t, data.travel, opts)
-            ap = evaluate.precision_recall(dist, positive).average_precision()
+            ap = ground_truth.precision_recall(dist, positive).average_precision()
             truth = se2.between(log.truth[c.src], log.truth[c.dst])
             same = (np.hypot(truth[:, 0], truth[:, 1]) <= 1.0) & (np.abs(truth[:, 2]) <= math.radians(30))
             err = np.abs(se2.wrap(c.yaw[same] - truth[same, 2:3]))
@@ -169,7 +172,7 @@ def scaling_rows(sizes, repeats, seed):
             b["wall"] = min(b["wall"], w1 - w0)
             b["brute"] = min(b["brute"], t3 - t2)
             if k not in recall:
-                recall[k] = (evaluate.candidate_recall(kf, log.truth[kf], log.t[kf], travel[kf], c.src, c.dst, opts),
+                recall[k] = (ground_truth.candidate_recall(kf, log.truth[kf], log.t[kf], travel[kf], c.src, c.dst, opts),
                              len(c))
     peaks = {}
     for k in sizes:
@@ -188,8 +191,8 @@ import pickle, sys
 sys.path.insert(0, {root!r})
 import numpy as np
 from closurecheck import candidates, descriptors
-from closurecheck.keyframes import odometry_travel
-from closurecheck.odometry import OdometryChain, noise_from_header
+from closurecheck.frontend.keyframes import odometry_travel
+from closurecheck.core.odometry import OdometryChain, noise_from_header
 with open({path!r}, "rb") as fh:
     sensor, header, t, odom, kf, ranges = pickle.load(fh)
 def hwm():
@@ -230,7 +233,7 @@ def render_markdown(args, scen, rot, scaling) -> str:
            f"--sizes {' '.join(map(str, args.sizes))} --repeats {args.repeats}`", ""]
     out += ["## Recall of true revisit events (targets: recall >= 0.95, <= 5 proposals per keyframe)", "",
             f"Each scenario driven {args.rounds} rounds of its route; default options.  Events, recall and "
-            "coverage as defined in `closurecheck.evaluate`; 'descriptor only' / 'proximity only' count the "
+            "coverage as defined in `closurecheck.reporting.ground_truth`; 'descriptor only' / 'proximity only' count the "
             "proposals carrying that source flag.  AP: average precision of 'descriptor distance <= t' over "
             "all keyframe pairs outside the exclusion gap.  Yaw: share of proposals that are true revisits "
             "whose best (any) yaw hypothesis is within 5 degrees of the truth.", "",

@@ -41,9 +41,12 @@ from scipy.spatial import cKDTree
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from closurecheck import se2  # noqa: E402
-from closurecheck.clique import CliqueOptions, max_clique  # noqa: E402
-from closurecheck.consistency import ConsistencyOptions, pairwise_consistency  # noqa: E402
+from closurecheck.core import se2  # noqa: E402
+from closurecheck.verification.clique import CliqueOptions, max_clique  # noqa: E402
+from closurecheck.verification.consistency import (  # noqa: E402
+    ConsistencyOptions,
+    pairwise_consistency,
+)
 
 RESULTS = Path(__file__).resolve().parent / "results" / "clique.md"
 

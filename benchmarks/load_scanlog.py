@@ -26,7 +26,7 @@ sys.path.insert(0, str(ROOT))
 
 READERS = {
     "closurecheck.read_scanlog": """
-from closurecheck.scanlog import read_scanlog
+from closurecheck.io.scanlog import read_scanlog
 log = read_scanlog(PATH)
 shape = log.ranges.shape
 """,
@@ -72,8 +72,8 @@ def measure(name: str, path: Path) -> dict:
 
 
 def make_log(path: Path, scans: int, beams: int) -> None:
-    from closurecheck import simulate
-    from closurecheck.scanlog import write_scanlog
+    from closurecheck.io.scanlog import write_scanlog
+    from closurecheck.simulation import simulate
 
     opts = simulate.SimOptions(beams=beams)
     write_scanlog(path, simulate.simulate_log("warehouse", seed=1, scans=scans, options=opts))

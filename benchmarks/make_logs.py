@@ -20,8 +20,8 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from closurecheck import simulate  # noqa: E402
-from closurecheck.scanlog import write_scanlog  # noqa: E402
+from closurecheck.io.scanlog import write_scanlog  # noqa: E402
+from closurecheck.simulation import simulate  # noqa: E402
 
 
 def targets(out: str, scenario: str, seed: int, sizes: list[tuple[int, int]]) -> list[tuple[int, int, Path]]:

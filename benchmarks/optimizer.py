@@ -30,9 +30,14 @@ from threadpoolctl import threadpool_limits
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from closurecheck import se2  # noqa: E402
-from closurecheck.kernels import Kernel  # noqa: E402
-from closurecheck.optimize import GncOptions, SolverOptions, optimize_gnc, optimize_graph  # noqa: E402
+from closurecheck.core import se2  # noqa: E402
+from closurecheck.core.kernels import Kernel  # noqa: E402
+from closurecheck.graph.solver import (  # noqa: E402
+    GncOptions,
+    SolverOptions,
+    optimize_gnc,
+    optimize_graph,
+)
 
 RESULTS = Path(__file__).resolve().parent / "results" / "optimizer.md"
 

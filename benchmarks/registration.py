@@ -54,9 +54,14 @@ from scipy.spatial import cKDTree  # noqa: E402
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from closurecheck import coarse, se2  # noqa: E402
-from closurecheck.raycast import cast  # noqa: E402
-from closurecheck.registration import RegistrationOptions, prepare_scan, register_prepared  # noqa: E402
+from closurecheck.core import se2  # noqa: E402
+from closurecheck.registration.icp import (  # noqa: E402
+    RegistrationOptions,
+    correlative,  # noqa: E402
+    prepare_scan,
+    register_prepared,
+)
+from closurecheck.simulation.raycast import cast  # noqa: E402
 
 RESULTS = Path(__file__).resolve().parent / "results" / "registration.md"
 BEARINGS = -2.356 + 0.00654 * np.arange(721)
@@ -220,12 +225,12 @@ def seeds_joint(pairs, rng):
                 seeds.append(np.array([guess[0], guess[1], yaw]))
         seeds = np.array(seeds)
         t0 = time.process_time()
-        poses, scores = coarse.search(ta.grid, sb.coarse_points, seeds, **kw)
+        poses, scores = correlative.search(ta.grid, sb.coarse_points, seeds, **kw)
         t1 = time.process_time()
-        found = [coarse.search(ta.grid, sb.coarse_points, q, **kw) for q in seeds]
+        found = [correlative.search(ta.grid, sb.coarse_points, q, **kw) for q in seeds]
         merged = np.concatenate([np.column_stack([sc, po]) for po, sc in found])
         merged = merged[np.argsort(-merged[:, 0], kind="stable")]
-        merged = merged[coarse.distinct(merged, opt.hypotheses, opt.hypothesis_separation_m,
+        merged = merged[correlative.distinct(merged, opt.hypotheses, opt.hypothesis_separation_m,
                                         opt.hypothesis_separation_rad)]
         t2 = time.process_time()
         same = len(merged) == len(scores) and np.allclose(merged[:, 0], scores) and np.allclose(merged[:, 1:], poses)
@@ -390,7 +395,7 @@ def main(argv=None):
         "Three seeds per pair, as candidate pairs bring them: the guess (truth perturbed by N(0, 0.5 m) per "
         "axis and N(0, 0.2 rad)) and two further yaw hypotheses, each outside the windows of those before; "
         "the pipeline's coarse settings (2 m, 0.6 rad, 0.01 rad step), 3 hypotheses.  CPU time of "
-        "`coarse.search` on all seeds at once against one search per seed whose results are merged as "
+        "`correlative.search` on all seeds at once against one search per seed whose results are merged as "
         "register_prepared merged them, interleaved per pair.",
         "",
         f"CPU time ratio joint / per seed: **{joint[:, 0].sum() / joint[:, 1].sum():.2f}** "

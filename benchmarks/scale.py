@@ -107,10 +107,12 @@ class _MemoryByStage:
 
 def child_run(args) -> None:
     """End to end on one log, as `closurecheck run` (read, run, score, write)."""
-    from closurecheck.inputs import load_input
-    from closurecheck.parallel import make_runner
-    from closurecheck.pipeline import RunConfig, run_log, write_outputs
-    from closurecheck.scoring import score_closures
+    from closurecheck.config import RunConfig
+    from closurecheck.io.inputs import load_input
+    from closurecheck.pipeline import run_log
+    from closurecheck.reporting.outputs import write_outputs
+    from closurecheck.reporting.scoring import score_closures
+    from closurecheck.runners.factory import make_runner
 
     profiler = None
     if args.profile_out:
@@ -153,10 +155,11 @@ def _candidate_block(log, pairs: int):
     """A contiguous block of ``pairs`` candidates from the middle of the log's proposals, with seeds."""
     import numpy as np
 
-    from closurecheck.candidates import prepare, proposal_noise, propose_for
-    from closurecheck.keyframes import select_keyframes
-    from closurecheck.pairwise_registration import seeds_for
-    from closurecheck.pipeline import RunConfig, effective_noise
+    from closurecheck.config import RunConfig
+    from closurecheck.frontend.candidates import prepare, proposal_noise, propose_for
+    from closurecheck.frontend.keyframes import select_keyframes
+    from closurecheck.pipeline import effective_noise
+    from closurecheck.registration.batch import seeds_for
 
     config = RunConfig()
     kf = select_keyframes(log.odom, config.keyframes)
@@ -175,8 +178,9 @@ def child_speedup(args) -> None:
     """Registration of one block of pairs: serial, pool of ``--jobs``, pool, serial."""
     import numpy as np
 
-    from closurecheck.inputs import load_input
-    from closurecheck.parallel import PoolRunner, SerialRunner
+    from closurecheck.io.inputs import load_input
+    from closurecheck.runners.pool import PoolRunner
+    from closurecheck.runners.serial import SerialRunner
 
     log, _ = load_input(args.log)
     config, points, src, dst, seeds, total = _candidate_block(log, args.pairs)
@@ -222,9 +226,9 @@ def child_icp(args) -> None:
         open3d_icp,
     )
 
-    from closurecheck import se2
-    from closurecheck.inputs import load_input
-    from closurecheck.registration import (
+    from closurecheck.core import se2
+    from closurecheck.io.inputs import load_input
+    from closurecheck.registration.icp import (
         RegistrationOptions,
         prepare_scan,
         register_prepared,
@@ -316,8 +320,8 @@ def _wait_for_quiet(limit_s: float) -> float:
 
 
 def _make_log(path: Path, scenario: str, seed: int, scans: int) -> float:
-    from closurecheck.scanlog import write_scanlog
-    from closurecheck.simulate import simulate_log
+    from closurecheck.io.scanlog import write_scanlog
+    from closurecheck.simulation.simulate import simulate_log
 
     t0 = time.perf_counter()
     write_scanlog(path, simulate_log(scenario, seed=seed, scans=scans))

@@ -29,16 +29,17 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from closurecheck import se2  # noqa: E402
-from closurecheck.candidates import prepare, proposal_noise  # noqa: E402
-from closurecheck.keyframes import select_keyframes  # noqa: E402
-from closurecheck.pairs import ExternalPairs  # noqa: E402
-from closurecheck.parallel import make_runner  # noqa: E402
-from closurecheck.pipeline import RunConfig, effective_noise, run_log  # noqa: E402
-from closurecheck.scoring import score_closures  # noqa: E402
-from closurecheck.simulate import simulate_log  # noqa: E402
-from closurecheck.trajectory import ate_rmse  # noqa: E402
-from closurecheck.verify import optimise_closures  # noqa: E402
+from closurecheck.config import RunConfig  # noqa: E402
+from closurecheck.core import se2  # noqa: E402
+from closurecheck.frontend.candidates import prepare, proposal_noise  # noqa: E402
+from closurecheck.frontend.keyframes import select_keyframes  # noqa: E402
+from closurecheck.io.pairs_csv import ExternalPairs  # noqa: E402
+from closurecheck.pipeline import effective_noise, run_log  # noqa: E402
+from closurecheck.reporting.scoring import score_closures  # noqa: E402
+from closurecheck.reporting.trajectory import ate_rmse  # noqa: E402
+from closurecheck.runners.factory import make_runner  # noqa: E402
+from closurecheck.simulation.simulate import simulate_log  # noqa: E402
+from closurecheck.verification.verify import optimise_closures  # noqa: E402
 
 
 def look_alike_pairs(log, config: RunConfig, count: int, rng) -> ExternalPairs:

@@ -1,7 +1,7 @@
 """Benchmark: how the verification stage scales with the number of keyframes.
 
 Builds realistic verification inputs without registration, the way
-tests/test_verify.py does: a simulated warehouse log (truth + drifting
+tests/verification/test_verify.py does: a simulated warehouse log (truth + drifting
 odometry), keyframes, odometry step covariances from the log header, true
 closures (truth delta plus the noise they claim) between revisits and
 "look-alike" wrong closures (a revisit's true delta moved sideways by one
@@ -9,7 +9,7 @@ aisle spacing, in runs along a pass so they are mutually consistent).  The
 candidate mix follows a real run: about two candidates per keyframe, one
 keyframe in three has a true closure, the rest are wrong.
 
-It times :func:`closurecheck.verify.verify` end to end and its parts, and
+It times :func:`closurecheck.verification.verify.verify` end to end and its parts, and
 compares the map-gate posterior (``relative_posterior``) with the former
 implementation (one LU and dense block-column solves) side by side in the same
 run, since the machine is shared and noisy.  Peak memory is measured with
@@ -38,11 +38,11 @@ from scipy.spatial import cKDTree
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from closurecheck import se2
-from closurecheck.keyframes import select_keyframes
-from closurecheck.odometry import keyframe_step_covariances, noise_from_header
-from closurecheck.optimize import normal_matrix
-from closurecheck.simulate import simulate_log
+from closurecheck.core import se2
+from closurecheck.core.odometry import keyframe_step_covariances, noise_from_header
+from closurecheck.frontend.keyframes import select_keyframes
+from closurecheck.graph.solver import normal_matrix
+from closurecheck.simulation.simulate import simulate_log
 
 CACHE = Path("/tmp/wt_map_cache")
 RESULTS = ROOT / "benchmarks" / "results" / "verification_scaling.md"
@@ -65,7 +65,7 @@ def scene(scans: int, seed: int = 3):
 
 
 def closures(truth, seed: int = 7, per_keyframe: float = 2.0, true_share: float = 0.3, min_gap: int = 30):
-    """Candidate closures: true revisits plus runs of look-alike wrong ones (as in tests/test_verify.py)."""
+    """Candidate closures: true revisits plus runs of look-alike wrong ones (as in tests/verification/test_verify.py)."""
     rng = np.random.default_rng(seed)
     n = len(truth)
     k = round(per_keyframe * n)
@@ -106,7 +106,7 @@ def closures(truth, seed: int = 7, per_keyframe: float = 2.0, true_share: float 
 # dense solves against block columns of the identity for every needed node.
 
 def relative_posterior_lu(poses, src, dst, delta, information, pair_i, pair_j, block_nodes=128):
-    """``closurecheck.mapgate.relative_posterior`` as it was before closurecheck.selected_inverse."""
+    """``closurecheck.verification.map_gate.relative_posterior`` as it was before closurecheck.graph.selected_inverse."""
     poses = np.asarray(poses, dtype=float)
     n = len(poses)
     pair_i = np.asarray(pair_i, dtype=np.intp)
@@ -145,12 +145,12 @@ def relative_posterior_lu(poses, src, dst, delta, information, pair_i, pair_j, b
 # Measurements (each variant in a fresh process, so its peak RSS is its own)
 
 PARTS = {
-    "map gate posterior": ("closurecheck.verify", "relative_posterior"),
-    "GNC": ("closurecheck.verify", "optimize_gnc"),
-    "residual pruning": ("closurecheck.verify", "prune_inconsistent_edges"),
-    "odometry gate": ("closurecheck.verify", "odometry_gate"),
-    "PCM pairs": ("closurecheck.verify", "pairwise_consistency"),
-    "max clique": ("closurecheck.verify", "max_clique"),
+    "map gate posterior": ("closurecheck.verification.verify", "relative_posterior"),
+    "GNC": ("closurecheck.verification.verify", "optimize_gnc"),
+    "residual pruning": ("closurecheck.verification.verify", "prune_inconsistent_edges"),
+    "odometry gate": ("closurecheck.verification.verify", "odometry_gate"),
+    "PCM pairs": ("closurecheck.verification.verify", "pairwise_consistency"),
+    "max clique": ("closurecheck.verification.verify", "max_clique"),
 }
 
 
@@ -166,7 +166,7 @@ def run_variant(scans: int, variant: str) -> dict:
 
     from threadpoolctl import threadpool_limits
 
-    import closurecheck.verify as verify_module
+    import closurecheck.verification.verify as verify_module
 
     truth, odom, step_cov = scene(scans)
     src, dst, delta, cov, quality, label = closures(truth)
@@ -199,8 +199,8 @@ def run_variant(scans: int, variant: str) -> dict:
 
 def posterior_side_by_side(scans: int) -> dict:
     """The first map-gate call of a verify() run: former vs current, time, peak traced memory, agreement."""
-    import closurecheck.verify as verify_module
-    from closurecheck.mapgate import relative_posterior
+    import closurecheck.verification.verify as verify_module
+    from closurecheck.verification.map_gate import relative_posterior
 
     truth, odom, step_cov = scene(scans)
     src, dst, delta, cov, quality, _ = closures(truth)
@@ -272,11 +272,11 @@ def refined_errors(args, c_old, c_new, diff, sample=15) -> dict:
 
 def lm_solve_side_by_side(poses, src, dst, delta, information, repeats=11) -> dict:
     """One damped LM solve on the same graph: former (SuperLU with its minimum-degree ordering every time,
-    default supernodes) vs current (closurecheck.optimize: ordering reused, small supernodes)."""
-    from closurecheck import optimize
+    default supernodes) vs current (closurecheck.graph.solver: ordering reused, small supernodes)."""
+    from closurecheck.graph import solver
 
-    args = optimize._validate(poses, src, dst, delta, information, None)
-    graph = optimize._Graph(*args)
+    args = solver._validate(poses, src, dst, delta, information, None)
+    graph = solver._Graph(*args)
     layout = graph.layout(np.ones(len(args[1]), dtype=bool))
     e, _ = graph.errors(args[0])
     data, grad = graph.linearise(args[0], e, np.ones(len(args[1])), layout)
@@ -289,7 +289,7 @@ def lm_solve_side_by_side(poses, src, dst, delta, information, repeats=11) -> di
         return lu.solve(-grad)
 
     def current():
-        return optimize._solve(layout, data, -grad, optimize.SolverOptions())
+        return solver._solve(layout, data, -grad, solver.SolverOptions())
 
     current()  # the first solve of a layout computes the ordering
     times = {"former": [], "current": []}
@@ -349,8 +349,8 @@ def main(argv=None) -> int:
         "",
         ("Inputs: simulated 'warehouse' log (seed 3), keyframes, odometry step covariances from the header; "
         "about two candidates per keyframe, 30% true revisits (truth + claimed noise), the rest look-alike "
-        "closures in consistent runs (as in tests/test_verify.py).  'former' is the map-gate posterior by "
-        "SuperLU block-column solves (kept in this script), 'current' is closurecheck.mapgate as committed; "
+        "closures in consistent runs (as in tests/verification/test_verify.py).  'former' is the map-gate posterior by "
+        "SuperLU block-column solves (kept in this script), 'current' is closurecheck.verification.map_gate as committed; "
         "everything else is the same (current) code, so the GNC and pruning columns include the faster LM "
         "solves in both rows (their own side by side is under 'Same results').  Each run is a fresh "
         "process; peak RSS is that process's maximum resident set (the inputs alone take the 'before' "

@@ -10,7 +10,7 @@ import sys
 import traceback
 from pathlib import Path
 
-from . import __version__
+from ._version import __version__
 from .errors import EXIT_BAD_INPUT, EXIT_INTERNAL, EXIT_OK, InputError
 
 
@@ -35,7 +35,7 @@ def _pose_arg(text: str):
 def _cmd_info(args) -> int:
     import numpy as np
 
-    from .scanlog import read_scanlog
+    from .io.scanlog import read_scanlog
 
     log = read_scanlog(args.log)
     s = log.sensor
@@ -56,8 +56,8 @@ def _cmd_info(args) -> int:
 
 
 def _cmd_simulate(args) -> int:
-    from . import simulate
-    from .scanlog import write_scanlog
+    from .io.scanlog import write_scanlog
+    from .simulation import simulate
 
     log = simulate.simulate_log(args.scenario, seed=args.seed, scans=args.scans)
     write_scanlog(args.out, log)
@@ -67,7 +67,7 @@ def _cmd_simulate(args) -> int:
 
 
 def _recording_choice(args):
-    from .inputs import RecordingChoice
+    from .io.inputs import RecordingChoice
 
     return RecordingChoice(scan_topic=args.scan_topic, odom_topic=args.odom_topic, mount=args.mount,
                            max_odom_gap_s=args.max_odom_gap)
@@ -75,8 +75,8 @@ def _recording_choice(args):
 
 def _run_config(args):
     """Defaults, then --config FILE, then the command-line options."""
-    from .config import load_toml, merge
-    from .pipeline import RunConfig
+    from .config import RunConfig, merge
+    from .io.settings_file import load_toml
 
     config = RunConfig()
     if args.config:
@@ -107,7 +107,7 @@ def _run_config(args):
 
 def _cmd_run(args) -> int:
     from .pipeline import run_paths
-    from .progress import Progress
+    from .reporting.terminal import Progress
 
     config = _run_config(args)
     progress = Progress(quiet=args.quiet, verbose=args.verbose)
@@ -127,7 +127,7 @@ def _cmd_run(args) -> int:
 
 
 def _cmd_demo(args) -> int:
-    from .pipeline import DEMO_LOG
+    from .io.inputs import DEMO_LOG
 
     args.logs = [str(DEMO_LOG)]
     code = _cmd_run(args)
@@ -139,9 +139,9 @@ def _cmd_demo(args) -> int:
 def _cmd_score(args) -> int:
     import json
 
-    from .atomic import write_text
-    from .inputs import load_input
-    from .scoring import format_score, score_pairs, score_run_dir
+    from .io.atomic import write_text
+    from .io.inputs import load_input
+    from .reporting.scoring import format_score, score_pairs, score_run_dir
 
     run_dir = Path(args.run_dir)
     log_path = args.log
@@ -152,8 +152,8 @@ def _cmd_score(args) -> int:
             raise InputError("cannot tell which log this run used; pass --log LOG", run_dir) from None
     log, _ = load_input(log_path, _recording_choice(args))
     if args.candidates:
-        from .keyframes import select_keyframes
-        from .pairs import read_pairs
+        from .frontend.keyframes import select_keyframes
+        from .io.pairs_csv import read_pairs
 
         pairs = read_pairs(args.candidates, len(log))
         score = score_pairs(log, pairs, select_keyframes(log.odom))
@@ -167,8 +167,8 @@ def _cmd_score(args) -> int:
 
 
 def _cmd_convert(args) -> int:
-    from . import recordings
-    from .scanlog import write_scanlog
+    from .io import recordings
+    from .io.scanlog import write_scanlog
 
     opts = recordings.RecordingOptions() if args.max_odom_gap is None else \
         recordings.RecordingOptions(max_odom_gap_s=args.max_odom_gap)
@@ -182,7 +182,7 @@ def _cmd_convert(args) -> int:
 
 
 def build_parser() -> argparse.ArgumentParser:
-    from . import simulate
+    from .simulation import simulate
 
     parser = _Parser(prog="closurecheck", description="Verify loop closures in 2D LiDAR scan logs.")
     parser.add_argument("--version", action="version", version=f"closurecheck {__version__}")

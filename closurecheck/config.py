@@ -1,26 +1,24 @@
-"""Run configuration: nested frozen dataclasses <-> TOML.
+"""The run's configuration: one frozen record of every stage's options, built from defaults, a TOML file and the command line.
 
-A run's configuration is one dataclass whose fields are the option
-dataclasses of the stages (one TOML table each).  ``--config FILE`` loads a
-TOML file over the defaults, command-line options go on top, and the
-effective configuration is written next to the outputs so that a run can be
-reproduced with ``--config DIR/config.toml``.
+``--config FILE`` loads a TOML file over the defaults, command-line options
+go on top, and the effective configuration is written next to the outputs
+so that a run can be reproduced with ``--config DIR/config.toml``
+(docs/cli.md, "Settings").
 """
 
 from __future__ import annotations
 
 import dataclasses
 import math
-import sys
 import typing
-from pathlib import Path
+from dataclasses import dataclass
 
 from .errors import InputError
-
-if sys.version_info >= (3, 11):
-    import tomllib
-else:  # pragma: no cover - exercised on Python 3.10 only
-    import tomli as tomllib
+from .frontend.candidates import CandidateOptions
+from .frontend.descriptors import DescriptorOptions
+from .frontend.keyframes import KeyframeOptions
+from .registration.icp import RegistrationOptions
+from .verification.verify import VerifyOptions
 
 
 def _field_types(cls) -> dict:
@@ -98,59 +96,46 @@ def merge(obj, updates: dict, path=None, prefix: str = ""):
     return new
 
 
-def load_toml(path) -> dict:
-    """Parse a TOML file; syntax errors become one-line InputErrors."""
-    path = Path(path)
-    try:
-        with open(path, "rb") as fh:
-            return tomllib.load(fh)
-    except FileNotFoundError:
-        raise InputError("no such file", path) from None
-    except IsADirectoryError:
-        raise InputError("is a directory, expected a TOML file", path) from None
-    except tomllib.TOMLDecodeError as exc:
-        raise InputError(f"not valid TOML ({exc})", path) from None
-    except UnicodeDecodeError:
-        raise InputError("not valid UTF-8 text", path) from None
 
+@dataclass(frozen=True)
+class OdometryOverrides:
+    """Odometry noise model settings that override the log header's.
 
-def _toml_value(v) -> str:
-    if isinstance(v, bool):
-        return "true" if v else "false"
-    if isinstance(v, float):
-        return repr(v) if math.isfinite(v) else ('inf' if v > 0 else '-inf') if not math.isnan(v) else "nan"
-    if isinstance(v, int):
-        return str(v)
-    if isinstance(v, str):
-        return '"' + v.replace("\\", "\\\\").replace('"', '\\"') + '"'
-    if isinstance(v, (list, tuple)):
-        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
-    if v is None:
-        raise ValueError("None cannot be written to TOML")
-    return _toml_value(str(v))
-
-
-def to_toml(obj, header: str = "") -> str:
-    """Serialise a dataclass of option dataclasses as TOML (one table each).
-
-    Fields whose value is None are left out (TOML has no null); loading the
-    file then falls back to the same default.
+    None keeps the value from the log's ``odometry_noise`` header key, or the
+    built-in default when the log has none (docs/formats.md).
     """
-    lines = [f"# {line}" for line in header.splitlines()] if header else []
-    scalars = []
-    tables = []
-    for f in dataclasses.fields(obj):
-        v = getattr(obj, f.name)
-        if dataclasses.is_dataclass(v):
-            tables.append((f.name, v))
-        elif v is not None:
-            scalars.append(f"{f.name} = {_toml_value(v)}")
-    lines += scalars
-    for name, sub in tables:
-        lines.append("")
-        lines.append(f"[{name}]")
-        for g in dataclasses.fields(sub):
-            v = getattr(sub, g.name)
-            if v is not None and not dataclasses.is_dataclass(v):
-                lines.append(f"{g.name} = {_toml_value(v)}")
-    return "\n".join(lines) + "\n"
+
+    translation_m_per_sqrt_m: float | None = None
+    heading_rad_per_sqrt_m: float | None = None
+    heading_rad_per_sqrt_rad: float | None = None
+
+
+@dataclass(frozen=True)
+class RunConfig:
+    """Every setting of a run; one TOML table per stage (docs/cli.md, "Settings").
+
+    jobs : worker processes for registration (0 = all cores, 1 = serial).
+    batch_pairs : candidate pairs per unit of parallel work.
+    """
+
+    jobs: int = 0
+    batch_pairs: int = 64
+    keyframes: KeyframeOptions = KeyframeOptions()
+    odometry: OdometryOverrides = OdometryOverrides()
+    descriptors: DescriptorOptions = DescriptorOptions()
+    candidates: CandidateOptions = CandidateOptions()
+    # Candidates arrive with guesses good to a metre or so (odometry shrunk
+    # towards "same place", descriptor yaw), so the coarse search needs a
+    # smaller window than registration's own default for arbitrary pairs;
+    # a third of the area costs a third of the time.  A fixed 0.01 rad
+    # angle step keeps long-range scans (30 m) from multiplying the angles
+    # searched; ICP refines the angle anyway.
+    registration: RegistrationOptions = RegistrationOptions(coarse_window_m=2.0, coarse_window_rad=0.6,
+                                                            coarse_angle_step_rad=0.01)
+    verify: VerifyOptions = VerifyOptions()
+
+    def __post_init__(self):
+        if self.jobs < 0:
+            raise InputError(f"jobs must be >= 0 (0 = all cores), got {self.jobs}")
+        if self.batch_pairs < 1:
+            raise InputError(f"batch_pairs must be >= 1, got {self.batch_pairs}")

@@ -3,8 +3,8 @@
 import pytest
 
 from closurecheck import cli
-from closurecheck.scanlog import write_scanlog
-from closurecheck.simulate import simulate_log
+from closurecheck.io.scanlog import write_scanlog
+from closurecheck.simulation.simulate import simulate_log
 
 # A ring-corridor log with a seed other than the demo's; 900 scans reach the
 # first revisits of the second lap.

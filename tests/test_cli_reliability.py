@@ -6,9 +6,10 @@ import json
 
 import pytest
 
-from closurecheck import atomic, cli, pipeline
-from closurecheck.scanlog import write_scanlog
-from closurecheck.simulate import simulate_log
+from closurecheck import cli, pipeline
+from closurecheck.io import atomic
+from closurecheck.io.scanlog import write_scanlog
+from closurecheck.simulation.simulate import simulate_log
 
 
 @pytest.fixture(scope="module")

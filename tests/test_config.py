@@ -4,8 +4,9 @@ import dataclasses
 
 import pytest
 
-from closurecheck.config import load_toml, merge, to_toml
+from closurecheck.config import merge
 from closurecheck.errors import InputError
+from closurecheck.io.settings_file import load_toml, to_toml
 
 
 @dataclasses.dataclass(frozen=True)

@@ -11,8 +11,8 @@ from hypothesis import strategies as st
 
 from closurecheck import cli
 from closurecheck.errors import InputError
-from closurecheck.pairs import read_pairs
-from closurecheck.scanlog import read_scanlog
+from closurecheck.io.pairs_csv import read_pairs
+from closurecheck.io.scanlog import read_scanlog
 
 BEAMS = 6
 HEADER = {"scanlog": 1, "sensor": {"first_angle": -1.0, "angle_step": 0.4, "beams": BEAMS,

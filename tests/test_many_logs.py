@@ -11,8 +11,8 @@ import json
 import pytest
 
 from closurecheck import cli
-from closurecheck.scanlog import write_scanlog
-from closurecheck.simulate import simulate_log
+from closurecheck.io.scanlog import write_scanlog
+from closurecheck.simulation.simulate import simulate_log
 
 SCANS = 250
 BAD_LINE = 40  # line number in the file (the header is line 1)

@@ -14,9 +14,9 @@ import numpy as np
 import pytest
 
 from closurecheck import cli
-from closurecheck.config import load_toml, merge
-from closurecheck.graphio import read_graph
-from closurecheck.pipeline import RunConfig
+from closurecheck.config import RunConfig, merge
+from closurecheck.io.graph_file import read_graph
+from closurecheck.io.settings_file import load_toml
 
 
 @pytest.fixture(scope="module")

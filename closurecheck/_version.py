@@ -1,0 +1,3 @@
+"""The version of closurecheck, in one place (pyproject.toml reads it from here)."""
+
+__version__ = "0.1.0"

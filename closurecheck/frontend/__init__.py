@@ -1,0 +1,1 @@
+"""Loop-closure proposals: keyframes, scan descriptors and candidate pairs."""

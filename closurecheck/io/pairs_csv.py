@@ -1,0 +1,224 @@
+"""Candidate-pairs CSV files (contract section 4).
+
+Input (``--candidates PAIRS.csv``): a header row, required columns ``from``
+and ``to`` (scan ids), optional ``dx,dy,dtheta`` (an initial guess of the
+delta ``from^-1 ∘ to``, metres and radians, in the frame of ``from``).  Other
+columns are ignored, so a ``candidates.csv`` written by the tool can be read
+back as input (its ``dx,dy,dtheta`` then serve as guesses).  A row may leave
+all three guess cells empty (no guess for that pair); filling only some of
+them is an error.
+
+Output (``candidates.csv``): columns ``from,to,verdict,reason,dx,dy,dtheta``
+followed by any extra columns; ``verdict`` is ``accepted`` or ``rejected``.
+Unknown values (e.g. the delta of a pair whose registration never ran) are
+written as empty cells.  The file appears atomically.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import math
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from ..errors import InputError
+from .atomic import atomic_open
+
+REQUIRED_COLUMNS = ("from", "to")
+GUESS_COLUMNS = ("dx", "dy", "dtheta")
+OUTPUT_COLUMNS = ("from", "to", "verdict", "reason", "dx", "dy", "dtheta")
+VERDICTS = ("accepted", "rejected")
+
+
+@dataclass(frozen=True, eq=False)
+class ExternalPairs:
+    """Candidate pairs read from a CSV file.
+
+    src, dst : (P,) int64 scan ids of the ``from`` and ``to`` columns, in
+        file order and orientation (the delta is ``src^-1 ∘ dst``).
+    guess : (P, 3) float64 initial delta in the frame of src; rows of NaN
+        where the file gives no guess.
+    lines : (P,) int64 line number of each pair in the file (for messages).
+    source : name of the file.
+    """
+
+    src: np.ndarray
+    dst: np.ndarray
+    guess: np.ndarray
+    lines: np.ndarray
+    source: str = ""
+
+    def __len__(self) -> int:
+        return len(self.src)
+
+    @property
+    def scan_ids(self) -> np.ndarray:
+        """Sorted unique scan ids named by the pairs."""
+        return np.union1d(self.src, self.dst).astype(np.int64)
+
+
+def _parse_id(text: str, column: str, scan_count: int, path, line: int) -> int:
+    s = text.strip()
+    try:
+        value = int(s)
+    except ValueError:
+        raise InputError(f'column "{column}": scan id must be an integer, got {s!r}', path, line) from None
+    if not 0 <= value < scan_count:
+        raise InputError(f'column "{column}": unknown scan id {value} (the log has scans 0..{scan_count - 1})',
+                         path, line)
+    return value
+
+
+def _parse_number(text: str, column: str, path, line: int) -> float:
+    s = text.strip()
+    try:
+        value = float(s)
+    except ValueError:
+        raise InputError(f'column "{column}": not a number: {s!r}', path, line) from None
+    if not math.isfinite(value):
+        raise InputError(f'column "{column}": value must be finite, got {s!r}', path, line)
+    return value
+
+
+def read_pairs(path, scan_count: int) -> ExternalPairs:
+    """Read a candidate-pairs CSV (contract section 4) for a log of ``scan_count`` scans.
+
+    Raises :class:`InputError` naming the file and line for: a missing
+    file or header row, missing ``from``/``to`` columns, only part of the
+    ``dx,dy,dtheta`` columns, non-integer or unknown scan ids, ``from ==
+    to``, non-numeric or non-finite guesses, a row with too few cells, and
+    a pair given twice (in either orientation).
+    """
+    path = Path(path)
+    try:
+        text = path.read_bytes().decode("utf-8-sig")
+    except FileNotFoundError:
+        raise InputError("no such file", path) from None
+    except IsADirectoryError:
+        raise InputError("is a directory, expected a CSV file", path) from None
+    except PermissionError:
+        raise InputError("permission denied", path) from None
+    except UnicodeDecodeError:
+        raise InputError("not UTF-8 text", path) from None
+    reader = csv.reader(io.StringIO(text, newline=""))
+    try:
+        header = next(reader, None)
+        while header is not None and not any(c.strip() for c in header):
+            header = next(reader, None)
+        if header is None:
+            raise InputError("missing header row (expected columns from,to)", path, 1)
+        header_line = reader.line_num
+        names = [h.strip() for h in header]
+        for name in REQUIRED_COLUMNS:
+            if name not in names:
+                raise InputError(f'missing column "{name}" (header has: {",".join(names)})', path, header_line)
+        present = [c for c in GUESS_COLUMNS if c in names]
+        if present and len(present) != len(GUESS_COLUMNS):
+            missing = [c for c in GUESS_COLUMNS if c not in names]
+            raise InputError(f'guess columns need all of dx,dy,dtheta; missing "{missing[0]}"', path, header_line)
+        dup = [n for n in set(names) if n and names.count(n) > 1 and n in REQUIRED_COLUMNS + GUESS_COLUMNS]
+        if dup:
+            raise InputError(f'column "{dup[0]}" appears twice in the header', path, header_line)
+        col = {n: names.index(n) for n in REQUIRED_COLUMNS + tuple(present)}
+        width = max(col.values()) + 1
+
+        src, dst, guess, lines = [], [], [], []
+        seen: dict[tuple[int, int], int] = {}
+        for row in reader:
+            line = reader.line_num
+            if not any(c.strip() for c in row):
+                continue
+            if len(row) < width:
+                raise InputError(f"row has {len(row)} cells, the header needs at least {width}", path, line)
+            a = _parse_id(row[col["from"]], "from", scan_count, path, line)
+            b = _parse_id(row[col["to"]], "to", scan_count, path, line)
+            if a == b:
+                raise InputError(f"from and to are the same scan ({a})", path, line)
+            key = (min(a, b), max(a, b))
+            if key in seen:
+                raise InputError(f"pair ({a}, {b}) given twice (first on line {seen[key]})", path, line)
+            seen[key] = line
+            g = (math.nan, math.nan, math.nan)
+            if present:
+                cells = [row[col[c]].strip() for c in GUESS_COLUMNS]
+                filled = [bool(c) for c in cells]
+                if all(filled):
+                    g = tuple(_parse_number(row[col[c]], c, path, line) for c in GUESS_COLUMNS)
+                elif any(filled):
+                    empty = GUESS_COLUMNS[filled.index(False)]
+                    raise InputError(f'column "{empty}" is empty; give all of dx,dy,dtheta or none', path, line)
+            src.append(a)
+            dst.append(b)
+            guess.append(g)
+            lines.append(line)
+    except csv.Error as exc:
+        raise InputError(f"malformed CSV ({exc})", path, reader.line_num) from None
+    return ExternalPairs(
+        src=np.asarray(src, dtype=np.int64),
+        dst=np.asarray(dst, dtype=np.int64),
+        guess=np.asarray(guess, dtype=np.float64).reshape(-1, 3),
+        lines=np.asarray(lines, dtype=np.int64),
+        source=path.name,
+    )
+
+
+def _cell(value) -> str:
+    if value is None:
+        return ""
+    if isinstance(value, (bool, np.bool_)):
+        return "true" if value else "false"
+    if isinstance(value, (int, np.integer)):
+        return str(int(value))
+    if isinstance(value, (float, np.floating)):
+        v = float(value)
+        # repr is the shortest text that reads back to the same float.
+        return "" if math.isnan(v) else repr(v)
+    return str(value)
+
+
+def write_candidates(path, src, dst, verdict, reason, delta, extra: dict | None = None) -> None:
+    """Write ``candidates.csv`` (contract section 4) atomically.
+
+    Parameters
+    ----------
+    path : output file.
+    src, dst : (P,) scan ids (``from``, ``to``).
+    verdict : (P,) strings, each ``accepted`` or ``rejected``.
+    reason : (P,) short codes naming the check that decided.
+    delta : (P, 3) measured delta ``from^-1 ∘ to`` (metres, radians, frame of
+        ``from``); NaN where unknown, written as empty cells.
+    extra : optional mapping of column name to (P,) values, written after
+        the contract columns in the mapping's order.
+    """
+    src = np.asarray(src).reshape(-1)
+    dst = np.asarray(dst).reshape(-1)
+    n = len(src)
+    verdict = [str(v) for v in np.asarray(verdict, dtype=object).reshape(-1)]
+    reason = [str(v) for v in np.asarray(reason, dtype=object).reshape(-1)]
+    delta = np.asarray(delta, dtype=float).reshape(-1, 3)
+    extra = dict(extra or {})
+    for name, column in (("dst", dst), ("verdict", verdict), ("reason", reason), ("delta", delta)):
+        if len(column) != n:
+            raise ValueError(f"write_candidates: {name} has {len(column)} rows, src has {n}")
+    bad = sorted(set(verdict) - set(VERDICTS))
+    if bad:
+        raise ValueError(f"write_candidates: verdict must be one of {VERDICTS}, got {bad[0]!r}")
+    extra_cols = []
+    for name, column in extra.items():
+        if name in OUTPUT_COLUMNS:
+            raise ValueError(f"write_candidates: extra column {name!r} clashes with a contract column")
+        column = list(np.asarray(column, dtype=object).reshape(-1))
+        if len(column) != n:
+            raise ValueError(f"write_candidates: extra column {name!r} has {len(column)} rows, src has {n}")
+        extra_cols.append(column)
+    with atomic_open(path, "w") as fh:
+        writer = csv.writer(fh, lineterminator="\n")
+        writer.writerow(list(OUTPUT_COLUMNS) + list(extra))
+        for i in range(n):
+            row = [_cell(int(src[i])), _cell(int(dst[i])), verdict[i], reason[i],
+                   _cell(delta[i, 0]), _cell(delta[i, 1]), _cell(delta[i, 2])]
+            row.extend(_cell(c[i]) for c in extra_cols)
+            writer.writerow(row)

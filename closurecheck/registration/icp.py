@@ -1,0 +1,879 @@
+"""Scan registration: point-to-line ICP with a coarse global stage and a covariance.
+
+Given two 2D scans, each as (N, 2) points in its own sensor frame (metres),
+find the pose ``T = [x, y, theta]`` of the source scan in the target scan's
+frame, so that ``target ≈ T · source``.  For a target scan A taken at pose a
+and a source scan B taken at pose b, ``T`` estimates ``a^-1 ∘ b``
+(contract section 5).
+
+Stages
+------
+1. Per-scan preparation (:func:`prepare_scan`, done once per scan and reused
+   for every pair it takes part in): a local line fitted to each point's
+   neighbourhood (centroid, normal facing the sensor, thickness; by default
+   with a quadratic term so that curved surfaces are followed, not replaced
+   by chords), each reading's influence on those fits (for the covariance),
+   a kd-tree over the points that lie on such lines, an evenly spread subset
+   and the likelihood grid of closurecheck/coarse.py.
+2. Optional coarse stage (Olson 2009 correlative matching) around each seed
+   guess, keeping the best few distinct hypotheses.
+3. Point-to-line ICP (A. Censi, "An ICP variant using a point-to-line
+   metric", ICRA 2008) from each hypothesis: nearest line point by kd-tree;
+   a match needs both points on lines, normals that agree (both face their
+   sensors, so the two faces of a thin wall never match) and the source
+   point inside the target line's support; residual = offset of the
+   transformed source point from the target's local line, weighted by the
+   inverse of its predicted variance and by a robust kernel
+   (closurecheck/kernels.py) scaled by the median absolute deviation;
+   damped Gauss-Newton steps on [x, y, theta], re-associating only after
+   the pose has moved by ``reassociate_m``.  Point-to-point ICP
+   (closed-form 2D Procrustes step) is available as an option.
+4. The refined hypotheses are ranked by a point-distance fit score; the
+   best is returned with its covariance (closurecheck/covariance.py: the
+   Censi closed form by default) and the gap to the best distinct
+   competitor.
+
+Noise model: each reading has Gaussian range noise along its beam (the beam
+direction is the point's direction from the sensor, the origin of its scan
+frame), or isotropic point noise (``point_noise="isotropic"``); sigma is
+estimated from the residuals.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, fields, replace
+
+import numpy as np
+from scipy.spatial import cKDTree
+
+from ..core.kernels import kernel_from_name
+from ..errors import InputError
+from . import correlative as _coarse
+from . import covariance as _cov
+
+# Consistent-scale factor of the median absolute deviation for Gaussian data
+# (1 / Phi^-1(3/4)); standard robust-statistics constant.
+_MAD_TO_SIGMA = 1.482602218505602
+
+
+@dataclass(frozen=True)
+class RegistrationOptions:
+    """Settings of scan preparation and registration (SI units, names carry them).
+
+    Line features (used by :func:`prepare_scan`)
+        line_neighbours: neighbours (including the point) used to fit each
+            local line.
+        line_radius_m: neighbours farther than this are not used.
+        min_line_points: fewer neighbours than this give no line.
+        max_line_thickness: largest ratio of the neighbourhood's spread
+            across the line to its spread along it (square root of the
+            eigenvalue ratio); thicker neighbourhoods (corners, clutter,
+            curved objects) give no line.
+        line_model: ``"quadratic"`` fits the offset across each local line
+            as a parabola along it, so curved surfaces are followed rather
+            than replaced by chords; ``"line"`` uses the straight line.
+        point_noise: ``"range"`` (noise along each beam) or ``"isotropic"``.
+        min_incidence_cos: floor on |cos| of the angle between a beam and the
+            line normal in the noise model, so that grazing readings are not
+            trusted more than this (common practice).
+
+    Correspondences and solver
+        method: ``"point_to_line"`` or ``"point_to_point"``.
+        max_correspondence_m: pairs farther apart are not matched.
+        max_normal_angle_rad: pairs whose normals (both facing their sensors)
+            differ by more are not matched; rejects the far side of a thin
+            wall.  Source points without a line are then not matched either;
+            a value >= pi switches the check off and matches every point.
+        max_extrapolation_m: a source point must fall within the target
+            line's support (the extent of the readings that fitted it) plus
+            this margin, measured along the line.
+        kernel: robust kernel name (closurecheck.core.kernels), e.g. ``"huber"``,
+            ``"cauchy"``, ``"l2"``.
+        kernel_scale: kernel threshold in robust standard deviations
+            (1.345 gives Huber's estimator 95% efficiency on Gaussian data).
+        min_noise_m: floor on the robust residual scale (metres).
+        max_iterations, tolerance_m, tolerance_rad: Gauss-Newton stops when
+            a step moves less than both tolerances.
+        reassociate_m: correspondences are searched again only after the
+            pose has moved some source point by this much since the last
+            search.
+        damping: Levenberg-Marquardt damping as a fraction of the Hessian's
+            mean eigenvalue in scaled coordinates; keeps steps along an
+            unconstrained direction small.
+        inlier_sigmas: a correspondence is an inlier when its normalised
+            residual is within this many robust standard deviations.
+        fit_sigma_m: distance scale of the fit score used to rank hypotheses.
+
+    Covariance
+        covariance: ``"censi"`` (Censi 2007 closed form, accounts for shared
+            target lines) or ``"hessian"`` (sigma^2 H^-1).
+        degeneracy_threshold: smallest/largest Hessian eigenvalue ratio
+            below which a direction counts as unconstrained.
+        unobservable_sigma_m: standard deviation added along unconstrained
+            directions (metres; theta scaled by the scan's length scale).
+            ICP leaves the estimate near its start there (the guess or the
+            coarse hypothesis), so this should exceed that start's error.
+
+    Coarse stage (Olson 2009)
+        coarse: run the coarse search around each seed before ICP.
+        coarse_window_m, coarse_window_rad: half-widths of the search window
+            around a seed (x and y in metres, theta in radians).
+        coarse_resolution_m: likelihood grid cell size.
+        coarse_sigma_m: blur of the likelihood grid.
+        coarse_block_cells: edge (cells, rounded up to a power of two) of the
+            largest block of the branch-and-bound pyramid.
+        coarse_angle_step_rad: rotation step; 0 chooses one cell of motion
+            at the 90th-percentile range.
+        coarse_max_points: source points used by the coarse search.
+        hypotheses: distinct coarse hypotheses refined by ICP.
+        hypothesis_separation_m, hypothesis_separation_rad: two poses closer
+            than both count as the same hypothesis.
+    """
+
+    line_neighbours: int = 16
+    line_radius_m: float = 0.3
+    min_line_points: int = 5
+    max_line_thickness: float = 0.3
+    line_model: str = "quadratic"
+    point_noise: str = "range"
+    min_incidence_cos: float = 0.2
+
+    method: str = "point_to_line"
+    max_correspondence_m: float = 0.5
+    max_normal_angle_rad: float = 1.0
+    max_extrapolation_m: float = 0.0
+    kernel: str = "huber"
+    kernel_scale: float = 1.345
+    min_noise_m: float = 0.001
+    max_iterations: int = 30
+    tolerance_m: float = 1e-4
+    tolerance_rad: float = 2e-5
+    reassociate_m: float = 0.01
+    damping: float = 1e-3
+    inlier_sigmas: float = 3.0
+    fit_sigma_m: float = 0.1
+
+    covariance: str = "censi"
+    degeneracy_threshold: float = 0.01
+    unobservable_sigma_m: float = 5.0
+
+    coarse: bool = True
+    coarse_window_m: float = 3.5
+    coarse_window_rad: float = 0.85
+    coarse_resolution_m: float = 0.1
+    coarse_sigma_m: float = 0.1
+    coarse_block_cells: int = 16
+    coarse_angle_step_rad: float = 0.0
+    coarse_max_points: int = 160
+    hypotheses: int = 3
+    hypothesis_separation_m: float = 0.5
+    hypothesis_separation_rad: float = 0.15
+
+    def __post_init__(self):
+        for f in fields(self):
+            v = getattr(self, f.name)
+            kind = type(f.default)
+            if kind is bool or kind is str:
+                if not isinstance(v, kind):
+                    raise InputError(f"registration option {f.name} must be a {kind.__name__}, got {v!r}")
+                continue
+            if isinstance(v, bool) or not isinstance(v, (int, float, np.integer, np.floating)) or not np.isfinite(v):
+                raise InputError(f"registration option {f.name} must be a finite number, got {v!r}")
+        positive = ("line_radius_m", "max_line_thickness", "max_correspondence_m", "max_normal_angle_rad",
+                    "kernel_scale", "min_noise_m", "tolerance_m", "tolerance_rad", "inlier_sigmas",
+                    "reassociate_m",
+                    "fit_sigma_m", "unobservable_sigma_m", "coarse_resolution_m", "coarse_sigma_m",
+                    "hypothesis_separation_m", "hypothesis_separation_rad", "min_incidence_cos")
+        for name in positive:
+            if not getattr(self, name) > 0:
+                raise InputError(f"registration option {name} must be positive, got {getattr(self, name)!r}")
+        nonneg = ("damping", "degeneracy_threshold", "max_extrapolation_m", "coarse_window_m", "coarse_window_rad",
+                  "coarse_angle_step_rad")
+        for name in nonneg:
+            if not getattr(self, name) >= 0:
+                raise InputError(f"registration option {name} must be >= 0, got {getattr(self, name)!r}")
+        ints = {"line_neighbours": 3, "min_line_points": 3, "max_iterations": 1, "coarse_block_cells": 1,
+                "coarse_max_points": 3, "hypotheses": 1}
+        for name, low in ints.items():
+            v = getattr(self, name)
+            if isinstance(v, bool) or int(v) != v or v < low:
+                raise InputError(f"registration option {name} must be an integer >= {low}, got {v!r}")
+        if self.min_line_points > self.line_neighbours:
+            raise InputError("registration option min_line_points must not exceed line_neighbours")
+        if self.line_model not in ("quadratic", "line"):
+            raise InputError(f"line_model must be 'quadratic' or 'line', got {self.line_model!r}")
+        if self.point_noise not in ("range", "isotropic"):
+            raise InputError(f"point_noise must be 'range' or 'isotropic', got {self.point_noise!r}")
+        if self.method not in ("point_to_line", "point_to_point"):
+            raise InputError(f"method must be 'point_to_line' or 'point_to_point', got {self.method!r}")
+        if self.covariance not in ("censi", "hessian"):
+            raise InputError(f"covariance must be 'censi' or 'hessian', got {self.covariance!r}")
+        if self.min_incidence_cos > 1:
+            raise InputError("min_incidence_cos must be in (0, 1]")
+        kernel_from_name(self.kernel, self.kernel_scale)   # raises InputError on an unknown name
+
+    def preparation_key(self) -> tuple:
+        """The settings that shape a :class:`PreparedScan` (scans must agree on them)."""
+        return (self.line_neighbours, self.line_radius_m, self.min_line_points, self.max_line_thickness,
+                self.line_model,
+                self.point_noise, self.min_incidence_cos, self.coarse_resolution_m, self.coarse_sigma_m,
+                self.coarse_block_cells, self.coarse_max_points)
+
+
+DEFAULT_OPTIONS = RegistrationOptions()
+
+
+@dataclass(frozen=True, eq=False)
+class PreparedScan:
+    """Per-scan data built once by :func:`prepare_scan` and reused for every pair.
+
+    All coordinates are metres in the scan's own sensor frame.
+
+    Attributes
+    ----------
+    points : (N, 2) the scan's points.
+    beams : (N, 2) unit direction from the sensor to each point.
+    normals : (N, 2) unit normal of the local line, facing the sensor; zero
+        where there is no line.
+    thickness : (N,) spread across / along the local line (0 = perfectly
+        straight, 1 = no direction); NaN where too few neighbours.
+    has_line : (N,) bool, the point lies on locally straight structure.
+    line_index : (M,) indices of the points with a line.
+    tree : cKDTree over ``points[line_index]``.
+    line : (M, 14) per line point: centroid x, y, normal x, y, the local
+        model's coefficients b0, b1, b2 (offset across the line at along-line
+        position s is ``b0 + b1 s + b2 s^2`` within the readings' extent and
+        continues along the tangent beyond it), the six entries
+        Q00, Q01, Q02, Q11, Q12, Q22 of its variance ``sigma^2 phi Q phi^T``
+        and the extent e (m).
+    nbr_index : (M, k) int32 indices into ``points`` of the readings that
+        fitted each line; nbr_coef : (M, k, 3) float32, each reading's
+        influence on the fitted coefficients (b0, b1, b2) per unit of its
+        range noise (zero for unused slots); float32 halves the memory of
+        these, the largest arrays of a prepared scan, at no cost to the
+        covariance's precision.
+    coarse_points : (K, 2) downsampled points for the coarse search.
+    grid : the likelihood grid (closurecheck.registration.correlative.LikelihoodGrid) or None.
+    length_m : root-mean-square range of the points (metres).
+    radius_m : largest range of the points (metres).
+    point_noise : the noise model the line coefficients were built for.
+    key : the preparation settings (RegistrationOptions.preparation_key()).
+    """
+
+    points: np.ndarray
+    beams: np.ndarray
+    normals: np.ndarray
+    thickness: np.ndarray
+    has_line: np.ndarray
+    line_index: np.ndarray
+    tree: cKDTree
+    line: np.ndarray
+    nbr_index: np.ndarray
+    nbr_coef: np.ndarray
+    coarse_points: np.ndarray
+    grid: _coarse.LikelihoodGrid | None
+    length_m: float
+    radius_m: float
+    point_noise: str
+    key: tuple
+
+    def __len__(self) -> int:
+        return len(self.points)
+
+
+@dataclass(frozen=True, eq=False)
+class Registration:
+    """Result of registering a source scan to a target scan.
+
+    Attributes
+    ----------
+    delta : (3,) pose [x, y, theta] of the source in the target frame
+        (``target ≈ delta · source``; ``a^-1 ∘ b`` for target at a, source at b).
+    covariance : (3, 3) covariance of ``delta`` on (x, y, theta) in the
+        target frame (m^2, m rad, rad^2).
+    rmse : root-mean-square point-to-line residual of the inliers (metres).
+    overlap : fraction of source points with an accepted correspondence.
+    converged : the final ICP stopped on its step tolerance.
+    iterations : ICP iterations of the returned hypothesis.
+    inlier_fraction : fraction of accepted correspondences within
+        ``inlier_sigmas`` robust standard deviations.
+    correspondences : number of accepted correspondences.
+    sigma_m : estimated range-noise standard deviation (metres).
+    eigenvalues : (3,) ascending per-correspondence Hessian eigenvalues in
+        scaled coordinates (x, y, L theta); see covariance.py.
+    weakest_direction : (3,) unit eigenvector of the smallest eigenvalue, in
+        scaled coordinates (x, y, L theta).
+    degeneracy : smallest / largest eigenvalue (0 = a direction is unconstrained).
+    degenerate : the covariance was inflated along an unconstrained direction.
+    fit_score : fraction of source points explained by the target: the mean
+        over all source points of ``exp(-d^2 / (2 fit_sigma_m^2))``, d the
+        distance to the nearest target point; used to rank hypotheses.
+    second_fit_score : fit score of the best distinct competing hypothesis
+        (0 when every hypothesis converged to the winner; NaN when only one
+        hypothesis was tried).
+    score_gap : ``fit_score - second_fit_score`` (NaN when only one hypothesis).
+    ambiguity : ``second_fit_score / fit_score`` in [0, 1]; near 1 means a
+        look-alike alternative fits about as well (NaN when only one hypothesis).
+    coarse_ran : the coarse stage was run.
+    coarse_score : best coarse grid score in [0, 1] (NaN when it did not run).
+    coarse_second_score : best coarse score of a distinct hypothesis (NaN if none).
+    hypotheses : number of hypotheses refined by ICP.
+    """
+
+    delta: np.ndarray
+    covariance: np.ndarray
+    rmse: float
+    overlap: float
+    converged: bool
+    iterations: int
+    inlier_fraction: float
+    correspondences: int
+    sigma_m: float
+    eigenvalues: np.ndarray
+    weakest_direction: np.ndarray
+    degeneracy: float
+    degenerate: bool
+    fit_score: float
+    second_fit_score: float
+    score_gap: float
+    ambiguity: float
+    coarse_ran: bool
+    coarse_score: float
+    coarse_second_score: float
+    hypotheses: int
+
+    @property
+    def information(self) -> np.ndarray:
+        """Inverse of :attr:`covariance` (3, 3)."""
+        return np.linalg.inv(self.covariance)
+
+
+# --------------------------------------------------------------------------- input checks
+
+
+def _as_points(points, name: str) -> np.ndarray:
+    try:
+        p = np.asarray(points, dtype=np.float64)
+    except (TypeError, ValueError):
+        raise InputError(f"{name} must be an (N, 2) array of numbers") from None
+    if p.ndim != 2 or p.shape[1] != 2:
+        raise InputError(f"{name} must have shape (N, 2), got {p.shape}")
+    if len(p) < 3:
+        raise InputError(f"{name} needs at least 3 points, got {len(p)}")
+    if not np.isfinite(p).all():
+        raise InputError(f"{name} contains NaN or infinite coordinates")
+    return p
+
+
+def _as_seeds(guess) -> np.ndarray:
+    try:
+        g = np.asarray(guess, dtype=np.float64)
+    except (TypeError, ValueError):
+        raise InputError("guess must be [x, y, theta] or a (K, 3) array of them") from None
+    if g.ndim == 1:
+        g = g[None, :]
+    if g.ndim != 2 or g.shape[1] != 3 or len(g) == 0:
+        raise InputError(f"guess must have shape (3,) or (K, 3) with K >= 1, got {np.shape(guess)}")
+    if not np.isfinite(g).all():
+        raise InputError("guess contains NaN or infinite values")
+    return g
+
+
+# --------------------------------------------------------------------------- preparation
+
+
+def _pca(nb, used):
+    """Centroid, unit normal and scatter eigenvalues of masked neighbourhoods (N, k, 2)."""
+    wt = used.astype(float)
+    count = np.maximum(wt.sum(axis=1), 1.0)
+    centroid = (nb * wt[..., None]).sum(axis=1) / count[:, None]
+    dev = (nb - centroid[:, None, :]) * wt[..., None]
+    sxx = (dev[..., 0] ** 2).sum(axis=1)
+    syy = (dev[..., 1] ** 2).sum(axis=1)
+    sxy = (dev[..., 0] * dev[..., 1]).sum(axis=1)
+    # Closed-form eigen-decomposition of the 2x2 scatter matrix.
+    half_tr = 0.5 * (sxx + syy)
+    rad = np.hypot(0.5 * (sxx - syy), sxy)
+    phi = 0.5 * np.arctan2(2.0 * sxy, sxx - syy)
+    normal = np.stack([-np.sin(phi), np.cos(phi)], axis=1)
+    return centroid, normal, np.maximum(half_tr - rad, 0.0), half_tr + rad
+
+
+def _line_features(points, beams, opt: RegistrationOptions):
+    """Fit a line to each point's neighbourhood; vectorised over all points."""
+    n = len(points)
+    k = min(opt.line_neighbours, n)
+    tree = cKDTree(points)
+    _, idx = tree.query(points, k=k, distance_upper_bound=opt.line_radius_m)
+    idx = idx.reshape(n, k)
+    used = idx < n
+    idx = np.where(used, idx, 0)
+    count = used.sum(axis=1)
+    nb = points[idx]                                                        # (N, k, 2)
+    centroid, normal, lam_min, lam_max = _pca(nb, used)
+    # Normals face the sensor (the frame origin), so that two scans seeing
+    # opposite faces of a thin wall have opposite normals.
+    flip = (normal * centroid).sum(axis=1) > 0
+    normal[flip] *= -1.0
+    tangent = np.stack([normal[:, 1], -normal[:, 0]], axis=1)  # fixed handedness: t = rot(-90°) n
+    with np.errstate(invalid="ignore", divide="ignore"):
+        thickness = np.sqrt(lam_min / lam_max)
+    enough = count >= opt.min_line_points
+    thickness = np.where(enough & (lam_max > 0), thickness, np.nan)
+    has_line = enough & (lam_max > 0) & (thickness <= opt.max_line_thickness)
+    return idx, used, count, centroid, normal, tangent, thickness, has_line
+
+
+def prepare_scan(points_xy, options: RegistrationOptions = DEFAULT_OPTIONS, *, grid: bool = True) -> PreparedScan:
+    """Build the per-scan data that registration reuses across pairs.
+
+    Parameters
+    ----------
+    points_xy : (N, 2) points of one scan in its sensor frame (metres; the
+        sensor at the origin), N >= 3, all finite.
+    options : preparation settings (line fitting, noise model, coarse grid).
+    grid : also build the coarse stage's likelihood grid (needed when this
+        scan is the target of a coarse search; about 1-5 ms per scan).
+
+    Raises InputError on bad points or when no point lies on straight
+    structure (nothing to register against).
+    """
+    pts = _as_points(points_xy, "points_xy")
+    return _prepare(pts, options, grid)
+
+
+def _prepare(pts, opt: RegistrationOptions, with_grid: bool) -> PreparedScan:
+    rng = np.hypot(pts[:, 0], pts[:, 1])
+    beams = pts / np.maximum(rng, 1e-12)[:, None]
+    idx, used, count, centroid, normal, tangent, thickness, has_line = _line_features(pts, beams, opt)
+    line_index = np.flatnonzero(has_line)
+    if len(line_index) < 3:
+        raise InputError("scan has fewer than 3 points on straight structure; cannot register it")
+
+    li = line_index
+    nidx = idx[li]
+    nused = used[li].astype(float)
+    n_l = normal[li]
+    t_l = tangent[li]
+    c_l = centroid[li]
+    dev = pts[nidx] - c_l[:, None, :]                                    # (M, k, 2)
+    a = (dev * t_l[:, None, :]).sum(axis=-1) * nused                     # along the line (m)
+    h = (dev * n_l[:, None, :]).sum(axis=-1) * nused                     # across it (m)
+    # Local model h = f(a) fitted by least squares: a straight line
+    # [1, a] or, by default, a parabola [1, a, a^2] so that a curved surface
+    # (a round column) is not replaced by its chord.  Beyond the readings'
+    # extent e = max |a| the parabola continues along its tangent, never
+    # extrapolating a noisy curvature: with m = clip(s, -e, e) the basis is
+    # phi(s) = [1, s, 2 m s - m^2].  wts[l] = (X^T X)^-1 x_l gives
+    # f(s) = sum_l h_l (wts_l . phi(s)), the fit's linear dependence on each
+    # reading, which the covariance needs.
+    quadratic = opt.line_model == "quadratic"
+    cols = [nused, a, a * a if quadratic else np.zeros_like(a)]
+    x = np.stack(cols, axis=-1)                                           # (M, k, 3)
+    xt = x.transpose(0, 2, 1)
+    xtx = xt @ x
+    if not quadratic:
+        xtx[:, 2, 2] = 1.0
+    # A relative ridge keeps the solve defined for a degenerate spread.
+    xtx += (1e-12 * np.trace(xtx, axis1=1, axis2=2))[:, None, None] * np.eye(3)
+    wts = x @ np.linalg.inv(xtx)                                         # (M, k, 3), inverse is symmetric
+    beta = (h[:, None, :] @ wts)[:, 0, :]
+    extent = np.abs(a).max(axis=1)
+    if opt.point_noise == "range":
+        nu = np.abs((beams[nidx] * n_l[:, None, :]).sum(axis=-1))
+        nu = np.maximum(nu, opt.min_incidence_cos)
+    else:
+        nu = np.ones_like(a)
+    nu = nu * nused
+    # Variance (units of sigma^2) of f(s): phi Q phi^T with Q = sum_l nu_l^2 wts_l wts_l^T.
+    q = (wts * (nu * nu)[..., None]).transpose(0, 2, 1) @ wts
+    line = np.column_stack([c_l, n_l, beta, q[:, 0, 0], q[:, 0, 1], q[:, 0, 2], q[:, 1, 1], q[:, 1, 2],
+                            q[:, 2, 2], extent])
+
+    normals = np.where(has_line[:, None], normal, 0.0)
+    coarse_pts = _coarse.downsample(pts, 2.0 * opt.coarse_resolution_m, opt.coarse_max_points)
+    grid = None
+    if with_grid:
+        grid = _coarse.build_grid(pts, opt.coarse_resolution_m, opt.coarse_sigma_m, opt.coarse_block_cells)
+    return PreparedScan(
+        points=pts, beams=beams, normals=normals, thickness=thickness, has_line=has_line,
+        line_index=line_index, tree=cKDTree(pts[line_index]), line=line,
+        nbr_index=nidx.astype(np.int32), nbr_coef=(nu[..., None] * wts).astype(np.float32),
+        coarse_points=coarse_pts, grid=grid,
+        length_m=float(np.sqrt(np.mean(rng * rng))), radius_m=float(rng.max()), point_noise=opt.point_noise,
+        key=opt.preparation_key(),
+    )
+
+
+# --------------------------------------------------------------------------- ICP
+
+
+@dataclass(frozen=True, eq=False)
+class _Solution:
+    x: np.ndarray
+    converged: bool
+    iterations: int
+    # Correspondence data at the final pose (point-to-line), for the figures.
+    src: np.ndarray       # (n,) source point indices
+    tgt: np.ndarray       # (n,) line indices into the target's line arrays
+    r: np.ndarray         # (n,) residuals (m)
+    v: np.ndarray         # (n,) residual variance units
+    w: np.ndarray         # (n,) robust weights
+    jac: np.ndarray       # (n, 3)
+    s_along: np.ndarray   # (n, 2) along-line offsets s (m) and the basis phi_2(s) (m^2)
+    src_coef: np.ndarray  # (n,) source-noise sensitivity
+    scale: float          # robust residual scale (m)
+
+
+def _failed(x, it) -> _Solution:
+    e = np.zeros(0)
+    return _Solution(x, False, it, np.zeros(0, int), np.zeros(0, int), e, e, e, np.zeros((0, 3)), e, e,
+                     float("nan"))
+
+
+def _candidates(src: PreparedScan, cos_max):
+    """Source points that may be matched: (indices, points, normals), gathered once per ICP run."""
+    cand = src.line_index if cos_max is not None else np.arange(len(src.points))
+    return cand, src.points[cand], src.normals[cand]
+
+
+def _associate(src: PreparedScan, tgt: PreparedScan, x, opt, cos_max, cands=None):
+    """Point-to-line correspondences of the source under pose x (vectorised).
+
+    With the normal check on, only source points on straight structure take
+    part: a point without a line of its own (a corner, clutter) cannot be
+    checked and is the typical false match across a corner or a thin wall.
+    ``cands`` is :func:`_candidates` of the source (computed here if None).
+    Returns (i, j, p, u, lt): source indices, target line indices, the
+    source points and beam directions, and the target line rows transposed
+    to (14, n) (contiguous columns make the per-iteration arithmetic cheaper).
+    """
+    cand, cand_pts, cand_normals = cands if cands is not None else _candidates(src, cos_max)
+    c, s = np.cos(x[2]), np.sin(x[2])
+    rot_t = np.array([[c, s], [-s, c]])
+    pw = cand_pts @ rot_t + x[:2]
+    _, j = tgt.tree.query(pw, distance_upper_bound=opt.max_correspondence_m)
+    hit = np.flatnonzero(j < len(tgt.line_index))
+    j, pw = j[hit], pw[hit]
+    ln = tgt.line[j]
+    # Only points that fall along the target line's own support (plus a
+    # margin): beyond it the target never saw the surface, and a fit that
+    # caught a corner would be extrapolated.
+    along = np.abs(ln[:, 3] * (pw[:, 0] - ln[:, 0]) - ln[:, 2] * (pw[:, 1] - ln[:, 1]))
+    ok = along <= ln[:, 13] + opt.max_extrapolation_m
+    if cos_max is not None:
+        agree = ((cand_normals[hit] @ rot_t) * ln[:, 2:4]).sum(axis=1)
+        ok &= agree >= cos_max
+    i = cand[hit[ok]]
+    return i, j[ok], src.points[i], src.beams[i], np.ascontiguousarray(ln[ok].T)
+
+
+def _linearise(pairs, x, opt, range_noise: bool):
+    """Residuals, variance units, Jacobians, along-line offsets and source sensitivities at pose x.
+
+    The residual is the source point's offset across the target's local
+    line minus the local model's offset there, ``r = n.(p - c) - f(s)``
+    with ``s = t.(p - c)``; its gradient with respect to the point is
+    ``g = n - f'(s) t``.
+    """
+    _, _, p, u, lt = pairs
+    c, s = np.cos(x[2]), np.sin(x[2])
+    rot_t = np.array([[c, s], [-s, c]])
+    rp = p @ rot_t
+    nx, ny = lt[2], lt[3]
+    dx = rp[:, 0] + (x[0] - lt[0])
+    dy = rp[:, 1] + (x[1] - lt[1])
+    s_al = ny * dx - nx * dy            # t = (n_y, -n_x), as in _line_features
+    m = np.minimum(np.maximum(s_al, -lt[13]), lt[13])
+    phi2 = (2.0 * s_al - m) * m
+    r = nx * dx + ny * dy - (lt[4] + s_al * lt[5] + phi2 * lt[6])
+    fp = lt[5] + 2.0 * lt[6] * m
+    gx = nx - fp * ny
+    gy = ny + fp * nx
+    if range_noise:
+        ub = u @ rot_t
+        sc = np.maximum(np.abs(gx * ub[:, 0] + gy * ub[:, 1]), opt.min_incidence_cos)
+    else:
+        sc = np.hypot(gx, gy)
+    v = sc * sc + (lt[7] + s_al * (2.0 * lt[8] + s_al * lt[10])
+                   + phi2 * (2.0 * lt[9] + 2.0 * s_al * lt[11] + phi2 * lt[12]))
+    jac = np.empty((len(r), 3))
+    jac[:, 0] = gx
+    jac[:, 1] = gy
+    jac[:, 2] = gy * rp[:, 0] - gx * rp[:, 1]
+    return r, v, jac, (s_al, phi2), sc
+
+
+def _median(a) -> float:
+    """np.median of a non-empty 1-D array (same value), without its general-case overhead."""
+    k = len(a) // 2
+    if len(a) % 2:
+        return float(np.partition(a, k)[k])
+    part = np.partition(a, [k - 1, k])
+    return float((part[k - 1] + part[k]) / 2)
+
+
+def _robust(r, v, opt, kernel):
+    z = r / np.sqrt(v)
+    scale = max(_MAD_TO_SIGMA * _median(np.abs(z)), opt.min_noise_m)
+    w = kernel.weight(z / scale)
+    return w, scale
+
+
+def _icp_line(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions, kernel) -> _Solution:
+    x = np.array(x0, dtype=float)
+    cos_max = np.cos(opt.max_normal_angle_rad) if opt.max_normal_angle_rad < np.pi else None
+    range_noise = src.point_noise == "range"
+    lscale = np.array([1.0, 1.0, src.length_m ** 2])
+    lscale_diag = np.diag(lscale)
+    converged = False
+    it = 0
+    pairs = None
+    moved = np.inf     # bound on any source point's motion since the last association (m)
+    cands = _candidates(src, cos_max)
+    for it in range(1, opt.max_iterations + 1):
+        # Re-associating costs a kd-tree query; once the pose moves by less
+        # than reassociate_m the nearest lines cannot change enough to matter.
+        if moved >= opt.reassociate_m:
+            pairs = _associate(src, tgt, x, opt, cos_max, cands)
+            moved = 0.0
+        if len(pairs[0]) < 3:
+            pairs = None
+            break
+        r, v, jac, s_al, sc = _linearise(pairs, x, opt, range_noise)
+        w, scale = _robust(r, v, opt, kernel)
+        jw = jac * (w / v)[:, None]
+        h = jw.T @ jac
+        g = jw.T @ r
+        mu = opt.damping * float(np.trace(h / lscale)) / 3.0
+        step = -np.linalg.solve(h + mu * lscale_diag, g)
+        x = x + step
+        moved += np.hypot(step[0], step[1]) + src.radius_m * abs(step[2])
+        if np.hypot(step[0], step[1]) < opt.tolerance_m and abs(step[2]) < opt.tolerance_rad:
+            converged = True
+            break
+    x[2] = np.pi - np.mod(np.pi - x[2], 2 * np.pi)
+    if pairs is None:
+        return _failed(x, it)
+    return _Solution(x, converged, it, pairs[0], pairs[1], r, v, w, jac, np.stack(s_al, axis=1), sc, scale)
+
+
+def _icp_point(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions, kernel) -> _Solution:
+    """Point-to-point ICP with the closed-form weighted 2D Procrustes step."""
+    x = np.array(x0, dtype=float)
+    tpts = tgt.points[tgt.line_index]
+    converged = False
+    it = 0
+    for it in range(1, opt.max_iterations + 1):
+        c, s = np.cos(x[2]), np.sin(x[2])
+        pw = src.points @ np.array([[c, s], [-s, c]]) + x[:2]
+        d, j = tgt.tree.query(pw, distance_upper_bound=opt.max_correspondence_m)
+        ok = j < len(tpts)
+        if ok.sum() < 3:
+            break
+        a, b, d = src.points[ok], tpts[j[ok]], d[ok]
+        scale = max(_MAD_TO_SIGMA * float(np.median(d)), opt.min_noise_m)
+        w = kernel.weight(d / scale)
+        wsum = w.sum()
+        ma = (w[:, None] * a).sum(0) / wsum
+        mb = (w[:, None] * b).sum(0) / wsum
+        aa, bb = a - ma, b - mb
+        sxx = (w * (aa[:, 0] * bb[:, 0] + aa[:, 1] * bb[:, 1])).sum()
+        sxy = (w * (aa[:, 0] * bb[:, 1] - aa[:, 1] * bb[:, 0])).sum()
+        th = np.arctan2(sxy, sxx)
+        c, s = np.cos(th), np.sin(th)
+        t = mb - np.array([c * ma[0] - s * ma[1], s * ma[0] + c * ma[1]])
+        new = np.array([t[0], t[1], th])
+        step = new - x
+        step[2] = np.pi - np.mod(np.pi - step[2], 2 * np.pi)
+        x = new
+        if np.hypot(step[0], step[1]) < opt.tolerance_m and abs(step[2]) < opt.tolerance_rad:
+            converged = True
+            break
+    # The covariance and quality figures always come from the point-to-line
+    # cost at the final pose (Bonnabel, Barczyk and Goulette, arXiv 1410.7632:
+    # the closed-form covariance of the point-to-point cost is unreliable).
+    cos_max = np.cos(opt.max_normal_angle_rad) if opt.max_normal_angle_rad < np.pi else None
+    pairs = _associate(src, tgt, x, opt, cos_max)
+    if len(pairs[0]) < 3:
+        return _failed(x, it)
+    r, v, jac, s_al, sc = _linearise(pairs, x, opt, src.point_noise == "range")
+    w, scale = _robust(r, v, opt, kernel)
+    return _Solution(x, converged, it, pairs[0], pairs[1], r, v, w, jac, np.stack(s_al, axis=1), sc, scale)
+
+
+def _fit_score(src: PreparedScan, tgt: PreparedScan, x, opt: RegistrationOptions) -> float:
+    """Mean over the evenly spread source points of ``exp(-d^2 / (2 fit_sigma_m^2))`` at pose x.
+
+    ``d`` is the distance to the nearest target point on straight structure;
+    the source points are the coarse stage's (one per cell), so that densely
+    sampled walls near the sensor do not outweigh the rest of the scan.
+    Point-to-point distances, unlike the point-to-line residuals, penalise a
+    hypothesis slid along a wall beyond where the target saw it, which is
+    what a look-alike alternative in a corridor or a row of doorways does.
+    """
+    c, s = np.cos(x[2]), np.sin(x[2])
+    pts = src.coarse_points
+    pw = pts @ np.array([[c, s], [-s, c]]) + x[:2]
+    d, _ = tgt.tree.query(pw, distance_upper_bound=4.0 * opt.fit_sigma_m)
+    d = d[np.isfinite(d)]
+    return float(np.exp(-0.5 * (d / opt.fit_sigma_m) ** 2).sum() / len(pts))
+
+
+def _same(a, b, opt) -> bool:
+    dt = abs((a[2] - b[2] + np.pi) % (2 * np.pi) - np.pi)
+    return np.hypot(a[0] - b[0], a[1] - b[1]) < opt.hypothesis_separation_m and dt < opt.hypothesis_separation_rad
+
+
+def _finish(src: PreparedScan, tgt: PreparedScan, sol: _Solution, opt: RegistrationOptions, **extra) -> Registration:
+    n = len(sol.r)
+    if n < 3:
+        return _no_overlap(src, sol, opt, **extra)
+    om = sol.w / sol.v
+    h = _cov.hessian(sol.jac, om)
+    e_wu2, kappa = _cov.kernel_moments(kernel_from_name(opt.kernel, opt.kernel_scale))
+    sigma2 = _cov.noise_variance(sol.r, om, e_wu2)
+    middle = None
+    if opt.covariance == "censi":
+        w = tgt.nbr_coef[sol.tgt]
+        basis = sol.s_along                               # (n, 2): s and the third basis function
+        coef_t = -(w[..., 0] + basis[:, :1] * w[..., 1] + basis[:, 1:] * w[..., 2])
+        middle = _cov.censi_middle(sol.jac, om, sol.src_coef, tgt.nbr_index[sol.tgt], coef_t, len(tgt.points))
+    est = _cov.analyse(h, middle, sigma2, n, src.length_m, method=opt.covariance,
+                       degeneracy_threshold=opt.degeneracy_threshold,
+                       unobservable_sigma_m=opt.unobservable_sigma_m, kappa=kappa,
+                       points_per_normal=float(opt.line_neighbours))
+    z = np.abs(sol.r / np.sqrt(sol.v))
+    inl = z <= opt.inlier_sigmas * sol.scale
+    rmse = float(np.sqrt(np.mean(sol.r[inl] ** 2))) if inl.any() else float("nan")
+    delta = sol.x.copy()
+    cov = est.covariance
+    evals = est.eigenvalues.copy()
+    weak = est.eigenvectors[:, 0].copy()
+    for arr in (delta, cov, evals, weak):
+        arr.flags.writeable = False
+    return Registration(
+        delta=delta, covariance=cov, rmse=rmse, overlap=n / len(src.points), converged=sol.converged,
+        iterations=sol.iterations, inlier_fraction=float(inl.mean()), correspondences=n,
+        sigma_m=est.sigma_m, eigenvalues=evals, weakest_direction=weak, degeneracy=est.degeneracy,
+        degenerate=est.degenerate, **extra,
+    )
+
+
+def _no_overlap(src: PreparedScan, sol: _Solution, opt: RegistrationOptions, **extra) -> Registration:
+    """Result for a start from which fewer than 3 correspondences were found.
+
+    Not an input error: two valid scans simply do not overlap there.  The
+    pose is the last iterate, every direction counts as unconstrained.
+    """
+    big = opt.unobservable_sigma_m ** 2
+    cov = np.diag([big, big, big / src.length_m ** 2])
+    delta = sol.x.copy()
+    evals = np.zeros(3)
+    weak = np.array([1.0, 0.0, 0.0])
+    for arr in (delta, cov, evals, weak):
+        arr.flags.writeable = False
+    return Registration(
+        delta=delta, covariance=cov, rmse=float("nan"), overlap=len(sol.r) / len(src.points), converged=False,
+        iterations=sol.iterations, inlier_fraction=0.0, correspondences=len(sol.r), sigma_m=float("nan"),
+        eigenvalues=evals, weakest_direction=weak, degeneracy=0.0, degenerate=True, **extra,
+    )
+
+
+# --------------------------------------------------------------------------- public API
+
+
+def register_prepared(source: PreparedScan, target: PreparedScan, guess=(0.0, 0.0, 0.0),
+                      options: RegistrationOptions = DEFAULT_OPTIONS) -> Registration:
+    """Register two prepared scans (see :func:`register` for the meaning of the result).
+
+    Parameters
+    ----------
+    source, target : scans from :func:`prepare_scan` with the same
+        preparation settings as ``options``.  The target needs its grid when
+        ``options.coarse`` is set (built on the fly otherwise).
+    guess : (3,) initial pose of the source in the target frame, or (K, 3)
+        several seeds (e.g. yaw candidates from descriptors); every seed is
+        searched / refined and the best fit wins.
+    options : registration settings.
+    """
+    if not isinstance(source, PreparedScan) or not isinstance(target, PreparedScan):
+        raise InputError("register_prepared needs scans built by prepare_scan")
+    if source.key != options.preparation_key() or target.key != options.preparation_key():
+        raise InputError("scans were prepared with different line or grid settings than these options")
+    seeds = _as_seeds(guess)
+    kernel = kernel_from_name(options.kernel, options.kernel_scale)
+    refine = _icp_point if options.method == "point_to_point" else _icp_line
+
+    coarse_best = coarse_second = float("nan")
+    starts = seeds
+    if options.coarse:
+        grid = target.grid
+        if grid is None:
+            grid = _coarse.build_grid(target.points, options.coarse_resolution_m, options.coarse_sigma_m,
+                                      options.coarse_block_cells)
+        step = options.coarse_angle_step_rad or _coarse.auto_angle_step(source.coarse_points,
+                                                                         options.coarse_resolution_m)
+        # One search over the union of the seeds' windows: a block near a wrong seed is pruned by
+        # the hypotheses found near the right one instead of being searched on its own.
+        poses, scores = _coarse.search(grid, source.coarse_points, seeds, window_m=options.coarse_window_m,
+                                       window_rad=options.coarse_window_rad, angle_step_rad=step,
+                                       n_best=options.hypotheses, separation_m=options.hypothesis_separation_m,
+                                       separation_rad=options.hypothesis_separation_rad)
+        starts = poses
+        coarse_best = float(scores[0])
+        coarse_second = float(scores[1]) if len(scores) > 1 else float("nan")
+
+    sols = [refine(source, target, x0, options, kernel) for x0 in starts]
+    fits = np.array([_fit_score(source, target, s.x, options) for s in sols])
+    best = int(np.argmax(fits))
+    second = float("nan")
+    if len(sols) > 1:
+        rivals = [fits[k] for k in range(len(sols)) if k != best and not _same(sols[k].x, sols[best].x, options)]
+        second = max(rivals) if rivals else 0.0
+    fit = float(fits[best])
+    gap = fit - second if np.isfinite(second) else float("nan")
+    amb = (second / fit if fit > 0 else 1.0) if np.isfinite(second) else float("nan")
+    return _finish(source, target, sols[best], options, fit_score=fit, second_fit_score=second, score_gap=gap,
+                   ambiguity=amb, coarse_ran=bool(options.coarse), coarse_score=coarse_best,
+                   coarse_second_score=coarse_second, hypotheses=len(sols))
+
+
+def register(source_xy, target_xy, guess=(0.0, 0.0, 0.0), options: RegistrationOptions | None = None,
+             **overrides) -> Registration:
+    """Register a source scan to a target scan (contract section 5).
+
+    Parameters
+    ----------
+    source_xy, target_xy : (N, 2) points of each scan in its own sensor frame
+        (metres, sensor at the origin).
+    guess : (3,) initial pose [x, y, theta] of the source in the target frame
+        (metres, radians), or (K, 3) several seeds.
+    options : RegistrationOptions; keyword ``overrides`` replace single
+        fields, e.g. ``register(a, b, coarse=False, covariance="hessian")``.
+
+    Returns
+    -------
+    Registration with ``delta`` (3,): the pose T with ``target ≈ T · source``,
+    i.e. ``a^-1 ∘ b`` for a target scan taken at pose a and a source scan
+    taken at pose b; ``covariance`` (3, 3) on (x, y, theta) in the target
+    frame; ``rmse`` (m), ``overlap``, ``converged`` and quality figures.
+
+    When no start finds at least 3 correspondences the result has
+    ``converged=False``, ``overlap`` near 0 and a covariance of
+    ``unobservable_sigma_m`` in every direction.
+
+    Raises InputError for arrays that are not (N, 2) with N >= 3 finite
+    points, a scan without straight structure, a bad guess or bad options.
+    """
+    opt = options if options is not None else DEFAULT_OPTIONS
+    if overrides:
+        known = {f.name for f in fields(RegistrationOptions)}
+        unknown = sorted(set(overrides) - known)
+        if unknown:
+            raise InputError(f"unknown registration option(s): {', '.join(unknown)}")
+        opt = replace(opt, **overrides)
+    src = _as_points(source_xy, "source_xy")
+    tgt = _as_points(target_xy, "target_xy")
+    seeds = _as_seeds(guess)
+    return register_prepared(_prepare(src, opt, False), _prepare(tgt, opt, opt.coarse), seeds, opt)

@@ -1,0 +1,65 @@
+"""Progress on the terminal: a line per stage and a bar for long ones (tqdm)."""
+
+from __future__ import annotations
+
+import sys
+import time
+
+
+class Progress:
+    """Stage announcements and bars on stderr; silent when ``quiet``."""
+
+    def __init__(self, quiet: bool = False, verbose: bool = False, stream=None):
+        self.quiet = quiet
+        self.verbose = verbose
+        self.stream = stream or sys.stderr
+        self._bars: dict = {}
+        self._t0 = time.perf_counter()
+
+    def stage(self, name: str) -> None:
+        self._close_bars()
+        if not self.quiet:
+            print(f"[{time.perf_counter() - self._t0:7.1f} s] {name}", file=self.stream, flush=True)
+
+    def advance(self, stage: str, n: int, total: int) -> None:
+        if self.quiet:
+            return
+        bar = self._bars.get(stage)
+        if bar is None:
+            from tqdm import tqdm
+
+            bar = tqdm(total=total, desc=f"  {stage}", unit="pair", file=self.stream, leave=False,
+                       dynamic_ncols=True, mininterval=0.5)
+            self._bars[stage] = bar
+        bar.update(n)
+
+    def info(self, text: str) -> None:
+        if self.verbose and not self.quiet:
+            print(text, file=self.stream, flush=True)
+
+    def _close_bars(self) -> None:
+        for bar in self._bars.values():
+            bar.close()
+        self._bars.clear()
+
+    def close(self) -> None:
+        self._close_bars()
+
+
+def format_summary(info: dict, paths: dict) -> str:
+    """The one-screen summary printed at the end of a run."""
+    lines = [f"{info['source']}: {info['scans']} scans, {info['keyframes']} keyframes",
+             f"  candidates {info['candidates']}: {info['accepted']} verified, {info['rejected']} rejected"]
+    rej = {k: v for k, v in info["reasons"].items() if k != "accepted"}
+    if rej:
+        lines.append("  rejected by " + ", ".join(f"{k} {v}" for k, v in rej.items()))
+    lines.append(f"  map correction: up to {info['correction_max_m']:.2f} m (mean {info['correction_mean_m']:.2f} m)")
+    lines.append("  time: " + ", ".join(f"{k} {v:.1f} s" for k, v in info["timings_s"].items()))
+    for note in info.get("notes", []):
+        lines.append(f"  note: {note}")
+    for name in ("graph", "candidates", "report"):
+        if name in paths:
+            lines.append(f"  {name}: {paths[name]}")
+    return "\n".join(lines)
+
+

@@ -1,0 +1,1 @@
+"""Where registration batches run: in this process, a local process pool or a Dask cluster, behind one protocol."""

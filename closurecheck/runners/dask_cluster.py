@@ -1,0 +1,190 @@
+"""Runs the registration batches on Dask: an embedded local cluster or an existing scheduler.
+
+``--dask local`` starts a :class:`distributed.LocalCluster` of single-threaded
+worker processes on the loopback interface (no dashboard); ``--dask
+tcp://HOST:PORT`` connects to a running Dask scheduler, whose workers must
+have the same closurecheck version installed (checked on connecting).
+
+Per log, the scan points are scattered to every worker once (one packed
+array, :class:`closurecheck.runners.PointsTable`); each batch of pairs is a
+task that takes the scattered table, and every worker keeps its prepared
+scans in a bounded cache keyed by the run's token, dropped when the log is
+done.  Results come back in input order and are the same, bit for bit, as a
+serial run (same code, BLAS on one thread in the worker).
+
+Dask is an optional extra (``pip install 'closurecheck[dask]'``), imported
+only here.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import logging
+import os
+import threading
+import uuid
+from collections import OrderedDict
+
+from .._version import __version__
+from ..errors import InputError
+from .work import (
+    CACHE_SCANS,
+    OrderedPairs,
+    ScanCache,
+    as_table,
+    batch_slices,
+    run_batch,
+    single_thread_blas,
+)
+
+MISSING_EXTRA = "--dask needs the optional extra: pip install 'closurecheck[dask]'"
+
+# Seconds to wait for a remote scheduler to answer, and for it to have a worker.
+CONNECT_TIMEOUT_S = 5.0
+
+# Runs whose prepared scans a worker keeps at once (several clients may
+# share one cluster); each cache is bounded by CACHE_SCANS scans.
+MAX_RUNS_PER_WORKER = 4
+
+# Worker-side state (lives in the Dask worker processes).
+_CACHES: OrderedDict = OrderedDict()
+_LOCK = threading.Lock()
+_BLAS: list = []
+
+
+def _worker_cache(token: str, table, options, cache_scans: int) -> ScanCache:
+    with _LOCK:
+        if not _BLAS:
+            # Once per worker process: BLAS on one thread (see closurecheck.runners).
+            _BLAS.append(single_thread_blas())
+        cache = _CACHES.get(token)
+        if cache is None:
+            cache = _CACHES[token] = ScanCache(table, options, cache_scans)
+            while len(_CACHES) > MAX_RUNS_PER_WORKER:
+                _CACHES.popitem(last=False)
+        _CACHES.move_to_end(token)
+        return cache
+
+
+def _dask_batch(token: str, table, options, cache_scans: int, src, dst, seeds) -> list:
+    """Task: register one batch on a worker (see closurecheck.runners.run_batch)."""
+    return run_batch(_worker_cache(token, table, options, cache_scans), src, dst, seeds)
+
+
+def _forget(token: str) -> int:
+    """Drop a finished run's prepared scans from this worker; returns how many scans it built."""
+    with _LOCK:
+        cache = _CACHES.pop(token, None)
+    return 0 if cache is None else cache.builds
+
+
+def _worker_version() -> str:
+    return __version__
+
+
+def _one_line(exc: BaseException) -> str:
+    text = " ".join(str(exc).split()) or type(exc).__name__
+    return text if len(text) <= 200 else text[:197] + "..."
+
+
+class DaskRunner:
+    """Registration batches as Dask tasks.
+
+    address : ``"local"`` (embedded cluster of ``workers`` single-threaded
+        processes, 0 = all cores) or ``"tcp://HOST:PORT"`` of a running
+        scheduler (``workers`` is then ignored: the cluster has its own;
+        workers started with ``--nthreads 1`` and one per core suit this
+        work best, as the registration of a pair holds the GIL most of the time).
+    Raises InputError when Dask is not installed, the address is malformed,
+    the scheduler cannot be reached, or its workers cannot run closurecheck.
+    """
+
+    name = "dask"
+
+    def __init__(self, address: str, workers: int = 0, cache_scans: int = CACHE_SCANS):
+        try:
+            import distributed
+        except ImportError:
+            raise InputError(MISSING_EXTRA) from None
+        if workers < 0:
+            raise InputError(f"--jobs must be >= 0 (0 = all cores), got {workers}")
+        address = str(address).strip()
+        self.address = address
+        self.cache_scans = cache_scans
+        self.cluster = None
+        self.last_builds = 0
+        if address == "local":
+            n = workers or os.cpu_count() or 1
+            self.cluster = distributed.LocalCluster(
+                n_workers=n, threads_per_worker=1, processes=True, host="127.0.0.1", dashboard_address=None,
+                silence_logs=logging.ERROR)
+            self.client = distributed.Client(self.cluster, set_as_default=False)
+            self.workers = n
+            self.name = f"dask local cluster ({n} workers)"
+            return
+        if not address.startswith("tcp://") or ":" not in address[len("tcp://"):]:
+            raise InputError(f"--dask takes 'local' or tcp://HOST:PORT, got {address!r}")
+        try:
+            self.client = distributed.Client(address, timeout=f"{CONNECT_TIMEOUT_S}s", set_as_default=False)
+        except Exception as exc:  # noqa: BLE001 - OSError, TimeoutError and Dask's own wrap the same failure
+            raise InputError(f"cannot connect to the Dask scheduler at {address}: {_one_line(exc)}") from None
+        try:
+            self._check_workers()
+        except BaseException:
+            self.close()
+            raise
+        self.name = f"dask scheduler {address} ({self.workers} workers)"
+
+    def _check_workers(self) -> None:
+        try:
+            self.client.wait_for_workers(1, timeout=CONNECT_TIMEOUT_S)
+        except Exception:  # noqa: BLE001 - timeout
+            raise InputError(f"the Dask scheduler at {self.address} has no workers") from None
+        try:
+            versions = self.client.run(_worker_version)
+        except Exception as exc:  # noqa: BLE001 - the workers cannot import closurecheck
+            raise InputError(f"the Dask workers at {self.address} cannot run closurecheck "
+                             f"(install closurecheck {__version__} on them): {_one_line(exc)}") from None
+        wrong = sorted({v for v in versions.values() if v != __version__})
+        if wrong:
+            raise InputError(f"the Dask workers at {self.address} run closurecheck {', '.join(wrong)}, "
+                             f"this is {__version__}; install the same version on them")
+        # Batches are cut for the tasks that can run at once: threads over all workers.
+        self.workers = max(1, sum(self.client.nthreads().values()))
+
+    def register(self, points, src, dst, seeds, options, batch_pairs, progress=None):
+        """Per-pair result tuples (or None) in input order; see pairwise_registration.register_batch."""
+        if len(src) == 0:
+            return []
+        from distributed import as_completed
+
+        client = self.client
+        token = uuid.uuid4().hex
+        table = client.scatter(as_table(points), broadcast=True, hash=False)
+        work = OrderedPairs(src, dst, seeds)
+        slices = batch_slices(len(work), self.workers, batch_pairs)
+        futures = [client.submit(_dask_batch, token, table, options, self.cache_scans, work.src[sl], work.dst[sl],
+                                 work.seeds[sl], key=f"closurecheck-batch-{token}-{k}")
+                   for k, sl in enumerate(slices)]
+        order = {f.key: k for k, f in enumerate(futures)}
+        parts: list = [None] * len(slices)
+        try:
+            for fut in as_completed(futures, loop=client.loop):
+                k = order[fut.key]
+                parts[k] = fut.result()
+                if progress is not None:
+                    progress.advance("registration", slices[k].stop - slices[k].start, len(work))
+        finally:
+            client.cancel(futures + [table])
+            # A worker lost meanwhile keeps nothing of ours worth reporting.
+            with contextlib.suppress(Exception):
+                self.last_builds = sum(client.run(_forget, token).values())
+        return work.restore([r for part in parts for r in part])
+
+    def close(self):
+        """Close the client and, for ``local``, shut the embedded cluster down."""
+        for obj in (getattr(self, "client", None), self.cluster):
+            if obj is not None:
+                with contextlib.suppress(Exception):  # closing is best effort
+                    obj.close()
+        self.cluster = None

@@ -1,0 +1,221 @@
+"""Runs the registration batches: serially, in a local process pool, or on Dask.
+
+Every runner gets the same inputs (scan points by id, the pairs and their
+seeds) and returns per-pair results in the input order.  Each pair's result
+depends only on its two scans, its seeds and the options, and every runner
+does the arithmetic the same way (same code, BLAS on one thread), so the
+verdicts and the graph are identical bit for bit whichever runner and however
+many workers are used (tests/runners/test_runners.py checks it).
+
+Scans are sent to each worker once, packed into one array (:class:`PointsTable`):
+the pool's initializer receives it, Dask scatters it to every worker.  Each
+worker prepares a scan (kd-tree, line fits, coarse grid) the first time one
+of its batches needs it and keeps the most recently used ones for later
+batches (:class:`ScanCache`, bounded so memory does not grow with the log).
+The runners register the pairs in an order that keeps pairs sharing scans
+together (:func:`locality_order`), so the cache rarely prepares a scan twice,
+and hand the results back in the input order.
+
+BLAS runs on one thread inside every runner: the matrices of one pair are
+small, and with one process per core a threaded BLAS only oversubscribes
+the cores (on a shared machine that made linear algebra many times slower).
+"""
+
+from __future__ import annotations
+
+import contextlib
+import threading
+from collections import OrderedDict
+from dataclasses import dataclass
+from typing import Protocol
+
+import numpy as np
+from scipy import sparse
+from scipy.sparse.csgraph import reverse_cuthill_mckee
+
+from ..errors import InputError
+from ..registration.batch import MIN_POINTS, register_batch
+from ..registration.icp import RegistrationOptions, prepare_scan
+
+# Prepared scans kept per worker.  A prepared scan with its coarse grid takes
+# about 0.5 MB, so the cache holds about 130 MB per worker at most; the reuse
+# of a scan by pairs that are far apart in the candidate order is the only
+# thing lost by a bound, and preparing a scan costs a few ms against tens of
+# ms for registering one pair.
+CACHE_SCANS = 256
+
+# Batches per worker: enough that a worker finishing early finds more work
+# while the slowest batch runs, few enough that per-batch overhead is small.
+BATCHES_PER_WORKER = 4
+
+@dataclass(frozen=True, eq=False)
+class PointsTable:
+    """Scan points of many scans in one array, cheap to pickle and to scatter.
+
+    ids : (S,) sorted int64 scan ids; offsets : (S + 1,) row offsets;
+    xy : (N, 2) float64 points (metres, each scan in its own sensor frame).
+    """
+
+    ids: np.ndarray
+    offsets: np.ndarray
+    xy: np.ndarray
+
+    @classmethod
+    def from_dict(cls, points: dict) -> PointsTable:
+        ids = np.array(sorted(int(i) for i in points), dtype=np.int64)
+        arrays = [np.asarray(points[int(i)], dtype=np.float64).reshape(-1, 2) for i in ids]
+        counts = np.array([len(a) for a in arrays], dtype=np.int64)
+        offsets = np.concatenate([[0], np.cumsum(counts)]).astype(np.int64)
+        xy = np.concatenate(arrays) if arrays else np.zeros((0, 2))
+        return cls(ids=ids, offsets=offsets, xy=xy)
+
+    def get(self, scan_id: int) -> np.ndarray | None:
+        k = int(np.searchsorted(self.ids, scan_id))
+        if k >= len(self.ids) or self.ids[k] != scan_id:
+            return None
+        return self.xy[self.offsets[k]:self.offsets[k + 1]]
+
+    @property
+    def nbytes(self) -> int:
+        return self.ids.nbytes + self.offsets.nbytes + self.xy.nbytes
+
+
+def as_table(points) -> PointsTable:
+    return points if isinstance(points, PointsTable) else PointsTable.from_dict(points)
+
+
+class ScanCache:
+    """Prepared scans of one process, built on first use, least recently used dropped.
+
+    A scan with fewer than MIN_POINTS points, or one that cannot be prepared
+    (no straight structure to register against), is None: its pairs get no
+    registration result (verdict ``no_points``) instead of failing the log.
+    """
+
+    def __init__(self, table: PointsTable, options: RegistrationOptions, max_scans: int = CACHE_SCANS):
+        self.table = table
+        self.options = options
+        self.max_scans = max(1, int(max_scans))
+        self.prepared: OrderedDict = OrderedDict()
+        self.builds = 0
+        # A Dask worker may run several batches at once in threads.
+        self._lock = threading.Lock()
+
+    def _build(self, scan_id: int):
+        pts = self.table.get(scan_id)
+        if pts is None or len(pts) < MIN_POINTS:
+            return None
+        self.builds += 1
+        try:
+            return prepare_scan(pts, self.options)
+        except InputError:
+            return None
+
+    def get(self, ids) -> dict:
+        """PreparedScan by id for the given ids (those that could be prepared)."""
+        with self._lock:
+            return self._get(ids)
+
+    def _get(self, ids) -> dict:
+        out = {}
+        for i in map(int, ids):
+            if i in self.prepared:
+                self.prepared.move_to_end(i)
+                p = self.prepared[i]
+            else:
+                p = self._build(i)
+                self.prepared[i] = p
+                # A batch needs all its scans at once, so the bound never drops one of them.
+                while len(self.prepared) > max(self.max_scans, len(out) + 1):
+                    self.prepared.popitem(last=False)
+            if p is not None:
+                out[i] = p
+        return out
+
+
+def run_batch(cache: ScanCache, src, dst, seeds) -> list:
+    """Register one batch of pairs with scans from ``cache`` (see register_batch)."""
+    prepared = cache.get(np.unique(np.concatenate([np.asarray(src), np.asarray(dst)])))
+    return register_batch(prepared, src, dst, seeds, cache.options)
+
+
+def locality_order(src, dst) -> np.ndarray:
+    """Permutation of the pairs that keeps pairs sharing a scan close together.
+
+    A place visited on several passes is paired with scans from all of
+    them, so in the candidates' own order (by the newer scan) a scan's pairs
+    lie far apart and a bounded cache prepares it again and again.  The
+    reverse Cuthill-McKee ordering of the graph (scans as vertices, pairs as
+    edges) numbers the scans so that every pair joins two nearby numbers
+    (a small bandwidth); sorting the pairs by their lower number, then the
+    higher, makes each scan's pairs a short run.
+    """
+    src = np.asarray(src, dtype=np.int64)
+    dst = np.asarray(dst, dtype=np.int64)
+    n = len(src)
+    if n < 3:
+        return np.arange(n)
+    ids, inv = np.unique(np.concatenate([src, dst]), return_inverse=True)
+    s, d = inv[:n], inv[n:]
+    m = len(ids)
+    adjacency = sparse.csr_matrix((np.ones(2 * n, dtype=np.int8), (np.concatenate([s, d]), np.concatenate([d, s]))),
+                                  shape=(m, m))
+    rank = np.empty(m, dtype=np.int64)
+    rank[reverse_cuthill_mckee(adjacency, symmetric_mode=True)] = np.arange(m)
+    a, b = rank[s], rank[d]
+    return np.lexsort((np.maximum(a, b), np.minimum(a, b)))
+
+
+class OrderedPairs:
+    """The pairs in locality order, and the way back to the input order."""
+
+    def __init__(self, src, dst, seeds):
+        self.order = locality_order(src, dst)
+        self.src = np.asarray(src)[self.order]
+        self.dst = np.asarray(dst)[self.order]
+        self.seeds = [seeds[k] for k in self.order]
+
+    def __len__(self) -> int:
+        return len(self.order)
+
+    def restore(self, results: list) -> list:
+        out: list = [None] * len(results)
+        for k, r in zip(self.order, results):
+            out[k] = r
+        return out
+
+
+def single_thread_blas():
+    """Context manager limiting BLAS/OpenMP pools to one thread (no-op without threadpoolctl)."""
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:  # pragma: no cover - threadpoolctl comes with scikit-learn
+        return contextlib.nullcontext()
+    return threadpool_limits(limits=1)
+
+
+def batch_slices(n: int, workers: int, batch_pairs: int) -> list[slice]:
+    """Contiguous batches of at most ``batch_pairs`` pairs, at least BATCHES_PER_WORKER per worker."""
+    if n == 0:
+        return []
+    size = max(1, min(int(batch_pairs), -(-n // (BATCHES_PER_WORKER * max(1, workers)))))
+    return [slice(i, min(i + size, n)) for i in range(0, n, size)]
+
+
+def advance(progress, sl: slice, total: int) -> None:
+    if progress is not None:
+        progress.advance("registration", sl.stop - sl.start, total)
+
+
+class Runner(Protocol):
+    """What the pipeline needs of a runner: register pairs, report its size, release its resources."""
+
+    workers: int
+    name: str
+
+    def register(self, points, src, dst, seeds, options: RegistrationOptions, batch_pairs: int,
+                 progress=None) -> list:
+        """Per-pair results in input order (see :func:`closurecheck.registration.batch.register_batch`)."""
+
+    def close(self) -> None:
+        """Release workers or connections."""

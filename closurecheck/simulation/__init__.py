@@ -1,0 +1,1 @@
+"""Our invented scenarios: floor plans, exact ray casting, noisy ranges and drifting odometry."""

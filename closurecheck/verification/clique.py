@@ -1,0 +1,789 @@
+"""Maximum clique of a consistency graph (which loop closures agree with each other).
+
+The largest set of pairwise-consistent loop closures is a maximum clique of
+the PCM consistency graph (Mangelson et al., ICRA 2018).  This module finds it
+with
+
+* a fast greedy heuristic in the spirit of Pattabiraman, Patwary,
+  Gebremedhin, Liao, Choudhary, "Fast Algorithms for the Maximum Clique
+  Problem on Massive Graphs with Applications to Overlapping Community
+  Detection" (2015): vertices in order of decreasing core number, each grown
+  greedily into a clique among neighbours whose core number can still beat
+  the best clique so far;
+* an exact branch and bound with greedy-colouring bounds in the style of
+  Tomita and Seki (MCQ, 2003) and its bitset form (San Segundo et al.,
+  BBMC, 2011), seeded by the heuristic and pruned by core numbers, under a
+  budget of node expansions (and optionally seconds).
+
+Consistency graphs of loop closures are nearly complete among the correct
+closures (a correct pair fails a 0.99 test 1% of the time), which makes
+colouring bounds weak.  Their complement, however, is sparse and falls apart:
+two vertices in different connected components of the complement are
+adjacent, so the search runs on each component alone (closures consistent
+with every other candidate form single-vertex components and need no search).
+
+The rule that picks the answer (``CliqueResult.canonical`` True):
+
+1. the largest number of vertices;
+2. among those, the largest summed vertex weight (when weights are given;
+   sums equal within ``weight_tie_rtol`` relative count as equal, compared
+   per complement component);
+3. among those, the lexicographically smallest sorted list of indices.
+
+Rule 3 is a separate tie phase with its own budget; on dense graphs with
+very many optimal cliques it can run out, and the result is then an optimal
+clique that the (deterministic) search reached, with ``canonical`` False.
+The same input and options always give the same members either way.
+
+Vertex sets are Python integers used as bitsets, which keeps the inner loops
+of the search to a few big-integer operations per vertex.
+"""
+
+from __future__ import annotations
+
+import bisect
+import time
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.sparse
+
+from ..errors import InputError
+
+__all__ = ["CliqueOptions", "CliqueResult", "core_numbers", "heuristic_clique", "max_clique"]
+
+
+@dataclass(frozen=True)
+class CliqueOptions:
+    """Budget and tie rules of :func:`max_clique`.
+
+    max_expansions:
+        Search nodes (greedy colourings) the search for the maximum may
+        expand.  Deterministic: the same input and budget always give the
+        same answer.
+    tie_max_expansions:
+        Search nodes the tie phase (rule 3 of the module docstring) may
+        expand once the maximum is proven.  Dense graphs with many optimal
+        cliques can need many; when the budget runs out the result keeps
+        ``exact=True`` but reports ``canonical=False``.
+    max_seconds:
+        Optional wall-clock budget in seconds for both phases; None means no
+        time limit.  A time limit makes the outcome depend on machine speed.
+    weight_tie_rtol:
+        Summed weights within this relative tolerance count as equal, so that
+        the summation order cannot change the answer.
+    canonical:
+        Run the tie phase.  False returns the optimal clique the search met
+        first (improved by single swaps towards smaller indices; still
+        deterministic, but dependent on the search order).
+    """
+
+    max_expansions: int = 1_000_000
+    tie_max_expansions: int = 100_000
+    max_seconds: float | None = None
+    weight_tie_rtol: float = 1e-9
+    canonical: bool = True
+
+    def __post_init__(self):
+        for name in ("max_expansions", "tie_max_expansions"):
+            v = getattr(self, name)
+            if not (isinstance(v, (int, np.integer)) and v >= 0):
+                raise InputError(f"{name} must be a non-negative integer, got {v!r}")
+        if self.max_seconds is not None and not (
+            isinstance(self.max_seconds, (int, float)) and self.max_seconds > 0
+        ):
+            raise InputError(f"max_seconds must be a positive number or None, got {self.max_seconds!r}")
+        if not (isinstance(self.weight_tie_rtol, (int, float)) and 0.0 <= self.weight_tie_rtol < 1.0):
+            raise InputError(f"weight_tie_rtol must be in [0, 1), got {self.weight_tie_rtol!r}")
+
+
+@dataclass(frozen=True)
+class CliqueResult:
+    """A clique and how much is known about it.
+
+    members: sorted (m,) int array of vertex indices.
+    exact: True when the clique is proven maximum (size, then weight).
+    canonical: True when, in addition, the tie rule of the module docstring
+        was applied to completion (so any search order gives these members).
+    expansions: search nodes expanded by the exact search (0 when the
+        heuristic already met the upper bound).
+    upper_bound: proven upper bound on the clique number (== size when exact).
+    weight: summed weight of the members (their count when unweighted).
+    """
+
+    members: np.ndarray
+    exact: bool
+    canonical: bool
+    expansions: int
+    upper_bound: int
+    weight: float
+
+    @property
+    def size(self) -> int:
+        return int(len(self.members))
+
+
+# --------------------------------------------------------------------------
+# input
+
+
+def _adjacency_csr(adjacency):
+    """Validated symmetric boolean CSR adjacency without self loops."""
+    if scipy.sparse.issparse(adjacency):
+        a = scipy.sparse.csr_array(adjacency)
+        if a.ndim != 2 or a.shape[0] != a.shape[1]:
+            raise InputError(f"adjacency must be a square matrix, got shape {a.shape}")
+        if a.dtype != bool or not a.data.all():
+            # Copies are avoided for boolean input without stored zeros:
+            # consistency graphs of long logs hold tens of millions of edges.
+            if a.nnz and not np.all(np.isfinite(a.data.astype(float))):
+                raise InputError("adjacency must not contain NaN or infinite entries")
+            a = scipy.sparse.csr_array(a != 0, dtype=bool)
+    else:
+        dense = np.asarray(adjacency)
+        if dense.ndim != 2 or dense.shape[0] != dense.shape[1]:
+            raise InputError(f"adjacency must be a square matrix, got shape {dense.shape}")
+        if dense.dtype != bool:
+            if not np.issubdtype(dense.dtype, np.number):
+                raise InputError(f"adjacency must be boolean or numeric, got dtype {dense.dtype}")
+            if not np.all(np.isfinite(dense)):
+                raise InputError("adjacency must not contain NaN or infinite entries")
+            dense = dense != 0
+        a = scipy.sparse.csr_array(dense)
+    if a.diagonal().any():
+        a = a.copy()  # never modify the caller's matrix
+        a.setdiag(False)
+        a.eliminate_zeros()
+    if (a != a.T).nnz:
+        raise InputError("adjacency must be symmetric (an undirected graph)")
+    a.sort_indices()
+    return a
+
+
+def _weights(weights, n):
+    if weights is None:
+        return np.ones(n), False
+    w = np.asarray(weights, dtype=float)
+    if w.shape != (n,):
+        raise InputError(f"weights must have shape ({n},), got {w.shape}")
+    if not np.all(np.isfinite(w)) or np.any(w < 0):
+        raise InputError("weights must be finite and non-negative")
+    return w, True
+
+
+def _bits(indices, n):
+    row = np.zeros(n, dtype=np.uint8)
+    row[indices] = 1
+    return int.from_bytes(np.packbits(row, bitorder="little").tobytes(), "little")
+
+
+def _members_of(bits):
+    out = []
+    while bits:
+        low = bits & -bits
+        out.append(low.bit_length() - 1)
+        bits ^= low
+    return out
+
+
+# --------------------------------------------------------------------------
+# core numbers
+
+
+def _peel(a):
+    """Core numbers and the peeling (degeneracy) order of a CSR adjacency.
+
+    Repeatedly removes a vertex of smallest remaining degree (ties: smallest
+    index); the core number is the largest such degree seen so far.  O(n^2)
+    with vectorised steps, fine for the few thousand vertices of a
+    consistency graph.
+    """
+    n = a.shape[0]
+    deg = np.diff(a.indptr).astype(np.int64)
+    removed = 2 * n + 2  # stays above any live degree after decrements
+    core = np.zeros(n, dtype=np.int64)
+    order = np.empty(n, dtype=np.intp)
+    k = 0
+    for step in range(n):
+        v = int(np.argmin(deg))
+        k = max(k, int(deg[v]))
+        core[v] = k
+        order[step] = v
+        deg[v] = removed
+        deg[a.indices[a.indptr[v] : a.indptr[v + 1]]] -= 1
+    return core, order
+
+
+def core_numbers(adjacency) -> np.ndarray:
+    """Core number of each vertex: the largest k such that the vertex lies in
+    a subgraph where every vertex has at least k neighbours.  A clique
+    containing vertex v has at most ``core[v] + 1`` vertices."""
+    return _peel(_adjacency_csr(adjacency))[0]
+
+
+# --------------------------------------------------------------------------
+# the search state shared by the heuristic and the exact phases
+
+
+class _Graph:
+    """Bitset adjacency relabelled so that bit 0 is the most promising vertex.
+
+    Position p holds vertex ``order[p]``; positions run from the last peeled
+    vertex (highest core number) to the first, so core numbers are
+    non-increasing along positions and greedy colouring in position order
+    sees dense vertices first (the initial ordering of MCQ/BBMC).
+    """
+
+    def __init__(self, a, w, weighted):
+        self.n = a.shape[0]
+        self.core, peel = _peel(a)
+        self.order = peel[::-1].copy()
+        self.pos = np.empty(self.n, dtype=np.intp)
+        self.pos[self.order] = np.arange(self.n)
+        self.a = a
+        self.weighted = weighted
+        self.w = w
+        self.wpos = w[self.order].tolist()
+        self.core_pos = self.core[self.order]
+        self.nbr = [
+            _bits(self.pos[a.indices[a.indptr[v] : a.indptr[v + 1]]], self.n) for v in self.order.tolist()
+        ]
+
+    def prefix_mask(self, min_core):
+        """Bitset of positions whose core number is >= min_core (a prefix)."""
+        count = int(np.count_nonzero(self.core_pos >= min_core))
+        return (1 << count) - 1
+
+
+def _better(size, weight, best_size, best_weight, weighted):
+    if size != best_size:
+        return size > best_size
+    return weighted and weight > best_weight
+
+
+_HEURISTIC_STARTS = 64
+
+
+def _heuristic(g: _Graph):
+    """Greedy cliques grown from the first vertices in decreasing core order.
+
+    Returns (positions, size, weight).  A vertex v can only start a clique
+    larger than the best when ``core[v] + 1 > best``; candidates are limited
+    to neighbours with core >= best, and each step adds the candidate of
+    lowest position (highest core number, then latest peeled).  At most
+    ``_HEURISTIC_STARTS`` start vertices are tried: the result is only the
+    exact search's first lower bound, and on the near-complete consistency
+    graphs of long logs (10,000 closures, cliques of 7,000) growing a clique
+    from every vertex cost a minute while the first few already find the
+    best.
+    """
+    best, best_size, best_w = [], 0, 0.0
+    for p in range(min(g.n, _HEURISTIC_STARTS)):
+        limit = int(g.core_pos[p]) + 1
+        if limit < best_size or (limit == best_size and not g.weighted):
+            break  # core numbers only decrease from here
+        cand = g.nbr[p] & g.prefix_mask(max(best_size - 1, 0))
+        clique = [p]
+        while cand:
+            low = cand & -cand
+            u = low.bit_length() - 1
+            clique.append(u)
+            cand &= g.nbr[u]
+        size = len(clique)
+        weight = sum(g.wpos[u] for u in clique)
+        if _better(size, weight, best_size, best_w, g.weighted):
+            best, best_size, best_w = clique, size, weight
+    return best, best_size, best_w
+
+
+class _Budget:
+    def __init__(self, expansions, deadline):
+        self.left = int(expansions)
+        self.deadline = deadline
+        self.used = 0
+
+    def spend(self) -> bool:
+        """Count one expansion; False when the budget is gone."""
+        if self.left <= 0:
+            return False
+        self.left -= 1
+        self.used += 1
+        if self.deadline is not None and (self.used & 255) == 0 and time.perf_counter() > self.deadline:
+            self.left = 0
+        return True
+
+
+def _colour(nbr, wpos, p_bits, kmin, weighted):
+    """Greedy colour classes of p_bits in position order (BBMC).
+
+    Returns (verts, cols, wbound, all_singletons): the vertices whose colour
+    k >= kmin in class order, their colour, and for each the sum over classes
+    1..k of the class's largest weight (an upper bound on the weight a clique
+    can collect from those classes).  ``all_singletons`` means every class
+    has one vertex, i.e. p_bits is itself a clique.
+    """
+    verts, cols, wbound = [], [], []
+    q = p_bits
+    k = 0
+    acc = 0.0
+    singletons = True
+    while q:
+        k += 1
+        u_bits = q
+        cmax = 0.0
+        count = 0
+        while u_bits:
+            low = u_bits & -u_bits
+            v = low.bit_length() - 1
+            u_bits ^= low
+            u_bits &= ~nbr[v]
+            q ^= low
+            count += 1
+            if k >= kmin:
+                verts.append(v)
+                cols.append(k)
+            if weighted and wpos[v] > cmax:
+                cmax = wpos[v]
+        if count > 1:
+            singletons = False
+        if weighted:
+            acc += cmax
+            if k >= kmin:
+                wbound.extend([acc] * count)
+    return verts, cols, wbound, singletons
+
+
+def _exact(g: _Graph, start, budget: _Budget):
+    """Branch and bound for the best clique by (size, weight), seeded by start.
+
+    Iterative (explicit stack) because cliques can be far deeper than
+    Python's recursion limit.  Returns (positions, size, weight, finished,
+    root_colours).
+    """
+    best, best_size, best_w = start
+    weighted = g.weighted
+    nbr, wpos = g.nbr, g.wpos
+    # A clique beating the incumbent needs core >= best_size (or, to tie in
+    # size with more weight, >= best_size - 1).
+    root = g.prefix_mask(best_size - 1 if weighted else best_size)
+    if not root:
+        return best, best_size, best_w, True, 0
+    if not budget.spend():
+        return best, best_size, best_w, False, g.n
+
+    def kmin_for(r):
+        return max(1, best_size - r if weighted else best_size - r + 1)
+
+    verts, cols, wb, single = _colour(nbr, wpos, root, kmin_for(0), weighted)
+    root_colours = cols[-1] if cols else 0
+    path, path_w = [], [0.0]
+    if single:
+        members = _members_of(root)
+        size, weight = len(members), sum(wpos[u] for u in members)
+        if _better(size, weight, best_size, best_w, weighted):
+            return members, size, weight, True, root_colours
+        return best, best_size, best_w, True, root_colours
+    stack = [[verts, cols, wb, len(verts) - 1, root]]
+    finished = True
+    while stack:
+        frame = stack[-1]
+        idx = frame[3]
+        r = len(path)
+        if idx >= 0:
+            c = frame[1][idx]
+            bound = r + c
+            if weighted:
+                go = bound > best_size or (bound == best_size and path_w[-1] + frame[2][idx] > best_w)
+            else:
+                go = bound > best_size
+        else:
+            go = False
+        if not go:
+            stack.pop()
+            if path:
+                path.pop()
+                path_w.pop()
+            continue
+        v = frame[0][idx]
+        frame[3] = idx - 1
+        p_bits = frame[4]
+        child = p_bits & nbr[v]
+        frame[4] = p_bits ^ (1 << v)
+        wr = path_w[-1] + wpos[v]
+        if not child:
+            if _better(r + 1, wr, best_size, best_w, weighted):
+                best, best_size, best_w = path + [v], r + 1, wr
+            continue
+        if not budget.spend():
+            finished = False
+            break
+        path.append(v)
+        path_w.append(wr)
+        verts, cols, wb, single = _colour(nbr, wpos, child, kmin_for(r + 1), weighted)
+        if single:
+            members = path + _members_of(child)
+            weight = wr + sum(wpos[u] for u in _members_of(child))
+            if _better(len(members), weight, best_size, best_w, weighted):
+                best, best_size, best_w = members, len(members), weight
+            path.pop()
+            path_w.pop()
+            continue
+        if not verts:
+            path.pop()
+            path_w.pop()
+            continue
+        stack.append([verts, cols, wb, len(verts) - 1, child])
+    return best, best_size, best_w, finished, root_colours
+
+
+def _lex_less(path_sorted, extra, best):
+    """Is sorted(path_sorted ∪ extra) lexicographically smaller than best?
+
+    ``path_sorted`` and ``extra`` are sorted lists of original indices, best
+    a sorted list of the same total length.
+    """
+    i = j = 0
+    for b in best:
+        if i < len(path_sorted) and (j >= len(extra) or path_sorted[i] < extra[j]):
+            x = path_sorted[i]
+            i += 1
+        else:
+            x = extra[j]
+            j += 1
+        if x != b:
+            return x < b
+    return False
+
+
+def _lex_improve(g: _Graph, members, min_weight):
+    """Cheap local improvement of a maximum clique towards the tie rule:
+    swap a member for a smaller-index non-member adjacent to all the others
+    while the weight stays above min_weight.  Positions in, positions out."""
+    idx = g.order
+    bits = 0
+    for p in members:
+        bits |= 1 << p
+    weight = sum(g.wpos[p] for p in members)
+    by_index = g.pos.tolist()  # positions in increasing original index
+    improved = True
+    while improved:
+        improved = False
+        for u in by_index:
+            ub = 1 << u
+            if bits & ub:
+                continue
+            missing = bits & ~g.nbr[u]
+            if missing and not (missing & (missing - 1)):
+                m = missing.bit_length() - 1
+                if idx[m] > idx[u] and weight - g.wpos[m] + g.wpos[u] >= min_weight:
+                    bits ^= missing | ub
+                    weight += g.wpos[u] - g.wpos[m]
+                    improved = True
+                    break
+    return _members_of(bits)
+
+
+def _lex_colour(g: _Graph, p_bits):
+    """Greedy colour classes of p_bits (position order) for the tie phase.
+
+    Returns (verts, cols, class_min, class_wmax, singletons): all vertices in
+    class order with their colour, and per class (index k - 1) the smallest
+    original index and the largest weight of its members.
+    """
+    nbr, wpos, order = g.nbr, g.wpos, g.order
+    verts, cols, class_min, class_wmax = [], [], [], []
+    q = p_bits
+    k = 0
+    singletons = True
+    while q:
+        k += 1
+        u_bits = q
+        cmin = g.n
+        cmax = 0.0
+        count = 0
+        while u_bits:
+            low = u_bits & -u_bits
+            v = low.bit_length() - 1
+            u_bits ^= low
+            u_bits &= ~nbr[v]
+            q ^= low
+            count += 1
+            verts.append(v)
+            cols.append(k)
+            if order[v] < cmin:
+                cmin = int(order[v])
+            if wpos[v] > cmax:
+                cmax = wpos[v]
+        class_min.append(cmin)
+        class_wmax.append(cmax)
+        singletons = singletons and count == 1
+    return verts, cols, class_min, class_wmax, singletons
+
+
+def _tie_break(g: _Graph, size, min_weight, incumbent, budget: _Budget):
+    """Lexicographically smallest clique (sorted original indices) with
+    ``size`` vertices and summed weight >= min_weight; positions or None if
+    the budget runs out.
+
+    Branch and bound in the same position order and colouring as the main
+    search, starting from ``incumbent`` (such a clique).  A branch whose
+    candidates lie in colour classes 1..c can at best complete the path with
+    one vertex from each of ``need`` distinct classes, so (i) its weight is at
+    most the sum of the ``need`` largest class maxima and (ii) the sorted
+    clique is, element by element, no smaller than the path merged with the
+    ``need`` smallest class minima (the k-th smallest index of any valid
+    completion is at least the k-th smallest class minimum).  Both bounds
+    only weaken as c decreases, so the first failing branch ends the node.
+    """
+    order = g.order
+    best_pos = _lex_improve(g, incumbent, min_weight)
+    best = sorted(int(order[p]) for p in best_pos)
+    version = [0]
+    weighted = g.weighted
+    nbr, wpos = g.nbr, g.wpos
+
+    def offer(positions, weight):
+        nonlocal best_pos, best
+        if len(positions) != size or (weighted and weight < min_weight):
+            return
+        cand = sorted(int(order[p]) for p in positions)
+        if cand < best:
+            best_pos, best = list(positions), cand
+            version[0] += 1
+
+    def floor_level(frame, r, path_sorted, w_path):
+        """Smallest colour c such that a branch of colour >= c passes both bounds."""
+        if frame[6] == version[0]:
+            return frame[5]
+        class_min, class_wmax = frame[3], frame[4]
+        need = size - r
+
+        def ok(c):
+            if weighted and w_path + sum(sorted(class_wmax[:c], reverse=True)[:need]) < min_weight:
+                return False
+            return _lex_less(path_sorted, sorted(class_min[:c])[:need], best)
+
+        lo, hi = max(need, 1), len(class_min)
+        if hi < lo or not ok(hi):
+            level = hi + 1
+        else:
+            while lo < hi:  # ok is monotone in c
+                mid = (lo + hi) // 2
+                if ok(mid):
+                    hi = mid
+                else:
+                    lo = mid + 1
+            level = lo
+        frame[5], frame[6] = level, version[0]
+        return level
+
+    root = g.prefix_mask(size - 1)
+    if not budget.spend():
+        return None
+    verts, cols, cmin, cwmax, single = _lex_colour(g, root)
+    if single:
+        return best_pos  # the candidates form one clique: nothing to choose
+    # frame: [verts, cols, p_bits, class_min, class_wmax, floor, floor_version, idx]
+    stack = [[verts, cols, root, cmin, cwmax, 0, -1, len(verts) - 1]]
+    path, path_w, path_sorted = [], [0.0], []
+    while stack:
+        frame = stack[-1]
+        idx = frame[7]
+        r = len(path)
+        go = idx >= 0 and r + frame[1][idx] >= size
+        if go:
+            go = frame[1][idx] >= floor_level(frame, r, path_sorted, path_w[-1])
+        if not go:
+            stack.pop()
+            if path:
+                v_old = path.pop()
+                path_w.pop()
+                path_sorted.remove(int(order[v_old]))
+            continue
+        v = frame[0][idx]
+        frame[7] = idx - 1
+        p_bits = frame[2]
+        child = p_bits & nbr[v]
+        frame[2] = p_bits ^ (1 << v)
+        wr = path_w[-1] + wpos[v]
+        if r + 1 == size:
+            offer(path + [v], wr)
+            continue
+        if not child:
+            continue
+        if not budget.spend():
+            return None
+        verts, cols, cmin, cwmax, single = _lex_colour(g, child)
+        if single:
+            members = _members_of(child)
+            if r + 1 + len(members) == size:
+                offer(path + [v] + members, wr + sum(wpos[u] for u in members))
+            continue
+        path.append(v)
+        path_w.append(wr)
+        bisect.insort(path_sorted, int(order[v]))
+        stack.append([verts, cols, child, cmin, cwmax, 0, -1, len(verts) - 1])
+    return best_pos
+
+
+def _result(members, w, exact, canonical, expansions, upper_bound):
+    m = np.sort(np.asarray(members, dtype=np.intp))
+    return CliqueResult(
+        members=m,
+        exact=bool(exact),
+        canonical=bool(canonical),
+        expansions=int(expansions),
+        upper_bound=int(upper_bound),
+        weight=float(w[m].sum()) if len(m) else 0.0,
+    )
+
+
+def _complement_components(nbr, n):
+    """Connected components of the complement graph (bitset search).
+
+    Any two vertices in different components are adjacent, so a maximum
+    clique is the union of a maximum clique of each component.  Components
+    come in order of their smallest vertex, each as a sorted list.
+    """
+    remaining = (1 << n) - 1
+    comps = []
+    while remaining:
+        low = remaining & -remaining
+        remaining ^= low
+        comp = low
+        frontier = [low.bit_length() - 1]
+        while frontier:
+            v = frontier.pop()
+            new = remaining & ~nbr[v]
+            if new:
+                remaining ^= new
+                comp |= new
+                frontier.extend(_members_of(new))
+        comps.append(_members_of(comp))
+    return comps
+
+
+@dataclass
+class _PartResult:
+    members: list  # original indices
+    size: int
+    finished: bool
+    canonical: bool
+    upper: int
+
+
+def _solve_part(a, w, weighted, seed, budget, tie_budget, options):
+    """Both phases on one complement component (CSR ``a``, local indices).
+
+    ``seed`` is a clique (local indices) the answer must not fall below.
+    """
+    g = _Graph(a, w, weighted)
+    start = _heuristic(g)
+    seed_pos = [int(p) for p in g.pos[seed]]
+    seed_w = sum(g.wpos[p] for p in seed_pos)
+    if _better(len(seed_pos), seed_w, start[1], start[2], weighted):
+        start = (seed_pos, len(seed_pos), seed_w)
+    core_bound = int(g.core.max()) + 1
+    if start[1] == core_bound and not weighted:
+        best, size, weight, finished, root_colours = start[0], start[1], start[2], True, start[1]
+    else:
+        best, size, weight, finished, root_colours = _exact(g, start, budget)
+    if not finished:
+        upper = max(size, min(core_bound, root_colours))
+        return _PartResult(g.order[best].tolist(), size, False, False, upper)
+    min_weight = weight - options.weight_tie_rtol * max(1.0, abs(weight))
+    if options.canonical:
+        found = _tie_break(g, size, min_weight, best, tie_budget)
+        if found is not None:
+            return _PartResult(g.order[found].tolist(), size, True, True, size)
+    return _PartResult(g.order[_lex_improve(g, best, min_weight)].tolist(), size, True, False, size)
+
+
+def heuristic_clique(adjacency, weights=None) -> CliqueResult:
+    """Greedy clique by core order (fast, no optimality guarantee).
+
+    Parameters
+    ----------
+    adjacency : (n, n) scipy.sparse matrix or array
+        Undirected graph; any nonzero entry is an edge; the diagonal is
+        ignored; must be symmetric.
+    weights : (n,) array of non-negative floats, optional
+        Vertex weights, used to break ties in size.
+
+    Returns
+    -------
+    CliqueResult with ``exact`` True only when the clique reaches the
+    core-number bound (max core + 1) and the graph is unweighted.
+    """
+    a = _adjacency_csr(adjacency)
+    w, weighted = _weights(weights, a.shape[0])
+    if a.shape[0] == 0:
+        return _result([], w, True, True, 0, 0)
+    g = _Graph(a, w, weighted)
+    best, size, _ = _heuristic(g)
+    bound = int(g.core.max()) + 1
+    exact = size == bound and not weighted
+    return _result(g.order[best], w, exact, False, 0, bound)
+
+
+def max_clique(adjacency, weights=None, options: CliqueOptions = CliqueOptions()) -> CliqueResult:
+    """Maximum clique of an undirected graph (exact within a budget).
+
+    Parameters
+    ----------
+    adjacency : (n, n) scipy.sparse matrix or array
+        Undirected graph, e.g. ``PairConsistency.adjacency``; any nonzero
+        entry is an edge; the diagonal is ignored; must be symmetric.
+    weights : (n,) array of non-negative floats, optional
+        Vertex weights (e.g. a registration quality score): among cliques of
+        the largest size the one with the largest summed weight wins.
+    options : CliqueOptions
+        Expansion / time budget and tie rules.
+
+    Returns
+    -------
+    CliqueResult
+        ``members`` follow the rule of the module docstring when
+        ``canonical`` is True.  When the budget runs out before the maximum is
+        proven, the best clique found so far (at least the heuristic's) is
+        returned with ``exact=False`` and ``upper_bound`` says how far from
+        optimal it can be.
+    """
+    a = _adjacency_csr(adjacency)
+    n = a.shape[0]
+    w, weighted = _weights(weights, n)
+    if n == 0:
+        return _result([], w, True, True, 0, 0)
+    deadline = None if options.max_seconds is None else time.perf_counter() + options.max_seconds
+    budget = _Budget(options.max_expansions, deadline)
+    tie_budget = _Budget(options.tie_max_expansions, deadline)
+    g = _Graph(a, w, weighted)
+    seed, seed_size, _ = _heuristic(g)
+    # Every clique at least as large as the heuristic's lies among the
+    # vertices of core number >= seed_size - 1; split those by the
+    # components of their complement graph and solve each part alone.
+    keep = np.flatnonzero(g.core >= seed_size - 1)
+    seed_orig = np.sort(g.order[seed])
+    local = np.full(n, -1, dtype=np.intp)
+    local[keep] = np.arange(len(keep))
+    sub = a if len(keep) == n else a[keep][:, keep]
+    sub_bits = [_bits(sub.indices[sub.indptr[v] : sub.indptr[v + 1]], len(keep)) for v in range(len(keep))]
+    members, finished, canonical, upper = [], True, True, 0
+    for comp in _complement_components(sub_bits, len(keep)):
+        idx = keep[comp]
+        if len(comp) == 1:
+            members.append(int(idx[0]))
+            upper += 1
+            continue
+        part_seed = local[np.intersect1d(seed_orig, idx)]
+        comp_local = np.full(len(keep), -1, dtype=np.intp)
+        comp_local[comp] = np.arange(len(comp))
+        part = _solve_part(sub[comp][:, comp], w[idx], weighted, comp_local[part_seed], budget, tie_budget, options)
+        members.extend(idx[part.members].tolist())
+        finished &= part.finished
+        canonical &= part.canonical
+        upper += part.upper
+    expansions = budget.used + tie_budget.used
+    if not finished:
+        return _result(members, w, False, False, expansions, max(upper, len(members)))
+    return _result(members, w, True, canonical, expansions, len(members))

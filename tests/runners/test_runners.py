@@ -1,0 +1,232 @@
+"""Serial, local pool and Dask runners give the same run, bit for bit.
+
+The reference is the serial run in this process: each pair's registration
+depends only on its two scans, its seeds and the options, so a pool of
+worker processes or a Dask cluster must reproduce it exactly (verdicts,
+registered deltas and covariances, optimised poses), whatever the batch
+order and the worker that ran a batch.
+
+To keep the file quick, one small generated log is shared by every test and
+only every fourth proposed candidate is registered (given to the run as an
+external pairs list); the subset still holds accepted closures and every
+kind of rejection the small log produces.
+"""
+
+import sys
+
+import numpy as np
+import pytest
+
+from closurecheck.config import RunConfig
+from closurecheck.errors import InputError
+from closurecheck.frontend.candidates import prepare, proposal_noise, propose_for
+from closurecheck.frontend.keyframes import select_keyframes
+from closurecheck.io.pairs_csv import ExternalPairs
+from closurecheck.pipeline import effective_noise, run_log
+from closurecheck.registration.batch import register_batch
+from closurecheck.registration.icp import prepare_scan
+from closurecheck.runners.factory import make_runner
+from closurecheck.runners.pool import PoolRunner
+from closurecheck.runners.serial import SerialRunner
+from closurecheck.runners.work import PointsTable, ScanCache, locality_order
+from closurecheck.simulation.simulate import simulate_log
+
+SCENARIO, SEED, SCANS, STRIDE = "ring", 3, 700, 4
+# Small batches so that each worker runs several and they finish out of order.
+CONFIG = RunConfig(jobs=1, batch_pairs=6)
+
+
+@pytest.fixture(scope="module")
+def case():
+    log = simulate_log(SCENARIO, seed=SEED, scans=SCANS)
+    kf = select_keyframes(log.odom, CONFIG.keyframes)
+    data = prepare(log, kf, proposal_noise(effective_noise(log, CONFIG.odometry)), CONFIG.descriptors)
+    cands = propose_for(data, CONFIG.candidates)
+    sel = np.arange(0, len(cands), STRIDE)
+    pairs = ExternalPairs(src=cands.src[sel], dst=cands.dst[sel], guess=np.full((len(sel), 3), np.nan),
+                          lines=sel + 2, source="every fourth candidate")
+    serial = run_log(log, CONFIG, external=pairs, runner=SerialRunner())
+    return {"log": log, "pairs": pairs, "serial": serial}
+
+
+def _assert_same_run(a, b):
+    va, vb = a.verdicts, b.verdicts
+    np.testing.assert_array_equal(va.src, vb.src)
+    np.testing.assert_array_equal(va.dst, vb.dst)
+    np.testing.assert_array_equal(va.accepted, vb.accepted)
+    np.testing.assert_array_equal(va.reason.astype(str), vb.reason.astype(str))
+    # Bit for bit: array_equal, not allclose (NaN where a pair has no result).
+    assert np.array_equal(va.delta, vb.delta, equal_nan=True)
+    assert np.array_equal(va.covariance, vb.covariance, equal_nan=True)
+    assert np.array_equal(a.registrations.iterations, b.registrations.iterations)
+    assert np.array_equal(a.poses, b.poses)
+    assert np.array_equal(a.graph.information, b.graph.information)
+
+
+def test_the_shared_case_exercises_the_verdicts(case):
+    v = case["serial"].verdicts
+    reasons = set(v.reason.astype(str))
+    assert v.accepted.sum() >= 3, "the subset must hold accepted closures for the pose comparison to mean anything"
+    assert len(reasons - {"accepted"}) >= 3
+    # The accepted closures moved the map: the optimised poses differ from odometry.
+    assert np.abs(case["serial"].poses - case["serial"].odom).max() > 0.05
+
+
+def test_pool_of_two_matches_serial(case):
+    runner = make_runner(2)
+    assert isinstance(runner, PoolRunner) and runner.workers == 2
+    try:
+        pooled = run_log(case["log"], CONFIG, external=case["pairs"], runner=runner)
+    finally:
+        runner.close()
+    _assert_same_run(case["serial"], pooled)
+
+
+def test_dask_local_cluster_matches_serial(case):
+    pytest.importorskip("distributed", reason="the optional extra closurecheck[dask] is not installed")
+    from closurecheck.runners.dask_cluster import DaskRunner
+
+    runner = make_runner(2, dask="local")
+    assert isinstance(runner, DaskRunner) and runner.workers == 2
+    try:
+        distributed = run_log(case["log"], CONFIG, external=case["pairs"], runner=runner)
+        # Each worker dropped the log's prepared scans once the log was done.
+        left = runner.client.run(_cached_runs)
+        # A second client reaching the same cluster by its tcp:// address, as
+        # `--dask tcp://HOST:PORT` does, on a few pairs.
+        remote = DaskRunner(runner.cluster.scheduler_address)
+        try:
+            assert remote.workers == 2
+            few = _few_pairs(case)
+            by_address = remote.register(*few, CONFIG.registration, 2)
+        finally:
+            remote.close()
+    finally:
+        runner.close()
+    _assert_same_run(case["serial"], distributed)
+    assert runner.last_builds >= len(np.union1d(case["pairs"].src, case["pairs"].dst))
+    assert left and set(left.values()) == {0}
+    reference = SerialRunner().register(*few, CONFIG.registration, 2)
+    assert len(by_address) == len(reference)
+    for ra, rb in zip(reference, by_address):
+        assert (ra is None) == (rb is None)
+        assert ra is None or all(np.array_equal(x, y) for x, y in zip(ra, rb))
+
+
+def _few_pairs(case, n=6):
+    log, pairs = case["log"], case["pairs"]
+    src, dst = pairs.src[:n], pairs.dst[:n]
+    points = {int(i): log.points(int(i)) for i in np.union1d(src, dst)}
+    return points, src, dst, [np.zeros((1, 3))] * n
+
+
+def _cached_runs():
+    from closurecheck.runners import dask_cluster as dask_runner
+
+    return len(dask_runner._CACHES)
+
+
+def test_a_bounded_cache_changes_nothing_but_the_work(case):
+    log = case["log"]
+    scans = [0, 3, 6, 9]
+    # A cycle of pairs, one per batch: with room for two scans, whatever the
+    # order, some scan must be prepared a second time.
+    src = np.array([0, 3, 6, 9])
+    dst = np.array([3, 6, 9, 0])
+    points = {i: log.points(i) for i in scans}
+    seeds = [np.zeros((1, 3))] * len(src)
+    big, small = SerialRunner(), SerialRunner(cache_scans=2)
+    a = big.register(points, src, dst, seeds, CONFIG.registration, 1)
+    b = small.register(points, src, dst, seeds, CONFIG.registration, 1)
+    assert big.last_builds == len(scans)
+    assert small.last_builds > len(scans)
+    assert all(r is not None for r in a)
+    for ra, rb in zip(a, b):
+        assert all(np.array_equal(x, y) for x, y in zip(ra, rb))
+
+
+def test_locality_order_groups_each_scans_pairs():
+    # A route driven four times, L keyframes a pass; every keyframe is paired
+    # with the same place on each earlier pass, listed by the newer scan (as
+    # candidates are).  In that order a scan of the first pass has pairs
+    # about L apart; in locality order they must form a short run.
+    passes, length = 4, 200
+    src, dst = [], []
+    for q in range(1, passes):
+        for i in range(length):
+            for p in range(q):
+                src.append(q * length + i)
+                dst.append(p * length + i)
+    src, dst = np.array(src), np.array(dst)
+    by_newer = np.argsort(src, kind="stable")
+    src, dst = src[by_newer], dst[by_newer]
+
+    def widest_run(order):
+        pos = np.empty(len(order), dtype=np.int64)
+        pos[order] = np.arange(len(order))
+        spans = []
+        for scan in np.union1d(src, dst):
+            at = pos[(src == scan) | (dst == scan)]
+            spans.append(at.max() - at.min())
+        return max(spans)
+
+    order = locality_order(src, dst)
+    assert sorted(order.tolist()) == list(range(len(src)))
+    assert widest_run(np.arange(len(src))) >= length
+    assert widest_run(order) <= 3 * passes * passes
+
+
+def test_points_table_round_trip():
+    rng = np.random.default_rng(0)
+    points = {7: rng.normal(size=(5, 2)), 2: rng.normal(size=(3, 2)), 40: np.zeros((0, 2))}
+    table = PointsTable.from_dict(points)
+    for i, p in points.items():
+        assert np.array_equal(table.get(i), p)
+    assert table.get(3) is None and table.get(41) is None
+
+
+def test_a_scan_without_straight_structure_is_skipped_not_fatal(case):
+    rng = np.random.default_rng(1)
+    # Scattered clutter: no point has collinear neighbours, so preparation refuses it.
+    clutter = rng.uniform(-8.0, 8.0, size=(300, 2))
+    with pytest.raises(InputError):
+        prepare_scan(clutter, CONFIG.registration)
+    room = case["log"].points(0)
+    cache = ScanCache(PointsTable.from_dict({0: clutter, 1: room, 2: room[:5]}), CONFIG.registration)
+    got = cache.get([0, 1, 2])
+    assert set(got) == {1}
+    out = register_batch(got, np.array([0, 1]), np.array([1, 2]), [np.zeros((1, 3))] * 2, CONFIG.registration)
+    assert out == [None, None]
+
+
+def test_make_runner_choices():
+    assert isinstance(make_runner(1), SerialRunner)
+    with pytest.raises(InputError, match="--jobs"):
+        make_runner(-1)
+
+
+def test_missing_dask_gives_the_install_hint(monkeypatch):
+    from closurecheck.runners.dask_cluster import MISSING_EXTRA
+
+    monkeypatch.setitem(sys.modules, "distributed", None)  # import now raises ImportError
+    with pytest.raises(InputError) as err:
+        make_runner(2, dask="local")
+    assert str(err.value) == MISSING_EXTRA == "--dask needs the optional extra: pip install 'closurecheck[dask]'"
+
+
+def test_bad_dask_addresses_are_input_errors(monkeypatch):
+    pytest.importorskip("distributed", reason="the optional extra closurecheck[dask] is not installed")
+    import socket
+
+    from closurecheck.runners import dask_cluster as dask_runner
+
+    with pytest.raises(InputError, match="tcp://HOST:PORT"):
+        dask_runner.DaskRunner("scheduler.example:8786")
+    # A loopback port with nothing listening: refused, reported within the (shortened) timeout.
+    monkeypatch.setattr(dask_runner, "CONNECT_TIMEOUT_S", 1.0)
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    with pytest.raises(InputError, match=f"cannot connect to the Dask scheduler at tcp://127.0.0.1:{port}") as err:
+        dask_runner.DaskRunner(f"tcp://127.0.0.1:{port}")
+    assert "\n" not in str(err.value)
