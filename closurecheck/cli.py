@@ -75,34 +75,29 @@ def _recording_choice(args):
 
 def _run_config(args):
     """Defaults, then --config FILE, then the command-line options."""
-    from .config import RunConfig, merge
-    from .io.settings_file import load_toml
+    from .config import build_config
 
-    config = RunConfig()
-    if args.config:
-        config = merge(config, load_toml(args.config), path=args.config)
     updates: dict = {}
-
-    def put(section, key, value):
-        if value is not None:
-            if section is None:
-                updates[key] = value
-            else:
-                updates.setdefault(section, {})[key] = value
-
-    put(None, "jobs", args.jobs)
-    put("keyframes", "min_travel_m", args.keyframe_travel)
-    put("keyframes", "min_rotation_rad", args.keyframe_rotation)
-    put("odometry", "translation_m_per_sqrt_m", args.odom_translation_noise)
-    put("odometry", "heading_rad_per_sqrt_m", args.odom_heading_noise)
-    put("odometry", "heading_rad_per_sqrt_rad", args.odom_turn_noise)
-    put("candidates", "max_per_keyframe", args.max_candidates)
-    put("verify", "min_overlap", args.min_overlap)
-    put("verify", "max_rmse_m", args.max_rmse)
-    put("verify", "gate_probability", args.gate_probability)
-    put("verify", "pair_probability", args.pair_probability)
-    put("verify", "residual_probability", args.residual_probability)
-    return merge(config, updates) if updates else config
+    for section, key, value in (
+            (None, "jobs", args.jobs),
+            ("keyframes", "spacing_m", args.keyframe_spacing),
+            ("keyframes", "turn_rad", args.keyframe_turn),
+            ("odometry", "translation_m_per_sqrt_m", args.odom_translation_noise),
+            ("odometry", "heading_rad_per_sqrt_m", args.odom_heading_noise),
+            ("odometry", "heading_rad_per_sqrt_rad", args.odom_turn_noise),
+            ("candidates", "max_per_keyframe", args.max_candidates),
+            ("verify", "min_overlap", args.min_overlap),
+            ("verify", "max_rmse_m", args.max_rmse),
+            ("verify", "gate_probability", args.gate_probability),
+            ("verify", "pair_probability", args.pair_probability),
+            ("verify", "residual_probability", args.residual_probability)):
+        if value is None:
+            continue
+        if section is None:
+            updates[key] = value
+        else:
+            updates.setdefault(section, {})[key] = value
+    return build_config(args.config, updates)
 
 
 def _cmd_run(args) -> int:
@@ -211,9 +206,9 @@ def build_parser() -> argparse.ArgumentParser:
                          help="run registration on Dask: 'local' or tcp://HOST:PORT (needs the dask extra)")
     runopts.add_argument("--no-report", action="store_true", help="skip report.html (faster)")
     t = runopts.add_argument_group("main thresholds (all settings: --config)")
-    t.add_argument("--keyframe-travel", type=float, default=None, metavar="M",
-                   help="odometry travel that makes a new keyframe (default 0.5 m)")
-    t.add_argument("--keyframe-rotation", type=float, default=None, metavar="RAD",
+    t.add_argument("--keyframe-spacing", type=float, default=None, metavar="M",
+                   help="odometry path length between keyframes (default 0.5 m)")
+    t.add_argument("--keyframe-turn", type=float, default=None, metavar="RAD",
                    help="turn that makes a new keyframe (default 0.349 rad = 20 deg)")
     t.add_argument("--odom-translation-noise", type=float, default=None, metavar="M_PER_SQRT_M",
                    help="odometry position noise per sqrt(metre) (default: log header, else 0.03)")

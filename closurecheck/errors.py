@@ -1,10 +1,30 @@
-"""The one error type for bad input, and the exit codes the CLI maps to."""
+"""The one error type for bad input, the exit codes the CLI maps to, and how a bad value is quoted."""
 
 from __future__ import annotations
 
 EXIT_OK = 0
 EXIT_INTERNAL = 1
 EXIT_BAD_INPUT = 2
+
+# A value quoted in an error message is cut to this many characters: a
+# message stays one readable line even when the value is a 20 MB string.
+QUOTE_MAX_CHARS = 60
+
+
+def shorten(value, limit: int = QUOTE_MAX_CHARS) -> str:
+    """``repr(value)`` cut to ``limit`` characters with the original length said.
+
+    Examples
+    --------
+    >>> shorten("huber")
+    "'huber'"
+    >>> shorten("x" * 1000, limit=12)
+    "'xxxxxxxxxx... (1002 characters)"
+    """
+    text = repr(value)
+    if len(text) <= limit:
+        return text
+    return f"{text[:limit - 1]}... ({len(text)} characters)"
 
 
 class InputError(ValueError):

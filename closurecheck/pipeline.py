@@ -14,7 +14,8 @@ from pathlib import Path
 
 import numpy as np
 
-from .config import OdometryOverrides, RunConfig, merge
+from .config import OdometryOverrides, RunConfig
+from .core.options import updated
 from .core.odometry import OdometryNoise, keyframe_step_covariances, noise_from_header
 from .errors import InputError
 from .frontend.candidates import (
@@ -46,7 +47,7 @@ def effective_noise(log: ScanLog, overrides: OdometryOverrides) -> OdometryNoise
     """The log header's odometry model with the run's overrides applied."""
     base = noise_from_header(log.header, log.source or None)
     changes = {k: v for k, v in dataclasses.asdict(overrides).items() if v is not None}
-    return merge(base, changes) if changes else base
+    return updated(base, changes) if changes else base
 
 
 class _Stages:
@@ -202,7 +203,7 @@ def run_paths(paths, out, config: RunConfig = RunConfig(), *, candidates=None, c
     if out.exists() and not out.is_dir():
         raise InputError("output path exists and is not a directory", out)
     if candidates and len(files) > 1:
-        raise InputError("--candidates applies to a single log; got several inputs")
+        raise InputError("a candidates file applies to a single log; got several inputs")
     runner = make_runner(config.jobs, dask)
     texts, errors, outcomes = [], [], []
     try:

@@ -9,7 +9,7 @@ distance driven and the angle turned, independently from step to step.
 with ``a = translation_m_per_sqrt_m``, ``b = heading_rad_per_sqrt_m`` and
 ``c = heading_rad_per_sqrt_rad``.  "distance" is the odometry path length of
 the step and "|rotation|" its accumulated absolute heading change (see
-:func:`closurecheck.frontend.keyframes.odometry_travel`), so a step that wiggles costs
+:func:`odometry_travel`), so a step that wiggles costs
 more than its net motion suggests.
 
 A scan log may carry the model in its header (contract section 1 allows
@@ -36,14 +36,14 @@ from dataclasses import dataclass, fields
 import numpy as np
 
 from ..errors import InputError
-from ..frontend.keyframes import odometry_travel
 from . import se2
+from .options import options, setting
 
 HEADER_KEY = "odometry_noise"
 _MODEL_KEYS = ("translation_m_per_sqrt_m", "heading_rad_per_sqrt_m", "heading_rad_per_sqrt_rad")
 
 
-@dataclass(frozen=True)
+@options
 class OdometryNoise:
     """Random-walk odometry noise model (see the module docstring).
 
@@ -58,17 +58,11 @@ class OdometryNoise:
     invertible covariance.
     """
 
-    translation_m_per_sqrt_m: float = 0.03
-    heading_rad_per_sqrt_m: float = 0.01
-    heading_rad_per_sqrt_rad: float = 0.03
-    min_translation_std_m: float = 1e-3
-    min_heading_std_rad: float = 1e-4
-
-    def __post_init__(self):
-        for f in fields(self):
-            v = getattr(self, f.name)
-            if not _is_number(v) or not math.isfinite(v) or v < 0:
-                raise InputError(f"odometry noise {f.name} must be a finite number >= 0, got {v!r}")
+    translation_m_per_sqrt_m: float = setting(0.03, at_least=0.0)
+    heading_rad_per_sqrt_m: float = setting(0.01, at_least=0.0)
+    heading_rad_per_sqrt_rad: float = setting(0.03, at_least=0.0)
+    min_translation_std_m: float = setting(1e-3, at_least=0.0)
+    min_heading_std_rad: float = setting(1e-4, at_least=0.0)
 
     def to_header(self) -> dict:
         """The model as the ``odometry_noise`` header object."""
@@ -121,6 +115,30 @@ def noise_from_header(header: dict | None, path=None) -> OdometryNoise:
         if not _is_number(value) or not math.isfinite(value) or value < 0:
             raise InputError(f'header: "{HEADER_KEY}" "{key}" must be a finite number >= 0, got {value!r}', path, 1)
     return OdometryNoise(**{k: float(v) for k, v in raw.items()})
+
+
+def odometry_travel(odom) -> tuple[np.ndarray, np.ndarray]:
+    """Cumulative odometry path length and accumulated absolute rotation.
+
+    Parameters
+    ----------
+    odom : (N, 3) odometry poses ``[x, y, theta]`` in the odometry frame.
+
+    Returns
+    -------
+    travel_m : (N,) path length in metres from scan 0 to each scan.
+    rotation_rad : (N,) sum of absolute wrapped heading steps (radians)
+        from scan 0 to each scan.
+    """
+    odom = np.asarray(odom, dtype=float).reshape(-1, 3)
+    travel = np.zeros(len(odom))
+    rotation = np.zeros(len(odom))
+    if len(odom) > 1:
+        step = np.hypot(np.diff(odom[:, 0]), np.diff(odom[:, 1]))
+        turn = np.abs(se2.wrap(np.diff(odom[:, 2])))
+        travel[1:] = np.cumsum(step)
+        rotation[1:] = np.cumsum(turn)
+    return travel, rotation
 
 
 def keyframe_step_covariances(noise: OdometryNoise, odom, keyframes) -> np.ndarray:

@@ -34,6 +34,7 @@ from scipy.stats import chi2
 
 from ..core import se2
 from ..core.kernels import Kernel
+from ..core.options import options, setting
 from ..errors import InputError
 
 POSE_DOF = 3
@@ -43,7 +44,7 @@ POSE_DOF = 3
 # Options and results
 
 
-@dataclass(frozen=True)
+@options
 class SolverOptions:
     """Levenberg-Marquardt settings.
 
@@ -69,34 +70,18 @@ class SolverOptions:
         graphs).
     """
 
-    max_iterations: int = 100
-    relative_cost_tolerance: float = 1e-8
-    step_tolerance: float = 1e-9
-    initial_damping: float = 1e-5
-    max_damping: float = 1e12
-    linear_solver: str = "splu"
-    permc_spec: str = "MMD_AT_PLUS_A"
-    supernode_relax: int = 3
-    panel_size: int = 3
-
-    def __post_init__(self):
-        if self.max_iterations < 0:
-            raise InputError(f"max_iterations must be >= 0, got {self.max_iterations}")
-        if self.linear_solver not in ("splu", "spsolve"):
-            raise InputError(f"linear_solver must be 'splu' or 'spsolve', got {self.linear_solver!r}")
-        if self.permc_spec not in ("NATURAL", "MMD_ATA", "MMD_AT_PLUS_A", "COLAMD"):
-            raise InputError(f"unknown permc_spec {self.permc_spec!r}")
-        for name in ("supernode_relax", "panel_size"):
-            value = getattr(self, name)
-            if not (isinstance(value, int) and value >= 1):
-                raise InputError(f"{name} must be a positive integer, got {value!r}")
-        for name in ("relative_cost_tolerance", "step_tolerance", "initial_damping", "max_damping"):
-            value = getattr(self, name)
-            if not (np.isfinite(value) and value >= 0):
-                raise InputError(f"{name} must be a finite number >= 0, got {value!r}")
+    max_iterations: int = setting(100, at_least=0)
+    relative_cost_tolerance: float = setting(1e-8, at_least=0.0)
+    step_tolerance: float = setting(1e-9, at_least=0.0)
+    initial_damping: float = setting(1e-5, at_least=0.0)
+    max_damping: float = setting(1e12, at_least=0.0)
+    linear_solver: str = setting("splu", choices=("splu", "spsolve"))
+    permc_spec: str = setting("MMD_AT_PLUS_A", choices=("NATURAL", "MMD_ATA", "MMD_AT_PLUS_A", "COLAMD"))
+    supernode_relax: int = setting(3, at_least=1)
+    panel_size: int = setting(3, at_least=1)
 
 
-@dataclass(frozen=True)
+@options
 class GncOptions:
     """Graduated non-convexity settings (Yang, Antonante, Tzoumas, Carlone, RA-L 2020).
 
@@ -117,26 +102,14 @@ class GncOptions:
         and of the final solve with the last weights.
     """
 
-    surrogate: str = "geman_mcclure"
-    inlier_probability: float = 0.99
-    inlier_bound: float | None = None
-    mu_factor: float = 1.4
-    max_rounds: int = 200
-    weight_tolerance: float = 1e-6
-    iterations_per_round: int = 2
+    surrogate: str = setting("geman_mcclure", choices=("geman_mcclure", "truncated_least_squares"))
+    inlier_probability: float = setting(0.99, above=0.0, below=1.0)
+    inlier_bound: float | None = setting(None, above=0.0)
+    mu_factor: float = setting(1.4, above=1.0)
+    max_rounds: int = setting(200, at_least=0)
+    weight_tolerance: float = setting(1e-6, at_least=0.0)
+    iterations_per_round: int = setting(2, at_least=1)
     solver: SolverOptions = field(default_factory=SolverOptions)
-
-    def __post_init__(self):
-        if self.surrogate not in ("geman_mcclure", "truncated_least_squares"):
-            raise InputError(f"GNC surrogate must be 'geman_mcclure' or 'truncated_least_squares', got {self.surrogate!r}")
-        if not 0.0 < self.inlier_probability < 1.0:
-            raise InputError(f"inlier_probability must lie in (0, 1), got {self.inlier_probability!r}")
-        if self.inlier_bound is not None and not (np.isfinite(self.inlier_bound) and self.inlier_bound > 0):
-            raise InputError(f"inlier_bound must be positive, got {self.inlier_bound!r}")
-        if not self.mu_factor > 1.0:
-            raise InputError(f"mu_factor must be > 1, got {self.mu_factor!r}")
-        if self.iterations_per_round < 1 or self.max_rounds < 0:
-            raise InputError("iterations_per_round must be >= 1 and max_rounds >= 0")
 
     @property
     def bound(self) -> float:

@@ -26,12 +26,12 @@ from __future__ import annotations
 import csv
 import io
 import math
-from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
 from ..core import se2
+from ..core.options import options, setting
 from ..errors import InputError
 from ..frontend.candidates import CandidateOptions
 from ..frontend.keyframes import odometry_travel
@@ -39,10 +39,10 @@ from .ground_truth import RevisitOptions, candidate_recall
 from .trajectory import ate_rmse, rpe
 
 
-@dataclass(frozen=True)
+@options
 class ScoreOptions:
-    false_distance_m: float = 0.3
-    false_heading_rad: float = math.radians(3.0)
+    false_distance_m: float = setting(0.3, above=0.0)
+    false_heading_rad: float = setting(math.radians(3.0), above=0.0)
     rpe_distances_m: tuple = (1.0, 5.0, 10.0, 25.0)
 
 

@@ -48,12 +48,13 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.sparse
 
+from ..core.options import options, setting
 from ..errors import InputError
 
 __all__ = ["CliqueOptions", "CliqueResult", "core_numbers", "heuristic_clique", "max_clique"]
 
 
-@dataclass(frozen=True)
+@options
 class CliqueOptions:
     """Budget and tie rules of :func:`max_clique`.
 
@@ -78,23 +79,11 @@ class CliqueOptions:
         deterministic, but dependent on the search order).
     """
 
-    max_expansions: int = 1_000_000
-    tie_max_expansions: int = 100_000
-    max_seconds: float | None = None
-    weight_tie_rtol: float = 1e-9
-    canonical: bool = True
-
-    def __post_init__(self):
-        for name in ("max_expansions", "tie_max_expansions"):
-            v = getattr(self, name)
-            if not (isinstance(v, (int, np.integer)) and v >= 0):
-                raise InputError(f"{name} must be a non-negative integer, got {v!r}")
-        if self.max_seconds is not None and not (
-            isinstance(self.max_seconds, (int, float)) and self.max_seconds > 0
-        ):
-            raise InputError(f"max_seconds must be a positive number or None, got {self.max_seconds!r}")
-        if not (isinstance(self.weight_tie_rtol, (int, float)) and 0.0 <= self.weight_tie_rtol < 1.0):
-            raise InputError(f"weight_tie_rtol must be in [0, 1), got {self.weight_tie_rtol!r}")
+    max_expansions: int = setting(1_000_000, at_least=0)
+    tie_max_expansions: int = setting(100_000, at_least=0)
+    max_seconds: float | None = setting(None, above=0.0)
+    weight_tie_rtol: float = setting(1e-9, at_least=0.0, below=1.0)
+    canonical: bool = setting(True)
 
 
 @dataclass(frozen=True)

@@ -40,6 +40,7 @@ import scipy.sparse
 import scipy.stats
 
 from ..core import se2
+from ..core.options import options, setting
 from ..errors import InputError
 
 __all__ = [
@@ -53,7 +54,7 @@ __all__ = [
 ]
 
 
-@dataclass(frozen=True)
+@options
 class ConsistencyOptions:
     """Thresholds of the consistency checks.
 
@@ -80,24 +81,12 @@ class ConsistencyOptions:
         (roughly 1 kB per pair).
     """
 
-    gate_probability: float = 0.99
-    pair_probability: float = 0.99
-    informative_max_std_m: float = 1.0
-    informative_max_std_rad: float = 0.25
-    pair_shared_odometry: bool = True
-    pairs_per_block: int = 100_000
-
-    def __post_init__(self):
-        for name in ("gate_probability", "pair_probability"):
-            p = getattr(self, name)
-            if not (isinstance(p, (int, float)) and 0.0 < p < 1.0):
-                raise InputError(f"{name} must be a probability strictly between 0 and 1, got {p!r}")
-        for name in ("informative_max_std_m", "informative_max_std_rad"):
-            v = getattr(self, name)
-            if not (isinstance(v, (int, float)) and v > 0.0):
-                raise InputError(f"{name} must be a positive number, got {v!r}")
-        if not (isinstance(self.pairs_per_block, int) and self.pairs_per_block >= 1):
-            raise InputError(f"pairs_per_block must be a positive integer, got {self.pairs_per_block!r}")
+    gate_probability: float = setting(0.99, above=0.0, below=1.0)
+    pair_probability: float = setting(0.99, above=0.0, below=1.0)
+    informative_max_std_m: float = setting(1.0, above=0.0)
+    informative_max_std_rad: float = setting(0.25, above=0.0)
+    pair_shared_odometry: bool = setting(True)
+    pairs_per_block: int = setting(100_000, at_least=1)
 
 
 def chi2_threshold(dof: int, probability: float) -> float:

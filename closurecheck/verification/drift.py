@@ -31,9 +31,10 @@ import numpy as np
 import scipy.linalg
 
 from ..core import se2
+from ..core.options import options, setting
 
 
-@dataclass(frozen=True)
+@options
 class DriftOptions:
     """When a heading drift is estimated and applied.
 
@@ -53,12 +54,12 @@ class DriftOptions:
         the winner needs this many times the votes of zero drift.
     """
 
-    min_closures: int = 10
-    min_significance: float = 3.0
-    outlier_sigmas: float = 4.0
-    max_closures: int = 1500
-    consensus_sigmas: float = 3.0
-    consensus_margin: float = 1.5
+    min_closures: int = setting(10, at_least=2)
+    min_significance: float = setting(3.0, at_least=0.0)
+    outlier_sigmas: float = setting(4.0, above=0.0)
+    max_closures: int = setting(1500, at_least=2)
+    consensus_sigmas: float = setting(3.0, above=0.0)
+    consensus_margin: float = setting(1.5, at_least=1.0)
 
 
 @dataclass(frozen=True)

@@ -31,7 +31,8 @@ import numpy as np
 from scipy.stats import chi2
 
 from ..core import se2
-from ..core.kernels import kernel_from_name
+from ..core.kernels import KERNEL_CHOICES, kernel_from_name
+from ..core.options import options, setting
 from ..graph.solver import (
     GncOptions,
     SolverOptions,
@@ -51,7 +52,7 @@ from .drift import (
 from .map_gate import map_gate_distance, relative_posterior
 
 
-@dataclass(frozen=True)
+@options
 class VerifyOptions:
     """Thresholds of the verification stage (units in the names).
 
@@ -95,31 +96,31 @@ class VerifyOptions:
         (:mod:`closurecheck.verification.drift`).
     """
 
-    min_overlap: float = 0.3
-    max_rmse_m: float = 0.08
-    max_ambiguity: float = 0.95
-    reject_degenerate: bool = True
-    gate_probability: float = 0.999
-    gate_max_chain_std_m: float = 1.0
-    gate_max_chain_std_rad: float = 0.25
-    pair_probability: float = 0.999
-    clique_max_expansions: int = 200_000
-    min_clique_size: int = 1
-    use_gnc: bool = True
-    gnc_min_weight: float = 0.5
-    kernel: str = "cauchy"
-    kernel_scale: float = 3.0
-    residual_probability: float = 0.999
-    min_closures_for_scale: int = 10
-    max_odometry_scale: float = 100.0
-    extend_with_map: bool = True
-    map_probability: float = 0.999
-    map_max_std_m: float = 0.25
-    map_rounds: int = 3
-    calibrate_heading_drift: bool = True
-    closure_floor_m: float = 0.001
-    closure_floor_rad: float = 0.000175
-    drift_min_significance: float = 3.0
+    min_overlap: float = setting(0.3, at_least=0.0, at_most=1.0)
+    max_rmse_m: float = setting(0.08, above=0.0)
+    max_ambiguity: float = setting(0.95, above=0.0, at_most=1.0)
+    reject_degenerate: bool = setting(True)
+    gate_probability: float = setting(0.999, above=0.0, below=1.0)
+    gate_max_chain_std_m: float = setting(1.0, above=0.0)
+    gate_max_chain_std_rad: float = setting(0.25, above=0.0)
+    pair_probability: float = setting(0.999, above=0.0, below=1.0)
+    clique_max_expansions: int = setting(200_000, at_least=1)
+    min_clique_size: int = setting(1, at_least=1)
+    use_gnc: bool = setting(True)
+    gnc_min_weight: float = setting(0.5, at_least=0.0, at_most=1.0)
+    kernel: str = setting("cauchy", choices=KERNEL_CHOICES)
+    kernel_scale: float = setting(3.0, above=0.0)
+    residual_probability: float = setting(0.999, above=0.0, below=1.0)
+    min_closures_for_scale: int = setting(10, at_least=1)
+    max_odometry_scale: float = setting(100.0, at_least=1.0)
+    extend_with_map: bool = setting(True)
+    map_probability: float = setting(0.999, above=0.0, below=1.0)
+    map_max_std_m: float = setting(0.25, above=0.0)
+    map_rounds: int = setting(3, at_least=0)
+    calibrate_heading_drift: bool = setting(True)
+    closure_floor_m: float = setting(0.001, at_least=0.0)
+    closure_floor_rad: float = setting(0.000175, at_least=0.0)
+    drift_min_significance: float = setting(3.0, at_least=0.0)
 
 
 @dataclass(frozen=True, eq=False)

@@ -201,7 +201,7 @@ def test_a_scan_without_straight_structure_is_skipped_not_fatal(case):
 
 def test_make_runner_choices():
     assert isinstance(make_runner(1), SerialRunner)
-    with pytest.raises(InputError, match="--jobs"):
+    with pytest.raises(InputError, match="^jobs must be >= 0"):
         make_runner(-1)
 
 
@@ -211,7 +211,7 @@ def test_missing_dask_gives_the_install_hint(monkeypatch):
     monkeypatch.setitem(sys.modules, "distributed", None)  # import now raises ImportError
     with pytest.raises(InputError) as err:
         make_runner(2, dask="local")
-    assert str(err.value) == MISSING_EXTRA == "--dask needs the optional extra: pip install 'closurecheck[dask]'"
+    assert str(err.value) == MISSING_EXTRA == "running on Dask needs the optional extra: pip install 'closurecheck[dask]'"
 
 
 def test_bad_dask_addresses_are_input_errors(monkeypatch):
