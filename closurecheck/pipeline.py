@@ -15,8 +15,8 @@ from pathlib import Path
 import numpy as np
 
 from .config import OdometryOverrides, RunConfig
-from .core.options import updated
 from .core.odometry import OdometryNoise, keyframe_step_covariances, noise_from_header
+from .core.options import updated
 from .errors import InputError
 from .frontend.candidates import (
     CandidateSet,

@@ -16,7 +16,6 @@ import pytest
 from closurecheck import cli
 from closurecheck.config import RunConfig, build_config
 from closurecheck.io.graph_file import read_graph
-from closurecheck.io.settings_file import load_toml
 
 
 @pytest.fixture(scope="module")

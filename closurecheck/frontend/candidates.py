@@ -67,6 +67,7 @@ from sklearn.neighbors import NearestNeighbors
 from ..core import se2
 from ..core.odometry import OdometryChain, OdometryNoise, noise_from_header
 from ..core.options import options, setting
+from ..core.stats import chi2_threshold
 from ..errors import InputError
 from ..io.pairs_csv import ExternalPairs
 from .descriptors import (
@@ -143,7 +144,7 @@ class CandidateOptions:
     @property
     def gate_threshold(self) -> float:
         """Chi-square(3) quantile of the proximity gate (e.g. 11.345 at 0.99)."""
-        return float(scipy.stats.chi2.ppf(self.gate_probability, 3))
+        return chi2_threshold(self.gate_probability)
 
 
 @dataclass(frozen=True, eq=False)

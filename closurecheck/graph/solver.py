@@ -30,15 +30,12 @@ import numpy as np
 import scipy.sparse as sp
 import scipy.sparse.csgraph as csgraph
 import scipy.sparse.linalg as spla
-from scipy.stats import chi2
 
 from ..core import se2
 from ..core.kernels import Kernel
 from ..core.options import options, setting
+from ..core.stats import POSE_DOF, chi2_threshold
 from ..errors import InputError
-
-POSE_DOF = 3
-
 
 # ---------------------------------------------------------------------------
 # Options and results
@@ -169,16 +166,6 @@ class PruneResult:
     removed: np.ndarray
     removed_residuals_sq: np.ndarray
     threshold: float
-
-
-def chi2_threshold(probability: float, dof: int = POSE_DOF) -> float:
-    """Chi-square quantile: the bound on a squared Mahalanobis distance of ``dof`` dimensions
-    that a consistent residual stays below with the given probability."""
-    if not 0.0 < probability < 1.0:
-        raise InputError(f"probability must lie in (0, 1), got {probability!r}")
-    if int(dof) != dof or dof < 1:
-        raise InputError(f"degrees of freedom must be a positive integer, got {dof!r}")
-    return float(chi2.ppf(probability, int(dof)))
 
 
 # ---------------------------------------------------------------------------

@@ -14,7 +14,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..core import se2
-from .icp import PreparedScan, RegistrationOptions, prepare_scan, register_prepared
+from .icp import PreparedScan, RegistrationOptions, register_prepared
 
 # Registration needs a few points to fit three parameters; scans with fewer
 # valid returns than this are not registered at all (reason "no_points").
@@ -78,11 +78,6 @@ def seeds_for(guess: np.ndarray, yaw: np.ndarray, window_rad: float) -> np.ndarr
         if np.isfinite(h) and all(abs(se2.wrap(h - s[2])) > window_rad for s in seeds):
             seeds.append(np.array([guess[0], guess[1], h]))
     return np.asarray(seeds, dtype=float)
-
-
-def prepare_scans(points_by_id: dict, options: RegistrationOptions) -> dict:
-    """PreparedScan per scan id for every scan with enough points."""
-    return {sid: prepare_scan(pts, options) for sid, pts in points_by_id.items() if len(pts) >= MIN_POINTS}
 
 
 def register_batch(prepared: dict, src, dst, seeds: list, options: RegistrationOptions) -> list:

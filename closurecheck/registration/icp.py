@@ -46,6 +46,7 @@ from dataclasses import dataclass, fields, replace
 import numpy as np
 from scipy.spatial import cKDTree
 
+from ..core import se2
 from ..core.kernels import KERNEL_CHOICES, kernel_from_name
 from ..core.options import fail, options, setting
 from ..errors import InputError
@@ -683,7 +684,7 @@ def _fit_score(src: PreparedScan, tgt: PreparedScan, x, opt: RegistrationOptions
 
 
 def _same(a, b, opt) -> bool:
-    dt = abs((a[2] - b[2] + np.pi) % (2 * np.pi) - np.pi)
+    dt = abs(se2.wrap(a[2] - b[2]))
     return np.hypot(a[0] - b[0], a[1] - b[1]) < opt.hypothesis_separation_m and dt < opt.hypothesis_separation_rad
 
 

@@ -24,6 +24,7 @@ from pathlib import Path
 import numpy as np
 
 from ..core import se2
+from ..core.stats import chi2_threshold
 from ..io.atomic import write_bytes, write_text
 from ..verification.verdicts import VerdictTable
 
@@ -123,7 +124,6 @@ def check_thresholds(verify_options) -> dict:
     freedom at the configured probability (squared Mahalanobis distance of a
     3-vector, dimensionless).  Options missing from the object are skipped.
     """
-    from scipy.stats import chi2
 
     out = {}
     for key, name in (("overlap", "min_overlap"), ("rmse_m", "max_rmse_m"), ("ambiguity", "max_ambiguity")):
@@ -132,7 +132,7 @@ def check_thresholds(verify_options) -> dict:
     for key, name in (("odometry_chi2", "gate_probability"), ("map_chi2", "map_probability"),
                       ("graph_chi2", "residual_probability")):
         if hasattr(verify_options, name):
-            out[key] = float(chi2.ppf(float(getattr(verify_options, name)), 3))
+            out[key] = chi2_threshold(float(getattr(verify_options, name)))
     return out
 
 

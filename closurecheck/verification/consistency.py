@@ -41,13 +41,13 @@ import scipy.stats
 
 from ..core import se2
 from ..core.options import options, setting
+from ..core.stats import chi2_threshold
 from ..errors import InputError
 
 __all__ = [
     "ConsistencyOptions",
     "OdometryGate",
     "PairConsistency",
-    "chi2_threshold",
     "odometry_gate",
     "pair_distances",
     "pairwise_consistency",
@@ -87,17 +87,6 @@ class ConsistencyOptions:
     informative_max_std_rad: float = setting(0.25, above=0.0)
     pair_shared_odometry: bool = setting(True)
     pairs_per_block: int = setting(100_000, at_least=1)
-
-
-def chi2_threshold(dof: int, probability: float) -> float:
-    """Quantile of the chi-square distribution: the squared Mahalanobis
-    distance below which a correct measurement with ``dof`` degrees of freedom
-    falls with the given probability (e.g. 7.815 for 3 DoF at 0.95)."""
-    if not (isinstance(dof, (int, np.integer)) and dof >= 1):
-        raise InputError(f"degrees of freedom must be a positive integer, got {dof!r}")
-    if not (0.0 < probability < 1.0):
-        raise InputError(f"probability must be strictly between 0 and 1, got {probability!r}")
-    return float(scipy.stats.chi2.ppf(probability, dof))
 
 
 @dataclass(frozen=True)
@@ -196,23 +185,6 @@ def _check_inputs(src, dst, deltas, covariances, poses, prefix):
 # small vectorised helpers
 
 
-def _frame(theta):
-    """blockdiag(R(theta), 1) of shape (..., 3, 3).
-
-    Maps a right-tangent perturbation tau of a pose p to the change of p's
-    ``[x, y, theta]``: ``p ∘ Exp(tau) ≈ p + F(theta_p) tau``.
-    """
-    theta = np.asarray(theta, dtype=float)
-    m = np.zeros(theta.shape + (3, 3))
-    c, s = np.cos(theta), np.sin(theta)
-    m[..., 0, 0] = c
-    m[..., 0, 1] = -s
-    m[..., 1, 0] = s
-    m[..., 1, 1] = c
-    m[..., 2, 2] = 1.0
-    return m
-
-
 def _t(m):
     return np.swapaxes(m, -1, -2)
 
@@ -257,7 +229,7 @@ def _predicted(poses, prefix, src, dst):
         # follows through the Jacobian of inversion, J = d inv(p) / dp
         # (= the first Jacobian of between(p, identity)).
         d = delta[flip]
-        j_inv, _ = se2.between_jacobians(d, np.zeros_like(d))
+        j_inv = se2.inverse_jacobian(d)
         delta = delta.copy()
         cov = cov.copy()
         delta[flip] = se2.inverse(d)
@@ -291,7 +263,7 @@ def odometry_gate(src, dst, deltas, covariances, poses, prefix, options: Consist
         (independent), and ``distance_sq = e^T S^-1 e``.
     """
     src, dst, deltas, covariances, poses, prefix = _check_inputs(src, dst, deltas, covariances, poses, prefix)
-    threshold = chi2_threshold(3, options.gate_probability)
+    threshold = chi2_threshold(options.gate_probability)
     pred, pred_cov = _predicted(poses, prefix, src, dst)
     err = se2.between(pred, deltas)
     j_pred, j_meas = se2.between_jacobians(pred, deltas)
@@ -349,7 +321,7 @@ def _oriented(src, dst, deltas, covariances):
     deltas = deltas.copy()
     covariances = covariances.copy()
     d = deltas[flip]
-    j_inv, _ = se2.between_jacobians(d, np.zeros_like(d))
+    j_inv = se2.inverse_jacobian(d)
     deltas[flip] = se2.inverse(d)
     c = j_inv @ covariances[flip] @ _t(j_inv)
     covariances[flip] = 0.5 * (c + _t(c))
@@ -362,7 +334,7 @@ def _closure_terms(src, dst, deltas, covariances, poses):
     xb = poses[dst]
     mismatch = se2.compose(se2.compose(xa, deltas), se2.inverse(xb))
     minv = se2.inverse(mismatch)
-    f = _frame(deltas[:, 2])
+    f = se2.frame_rotation(deltas[:, 2])
     sigma_tau = _t(f) @ covariances @ f  # right-tangent covariance of z
     ad_b = se2.adjoint(xb)
     return _ClosureTerms(
@@ -613,7 +585,7 @@ def pairwise_consistency(src, dst, deltas, covariances, poses, prefix, options: 
     """
     src, dst, deltas, covariances, poses, prefix = _check_inputs(src, dst, deltas, covariances, poses, prefix)
     k = len(src)
-    threshold = chi2_threshold(3, options.pair_probability)
+    threshold = chi2_threshold(options.pair_probability)
     # Dense float32 distances and a dense boolean mask filled in place: most
     # pairs are consistent, so index lists of the consistent pairs would
     # take several times the memory of the mask (K = 6,000: 36 MB mask,

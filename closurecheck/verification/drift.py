@@ -31,6 +31,7 @@ import numpy as np
 import scipy.linalg
 
 from ..core import se2
+from ..core.odometry import odometry_travel
 from ..core.options import options, setting
 
 
@@ -89,9 +90,7 @@ NO_DRIFT = HeadingDrift(0.0, float("nan"), 0, False)
 
 def chain_travel(odom_poses) -> np.ndarray:
     """Cumulative path length (m) along the keyframe chain, (N,), 0 at node 0."""
-    odom_poses = np.asarray(odom_poses, dtype=float)
-    steps = se2.between(odom_poses[:-1], odom_poses[1:])
-    return np.r_[0.0, np.cumsum(np.hypot(steps[:, 0], steps[:, 1]))]
+    return odometry_travel(odom_poses)[0]
 
 
 def _heading_residuals(odom_poses, step_covariances, src, dst, delta, covariance):

@@ -28,11 +28,11 @@ import dataclasses
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy.stats import chi2
 
 from ..core import se2
 from ..core.kernels import KERNEL_CHOICES, kernel_from_name
 from ..core.options import options, setting
+from ..core.stats import chi2_median, chi2_threshold
 from ..graph.solver import (
     GncOptions,
     SolverOptions,
@@ -244,7 +244,7 @@ def odometry_scale(chi2_values, options: VerifyOptions) -> float:
     x = x[np.isfinite(x)]
     if len(x) < options.min_closures_for_scale:
         return 1.0
-    factor = float(np.median(x) / chi2.median(3))
+    factor = float(np.median(x) / chi2_median())
     return float(np.clip(factor, 1.0, options.max_odometry_scale))
 
 
@@ -339,7 +339,7 @@ def _core_and_map(plausible, src, dst, delta, covariance, step_covariances, opti
         std = np.sqrt(np.linalg.eigvalsh(rel_cov[:, :2, :2])[:, -1])
         figures["map_chi2"][retry] = d2
         figures["map_std_m"][retry] = std
-        ok = (d2 <= chi2.ppf(options.map_probability, 3)) & (std <= options.map_max_std_m)
+        ok = (d2 <= chi2_threshold(options.map_probability)) & (std <= options.map_max_std_m)
         if not ok.any():
             break
         members = np.union1d(members, retry[ok])
