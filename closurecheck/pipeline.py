@@ -15,7 +15,7 @@ from pathlib import Path
 import numpy as np
 
 from .config import OdometryOverrides, RunConfig
-from .core.odometry import OdometryNoise, keyframe_step_covariances, noise_from_header
+from .core.odometry import OdometryChain, OdometryNoise, noise_from_header
 from .core.options import updated
 from .errors import InputError
 from .frontend.candidates import (
@@ -31,13 +31,12 @@ from .io.graph_file import PoseGraph
 from .io.inputs import expand_inputs, output_name
 from .io.pairs_csv import ExternalPairs
 from .io.scanlog import ScanLog
-from .registration.batch import PairResults, collect, seeds_for
+from .registration.batch import RegisteredClosures, collect, seeds_for
 from .reporting.outputs import RunOutcome, summary, write_index, write_outputs
 from .reporting.terminal import format_summary
 from .verification.verdicts import VerdictTable
 from .verification.verify import (
     Verification,
-    closure_covariances,
     odometry_edges,
     verify,
 )
@@ -66,7 +65,7 @@ class _Stages:
         return out
 
 
-def _register_all(log: ScanLog, cands: CandidateSet, config: RunConfig, runner, progress) -> PairResults:
+def _register_all(log: ScanLog, cands: CandidateSet, config: RunConfig, runner, progress) -> RegisteredClosures:
     ids = np.unique(np.concatenate([cands.src, cands.dst])) if len(cands) else np.zeros(0, np.int64)
     points = {int(i): log.points(int(i)) for i in ids}
     window = config.registration.coarse_window_rad if config.registration.coarse else 0.0
@@ -75,9 +74,8 @@ def _register_all(log: ScanLog, cands: CandidateSet, config: RunConfig, runner, 
         from .runners.serial import SerialRunner
 
         runner = SerialRunner()
-    results = runner.register(points, cands.src, cands.dst, seeds, config.registration, config.batch_pairs,
-                              progress)
-    return collect(results)
+    fits = runner.register(points, cands.src, cands.dst, seeds, config.registration, config.batch_pairs, progress)
+    return collect(cands.src, cands.dst, fits)
 
 
 def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPairs | None = None,
@@ -107,42 +105,37 @@ def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPai
 
     regs = st.run("registration", _register_all, log, cands, config, runner, progress)
 
-    odom = log.odom[keyframes]
-    step_cov = keyframe_step_covariances(noise, log.odom, keyframes)
-    index = {int(s): k for k, s in enumerate(keyframes)}
-    src_idx = np.array([index[int(s)] for s in cands.src], dtype=np.intp)
-    dst_idx = np.array([index[int(d)] for d in cands.dst], dtype=np.intp)
-    closure_cov = closure_covariances(regs.covariance, config.verify)
-    ver = st.run("verification", verify, src_idx, dst_idx, regs.delta, closure_cov, regs.quality(),
-                 odom, step_cov, config.verify)
+    chain = OdometryChain.build(log.odom, keyframes, noise)
+    ver = st.run("verification", verify, regs, chain, config.verify)
 
-    figures = dict(regs.figures())
-    figures.update({k: v for k, v in ver.figures.items()})
+    figures = dict(regs.quality.figures())
+    figures.update(ver.figures)
     figures["descriptor_distance"] = cands.descriptor_distance
     figures["odometry_gap_m"] = np.hypot(cands.odometry_delta[:, 0], cands.odometry_delta[:, 1])
     verdicts = VerdictTable(src=cands.src, dst=cands.dst, origin=np.asarray(cands.source_names(), dtype=object),
                             accepted=ver.accepted, reason=ver.reason, delta=regs.delta,
-                            covariance=closure_cov, figures=figures)
-    graph = _graph(log, keyframes, odom, step_cov, ver, verdicts)
+                            covariance=ver.closure_covariance, figures=figures)
+    graph = _graph(log, chain, ver, verdicts)
     notes = list(ver.notes)
     if external is not None:
         notes.append(f"candidates taken from an external pairs file ({len(external)} pairs)")
-    return RunOutcome(log=log, config=config, keyframes=keyframes, odom=odom, step_covariances=step_cov,
+    return RunOutcome(log=log, config=config, keyframes=keyframes, odom=chain.poses, step_covariances=chain.steps,
                       candidates=cands, registrations=regs, verification=ver, verdicts=verdicts, graph=graph,
                       timings=st.timings, notes=tuple(notes))
 
 
-def _graph(log, keyframes, odom, step_cov, ver: Verification, v: VerdictTable) -> PoseGraph:
+def _graph(log, chain: OdometryChain, ver: Verification, v: VerdictTable) -> PoseGraph:
     # The odometry edges are the ones the poses were optimised with: heading
     # drift removed and the covariance calibrated, so that a downstream
     # solver reaches the same optimum.  Nodes keep the input odometry.
-    used = odom if ver.odometry_poses is None else ver.odometry_poses
-    o_src, o_dst, o_delta, o_info = odometry_edges(used, step_cov * ver.odometry_scale)
+    used = chain.poses if ver.odometry_poses is None else ver.odometry_poses
+    o_src, o_dst, o_delta, o_info = odometry_edges(used, chain.steps * ver.odometry_scale)
     acc = np.flatnonzero(v.accepted)
     l_info = np.linalg.inv(v.covariance[acc]) if len(acc) else np.zeros((0, 3, 3))
     checks = tuple({} for _ in o_src) + tuple(v.checks(int(k)) for k in acc)
+    keyframes = chain.ids
     return PoseGraph(
-        ids=np.asarray(keyframes, dtype=np.int64), t=log.t[keyframes], poses=ver.poses, odom=odom,
+        ids=keyframes, t=log.t[keyframes], poses=ver.poses, odom=chain.poses,
         src=np.concatenate([keyframes[o_src], v.src[acc]]).astype(np.int64),
         dst=np.concatenate([keyframes[o_dst], v.dst[acc]]).astype(np.int64),
         kind=np.array(["odometry"] * len(o_src) + ["loop"] * len(acc), dtype=object),

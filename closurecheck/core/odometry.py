@@ -165,17 +165,32 @@ def keyframe_step_covariances(noise: OdometryNoise, odom, keyframes) -> np.ndarr
 
 @dataclass(frozen=True, eq=False)
 class OdometryChain:
-    """Odometry of the keyframes with the prefix sums of its uncertainty.
+    """The keyframes' odometry with its noise model: the one odometry record every stage uses.
 
     Attributes
     ----------
     ids : (K,) increasing keyframe scan ids.
     poses : (K, 3) odometry poses of the keyframes (odometry frame).
-    prefix : (K, 3, 3) :func:`closurecheck.core.se2.chain_prefix` of the chain.
+    steps : (K - 1, 3, 3) covariance of each keyframe-to-keyframe step, in
+        the step's start frame on ``[x, y, theta]``
+        (:func:`keyframe_step_covariances`).
+    prefix : (K, 3, 3) :func:`closurecheck.core.se2.chain_prefix` of the
+        chain: any sub-chain's covariance in O(1).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from closurecheck.core.odometry import OdometryChain, OdometryNoise
+    >>> odom = np.column_stack([np.arange(5.0), np.zeros(5), np.zeros(5)])  # 1 m steps along x
+    >>> chain = OdometryChain.build(odom, [0, 2, 4], OdometryNoise(translation_m_per_sqrt_m=0.1))
+    >>> delta, cov = chain.relative([0], [4])
+    >>> delta.round(6).tolist(), round(float(cov[0, 0, 0]), 6)
+    ([[4.0, 0.0, 0.0]], 0.04)
     """
 
     ids: np.ndarray
     poses: np.ndarray
+    steps: np.ndarray
     prefix: np.ndarray
 
     @classmethod
@@ -183,9 +198,14 @@ class OdometryChain:
         """Chain over ``keyframes`` (scan ids) of a log with odometry ``odom`` (N, 3)."""
         keyframes = np.asarray(keyframes, dtype=np.int64)
         odom = np.asarray(odom, dtype=float)
-        poses = odom[keyframes]
-        steps = keyframe_step_covariances(noise, odom, keyframes)
-        return cls(keyframes, poses, se2.chain_prefix(poses, steps))
+        return cls.from_steps(keyframes, odom[keyframes], keyframe_step_covariances(noise, odom, keyframes))
+
+    @classmethod
+    def from_steps(cls, ids, poses, steps) -> "OdometryChain":
+        """Chain of keyframe ``poses`` (K, 3) with step covariances ``steps`` (K - 1, 3, 3)."""
+        poses = np.asarray(poses, dtype=float)
+        steps = np.asarray(steps, dtype=float)
+        return cls(np.asarray(ids, dtype=np.int64), poses, steps, se2.chain_prefix(poses, steps))
 
     def __len__(self) -> int:
         return len(self.ids)

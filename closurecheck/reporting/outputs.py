@@ -18,7 +18,7 @@ from ..io.inputs import output_name
 from ..io.pairs_csv import write_candidates
 from ..io.scanlog import ScanLog
 from ..io.settings_file import to_toml
-from ..registration.batch import PairResults
+from ..registration.batch import RegisteredClosures
 from ..verification.verdicts import VerdictTable
 from ..verification.verify import Verification
 
@@ -33,7 +33,7 @@ class RunOutcome:
     odom: np.ndarray  # (K, 3) odometry poses of the keyframes
     step_covariances: np.ndarray  # (K-1, 3, 3)
     candidates: CandidateSet
-    registrations: PairResults
+    registrations: RegisteredClosures
     verification: Verification
     verdicts: VerdictTable
     graph: PoseGraph
