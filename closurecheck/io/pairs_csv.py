@@ -31,6 +31,9 @@ REQUIRED_COLUMNS = ("from", "to")
 GUESS_COLUMNS = ("dx", "dy", "dtheta")
 OUTPUT_COLUMNS = ("from", "to", "verdict", "reason", "dx", "dy", "dtheta")
 VERDICTS = ("accepted", "rejected")
+# The diagonal of each candidate's covariance, after the figure columns
+# (docs/formats.md, "candidates.csv").
+VARIANCE_COLUMNS = ("var_x_m2", "var_y_m2", "var_theta_rad2")
 
 
 @dataclass(frozen=True, eq=False)
@@ -222,3 +225,54 @@ def write_candidates(path, src, dst, verdict, reason, delta, extra: dict | None 
                    _cell(delta[i, 0]), _cell(delta[i, 1]), _cell(delta[i, 2])]
             row.extend(_cell(c[i]) for c in extra_cols)
             writer.writerow(row)
+
+
+@dataclass(frozen=True, eq=False)
+class VerdictRows:
+    """The verdict columns of a run's candidates.csv, as arrays.
+
+    src, dst : (P,) int64 scan ids; accepted : (P,) bool; reason : (P,) str
+    codes; delta : (P, 3) registered delta (NaN where none).
+    """
+
+    src: np.ndarray
+    dst: np.ndarray
+    accepted: np.ndarray
+    reason: np.ndarray
+    delta: np.ndarray
+
+    def __len__(self) -> int:
+        return len(self.src)
+
+
+def read_candidates(path) -> VerdictRows:
+    """Read the verdict columns of a run's ``candidates.csv`` (written by :func:`write_candidates`).
+
+    Raises InputError for a missing file or one without the output columns.
+    """
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise InputError("no such file", path) from None
+    except UnicodeDecodeError:
+        raise InputError("not UTF-8 text", path) from None
+    rows = list(csv.DictReader(io.StringIO(text)))
+    if rows and any(k not in rows[0] for k in OUTPUT_COLUMNS):
+        raise InputError(f"not a candidates.csv of a run (needs columns {','.join(OUTPUT_COLUMNS)})", path)
+
+    def num(v):
+        try:
+            return float(v) if v not in ("", None) else math.nan
+        except ValueError:
+            return math.nan
+
+    try:
+        src = np.array([int(r["from"]) for r in rows], dtype=np.int64)
+        dst = np.array([int(r["to"]) for r in rows], dtype=np.int64)
+    except (TypeError, ValueError):
+        raise InputError("a from/to cell is not a scan id", path) from None
+    return VerdictRows(
+        src=src, dst=dst, accepted=np.array([r["verdict"] == "accepted" for r in rows], dtype=bool),
+        reason=np.array([r["reason"] for r in rows], dtype=str),
+        delta=np.array([[num(r[c]) for c in GUESS_COLUMNS] for r in rows], dtype=float).reshape(-1, 3))

@@ -15,7 +15,7 @@ from ..frontend.candidates import CandidateSet
 from ..io.atomic import write_text
 from ..io.graph_file import PoseGraph, write_graph
 from ..io.inputs import output_name
-from ..io.pairs_csv import write_candidates
+from ..io.pairs_csv import VARIANCE_COLUMNS, write_candidates
 from ..io.scanlog import ScanLog
 from ..io.settings_file import to_toml
 from ..registration.batch import RegisteredClosures
@@ -98,7 +98,7 @@ def write_outputs(outcome: RunOutcome, out_dir, *, report: bool = True, score: d
     extra = {"origin": v.origin}
     extra.update(v.figures)
     cov = v.covariance
-    extra.update({"sxx": cov[:, 0, 0], "syy": cov[:, 1, 1], "stt": cov[:, 2, 2]})
+    extra.update(dict(zip(VARIANCE_COLUMNS, (cov[:, 0, 0], cov[:, 1, 1], cov[:, 2, 2]))))
     paths["candidates"] = out_dir / "candidates.csv"
     write_candidates(paths["candidates"], v.src, v.dst, np.where(v.accepted, "accepted", "rejected"), v.reason,
                      v.delta, extra)

@@ -716,7 +716,7 @@ def build_report(out_dir, data: ReportData, *, table_limit: int = 5000) -> Path:
     shown = min(len(v), table_limit)
     parts.append(_section("table-section", "Candidates",
                           f"<p>{shown} of {len(v)} candidates, verified first; click a column heading to sort "
-                          f"(again to reverse). All of them, with covariances, are in candidates.csv.</p>"
+                          f"(again to reverse). All of them are in candidates.csv, with the variances of x, y and theta (the full covariance of each verified closure is in graph.json).</p>"
                           f'<div class="scroll">{_candidate_table(v, table_limit)}</div>'))
     if data.config_text:
         parts.append(_section("config", "Settings",

@@ -23,8 +23,6 @@ Definitions (docs/scoring.md):
 
 from __future__ import annotations
 
-import csv
-import io
 import math
 from pathlib import Path
 
@@ -119,40 +117,17 @@ def score_closures(log, keyframes, src, dst, accepted, delta, covariance, poses=
     return out
 
 
-def read_verdicts(path):
-    """Read a run's candidates.csv: (src, dst, accepted, delta) as arrays (delta NaN where none)."""
-    path = Path(path)
-    try:
-        text = path.read_text(encoding="utf-8")
-    except FileNotFoundError:
-        raise InputError("no such file", path) from None
-    rows = list(csv.DictReader(io.StringIO(text)))
-    need = ("from", "to", "verdict", "dx", "dy", "dtheta")
-    if rows and any(k not in rows[0] for k in need):
-        raise InputError(f"not a candidates.csv of a run (needs columns {','.join(need)})", path)
-
-    def num(v):
-        try:
-            return float(v) if v not in ("", None) else math.nan
-        except ValueError:
-            return math.nan
-
-    src = np.array([int(r["from"]) for r in rows], dtype=np.int64)
-    dst = np.array([int(r["to"]) for r in rows], dtype=np.int64)
-    accepted = np.array([r["verdict"] == "accepted" for r in rows], dtype=bool)
-    delta = np.array([[num(r["dx"]), num(r["dy"]), num(r["dtheta"])] for r in rows], dtype=float).reshape(-1, 3)
-    return src, dst, accepted, delta
-
-
 def score_run_dir(run_dir, log, options: ScoreOptions = ScoreOptions()) -> dict:
     """Score the outputs of ``closurecheck run`` in ``run_dir`` against ``log``."""
     from ..io.graph_file import read_graph
+    from ..io.pairs_csv import read_candidates
 
     run_dir = Path(run_dir)
     if not run_dir.is_dir():
         raise InputError("not a run directory", run_dir)
     graph = read_graph(run_dir / "graph.json")
-    src, dst, accepted, delta = read_verdicts(run_dir / "candidates.csv")
+    rows = read_candidates(run_dir / "candidates.csv")
+    src, dst, accepted, delta = rows.src, rows.dst, rows.accepted, rows.delta
     if len(graph.ids) and (graph.ids.max() >= len(log)):
         raise InputError("graph.json names scans that the log does not have; is this the run's log?", run_dir)
     cov = np.full((len(src), 3, 3), np.nan)
