@@ -73,30 +73,42 @@ def _recording_choice(args):
                            max_odom_gap_s=args.max_odom_gap)
 
 
+# The main thresholds on the command line: flag, type, metavar, then the
+# configuration table and setting it sets (None = top level), and the help.
+THRESHOLD_OPTIONS = (
+    ("--keyframe-spacing", float, "M", "keyframes", "spacing_m",
+     "odometry path length between keyframes (default 0.5 m)"),
+    ("--keyframe-turn", float, "RAD", "keyframes", "turn_rad",
+     "turn that makes a new keyframe (default 0.349 rad = 20 deg)"),
+    ("--odom-translation-noise", float, "M_PER_SQRT_M", "odometry", "translation_m_per_sqrt_m",
+     "odometry position noise per sqrt(metre) (default: log header, else 0.03)"),
+    ("--odom-heading-noise", float, "RAD_PER_SQRT_M", "odometry", "heading_rad_per_sqrt_m",
+     "odometry heading noise per sqrt(metre) (default: log header, else 0.01)"),
+    ("--odom-turn-noise", float, "RAD_PER_SQRT_RAD", "odometry", "heading_rad_per_sqrt_rad",
+     "odometry heading noise per sqrt(radian turned) (default: log header, else 0.03)"),
+    ("--max-candidates", int, "N", "candidates", "max_per_keyframe", "candidates proposed per keyframe at most"),
+    ("--min-overlap", float, "FRACTION", "verify", "min_overlap",
+     "fraction of points that must match after registration"),
+    ("--max-rmse", float, "M", "verify", "max_rmse_m", "largest point-to-line RMS residual after registration"),
+    ("--gate-probability", float, "P", "verify", "gate_probability", "chi-square probability of the odometry gate"),
+    ("--pair-probability", float, "P", "verify", "pair_probability",
+     "chi-square probability of the pairwise cycle test"),
+    ("--residual-probability", float, "P", "verify", "residual_probability",
+     "chi-square probability of the residual test after optimisation"),
+)
+
+
 def _run_config(args):
     """Defaults, then --config FILE, then the command-line options."""
     from .config import build_config
 
     updates: dict = {}
-    for section, key, value in (
-            (None, "jobs", args.jobs),
-            ("keyframes", "spacing_m", args.keyframe_spacing),
-            ("keyframes", "turn_rad", args.keyframe_turn),
-            ("odometry", "translation_m_per_sqrt_m", args.odom_translation_noise),
-            ("odometry", "heading_rad_per_sqrt_m", args.odom_heading_noise),
-            ("odometry", "heading_rad_per_sqrt_rad", args.odom_turn_noise),
-            ("candidates", "max_per_keyframe", args.max_candidates),
-            ("verify", "min_overlap", args.min_overlap),
-            ("verify", "max_rmse_m", args.max_rmse),
-            ("verify", "gate_probability", args.gate_probability),
-            ("verify", "pair_probability", args.pair_probability),
-            ("verify", "residual_probability", args.residual_probability)):
-        if value is None:
-            continue
-        if section is None:
-            updates[key] = value
-        else:
-            updates.setdefault(section, {})[key] = value
+    if args.jobs is not None:
+        updates["jobs"] = args.jobs
+    for flag, _, _, table, key, _ in THRESHOLD_OPTIONS:
+        value = getattr(args, flag[2:].replace("-", "_"))
+        if value is not None:
+            updates.setdefault(table, {})[key] = value
     return build_config(args.config, updates)
 
 
@@ -206,28 +218,8 @@ def build_parser() -> argparse.ArgumentParser:
                          help="run registration on Dask: 'local' or tcp://HOST:PORT (needs the dask extra)")
     runopts.add_argument("--no-report", action="store_true", help="skip report.html (faster)")
     t = runopts.add_argument_group("main thresholds (all settings: --config)")
-    t.add_argument("--keyframe-spacing", type=float, default=None, metavar="M",
-                   help="odometry path length between keyframes (default 0.5 m)")
-    t.add_argument("--keyframe-turn", type=float, default=None, metavar="RAD",
-                   help="turn that makes a new keyframe (default 0.349 rad = 20 deg)")
-    t.add_argument("--odom-translation-noise", type=float, default=None, metavar="M_PER_SQRT_M",
-                   help="odometry position noise per sqrt(metre) (default: log header, else 0.03)")
-    t.add_argument("--odom-heading-noise", type=float, default=None, metavar="RAD_PER_SQRT_M",
-                   help="odometry heading noise per sqrt(metre) (default: log header, else 0.01)")
-    t.add_argument("--odom-turn-noise", type=float, default=None, metavar="RAD_PER_SQRT_RAD",
-                   help="odometry heading noise per sqrt(radian turned) (default: log header, else 0.03)")
-    t.add_argument("--max-candidates", type=int, default=None, metavar="N",
-                   help="candidates proposed per keyframe at most")
-    t.add_argument("--min-overlap", type=float, default=None, metavar="FRACTION",
-                   help="fraction of points that must match after registration")
-    t.add_argument("--max-rmse", type=float, default=None, metavar="M",
-                   help="largest point-to-line RMS residual after registration")
-    t.add_argument("--gate-probability", type=float, default=None, metavar="P",
-                   help="chi-square probability of the odometry gate")
-    t.add_argument("--pair-probability", type=float, default=None, metavar="P",
-                   help="chi-square probability of the pairwise cycle test")
-    t.add_argument("--residual-probability", type=float, default=None, metavar="P",
-                   help="chi-square probability of the residual test after optimisation")
+    for flag, kind, metavar, _, _, text in THRESHOLD_OPTIONS:
+        t.add_argument(flag, type=kind, default=None, metavar=metavar, help=text)
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     sub.required = True
 
