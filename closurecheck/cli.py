@@ -33,25 +33,10 @@ def _pose_arg(text: str):
 
 
 def _cmd_info(args) -> int:
-    import numpy as np
-
     from .io.scanlog import read_scanlog
+    from .reporting.terminal import describe_log
 
-    log = read_scanlog(args.log)
-    s = log.sensor
-    steps = np.hypot(*np.diff(log.odom[:, :2], axis=0).T) if len(log) > 1 else np.zeros(0)
-    fov = np.degrees(abs(s.angle_step) * (s.beams - 1))
-    valid = np.isfinite(log.ranges).mean() if log.ranges.size else 0.0
-    lines = [
-        f"{args.log}: {len(log)} scans over {log.t[-1] - log.t[0] if len(log) else 0.0:.1f} s",
-        f"  sensor: {s.beams} beams over {fov:.1f} deg, ranges {s.min_range:g}-{s.max_range:g} m,"
-        f" {100 * valid:.1f}% of beams with a return",
-        f"  odometry: {steps.sum():.1f} m travelled",
-        f"  ground truth: {'yes' if log.has_truth else 'no'}",
-    ]
-    if log.header.get("notes"):
-        lines.append(f"  notes: {log.header['notes']}")
-    print("\n".join(lines))
+    print(describe_log(read_scanlog(args.log), args.log))
     return EXIT_OK
 
 
@@ -144,30 +129,11 @@ def _cmd_demo(args) -> int:
 
 
 def _cmd_score(args) -> int:
-    import json
+    from .reporting.scoring import format_score, score_run, write_score
 
-    from .io.atomic import write_text
-    from .io.inputs import load_input
-    from .reporting.scoring import format_score, score_pairs, score_run_dir
-
-    run_dir = Path(args.run_dir)
-    log_path = args.log
-    if log_path is None:
-        try:
-            log_path = json.loads((run_dir / "summary.json").read_text())["log_path"]
-        except (OSError, ValueError, KeyError, TypeError):
-            raise InputError("cannot tell which log this run used; pass --log LOG", run_dir) from None
-    log, _ = load_input(log_path, _recording_choice(args))
-    if args.candidates:
-        from .frontend.keyframes import select_keyframes
-        from .io.pairs_csv import read_pairs
-
-        pairs = read_pairs(args.candidates, len(log))
-        score = score_pairs(log, pairs, select_keyframes(log.odom))
-    else:
-        score = score_run_dir(run_dir, log)
+    score = score_run(args.run_dir, log_path=args.log, candidates=args.candidates, choice=_recording_choice(args))
     if args.json:
-        write_text(args.json, json.dumps(score, indent=1, default=float) + "\n")
+        write_score(args.json, score)
     if not args.quiet:
         print(format_score(score))
     return EXIT_OK

@@ -1,4 +1,6 @@
-"""The run's configuration: one frozen record of every stage's options, built from defaults, a TOML file and the command line.
+"""The run's configuration: one frozen record of every stage's options.
+
+Built from the defaults, a TOML file and the command line.
 
 ``--config FILE`` loads a TOML file over the defaults, command-line options
 go on top, and the effective configuration is written next to the outputs

@@ -83,7 +83,8 @@ def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPai
     """Run the pipeline on a scan log held in memory.
 
     ``external`` replaces the proposed candidates with the pairs of a CSV
-    (docs/formats.md, "Candidate pairs"), or joins them when ``also_propose`` is set.  ``runner`` executes the registration batches
+    (docs/formats.md, "Candidate pairs"), or joins them when
+    ``also_propose`` is set.  ``runner`` executes the registration batches
     (serial, local pool or Dask; :mod:`closurecheck.runners`).
     """
     if len(log) < 2:
@@ -153,6 +154,20 @@ class BatchResult:
     outcomes: tuple  # (path, RunOutcome or None, error or None)
 
 
+def _write(outcome, log: ScanLog, out_dir, *, report: bool, progress, log_path: Path | None):
+    """Score against the log's truth when it has some, then write the run's outputs."""
+    score = None
+    if log.has_truth:
+        from .reporting.scoring import score_closures
+
+        v = outcome.verdicts
+        score = score_closures(log, outcome.keyframes, v.src, v.dst, v.accepted, v.delta, v.covariance,
+                               outcome.poses)
+    if progress is not None:
+        progress.stage("writing outputs")
+    return write_outputs(outcome, out_dir, report=report, score=score, log_path=log_path)
+
+
 def run_one(path, out_dir, config: RunConfig, *, candidates=None, choice=None, runner=None, report=True,
             progress=None, also_propose=False):
     """Load one input, run the pipeline and write its outputs. Returns (outcome, paths, info)."""
@@ -169,17 +184,61 @@ def run_one(path, out_dir, config: RunConfig, *, candidates=None, choice=None, r
     outcome = run_log(log, config, external=external, runner=runner, progress=progress, also_propose=also_propose)
     if load_notes:
         outcome = dataclasses.replace(outcome, notes=tuple(load_notes) + outcome.notes)
-    score = None
-    if log.has_truth:
-        from .reporting.scoring import score_closures
-
-        score = score_closures(log, outcome.keyframes, outcome.verdicts.src, outcome.verdicts.dst,
-                               outcome.verdicts.accepted, outcome.verdicts.delta, outcome.verdicts.covariance,
-                               outcome.poses)
-    if progress is not None:
-        progress.stage("writing outputs")
-    paths = write_outputs(outcome, out_dir, report=report, score=score, log_path=Path(path))
+    paths = _write(outcome, log, out_dir, report=report, progress=progress, log_path=Path(path))
     return outcome, paths, summary(outcome)
+
+
+def run(log, out=None, *, config: RunConfig | None = None, candidates=None, jobs: int | None = None,
+        report: bool = True) -> RunOutcome:
+    """The whole job from Python: what ``closurecheck run LOG --out DIR`` does.
+
+    Parameters
+    ----------
+    log : a :class:`~closurecheck.io.scanlog.ScanLog`, or the path of a scan
+        log or robot recording.
+    out : folder for graph.json, candidates.csv, config.toml, summary.json
+        and report.html (docs/formats.md); None writes nothing.
+    config : the settings (:class:`~closurecheck.config.RunConfig`, e.g.
+        from :func:`~closurecheck.config.build_config`); None for defaults.
+    candidates : path of a pairs CSV to verify instead of proposing.
+    jobs : worker processes for registration (overrides ``config.jobs``;
+        0 = all cores, 1 = this process).
+    report : also write report.html (when ``out`` is given).
+
+    Returns
+    -------
+    RunOutcome : the keyframes, candidates, registrations, verdicts
+    (``outcome.verdicts``), optimised keyframe poses (``outcome.poses``, odometry
+    frame) and the pose graph written to graph.json (``outcome.graph``).
+
+    Examples
+    --------
+    >>> import closurecheck
+    >>> log = closurecheck.simulate_log("ring", seed=4, scans=60)
+    >>> outcome = closurecheck.run(log, jobs=1)
+    >>> len(outcome.verdicts) == len(outcome.candidates), outcome.poses.shape[1]
+    (True, 3)
+    """
+    from .io.inputs import load_input
+    from .io.pairs_csv import read_pairs
+    from .runners.factory import make_runner
+
+    config = config or RunConfig()
+    if jobs is not None:
+        config = updated(config, {"jobs": jobs})
+    log_path = None
+    if not isinstance(log, ScanLog):
+        log_path = Path(log)
+        log, _ = load_input(log_path)
+    external = read_pairs(candidates, len(log)) if candidates else None
+    runner = make_runner(config.jobs)
+    try:
+        outcome = run_log(log, config, external=external, runner=runner)
+    finally:
+        runner.close()
+    if out is not None:
+        _write(outcome, log, out, report=report, progress=None, log_path=log_path)
+    return outcome
 
 
 def run_paths(paths, out, config: RunConfig = RunConfig(), *, candidates=None, choice=None, dask=None,

@@ -12,7 +12,7 @@ the step and "|rotation|" its accumulated absolute heading change (see
 :func:`odometry_travel`), so a step that wiggles costs
 more than its net motion suggests.
 
-A scan log may carry the model in its header (contract section 1 allows
+A scan log may carry the model in its header (docs/formats.md, "Scan log", allows
 tool-defined optional keys)::
 
     "odometry_noise": {"translation_m_per_sqrt_m": 0.03,

@@ -20,6 +20,12 @@ nodes that no edge connects to node 0 keep their initial poses.
 
 The normalised residual of an edge is its Mahalanobis distance
 ``r = sqrt(e^T Omega e)`` (dimensionless); robust kernels and GNC act on it.
+
+The public functions check their arrays (shapes, finite values, symmetric
+positive definite information) and raise InputError; a caller that built
+the arrays itself from checked data (the verification stage, which solves
+the same graph many times) passes ``check=False`` and skips the checks,
+among them an eigen-decomposition of every information matrix.
 """
 
 from __future__ import annotations
@@ -239,6 +245,16 @@ def _validate(poses, src, dst, delta, information, robust):
 def _check_kernel(kernel):
     if kernel is not None and not isinstance(kernel, Kernel):
         raise InputError(f"kernel must be a closurecheck.core.kernels.Kernel or None, got {type(kernel).__name__}")
+
+
+def _inputs(poses, src, dst, delta, information, robust, check: bool):
+    """The arrays of a graph problem: validated at the public boundary, taken as they are from trusted callers."""
+    if check:
+        return _validate(poses, src, dst, delta, information, robust)
+    e = len(src)
+    return (np.asarray(poses, dtype=float), np.asarray(src, dtype=np.int64), np.asarray(dst, dtype=np.int64),
+            np.asarray(delta, dtype=float), np.asarray(information, dtype=float),
+            np.ones(e, dtype=bool) if robust is None else np.asarray(robust, dtype=bool))
 
 
 # ---------------------------------------------------------------------------
@@ -480,18 +496,18 @@ def _optimise(graph, poses, kernel, active, options):
 # Public API
 
 
-def edge_residuals(poses, src, dst, delta, information):
+def edge_residuals(poses, src, dst, delta, information, *, check: bool = True):
     """Errors and squared Mahalanobis distances of every edge.
 
     Returns ``(e, s)``: ``e`` (E, 3) is ``between(x_src, x_dst) - delta``
     (m, m, rad; angle wrapped) in the ``src`` frame, ``s`` (E,) is
     ``e^T Omega e`` (dimensionless).
     """
-    args = _validate(poses, src, dst, delta, information, None)
+    args = _inputs(poses, src, dst, delta, information, None, check)
     return _Graph(*args).errors(args[0])
 
 
-def normal_matrix(poses, src, dst, delta, information, weights=None):
+def normal_matrix(poses, src, dst, delta, information, weights=None, *, check: bool = True):
     """Gauge-fixed normal equations ``(J^T W J, J^T W e)`` at ``poses``.
 
     Node 0 is removed (its three columns are not variables); variables are
@@ -500,7 +516,7 @@ def normal_matrix(poses, src, dst, delta, information, weights=None):
     shape (3M, 3M) and the gradient (3M,), where M is the number of nodes
     connected to node 0 (excluding it).
     """
-    poses, src, dst, delta, information, robust = _validate(poses, src, dst, delta, information, None)
+    poses, src, dst, delta, information, robust = _inputs(poses, src, dst, delta, information, None, check)
     graph = _Graph(poses, src, dst, delta, information, robust)
     w = np.ones(len(src)) if weights is None else np.asarray(weights, dtype=float)
     if w.shape != (len(src),) or not np.all(np.isfinite(w)) or np.any(w < 0):
@@ -512,7 +528,7 @@ def normal_matrix(poses, src, dst, delta, information, weights=None):
 
 
 def optimize_graph(poses, src, dst, delta, information, robust=None, kernel: Kernel | None = None,
-                   options: SolverOptions = SolverOptions()) -> GraphSolution:
+                   options: SolverOptions = SolverOptions(), *, check: bool = True) -> GraphSolution:
     """Optimise a pose graph by Levenberg-Marquardt with IRLS robust weights.
 
     Parameters follow the module docstring: ``poses`` (N, 3) initial world
@@ -526,8 +542,9 @@ def optimize_graph(poses, src, dst, delta, information, robust=None, kernel: Ker
     iteration reweights robust edges by ``kernel.weight`` at the current
     poses (iteratively reweighted least squares).
     """
-    _check_kernel(kernel)
-    args = _validate(poses, src, dst, delta, information, robust)
+    if check:
+        _check_kernel(kernel)
+    args = _inputs(poses, src, dst, delta, information, robust, check)
     graph = _Graph(*args)
     return _optimise(graph, args[0], kernel, np.ones(len(args[1]), dtype=bool), options)
 
@@ -543,7 +560,7 @@ def _gnc_weights(r2, mu, c2, surrogate):
 
 
 def optimize_gnc(poses, src, dst, delta, information, robust=None,
-                 options: GncOptions = GncOptions()) -> GraphSolution:
+                 options: GncOptions = GncOptions(), *, check: bool = True) -> GraphSolution:
     """Optimise with graduated non-convexity on the robust edges.
 
     Yang, Antonante, Tzoumas and Carlone, "Graduated Non-Convexity for Robust
@@ -559,7 +576,7 @@ def optimize_gnc(poses, src, dst, delta, information, robust=None,
     Returns a :class:`GraphSolution` whose ``weights`` hold the final GNC
     weight of each robust edge in [0, 1] (near 0: outlier).
     """
-    args = _validate(poses, src, dst, delta, information, robust)
+    args = _inputs(poses, src, dst, delta, information, robust, check)
     graph = _Graph(*args)
     e_count = len(args[1])
     active = np.ones(e_count, dtype=bool)
@@ -610,7 +627,8 @@ def optimize_gnc(poses, src, dst, delta, information, robust=None,
 
 
 def prune_inconsistent_edges(poses, src, dst, delta, information, robust=None, kernel: Kernel | None = None,
-                             probability: float = 0.99, options: SolverOptions = SolverOptions()) -> PruneResult:
+                             probability: float = 0.99, options: SolverOptions = SolverOptions(), *,
+                             check: bool = True) -> PruneResult:
     """Final check: drop robust edges whose residual fails a chi-square test, worst first.
 
     Optimises the graph (with ``kernel`` on robust edges, or plain least
@@ -622,9 +640,10 @@ def prune_inconsistent_edges(poses, src, dst, delta, information, robust=None, k
     Returns a :class:`PruneResult` with the removal order and the residual
     of each removed edge when it was removed.
     """
-    _check_kernel(kernel)
+    if check:
+        _check_kernel(kernel)
     threshold = chi2_threshold(probability, POSE_DOF)
-    args = _validate(poses, src, dst, delta, information, robust)
+    args = _inputs(poses, src, dst, delta, information, robust, check)
     graph = _Graph(*args)
     kept = np.ones(len(args[1]), dtype=bool)
     removed, removed_s = [], []

@@ -1,4 +1,4 @@
-"""Candidate-pairs CSV files (contract section 4).
+"""Candidate-pairs CSV files (docs/formats.md, "Candidate pairs").
 
 Input (``--candidates PAIRS.csv``): a header row, required columns ``from``
 and ``to`` (scan ids), optional ``dx,dy,dtheta`` (an initial guess of the
@@ -32,7 +32,7 @@ GUESS_COLUMNS = ("dx", "dy", "dtheta")
 OUTPUT_COLUMNS = ("from", "to", "verdict", "reason", "dx", "dy", "dtheta")
 VERDICTS = ("accepted", "rejected")
 # The diagonal of each candidate's covariance, after the figure columns
-# (docs/formats.md, "candidates.csv").
+# (docs/formats.md, "Candidate pairs").
 VARIANCE_COLUMNS = ("var_x_m2", "var_y_m2", "var_theta_rad2")
 
 
@@ -87,7 +87,7 @@ def _parse_number(text: str, column: str, path, line: int) -> float:
 
 
 def read_pairs(path, scan_count: int) -> ExternalPairs:
-    """Read a candidate-pairs CSV (contract section 4) for a log of ``scan_count`` scans.
+    """Read a candidate-pairs CSV (docs/formats.md, "Candidate pairs") for a log of ``scan_count`` scans.
 
     Raises :class:`InputError` naming the file and line for: a missing
     file or header row, missing ``from``/``to`` columns, only part of the
@@ -183,7 +183,7 @@ def _cell(value) -> str:
 
 
 def write_candidates(path, src, dst, verdict, reason, delta, extra: dict | None = None) -> None:
-    """Write ``candidates.csv`` (contract section 4) atomically.
+    """Write ``candidates.csv`` (docs/formats.md, "Candidate pairs") atomically.
 
     Parameters
     ----------

@@ -1,4 +1,8 @@
-"""The run's output folder: graph.json, candidates.csv, config.toml, summary.json, report.html, and a batch's index page."""
+"""The run's output folder.
+
+graph.json, candidates.csv, config.toml, summary.json and report.html, and
+a batch's index page.
+"""
 
 from __future__ import annotations
 

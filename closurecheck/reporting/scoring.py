@@ -174,3 +174,36 @@ def format_score(score: dict) -> str:
         rows.append((k.replace("_", " "), str(v)))
     width = max(len(a) for a, _ in rows) if rows else 0
     return "\n".join(f"{a.ljust(width)}  {b}" for a, b in rows)
+
+
+def score_run(run_dir, *, log_path=None, candidates=None, choice=None) -> dict:
+    """``closurecheck score``: a run's verdicts, or another front-end's pairs, against the log's truth.
+
+    ``log_path`` defaults to the log recorded in ``run_dir/summary.json``;
+    ``candidates`` (a pairs CSV) scores that list instead of the run's verdicts.
+    """
+    import json
+
+    from ..frontend.keyframes import select_keyframes
+    from ..io.inputs import RecordingChoice, load_input
+    from ..io.pairs_csv import read_pairs
+
+    run_dir = Path(run_dir)
+    if log_path is None:
+        try:
+            log_path = json.loads((run_dir / "summary.json").read_text())["log_path"]
+        except (OSError, ValueError, KeyError, TypeError):
+            raise InputError("cannot tell which log this run used; pass --log LOG", run_dir) from None
+    log, _ = load_input(log_path, choice or RecordingChoice())
+    if candidates:
+        return score_pairs(log, read_pairs(candidates, len(log)), select_keyframes(log.odom))
+    return score_run_dir(run_dir, log)
+
+
+def write_score(path, score: dict) -> None:
+    """Write the scores as JSON, atomically."""
+    import json
+
+    from ..io.atomic import write_text
+
+    write_text(path, json.dumps(score, indent=1, default=float) + "\n")

@@ -134,51 +134,15 @@ class PairConsistency:
 
 
 # --------------------------------------------------------------------------
-# validation at the public boundary
+# inputs (the verification stage hands over checked arrays)
 
 
-def _check_inputs(src, dst, deltas, covariances, poses, prefix):
-    poses = np.asarray(poses, dtype=float)
-    prefix = np.asarray(prefix, dtype=float)
-    if poses.ndim != 2 or poses.shape[1] != 3 or len(poses) < 1:
-        raise InputError(f"odometry poses must have shape (N, 3) with N >= 1, got {poses.shape}")
-    n = len(poses)
-    if prefix.shape != (n, 3, 3):
-        raise InputError(f"odometry prefix must have shape ({n}, 3, 3) to match the poses, got {prefix.shape}")
-    if not (np.all(np.isfinite(poses)) and np.all(np.isfinite(prefix))):
-        raise InputError("odometry poses and prefix must be finite")
-    src = np.asarray(src)
-    dst = np.asarray(dst)
-    if src.ndim != 1 or dst.shape != src.shape:
-        raise InputError(f"closure src and dst must be 1-D arrays of equal length, got {src.shape} and {dst.shape}")
-    k = len(src)
-    for name, idx in (("src", src), ("dst", dst)):
-        if k and not np.issubdtype(idx.dtype, np.integer):
-            raise InputError(f"closure {name} must hold integer node indices, got dtype {idx.dtype}")
-        if k and (idx.min() < 0 or idx.max() >= n):
-            raise InputError(f"closure {name} indices must lie in [0, {n - 1}], got range [{idx.min()}, {idx.max()}]")
-    src = src.astype(np.intp)
-    dst = dst.astype(np.intp)
-    deltas = np.asarray(deltas, dtype=float)
+def _arrays(src, dst, deltas, covariances, poses, prefix):
+    """The closure and chain arrays as float/int arrays, covariances symmetrised to the last bit."""
     covariances = np.asarray(covariances, dtype=float)
-    if deltas.shape != (k, 3):
-        raise InputError(f"closure deltas must have shape ({k}, 3), got {deltas.shape}")
-    if covariances.shape != (k, 3, 3):
-        raise InputError(f"closure covariances must have shape ({k}, 3, 3), got {covariances.shape}")
-    if not (np.all(np.isfinite(deltas)) and np.all(np.isfinite(covariances))):
-        raise InputError("closure deltas and covariances must be finite")
-    if k:
-        asym = np.abs(covariances - np.swapaxes(covariances, 1, 2)).max(axis=(1, 2))
-        scale = np.abs(covariances).max(axis=(1, 2))
-        bad = np.flatnonzero(asym > 1e-9 * np.maximum(scale, 1e-300))
-        if len(bad):
-            raise InputError(f"closure covariance {bad[0]} is not symmetric")
-        sym = 0.5 * (covariances + np.swapaxes(covariances, 1, 2))
-        bad = np.flatnonzero(np.linalg.eigvalsh(sym)[:, 0] <= 0.0)
-        if len(bad):
-            raise InputError(f"closure covariance {bad[0]} is not positive definite")
-        covariances = sym
-    return src, dst, deltas, covariances, poses, prefix
+    return (np.asarray(src, dtype=np.intp), np.asarray(dst, dtype=np.intp), np.asarray(deltas, dtype=float),
+            0.5 * (covariances + np.swapaxes(covariances, 1, 2)), np.asarray(poses, dtype=float),
+            np.asarray(prefix, dtype=float))
 
 
 # --------------------------------------------------------------------------
@@ -262,7 +226,7 @@ def odometry_gate(src, dst, deltas, covariances, poses, prefix, options: Consist
         sum of the measurement's and the odometry chain's contributions
         (independent), and ``distance_sq = e^T S^-1 e``.
     """
-    src, dst, deltas, covariances, poses, prefix = _check_inputs(src, dst, deltas, covariances, poses, prefix)
+    src, dst, deltas, covariances, poses, prefix = _arrays(src, dst, deltas, covariances, poses, prefix)
     threshold = chi2_threshold(options.gate_probability)
     pred, pred_cov = _predicted(poses, prefix, src, dst)
     err = se2.between(pred, deltas)
@@ -521,7 +485,7 @@ def pair_distances(
     in time); ``shared_odometry=False`` then treats them as independent and
     overstates the cycle covariance (a conservative, weaker test).
     """
-    src, dst, deltas, covariances, poses, prefix = _check_inputs(src, dst, deltas, covariances, poses, prefix)
+    src, dst, deltas, covariances, poses, prefix = _arrays(src, dst, deltas, covariances, poses, prefix)
     k = len(src)
     first = np.asarray(first)
     second = np.asarray(second)
@@ -583,7 +547,7 @@ def pairwise_consistency(src, dst, deltas, covariances, poses, prefix, options: 
     -------
     PairConsistency
     """
-    src, dst, deltas, covariances, poses, prefix = _check_inputs(src, dst, deltas, covariances, poses, prefix)
+    src, dst, deltas, covariances, poses, prefix = _arrays(src, dst, deltas, covariances, poses, prefix)
     k = len(src)
     threshold = chi2_threshold(options.pair_probability)
     # Dense float32 distances and a dense boolean mask filled in place: most

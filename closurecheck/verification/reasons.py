@@ -1,7 +1,7 @@
 """Reason codes: which check decided a candidate, what it means, and where the report groups it.
 
 The codes are the ``reason`` column of candidates.csv and the keys of
-summary.json's ``reasons`` (docs/formats.md, "candidates.csv"; docs/verification.md
+summary.json's ``reasons`` (docs/formats.md, "Candidate pairs"; docs/verification.md
 lists the checks).  Every code is a member of :class:`Reason`; an unknown
 code is an error, never a row that silently vanishes from a count.
 

@@ -206,14 +206,14 @@ def optimise_closures(members, src, dst, delta, covariance, odom_poses, step_cov
     keep = np.ones(n_m, dtype=bool)
     if options.use_gnc:
         gnc = optimize_gnc(start, e_src, e_dst, e_delta, e_info, robust,
-                           GncOptions(inlier_probability=options.residual_probability))
+                           GncOptions(inlier_probability=options.residual_probability), check=False)
         gnc_w = np.array(gnc.weights[n_o:])
         keep = gnc_w >= options.gnc_min_weight
         start = np.array(gnc.poses)
     sel = np.r_[np.ones(n_o, bool), keep]
     kernel = kernel_from_name(options.kernel, options.kernel_scale)
     pr = prune_inconsistent_edges(start, e_src[sel], e_dst[sel], e_delta[sel], e_info[sel], robust[sel], kernel,
-                                  probability=options.residual_probability, options=SolverOptions())
+                                  probability=options.residual_probability, options=SolverOptions(), check=False)
     kept = keep.copy()
     kept[np.flatnonzero(keep)] = pr.kept[n_o:]
     res[np.flatnonzero(keep)] = pr.solution.residuals_sq[n_o:]
@@ -329,7 +329,8 @@ def _core_and_map(plausible, src, dst, delta, covariance, step_covariances, opti
                      f"{len(core)} verified closures)")
 
     members = core
-    retry = np.flatnonzero(plausible & ((first_pass == Reason.ODOMETRY_GATE) | (first_pass == Reason.PAIR_INCONSISTENT)))
+    retry = np.flatnonzero(plausible & ((first_pass == Reason.ODOMETRY_GATE)
+                                        | (first_pass == Reason.PAIR_INCONSISTENT)))
     for _ in range(options.map_rounds if options.extend_with_map else 0):
         # Candidates the odometry could not vouch for, gated against the map
         # that the closures verified so far pin down.  Only where the map is
@@ -470,7 +471,8 @@ def verify(closures: RegisteredClosures, chain: OdometryChain,
                      f"the consistent set of {clique.size} closures is the best found, at most "
                      f"{clique.upper_bound} is possible")
     accepted = reason == Reason.ACCEPTED
-    return Verification(reason=np.array([str(r) for r in reason], dtype=str), closure_covariance=covariance, accepted=accepted, figures=figures, poses=poses,
+    return Verification(reason=np.array([str(r) for r in reason], dtype=str), accepted=accepted,
+                        closure_covariance=covariance, figures=figures, poses=poses,
                         clique_exact=clique_exact, clique_size=0 if clique is None else clique.size,
                         odometry_scale=scale, odometry_poses=np.array(odom_poses, dtype=float),
                         heading_drift=drift, notes=tuple(notes))
