@@ -11,7 +11,7 @@ import traceback
 from pathlib import Path
 
 from ._version import __version__
-from .errors import EXIT_BAD_INPUT, EXIT_INTERNAL, EXIT_OK, InputError
+from .errors import EXIT_BAD_INPUT, EXIT_DOUBTFUL, EXIT_INTERNAL, EXIT_OK, InputError
 
 
 class _Parser(argparse.ArgumentParser):
@@ -115,7 +115,13 @@ def _cmd_run(args) -> int:
         print(result.text)
     for message in result.errors:
         print(f"closurecheck: error: {message}", file=sys.stderr)
-    return EXIT_BAD_INPUT if result.errors else EXIT_OK
+    if result.errors:
+        return EXIT_BAD_INPUT
+    doubtful = [str(path) for path, outcome, _ in result.outcomes if outcome is not None and not outcome.trust.sound]
+    if doubtful:
+        print(f"closurecheck: doubtful map: {', '.join(doubtful)} (see the report; exit status 3)", file=sys.stderr)
+        return EXIT_DOUBTFUL
+    return EXIT_OK
 
 
 def _cmd_demo(args) -> int:

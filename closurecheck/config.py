@@ -19,6 +19,7 @@ from .frontend.descriptors import DescriptorOptions
 from .frontend.keyframes import KeyframeOptions
 from .io.settings_file import load_toml
 from .registration.icp import RegistrationOptions
+from .verification.trust import TrustOptions
 from .verification.verify import VerifyOptions
 
 
@@ -59,6 +60,7 @@ class RunConfig:
     registration: RegistrationOptions = RegistrationOptions(coarse_window_m=2.0, coarse_window_rad=0.6,
                                                             coarse_angle_step_rad=0.01)
     verify: VerifyOptions = VerifyOptions()
+    trust: TrustOptions = TrustOptions()
 
 
 def build_config(config_file=None, updates: dict | None = None) -> RunConfig:

@@ -5,6 +5,9 @@ from __future__ import annotations
 EXIT_OK = 0
 EXIT_INTERNAL = 1
 EXIT_BAD_INPUT = 2
+# The run finished and wrote its outputs, but its own checks found the map
+# doubtful (summary.json "trust"; docs/cli.md, "Exit status").
+EXIT_DOUBTFUL = 3
 
 # A value quoted in an error message is cut to this many characters: a
 # message stays one readable line even when the value is a 20 MB string.

@@ -36,6 +36,8 @@ from .io.scanlog import ScanLog
 from .registration.batch import RegisteredClosures, collect, seeds_for
 from .reporting.outputs import RunOutcome, summary, write_index, write_outputs
 from .reporting.terminal import format_summary
+from .verification.free_space import KeyframeScans
+from .verification.trust import judge
 from .verification.verdicts import VerdictTable
 from .verification.verify import (
     Verification,
@@ -143,7 +145,13 @@ def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPai
         cands = st.run("candidates", propose_for, data, config.candidates)
 
     regs = st.run("registration", _register_candidates, log, cands, config, runner, progress)
-    ver = st.run("verification", verify, regs, chain, config.verify)
+    ver = st.run("verification", verify, regs, chain, config.verify,
+                 KeyframeScans(log.ranges[keyframes], log.sensor))
+    trust = judge(calibrated=cal.measured, odometry_scale=ver.odometry_scale,
+                  drift_rate=ver.heading_drift.rate_rad_per_m, drift_std=ver.heading_drift.std_rad_per_m,
+                  drift_closures=ver.heading_drift.closures, clique_exact=ver.clique_exact,
+                  contradictions=0 if ver.free_space is None else ver.free_space.count,
+                  accepted=int(ver.accepted.sum()), options=config.trust)
 
     figures = dict(regs.quality.figures())
     figures.update(ver.figures)
@@ -158,6 +166,7 @@ def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPai
         notes.append(f"candidates taken from an external pairs file ({len(external)} pairs)")
     return RunOutcome(log=log, config=config, keyframes=keyframes, odom=log.odom[keyframes], step_covariances=chain.steps,
                       candidates=cands, registrations=regs, verification=ver, verdicts=verdicts, graph=graph,
+                      calibration=cal, trust=trust,
                       timings=st.timings, notes=tuple(notes))
 
 

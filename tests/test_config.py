@@ -24,7 +24,8 @@ def test_round_trip_through_toml(tmp_path):
 
 def test_every_table_of_the_configuration_is_an_options_record():
     tables = [f.name for f in dataclasses.fields(RunConfig) if is_options(getattr(RunConfig(), f.name))]
-    assert set(tables) == {"keyframes", "odometry", "calibration", "descriptors", "candidates", "registration", "verify"}
+    assert set(tables) == {"keyframes", "odometry", "calibration", "descriptors", "candidates", "registration", "verify",
+                           "trust"}
 
 
 # One bad value per table (and the top level): each is refused when the

@@ -13,6 +13,7 @@ from pathlib import Path
 import numpy as np
 
 from .._version import __version__
+from ..calibration.odometry import OdometryCalibration
 from ..core import se2
 from ..errors import InputError
 from ..frontend.candidates import CandidateSet
@@ -23,6 +24,7 @@ from ..io.pairs_csv import VARIANCE_COLUMNS, write_candidates
 from ..io.scanlog import ScanLog
 from ..io.settings_file import to_toml
 from ..registration.batch import RegisteredClosures
+from ..verification.trust import TrustVerdict
 from ..verification.verdicts import VerdictTable
 from ..verification.verify import Verification
 
@@ -41,6 +43,8 @@ class RunOutcome:
     verification: Verification
     verdicts: VerdictTable
     graph: PoseGraph
+    calibration: OdometryCalibration
+    trust: TrustVerdict
     timings: dict = field(default_factory=dict)
     notes: tuple = ()
 
@@ -59,6 +63,27 @@ def _drift_summary(drift) -> dict:
             "removed_deg_per_100m": float(np.degrees(drift.removed_rad_per_m) * 100.0)}
 
 
+def _calibration_summary(cal: OdometryCalibration) -> dict:
+    sys = cal.systematic
+    deg100 = float(np.degrees(1.0) * 100.0)
+
+    def finite(v):
+        return float(v) if np.isfinite(v) else None
+
+    return {"measured": bool(cal.measured), "steps": int(cal.steps), "steps_registered": int(cal.steps_sound),
+            "heading_drift_deg_per_100m": sys.heading_per_m * deg100,
+            "heading_drift_std_deg_per_100m": finite(sys.heading_per_m_std * deg100),
+            "turn_scale": sys.turn_scale, "turn_scale_std": finite(sys.turn_scale_std),
+            "distance_scale": sys.distance_scale, "distance_scale_std": finite(sys.distance_scale_std),
+            "noise": cal.noise.to_header(), "slips": [int(k) for k in cal.slips]}
+
+
+def _free_space_summary(check) -> dict | None:
+    if check is None:
+        return None
+    return {"pairs_compared": int(len(check.a)), "pairs_contradicting": int(check.count)}
+
+
 def summary(outcome: RunOutcome) -> dict:
     """Numbers of the run for summary.json, the terminal and the report."""
     v = outcome.verdicts
@@ -73,7 +98,10 @@ def summary(outcome: RunOutcome) -> dict:
         "accepted": int(v.accepted.sum()),
         "rejected": int((~v.accepted).sum()),
         "reasons": v.counts(),
+        "trust": {"verdict": outcome.trust.label, "reasons": list(outcome.trust.reasons)},
         "consistent_set_exact": bool(outcome.verification.clique_exact),
+        "odometry_calibration": _calibration_summary(outcome.calibration),
+        "free_space": _free_space_summary(outcome.verification.free_space),
         "odometry_scale": float(outcome.verification.odometry_scale),
         "odometry_heading_drift": _drift_summary(outcome.verification.heading_drift),
         "correction_max_m": float(shift.max()) if len(shift) else 0.0,

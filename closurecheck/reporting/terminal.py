@@ -50,6 +50,13 @@ def format_summary(info: dict, paths: dict) -> str:
     """The one-screen summary printed at the end of a run."""
     lines = [f"{info['source']}: {info['scans']} scans, {info['keyframes']} keyframes",
              f"  candidates {info['candidates']}: {info['accepted']} verified, {info['rejected']} rejected"]
+    trust = info.get("trust")
+    if trust is not None:
+        if trust["verdict"] == "sound":
+            lines.append("  map: sound (every check of the run passed)")
+        else:
+            lines.append("  map: DOUBTFUL, do not use it without review:")
+            lines.extend(f"    - {r}" for r in trust["reasons"])
     rej = {k: v for k, v in info["reasons"].items() if k != "accepted"}
     if rej:
         lines.append("  rejected by " + ", ".join(f"{k} {v}" for k, v in rej.items()))

@@ -25,6 +25,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+import scipy.sparse
+import scipy.sparse.csgraph
 import scipy.spatial
 
 from ..core import se2
@@ -216,3 +218,47 @@ def check_free_space(poses, travel, scans: KeyframeScans, options: FreeSpaceOpti
     contradicts = (judged >= options.min_judged_m) & (length >= options.min_length_m) & (share > options.max_share)
     return FreeSpaceCheck(a=np.asarray(a, np.int64), b=np.asarray(b, np.int64), share=share, length_m=length,
                           judged_m=judged, contradicts=contradicts)
+
+
+def closure_groups(src, dst, window: int) -> np.ndarray:
+    """Group labels (K,) of closures between two stretches of the chain: one revisit event each.
+
+    Two closures are in one group when both their ends lie within ``window``
+    chain positions of each other (either orientation); groups are the
+    connected components of that relation.
+    """
+    src = np.asarray(src, dtype=np.int64)
+    dst = np.asarray(dst, dtype=np.int64)
+    k = len(src)
+    if k == 0:
+        return np.zeros(0, np.int64)
+    lo, hi = np.minimum(src, dst), np.maximum(src, dst)
+    pts = np.column_stack([lo, hi]).astype(float)
+    pairs = scipy.spatial.cKDTree(pts).query_pairs(window, p=np.inf, output_type="ndarray")
+    graph = scipy.sparse.coo_matrix((np.ones(len(pairs)), (pairs[:, 0], pairs[:, 1])), shape=(k, k)) \
+        if len(pairs) else scipy.sparse.coo_matrix((k, k))
+    _, labels = scipy.sparse.csgraph.connected_components(graph, directed=False)
+    return labels.astype(np.int64)
+
+
+def blame(check: FreeSpaceCheck, src, dst, groups, window: int) -> np.ndarray:
+    """For each group label, how many of its closures end near a contradicting pair: (G,) counts.
+
+    A closure is near a contradicting pair (a, b) when one of its ends lies
+    within ``window`` chain positions of a or of b: it is among the closures
+    that placed those stretches in the map.  (The closure at fault need not
+    join a to b: a wrong closure that moves a's stretch also makes a
+    contradict every other visit of the place.)
+    """
+    n_groups = int(groups.max()) + 1 if len(groups) else 0
+    out = np.zeros(n_groups, dtype=np.int64)
+    bad = np.flatnonzero(check.contradicts)
+    if not len(bad) or not n_groups:
+        return out
+    lo, hi = np.minimum(src, dst), np.maximum(src, dst)
+    a, b = check.a[bad], check.b[bad]
+    ends = np.concatenate([a, b])
+    near = (np.abs(lo[:, None] - ends[None, :]) <= window) | (np.abs(hi[:, None] - ends[None, :]) <= window)
+    links = near.any(axis=1)
+    np.add.at(out, groups[links], 1)
+    return out

@@ -31,7 +31,7 @@ import numpy as np
 
 from ..core import se2
 from ..core.kernels import KERNEL_CHOICES, kernel_from_name
-from ..core.odometry import OdometryChain
+from ..core.odometry import OdometryChain, odometry_travel
 from ..core.options import options, setting
 from ..core.stats import chi2_median, chi2_threshold
 from ..graph.solver import (
@@ -51,6 +51,7 @@ from .drift import (
     heading_drift_consensus,
     remove_heading_drift,
 )
+from .free_space import FreeSpaceCheck, FreeSpaceOptions, KeyframeScans, blame, check_free_space, closure_groups
 from .map_gate import map_gate_distance, relative_posterior
 from .reasons import Reason
 
@@ -92,6 +93,14 @@ class VerifyOptions:
     closure_floor_m, closure_floor_rad : standard deviations of an error
         that registration's covariance does not model, added to every
         closure's covariance (see :func:`closure_covariances`).
+    check_free_space, contradiction_share, contradiction_min_m,
+        contradiction_rounds : after optimisation, compare overlapping
+        keyframes of different visits for scans that contradict each other
+        (:mod:`closurecheck.verification.free_space`: a pair contradicts
+        when more than ``contradiction_share`` of its judged surface, and at
+        least ``contradiction_min_m`` metres of it, lies in the other scan's
+        free space), and reject the revisit whose closures cause it, up to
+        ``contradiction_rounds`` times.
     calibrate_heading_drift, drift_min_significance : estimate the
         odometry's heading drift per metre from the first verified closures
         and, when it is at least this many standard errors from zero, remove
@@ -124,6 +133,10 @@ class VerifyOptions:
     closure_floor_m: float = setting(0.001, at_least=0.0)
     closure_floor_rad: float = setting(0.000175, at_least=0.0)
     drift_min_significance: float = setting(3.0, at_least=0.0)
+    check_free_space: bool = setting(True)
+    contradiction_share: float = setting(0.2, above=0.0, below=1.0)
+    contradiction_min_m: float = setting(3.0, above=0.0)
+    contradiction_rounds: int = setting(5, at_least=0)
 
 
 @dataclass(frozen=True, eq=False)
@@ -142,6 +155,7 @@ class Verification:
         on: the input ones, or with the heading drift removed.
     heading_drift : the estimated heading drift of the odometry.
     clique_exact : whether the maximum clique was proven optimal.
+    free_space : the contradiction check of the final map (None when off).
     clique_size : size of the consistent set.
     notes : human-readable remarks for the report.
     """
@@ -156,6 +170,7 @@ class Verification:
     odometry_scale: float = 1.0
     odometry_poses: np.ndarray | None = None
     heading_drift: HeadingDrift = NO_DRIFT
+    free_space: FreeSpaceCheck | None = None
     notes: tuple = field(default_factory=tuple)
 
 
@@ -359,8 +374,61 @@ def _core_and_map(plausible, src, dst, delta, covariance, step_covariances, opti
                   notes=tuple(notes))
 
 
-def verify(closures: RegisteredClosures, chain: OdometryChain,
-           options: VerifyOptions = VerifyOptions()) -> Verification:
+def _free_space_options(options: VerifyOptions) -> FreeSpaceOptions:
+    return FreeSpaceOptions(max_share=options.contradiction_share, min_length_m=options.contradiction_min_m)
+
+
+# Chain positions within which a closure's end counts as near a
+# contradicting keyframe, and in which closures form one revisit event:
+# 20 keyframes are about 10 m of route at the default spacing.
+_EVENT_WINDOW = 20
+# Revisit events tried for removal per round, most implicated first.
+_SUSPECTS = 6
+
+
+def _resolve_contradictions(reason, poses, src, dst, delta, covariance, odom_poses, scaled, scans, options):
+    """Free-space check of the final map; reject the revisit events whose removal resolves contradictions.
+
+    Each round tries removing each of the few revisit events (groups of
+    accepted closures) most implicated in the contradicting pairs,
+    re-optimises without it and checks again; the one that removes the
+    most contradictions, if any, is rejected.  Returns (reason, poses,
+    final check, closures rejected).
+    """
+    fs_opts = _free_space_options(options)
+    travel = odometry_travel(odom_poses)[0]
+    check = check_free_space(poses, travel, scans, fs_opts)
+    reason = reason.copy()
+    dropped = 0
+    quick = dataclasses.replace(options, use_gnc=False)
+    for _ in range(options.contradiction_rounds):
+        if not check.count:
+            break
+        acc = np.flatnonzero(reason == Reason.ACCEPTED)
+        if not len(acc):
+            break
+        groups = closure_groups(src[acc], dst[acc], _EVENT_WINDOW)
+        score = blame(check, src[acc], dst[acc], groups, _EVENT_WINDOW)
+        suspects = [g for g in np.argsort(-score, kind="stable")[:_SUSPECTS] if score[g] > 0]
+        best = None
+        for g in suspects:
+            keep = acc[groups != g]
+            kept, trial, _, _ = optimise_closures(keep, src, dst, delta, covariance, odom_poses, scaled, quick)
+            after = check_free_space(trial, travel, scans, fs_opts)
+            if after.count < check.count and (best is None or after.count < best[2].count):
+                best = (g, trial, after, keep[~kept])
+        if best is None:
+            break
+        g, poses, check, pruned = best
+        out = acc[groups == g]
+        reason[out] = Reason.SCAN_CONTRADICTION
+        reason[pruned] = Reason.GRAPH_RESIDUAL
+        dropped += len(out)
+    return reason, poses, check, dropped
+
+
+def verify(closures: RegisteredClosures, chain: OdometryChain, options: VerifyOptions = VerifyOptions(),
+           scans: KeyframeScans | None = None) -> Verification:
     """Decide which registered candidates are loop closures, and optimise the graph.
 
     Parameters
@@ -369,6 +437,8 @@ def verify(closures: RegisteredClosures, chain: OdometryChain,
         keyframes of ``chain``; deltas and covariances in the src frame).
     chain : the keyframes' odometry with the log's noise model.
     options : thresholds of the checks.
+    scans : the keyframes' scans (in chain order) for the free-space check
+        of the final map; None skips it.
 
     Returns
     -------
@@ -465,6 +535,16 @@ def verify(closures: RegisteredClosures, chain: OdometryChain,
     removed = int((reason == Reason.GRAPH_RESIDUAL).sum())
     if removed:
         notes.append(f"{removed} closure(s) failed the residual test after optimisation")
+    free = None
+    if scans is not None and options.check_free_space:
+        reason, poses, free, dropped = _resolve_contradictions(reason, poses, src, dst, delta, covariance, odom_poses,
+                                                               scaled, scans, options)
+        if dropped:
+            notes.append(f"{dropped} closure(s) rejected because the scans of the map they made contradict each "
+                         f"other (free-space check)")
+        if free.count:
+            notes.append(f"the scans of {free.count} of {len(free.a)} overlapping keyframe pairs from different "
+                         f"visits still contradict each other")
     clique_exact = True if clique is None else clique.exact
     if clique is not None and not clique.exact:
         notes.append(f"the maximum-clique search hit its budget of {options.clique_max_expansions} expansions; "
@@ -475,4 +555,4 @@ def verify(closures: RegisteredClosures, chain: OdometryChain,
                         closure_covariance=covariance, figures=figures, poses=poses,
                         clique_exact=clique_exact, clique_size=0 if clique is None else clique.size,
                         odometry_scale=scale, odometry_poses=np.array(odom_poses, dtype=float),
-                        heading_drift=drift, notes=tuple(notes))
+                        heading_drift=drift, free_space=free, notes=tuple(notes))
