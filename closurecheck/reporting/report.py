@@ -52,6 +52,7 @@ REJECT_STYLE = {
     "registration": ("#f4a582", "rejected by registration quality"),
     "odometry": (REJECT_COLOUR, "rejected by the odometry gate"),
     "consistency": ("#c51b7d", "rejected by consistency or graph checks"),
+    "reviewer": ("#4d4d4d", "rejected by a reviewer's decision"),
 }
 
 HISTOGRAM_FIGURES = (
@@ -535,7 +536,7 @@ def _reason_table(v: VerdictTable) -> str:
     rows = []
     for r, n in counts.items():
         width = max(1, round(120 * n / total))
-        bar = f'<span class="bar{" acc" if r == "accepted" else ""}" style="width:{width}px"></span>'
+        bar = f'<span class="bar{" acc" if Reason(r).group == "accepted" else ""}" style="width:{width}px"></span>'
         rows.append(f"<tr><td class='txt'>{html.escape(r)}</td><td>{n}</td><td class='txt'>{bar}</td>"
                     f"<td class='desc'>{html.escape(Reason(r).text)}</td></tr>")
     return '<table class="kv" id="reasons">' + "".join(rows) + "</table>"

@@ -50,7 +50,9 @@ def format_summary(info: dict, paths: dict) -> str:
     """The one-screen summary printed at the end of a run."""
     lines = [f"{info['source']}: {info['scans']} scans, {info['keyframes']} keyframes",
              f"  candidates {info['candidates']}: {info['accepted']} verified, {info['rejected']} rejected"]
-    rej = {k: v for k, v in info["reasons"].items() if k != "accepted"}
+    from ..verification.reasons import is_accepted
+
+    rej = {k: v for k, v in info["reasons"].items() if not is_accepted(k)}
     if rej:
         lines.append("  rejected by " + ", ".join(f"{k} {v}" for k, v in rej.items()))
     lines.append(f"  map correction: up to {info['correction_max_m']:.2f} m (mean {info['correction_mean_m']:.2f} m)")

@@ -19,7 +19,7 @@ from __future__ import annotations
 from enum import Enum
 
 # Report groups of rejections, in the order the report lists them.
-GROUPS = ("registration", "odometry", "consistency")
+GROUPS = ("registration", "odometry", "consistency", "reviewer")
 
 
 class Reason(str, Enum):
@@ -36,6 +36,8 @@ class Reason(str, Enum):
     PAIR_INCONSISTENT = "pair_inconsistent"
     GRAPH_RESIDUAL = "graph_residual"
     DUPLICATE = "duplicate"
+    REVIEWER_ACCEPTED = "reviewer_accepted"
+    REVIEWER_REJECTED = "reviewer_rejected"
 
     def __str__(self) -> str:
         return self.value
@@ -63,7 +65,23 @@ _TEXT = {
     Reason.PAIR_INCONSISTENT: ("does not close consistent cycles with the other closures", "consistency"),
     Reason.GRAPH_RESIDUAL: ("failed the chi-square residual test after optimisation", "consistency"),
     Reason.DUPLICATE: ("the same pair was already considered", "consistency"),
+    Reason.REVIEWER_ACCEPTED: ("accepted by a reviewer's decision (--decisions), whatever the checks said; "
+                               "an edge of graph.json", "accepted"),
+    Reason.REVIEWER_REJECTED: ("rejected by a reviewer's decision (--decisions), whatever the checks said",
+                               "reviewer"),
 }
+
+
+def is_accepted(code) -> bool:
+    """Whether a reason code means the pair is an edge of graph.json (``accepted`` or ``reviewer_accepted``).
+
+    Examples
+    --------
+    >>> from closurecheck.verification.reasons import is_accepted
+    >>> is_accepted("reviewer_accepted"), is_accepted("odometry_gate")
+    (True, False)
+    """
+    return Reason(str(code)).group == "accepted"
 
 
 def codes(values) -> list[Reason]:
