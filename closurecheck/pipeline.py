@@ -271,14 +271,10 @@ class BatchResult:
 
 
 def _write(outcome, log: ScanLog, out_dir, *, report: bool, progress, log_path: Path | None):
-    """Score against the log's truth when it has some, then write the run's outputs."""
-    score = None
-    if log.has_truth:
-        from .reporting.scoring import score_closures
+    """Score (against the log's truth, or a front-end's pairs against the verdicts), then write the outputs."""
+    from .reporting.scoring import score_outcome
 
-        v = outcome.verdicts
-        score = score_closures(log, outcome.keyframes, v.src, v.dst, v.accepted, v.delta, v.covariance,
-                               outcome.poses)
+    score = score_outcome(outcome)
     if progress is not None:
         progress.stage("writing outputs")
     return write_outputs(outcome, out_dir, report=report, score=score, log_path=log_path)
