@@ -38,7 +38,8 @@ def test_reviewer_decisions_round_trip_with_any_note(tmp_path):
 
 def test_every_table_of_the_configuration_is_an_options_record():
     tables = [f.name for f in dataclasses.fields(RunConfig) if is_options(getattr(RunConfig(), f.name))]
-    assert set(tables) == {"keyframes", "odometry", "descriptors", "candidates", "registration", "verify", "review"}
+    assert set(tables) == {"keyframes", "odometry", "calibration", "descriptors", "candidates", "registration",
+                           "verify", "review"}
 
 
 # One bad value per table (and the top level): each is refused when the
@@ -48,6 +49,7 @@ BAD = [
     ("batch_pairs = 0", "batch_pairs: must be >= 1"),
     ("[keyframes]\nspacing_m = 0.0", "keyframes.spacing_m: must be > 0"),
     ("[odometry]\nheading_rad_per_sqrt_m = -0.1", "odometry.heading_rad_per_sqrt_m: must be >= 0"),
+    ("[calibration]\nmin_steps = 2", "calibration.min_steps: must be >= 5"),
     ("[descriptors]\nrings = 0", "descriptors.rings: must be >= 1"),
     ("[candidates]\ntree = \"forest\"", "candidates.tree: must be one of 'kd_tree', 'ball_tree'"),
     ("[registration]\nkernel = \"nonsense\"", "registration.kernel: must be one of"),
