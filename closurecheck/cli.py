@@ -107,7 +107,7 @@ def _cmd_run(args) -> int:
         if args.also_propose and not args.candidates:
             raise InputError("--also-propose goes with --candidates PAIRS.csv")
         result = run_paths(args.logs, args.out, config, candidates=args.candidates, choice=_recording_choice(args),
-                           also_propose=args.also_propose,
+                           also_propose=args.also_propose, decisions=args.decisions,
                            dask=args.dask, report=not args.no_report, progress=progress)
     finally:
         progress.close()
@@ -180,11 +180,14 @@ def build_parser() -> argparse.ArgumentParser:
     runopts = argparse.ArgumentParser(add_help=False)
     runopts.add_argument("--out", required=True, help="output directory (created if missing)")
     runopts.add_argument("--candidates", default=None, metavar="PAIRS.csv",
-                         help="verify these pairs (columns from,to[,dx,dy,dtheta]) instead of proposing")
+                         help="verify these pairs (columns from,to[,dx,dy,dtheta][,score]) instead of proposing")
     runopts.add_argument("--config", default=None, metavar="FILE.toml",
                          help="settings file; a run's own config.toml reproduces it")
     runopts.add_argument("--also-propose", action="store_true",
                          help="with --candidates: verify the file's pairs and the tool's own proposals together")
+    runopts.add_argument("--decisions", default=None, metavar="FILE.csv",
+                         help="a reviewer's decisions (columns from,to,decision[,note]; decision accept or reject) "
+                              "that overrule the checks for those pairs; recorded in config.toml")
     runopts.add_argument("--jobs", type=int, default=None, help="worker processes (default: all cores)")
     runopts.add_argument("--dask", default=None, metavar="ADDRESS",
                          help="run registration on Dask: 'local' or tcp://HOST:PORT (needs the dask extra)")
@@ -207,7 +210,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=_cmd_demo, scan_topic=None, odom_topic=None, mount=None, max_odom_gap=None)
 
     p = sub.add_parser("score", parents=[common, rec],
-                       help="score a run (or a candidate list) against the log's ground truth")
+                       help="score a run (or a candidate list) against the log's ground truth, or without truth "
+                            "against the run's verdicts (a reference, not the truth)")
     p.add_argument("run_dir", metavar="RUN_DIR", help="output directory of closurecheck run")
     p.add_argument("--log", default=None, help="the run's log (default: the one recorded in RUN_DIR)")
     p.add_argument("--candidates", default=None, metavar="PAIRS.csv",

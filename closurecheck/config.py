@@ -12,11 +12,12 @@ configuration is built, before any scan is read.
 from __future__ import annotations
 
 from .calibration.odometry import CalibrationOptions
-from .core.options import OptionError, options, setting, updated
+from .core.options import OptionError, fail, options, setting, updated
 from .errors import InputError
 from .frontend.candidates import CandidateOptions
 from .frontend.descriptors import DescriptorOptions
 from .frontend.keyframes import KeyframeOptions
+from .io.decisions_csv import decision_rows
 from .io.settings_file import load_toml
 from .registration.icp import RegistrationOptions
 from .verification.trust import TrustOptions
@@ -34,6 +35,32 @@ class OdometryOverrides:
     translation_m_per_sqrt_m: float | None = setting(None, at_least=0.0)
     heading_rad_per_sqrt_m: float | None = setting(None, at_least=0.0)
     heading_rad_per_sqrt_rad: float | None = setting(None, at_least=0.0)
+
+
+@options
+class ReviewOptions:
+    """A reviewer's decisions that overrule the verifier for named pairs (docs/formats.md, "Reviewer decisions").
+
+    decisions : rows ``[from, to, "accept" | "reject", note]``, one per
+        unordered pair of scan ids; ``closurecheck run --decisions FILE.csv``
+        fills them from the file, and the run's config.toml keeps a copy so
+        that ``--config DIR/config.toml`` repeats the run with the same
+        decisions even if the file changes or moves.
+    decisions_file : the file the rows were read from (a record for people;
+        the rows are what the run uses).
+    """
+
+    decisions: tuple[tuple, ...] = setting(())
+    decisions_file: str = setting("")
+
+    def __post_init__(self):
+        try:
+            rows = decision_rows(self.decisions, source="decisions").rows()
+        except InputError as exc:
+            fail("decisions", f"row {exc.line}: {exc.problem}")
+        # One spelling of each row (tuples, lower-case words, one row per pair),
+        # so a configuration read back from config.toml equals the one written.
+        object.__setattr__(self, "decisions", rows)
 
 
 @options
@@ -61,6 +88,7 @@ class RunConfig:
                                                             coarse_angle_step_rad=0.01)
     verify: VerifyOptions = VerifyOptions()
     trust: TrustOptions = TrustOptions()
+    review: ReviewOptions = ReviewOptions()
 
 
 def build_config(config_file=None, updates: dict | None = None) -> RunConfig:

@@ -21,6 +21,7 @@ from .core.odometry import OdometryChain, OdometryNoise, noise_from_header, odom
 from .core.options import updated
 from .errors import InputError
 from .frontend.candidates import (
+    SOURCE_REVIEW,
     CandidateSet,
     external_candidates,
     merge_candidates,
@@ -29,6 +30,7 @@ from .frontend.candidates import (
     propose_for,
 )
 from .frontend.keyframes import merge_keyframes, select_keyframes
+from .io.decisions_csv import ReviewDecisions, decision_rows, read_decisions
 from .io.graph_file import PoseGraph
 from .io.inputs import expand_inputs, output_name
 from .io.pairs_csv import ExternalPairs
@@ -37,9 +39,11 @@ from .registration.batch import RegisteredClosures, collect, seeds_for
 from .reporting.outputs import RunOutcome, summary, write_index, write_outputs
 from .reporting.terminal import format_summary
 from .verification.free_space import KeyframeScans
+from .verification.reasons import Reason
 from .verification.trust import judge
 from .verification.verdicts import VerdictTable
 from .verification.verify import (
+    ReviewerVerdicts,
     Verification,
     odometry_edges,
     verify,
@@ -111,22 +115,118 @@ def _calibrate(log: ScanLog, keyframes, config: RunConfig, runner, progress) -> 
     return cal
 
 
+def with_decisions(config: RunConfig, path) -> tuple[RunConfig, ReviewDecisions]:
+    """Read a reviewer-decisions CSV and record its rows in the configuration (``[review]``).
+
+    The rows are checked now, before any scan is read (scan ids against the
+    log later); the effective config.toml then carries them, so
+    ``--config DIR/config.toml`` repeats the run with the same decisions.
+    """
+    decisions = read_decisions(path)
+    review = {"decisions": decisions.rows(), "decisions_file": str(Path(path).resolve())}
+    return updated(config, {"review": review}), decisions
+
+
+def review_decisions(config: RunConfig, decisions: ReviewDecisions | None,
+                     scan_count: int) -> tuple[RunConfig, ReviewDecisions | None]:
+    """The decisions a run applies, and the configuration that records them.
+
+    ``decisions`` (read from a file, with its lines for messages) win over
+    the configuration's ``[review] decisions``, and replace them in the
+    returned configuration, so that config.toml records what the run
+    applied.  Checked against the log's ``scan_count`` scans.
+    """
+    if decisions is None:
+        if not config.review.decisions:
+            return config, None
+        decisions = decision_rows(config.review.decisions, source="review.decisions")
+    elif config.review.decisions != decisions.rows():
+        config = updated(config, {"review": {"decisions": decisions.rows(), "decisions_file": decisions.source}})
+    if not len(decisions):
+        return config, None
+    decisions.check_scans(scan_count)
+    return config, decisions
+
+
+def _pair_index(src, dst) -> dict:
+    """Unordered pair (lo, hi) -> row."""
+    return {(min(a, b), max(a, b)): k for k, (a, b) in enumerate(zip(src.tolist(), dst.tolist()))}
+
+
+def _frontend_scores(cands: CandidateSet, external: ExternalPairs | None):
+    """The pairs file's ``score`` of each candidate (NaN where none), or None without a score column."""
+    if external is None or external.score is None:
+        return None
+    out = np.full(len(cands), np.nan)
+    rows = _pair_index(cands.src, cands.dst)
+    for a, b, value in zip(external.src.tolist(), external.dst.tolist(), external.score.tolist()):
+        out[rows[(min(a, b), max(a, b))]] = value
+    return out
+
+
+def _reviewed_candidates(cands: CandidateSet, decisions: ReviewDecisions, data, config: RunConfig) -> CandidateSet:
+    """The candidates plus the decisions' pairs the run did not consider (registered like any candidate)."""
+    known = _pair_index(cands.src, cands.dst)
+    new = [k for k, (a, b) in enumerate(zip(decisions.src.tolist(), decisions.dst.tolist()))
+           if (min(a, b), max(a, b)) not in known]
+    if not new:
+        return cands
+    pairs = ExternalPairs(src=decisions.src[new], dst=decisions.dst[new], guess=np.full((len(new), 3), np.nan),
+                          lines=decisions.lines[new], source=decisions.source)
+    return merge_candidates(cands, external_candidates(pairs, data.descriptors, data.chain, config.candidates,
+                                                       source=SOURCE_REVIEW))
+
+
+def _review_verdicts(cands: CandidateSet, regs: RegisteredClosures, decisions: ReviewDecisions):
+    """Map the decisions onto the candidate rows: (ReviewerVerdicts, (C,) notes).
+
+    An acceptance needs an alignment: a pair that registration could not
+    align is refused with the decision's file and line (exit status 2).
+    """
+    rows = _pair_index(cands.src, cands.dst)
+    accept = np.zeros(len(cands), bool)
+    reject = np.zeros(len(cands), bool)
+    notes = np.full(len(cands), "", dtype=object)
+    q = regs.quality
+    aligned = (q.valid & q.converged & np.isfinite(regs.delta).all(axis=1)
+               & np.isfinite(regs.covariance).all(axis=(1, 2)))
+    for a, b, acc, note, line in zip(decisions.src.tolist(), decisions.dst.tolist(), decisions.accept.tolist(),
+                                     decisions.note.tolist(), decisions.lines.tolist()):
+        k = rows[(min(a, b), max(a, b))]
+        if acc and not aligned[k]:
+            why = Reason.NO_POINTS if not q.valid[k] else Reason.NOT_CONVERGED
+            raise InputError(f"cannot accept pair ({a}, {b}): registration found no alignment for it ({why}: "
+                             f"{why.text}); reject the pair or drop the row", decisions.source or None, line)
+        accept[k] = acc
+        reject[k] = not acc
+        notes[k] = note
+    return ReviewerVerdicts(accept=accept, reject=reject), notes
+
+
 def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPairs | None = None,
-            runner=None, progress=None, also_propose: bool = False) -> RunOutcome:
+            runner=None, progress=None, also_propose: bool = False,
+            decisions: ReviewDecisions | None = None) -> RunOutcome:
     """Run the pipeline on a scan log held in memory.
 
     ``external`` replaces the proposed candidates with the pairs of a CSV
     (docs/formats.md, "Candidate pairs"), or joins them when
     ``also_propose`` is set.  ``runner`` executes the registration batches
     (serial, local pool or Dask; :mod:`closurecheck.runners`).
+    ``decisions`` (default: the configuration's ``[review] decisions``)
+    overrule the verifier for the pairs they name (docs/verification.md,
+    "Reviewer decisions"); their pairs join the candidates when the run did
+    not propose them.
     """
     if len(log) < 2:
         raise InputError("the log needs at least two scans", log.source or None)
+    config, decisions = review_decisions(config, decisions, len(log))
     st = _Stages(progress)
 
     keyframes = st.run("keyframes", select_keyframes, log.odom, config.keyframes)
     if external is not None:
         keyframes = merge_keyframes(keyframes, external.scan_ids)
+    if decisions is not None:
+        keyframes = merge_keyframes(keyframes, decisions.scan_ids)
     cal = st.run("calibration", _calibrate, log, keyframes, config, runner, progress)
     chain = cal.chain
     # Proposals must reach revisits even where the fitted model is tight: the
@@ -143,9 +243,20 @@ def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPai
             cands = merge_candidates(cands, st.run("candidates", propose_for, data, config.candidates))
     else:
         cands = st.run("candidates", propose_for, data, config.candidates)
+    if decisions is not None:
+        cands = _reviewed_candidates(cands, decisions, data, config)
 
     regs = st.run("registration", _register_candidates, log, cands, config, runner, progress)
-    ver = st.run("verification", verify, regs, chain, config.verify,
+
+    review = notes_review = verifier_reason = None
+    if decisions is not None:
+        review, notes_review = _review_verdicts(cands, regs, decisions)
+        # What the checks alone say, for the verifier_reason column: the
+        # same decision without the reviewer (verification is a second or
+        # so of a 5,000-scan run, docs/performance.md).
+        verifier_reason = st.run("verification", verify, regs, chain, config.verify, None,
+                                 KeyframeScans(log.ranges[keyframes], log.sensor)).reason
+    ver = st.run("verification", verify, regs, chain, config.verify, review,
                  KeyframeScans(log.ranges[keyframes], log.sensor))
     trust = judge(calibrated=cal.measured, odometry_scale=ver.odometry_scale,
                   drift_rate=ver.heading_drift.rate_rad_per_m, drift_std=ver.heading_drift.std_rad_per_m,
@@ -159,11 +270,18 @@ def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPai
     figures["odometry_gap_m"] = np.hypot(cands.odometry_delta[:, 0], cands.odometry_delta[:, 1])
     verdicts = VerdictTable(src=cands.src, dst=cands.dst, origin=np.asarray(cands.source_names(), dtype=object),
                             accepted=ver.accepted, reason=ver.reason, delta=regs.delta,
-                            covariance=ver.closure_covariance, figures=figures)
+                            covariance=ver.closure_covariance, figures=figures,
+                            frontend_score=_frontend_scores(cands, external), verifier_reason=verifier_reason,
+                            review_note=notes_review)
     graph = _graph(log, chain, ver, verdicts)
     notes = list(cal.notes) + list(ver.notes)
     if external is not None:
         notes.append(f"candidates taken from an external pairs file ({len(external)} pairs)")
+    if decisions is not None:
+        n_acc = int(review.accept.sum())
+        notes.append(f"{len(decisions)} reviewer decision(s) applied ({n_acc} accepted, {len(decisions) - n_acc} "
+                     f"rejected, from {config.review.decisions_file or decisions.source}); the verdicts the checks "
+                     f"alone give are in candidates.csv's verifier_reason column")
     return RunOutcome(log=log, config=config, keyframes=keyframes, odom=log.odom[keyframes], step_covariances=chain.steps,
                       candidates=cands, registrations=regs, verification=ver, verdicts=verdicts, graph=graph,
                       calibration=cal, trust=trust,
@@ -201,22 +319,21 @@ class BatchResult:
 
 
 def _write(outcome, log: ScanLog, out_dir, *, report: bool, progress, log_path: Path | None):
-    """Score against the log's truth when it has some, then write the run's outputs."""
-    score = None
-    if log.has_truth:
-        from .reporting.scoring import score_closures
+    """Score (against the log's truth, or a front-end's pairs against the verdicts), then write the outputs."""
+    from .reporting.scoring import score_outcome
 
-        v = outcome.verdicts
-        score = score_closures(log, outcome.keyframes, v.src, v.dst, v.accepted, v.delta, v.covariance,
-                               outcome.poses)
+    score = score_outcome(outcome)
     if progress is not None:
         progress.stage("writing outputs")
     return write_outputs(outcome, out_dir, report=report, score=score, log_path=log_path)
 
 
 def run_one(path, out_dir, config: RunConfig, *, candidates=None, choice=None, runner=None, report=True,
-            progress=None, also_propose=False):
-    """Load one input, run the pipeline and write its outputs. Returns (outcome, paths, info)."""
+            progress=None, also_propose=False, decisions: ReviewDecisions | None = None):
+    """Load one input, run the pipeline and write its outputs. Returns (outcome, paths, info).
+
+    ``decisions``: read by :func:`with_decisions` (which also records them in ``config``).
+    """
     from .io.inputs import RecordingChoice, load_input
     from .io.pairs_csv import read_pairs
 
@@ -227,7 +344,8 @@ def run_one(path, out_dir, config: RunConfig, *, candidates=None, choice=None, r
         if progress is not None:
             progress.info(note)
     external = read_pairs(candidates, len(log)) if candidates else None
-    outcome = run_log(log, config, external=external, runner=runner, progress=progress, also_propose=also_propose)
+    outcome = run_log(log, config, external=external, runner=runner, progress=progress, also_propose=also_propose,
+                      decisions=decisions)
     if load_notes:
         outcome = dataclasses.replace(outcome, notes=tuple(load_notes) + outcome.notes)
     paths = _write(outcome, log, out_dir, report=report, progress=progress, log_path=Path(path))
@@ -235,7 +353,7 @@ def run_one(path, out_dir, config: RunConfig, *, candidates=None, choice=None, r
 
 
 def run(log, out=None, *, config: RunConfig | None = None, candidates=None, jobs: int | None = None,
-        report: bool = True) -> RunOutcome:
+        report: bool = True, decisions=None) -> RunOutcome:
     """The whole job from Python: what ``closurecheck run LOG --out DIR`` does.
 
     Parameters
@@ -250,6 +368,10 @@ def run(log, out=None, *, config: RunConfig | None = None, candidates=None, jobs
     jobs : worker processes for registration (overrides ``config.jobs``;
         0 = all cores, 1 = this process).
     report : also write report.html (when ``out`` is given).
+    decisions : path of a reviewer-decisions CSV (columns
+        ``from,to,decision[,note]``, docs/formats.md) that overrules the
+        verifier for the pairs it names; recorded in ``outcome.config``
+        (``[review]``) and so in config.toml.
 
     Returns
     -------
@@ -264,6 +386,19 @@ def run(log, out=None, *, config: RunConfig | None = None, candidates=None, jobs
     >>> outcome = closurecheck.run(log, jobs=1)
     >>> len(outcome.verdicts) == len(outcome.candidates), outcome.poses.shape[1]
     (True, 3)
+
+    A reviewer's decision on a pair the run did not consider (it is
+    registered, then rejected whatever the checks say):
+
+    >>> import pathlib, tempfile
+    >>> decisions = pathlib.Path(tempfile.mkdtemp()) / "decisions.csv"
+    >>> _ = decisions.write_text("from,to,decision,note\\n50,10,reject,not the same room\\n")
+    >>> outcome = closurecheck.run(log, jobs=1, decisions=decisions)
+    >>> k = [(int(a), int(b)) for a, b in zip(outcome.verdicts.src, outcome.verdicts.dst)].index((50, 10))
+    >>> str(outcome.verdicts.reason[k]), outcome.verdicts.review_note[k]
+    ('reviewer_rejected', 'not the same room')
+    >>> outcome.config.review.decisions
+    ((50, 10, 'reject', 'not the same room'),)
     """
     from .io.inputs import load_input
     from .io.pairs_csv import read_pairs
@@ -272,6 +407,9 @@ def run(log, out=None, *, config: RunConfig | None = None, candidates=None, jobs
     config = config or RunConfig()
     if jobs is not None:
         config = updated(config, {"jobs": jobs})
+    review = None
+    if decisions is not None:
+        config, review = with_decisions(config, decisions)
     log_path = None
     if not isinstance(log, ScanLog):
         log_path = Path(log)
@@ -279,7 +417,7 @@ def run(log, out=None, *, config: RunConfig | None = None, candidates=None, jobs
     external = read_pairs(candidates, len(log)) if candidates else None
     runner = make_runner(config.jobs)
     try:
-        outcome = run_log(log, config, external=external, runner=runner)
+        outcome = run_log(log, config, external=external, runner=runner, decisions=review)
     finally:
         runner.close()
     if out is not None:
@@ -288,11 +426,12 @@ def run(log, out=None, *, config: RunConfig | None = None, candidates=None, jobs
 
 
 def run_paths(paths, out, config: RunConfig = RunConfig(), *, candidates=None, choice=None, dask=None,
-              report=True, progress=None, also_propose=False) -> BatchResult:
+              report=True, progress=None, also_propose=False, decisions=None) -> BatchResult:
     """``closurecheck run``: one input into ``out``, or several into ``out/<name>/``.
 
     A failing input is reported and does not stop the others; with several
-    inputs an ``index.html`` links the reports.
+    inputs an ``index.html`` links the reports.  ``decisions`` is the path
+    of a reviewer-decisions CSV (one log only).
     """
     from .runners.factory import make_runner
 
@@ -302,6 +441,12 @@ def run_paths(paths, out, config: RunConfig = RunConfig(), *, candidates=None, c
         raise InputError("output path exists and is not a directory", out)
     if candidates and len(files) > 1:
         raise InputError("a candidates file applies to a single log; got several inputs")
+    review = None
+    if (decisions is not None or config.review.decisions) and len(files) > 1:
+        raise InputError("reviewer decisions (--decisions, or [review] decisions in --config) apply to a single "
+                         "log; got several inputs")
+    if decisions is not None:
+        config, review = with_decisions(config, decisions)
     runner = make_runner(config.jobs, dask)
     texts, errors, outcomes = [], [], []
     try:
@@ -310,7 +455,7 @@ def run_paths(paths, out, config: RunConfig = RunConfig(), *, candidates=None, c
             try:
                 outcome, written, info = run_one(path, target, config, candidates=candidates, choice=choice,
                                                  runner=runner, report=report, progress=progress,
-                                                 also_propose=also_propose)
+                                                 also_propose=also_propose, decisions=review)
             except InputError as exc:
                 if len(files) == 1:
                     raise

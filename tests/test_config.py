@@ -22,10 +22,24 @@ def test_round_trip_through_toml(tmp_path):
     assert isinstance(again.odometry.translation_m_per_sqrt_m, float)
 
 
+def test_reviewer_decisions_round_trip_with_any_note(tmp_path):
+    # Notes are free text: quotes, backslashes, newlines and control characters
+    # must come back as written (TOML 1.0 basic strings, "String").
+    notes = ['plain', 'a "quoted" word, a comma', 'back\\slash', 'two\nlines\tand tab', 'bell\x07 del\x7f', 'ünïcødé ✓']
+    rows = [[10 * k + 1, 10 * k + 2, "accept" if k % 2 else "reject", n] for k, n in enumerate(notes)]
+    cfg = build_config(updates={"review": {"decisions": rows, "decisions_file": "C:\\sites\\north.csv"}})
+    path = tmp_path / "c.toml"
+    path.write_text(to_toml(cfg), encoding="utf-8")
+    again = build_config(path)
+    assert again == cfg
+    assert [r[3] for r in again.review.decisions] == notes
+    assert again.review.decisions_file == "C:\\sites\\north.csv"
+
+
 def test_every_table_of_the_configuration_is_an_options_record():
     tables = [f.name for f in dataclasses.fields(RunConfig) if is_options(getattr(RunConfig(), f.name))]
-    assert set(tables) == {"keyframes", "odometry", "calibration", "descriptors", "candidates", "registration", "verify",
-                           "trust"}
+    assert set(tables) == {"keyframes", "odometry", "calibration", "descriptors", "candidates", "registration",
+                           "verify", "trust", "review"}
 
 
 # One bad value per table (and the top level): each is refused when the
@@ -50,6 +64,11 @@ BAD = [
     ("[verify]\nnope = 1", "verify.nope: unknown setting"),
     ("[registration]\nmin_line_points = 40", "min_line_points: must not exceed line_neighbours"),
     ("verify = 3", "verify: must be a table"),
+    ("[review]\ndecisions = [[1, 2, \"maybe\"]]",
+     "review.decisions: row 1: column \"decision\": must be accept or reject"),
+    ("[review]\ndecisions = [[1, 2, \"accept\"], [2, 1, \"reject\"]]",
+     "review.decisions: row 2: pair (2, 1) is decided twice"),
+    ("[review]\ndecisions = 5", "review.decisions: must be a list"),
 ]
 
 

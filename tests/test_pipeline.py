@@ -90,4 +90,5 @@ def test_score_of_an_external_candidate_list(run, tmp_path, capsys):
     # Our own candidates.csv is a valid input pairs file (extra columns ignored).
     assert cli.main(["score", str(run["out"]), "--candidates", str(run["out"] / "candidates.csv")]) == 0
     out = capsys.readouterr().out
-    assert "pair precision" in out and "revisit event recall" in out
+    assert "Scored against: the ground truth" in out
+    assert "precision (right / registered)" in out and "revisit-event recall" in out

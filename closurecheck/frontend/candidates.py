@@ -81,7 +81,10 @@ from .keyframes import odometry_travel
 SOURCE_DESCRIPTOR = 1
 SOURCE_PROXIMITY = 2
 SOURCE_EXTERNAL = 4
-_SOURCE_NAMES = ((SOURCE_EXTERNAL, "external"), (SOURCE_DESCRIPTOR, "descriptor"), (SOURCE_PROXIMITY, "proximity"))
+# A pair named only by a reviewer's decisions file (registered so its decision can be applied).
+SOURCE_REVIEW = 8
+_SOURCE_NAMES = ((SOURCE_EXTERNAL, "external"), (SOURCE_DESCRIPTOR, "descriptor"), (SOURCE_PROXIMITY, "proximity"),
+                 (SOURCE_REVIEW, "reviewer"))
 
 
 @options
@@ -552,14 +555,16 @@ def _pair_keys(idx, count):
 
 
 def external_candidates(pairs: ExternalPairs, descriptors: ScanDescriptors, chain: OdometryChain,
-                        options: CandidateOptions = CandidateOptions()) -> CandidateSet:
+                        options: CandidateOptions = CandidateOptions(), source: int = SOURCE_EXTERNAL) -> CandidateSet:
     """Candidates from an external pairs file, in the file's order and orientation.
 
     Every scan id of ``pairs`` must be a keyframe of ``chain`` (use
     :func:`closurecheck.frontend.keyframes.merge_keyframes` with ``pairs.scan_ids``
     before building the chain and the descriptors).  ``descriptors`` are in
     chain order.  The file's guess is used where given.  No exclusion gap
-    or budget applies: every listed pair is a candidate.
+    or budget applies: every listed pair is a candidate.  ``source`` is the
+    origin flag the pairs get (SOURCE_EXTERNAL, or SOURCE_REVIEW for the
+    pairs of a reviewer's decisions).
     """
     try:
         a = chain.index_of(pairs.src)
@@ -567,7 +572,7 @@ def external_candidates(pairs: ExternalPairs, descriptors: ScanDescriptors, chai
     except ValueError as exc:
         raise InputError(f"external pairs: {exc}; merge the pairs' scan ids into the keyframes first") from None
     ddist, m2, odo, yaw, yscore, guess = _pair_fields(a, b, chain, descriptors, options)
-    flags = (SOURCE_EXTERNAL | np.where(m2 <= options.gate_threshold, SOURCE_PROXIMITY, 0)).astype(np.uint8)
+    flags = (source | np.where(m2 <= options.gate_threshold, SOURCE_PROXIMITY, 0)).astype(np.uint8)
     given = np.isfinite(pairs.guess).all(axis=1)
     guess[given] = pairs.guess[given]
     return CandidateSet(

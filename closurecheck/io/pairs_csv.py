@@ -2,11 +2,14 @@
 
 Input (``--candidates PAIRS.csv``): a header row, required columns ``from``
 and ``to`` (scan ids), optional ``dx,dy,dtheta`` (an initial guess of the
-delta ``from^-1 ∘ to``, metres and radians, in the frame of ``from``).  Other
-columns are ignored, so a ``candidates.csv`` written by the tool can be read
-back as input (its ``dx,dy,dtheta`` then serve as guesses).  A row may leave
-all three guess cells empty (no guess for that pair); filling only some of
-them is an error.
+delta ``from^-1 ∘ to``, metres and radians, in the frame of ``from``) and
+optional ``score`` (the front-end's confidence in the pair, any finite
+number, higher = more confident).  Other columns are ignored, so a
+``candidates.csv`` written by the tool can be read back as input (its
+``dx,dy,dtheta`` then serve as guesses, its ``score`` as the score).  A row
+may leave all three guess cells empty (no guess for that pair); filling
+only some of them is an error.  An empty ``score`` cell means no score for
+that pair (a run's own proposals have none).
 
 Output (``candidates.csv``): columns ``from,to,verdict,reason,dx,dy,dtheta``
 followed by any extra columns; ``verdict`` is ``accepted`` or ``rejected``.
@@ -29,6 +32,8 @@ from .atomic import atomic_open
 
 REQUIRED_COLUMNS = ("from", "to")
 GUESS_COLUMNS = ("dx", "dy", "dtheta")
+# The front-end's confidence in a pair (input and output; docs/formats.md, "Candidate pairs").
+SCORE_COLUMN = "score"
 OUTPUT_COLUMNS = ("from", "to", "verdict", "reason", "dx", "dy", "dtheta")
 VERDICTS = ("accepted", "rejected")
 # The diagonal of each candidate's covariance, after the figure columns
@@ -46,6 +51,9 @@ class ExternalPairs:
         where the file gives no guess.
     lines : (P,) int64 line number of each pair in the file (for messages).
     source : name of the file.
+    score : (P,) float64 the front-end's confidence (higher = more
+        confident), NaN where the file gives none; None when the file has
+        no ``score`` column.
     """
 
     src: np.ndarray
@@ -53,6 +61,7 @@ class ExternalPairs:
     guess: np.ndarray
     lines: np.ndarray
     source: str = ""
+    score: np.ndarray | None = None
 
     def __len__(self) -> int:
         return len(self.src)
@@ -86,16 +95,8 @@ def _parse_number(text: str, column: str, path, line: int) -> float:
     return value
 
 
-def read_pairs(path, scan_count: int) -> ExternalPairs:
-    """Read a candidate-pairs CSV (docs/formats.md, "Candidate pairs") for a log of ``scan_count`` scans.
-
-    Raises :class:`InputError` naming the file and line for: a missing
-    file or header row, missing ``from``/``to`` columns, only part of the
-    ``dx,dy,dtheta`` columns, non-integer or unknown scan ids, ``from ==
-    to``, non-numeric or non-finite guesses, a row with too few cells, and
-    a pair given twice (in either orientation).
-    """
-    path = Path(path)
+def open_csv(path: Path):
+    """A ``csv.reader`` over a UTF-8 file (a byte-order mark is skipped); unreadable files are InputErrors."""
     try:
         text = path.read_bytes().decode("utf-8-sig")
     except FileNotFoundError:
@@ -106,15 +107,50 @@ def read_pairs(path, scan_count: int) -> ExternalPairs:
         raise InputError("permission denied", path) from None
     except UnicodeDecodeError:
         raise InputError("not UTF-8 text", path) from None
-    reader = csv.reader(io.StringIO(text, newline=""))
-    try:
+    return csv.reader(io.StringIO(text, newline=""))
+
+
+def csv_header(reader, path: Path, expected: str) -> tuple[list, int]:
+    """The first non-blank row as stripped column names, and its line; InputError when there is none.
+
+    ``expected`` names the columns for the message (``from,to``).
+    """
+    header = next(reader, None)
+    while header is not None and not any(c.strip() for c in header):
         header = next(reader, None)
-        while header is not None and not any(c.strip() for c in header):
-            header = next(reader, None)
-        if header is None:
-            raise InputError("missing header row (expected columns from,to)", path, 1)
-        header_line = reader.line_num
-        names = [h.strip() for h in header]
+    if header is None:
+        raise InputError(f"missing header row (expected columns {expected})", path, 1)
+    return [h.strip() for h in header], reader.line_num
+
+
+def read_pairs(path, scan_count: int) -> ExternalPairs:
+    """Read a candidate-pairs CSV (docs/formats.md, "Candidate pairs") for a log of ``scan_count`` scans.
+
+    Raises :class:`InputError` naming the file and line for: a missing
+    file or header row, missing ``from``/``to`` columns, only part of the
+    ``dx,dy,dtheta`` columns, non-integer or unknown scan ids, ``from ==
+    to``, non-numeric or non-finite guesses or scores, a row with too few
+    cells, and a pair given twice (in either orientation).
+
+    Examples
+    --------
+    >>> import pathlib, tempfile
+    >>> from closurecheck.io.pairs_csv import read_pairs
+    >>> path = pathlib.Path(tempfile.mkdtemp()) / "pairs.csv"
+    >>> _ = path.write_text("from,to,score\\n30,2,0.9\\n41,7,0.25\\n")
+    >>> pairs = read_pairs(path, scan_count=50)
+    >>> pairs.src.tolist(), pairs.score.tolist()
+    ([30, 41], [0.9, 0.25])
+    >>> _ = path.write_text("from,to,score\\n30,2,high\\n")
+    >>> read_pairs(path, scan_count=50)
+    Traceback (most recent call last):
+    ...
+    closurecheck.errors.InputError: ...pairs.csv:2: column "score": not a number: 'high'
+    """
+    path = Path(path)
+    reader = open_csv(path)
+    try:
+        names, header_line = csv_header(reader, path, "from,to")
         for name in REQUIRED_COLUMNS:
             if name not in names:
                 raise InputError(f'missing column "{name}" (header has: {",".join(names)})', path, header_line)
@@ -122,13 +158,15 @@ def read_pairs(path, scan_count: int) -> ExternalPairs:
         if present and len(present) != len(GUESS_COLUMNS):
             missing = [c for c in GUESS_COLUMNS if c not in names]
             raise InputError(f'guess columns need all of dx,dy,dtheta; missing "{missing[0]}"', path, header_line)
-        dup = [n for n in set(names) if n and names.count(n) > 1 and n in REQUIRED_COLUMNS + GUESS_COLUMNS]
+        known = REQUIRED_COLUMNS + GUESS_COLUMNS + (SCORE_COLUMN,)
+        dup = [n for n in set(names) if n and names.count(n) > 1 and n in known]
         if dup:
             raise InputError(f'column "{dup[0]}" appears twice in the header', path, header_line)
-        col = {n: names.index(n) for n in REQUIRED_COLUMNS + tuple(present)}
+        has_score = SCORE_COLUMN in names
+        col = {n: names.index(n) for n in REQUIRED_COLUMNS + tuple(present) + ((SCORE_COLUMN,) if has_score else ())}
         width = max(col.values()) + 1
 
-        src, dst, guess, lines = [], [], [], []
+        src, dst, guess, lines, scores = [], [], [], [], []
         seen: dict[tuple[int, int], int] = {}
         for row in reader:
             line = reader.line_num
@@ -153,6 +191,9 @@ def read_pairs(path, scan_count: int) -> ExternalPairs:
                 elif any(filled):
                     empty = GUESS_COLUMNS[filled.index(False)]
                     raise InputError(f'column "{empty}" is empty; give all of dx,dy,dtheta or none', path, line)
+            if has_score:
+                cell = row[col[SCORE_COLUMN]].strip()
+                scores.append(_parse_number(cell, SCORE_COLUMN, path, line) if cell else math.nan)
             src.append(a)
             dst.append(b)
             guess.append(g)
@@ -165,6 +206,7 @@ def read_pairs(path, scan_count: int) -> ExternalPairs:
         guess=np.asarray(guess, dtype=np.float64).reshape(-1, 3),
         lines=np.asarray(lines, dtype=np.int64),
         source=path.name,
+        score=np.asarray(scores, dtype=np.float64) if has_score else None,
     )
 
 
@@ -232,7 +274,11 @@ class VerdictRows:
     """The verdict columns of a run's candidates.csv, as arrays.
 
     src, dst : (P,) int64 scan ids; accepted : (P,) bool; reason : (P,) str
-    codes; delta : (P, 3) registered delta (NaN where none).
+    codes; delta : (P, 3) registered delta (NaN where none); origin : (P,)
+    str, the proposer(s) that found each pair ("" when the file has no
+    ``origin`` column); frontend_score : (P,) float, the pairs file's
+    ``score`` (NaN where none), or None when the file has no ``score``
+    column.
     """
 
     src: np.ndarray
@@ -240,6 +286,8 @@ class VerdictRows:
     accepted: np.ndarray
     reason: np.ndarray
     delta: np.ndarray
+    origin: np.ndarray | None = None
+    frontend_score: np.ndarray | None = None
 
     def __len__(self) -> int:
         return len(self.src)
@@ -257,7 +305,9 @@ def read_candidates(path) -> VerdictRows:
         raise InputError("no such file", path) from None
     except UnicodeDecodeError:
         raise InputError("not UTF-8 text", path) from None
-    rows = list(csv.DictReader(io.StringIO(text)))
+    reader = csv.DictReader(io.StringIO(text))
+    rows = list(reader)
+    fields = reader.fieldnames or []
     if rows and any(k not in rows[0] for k in OUTPUT_COLUMNS):
         raise InputError(f"not a candidates.csv of a run (needs columns {','.join(OUTPUT_COLUMNS)})", path)
 
@@ -272,7 +322,10 @@ def read_candidates(path) -> VerdictRows:
         dst = np.array([int(r["to"]) for r in rows], dtype=np.int64)
     except (TypeError, ValueError):
         raise InputError("a from/to cell is not a scan id", path) from None
+    has_score = SCORE_COLUMN in fields
     return VerdictRows(
         src=src, dst=dst, accepted=np.array([r["verdict"] == "accepted" for r in rows], dtype=bool),
         reason=np.array([r["reason"] for r in rows], dtype=str),
-        delta=np.array([[num(r[c]) for c in GUESS_COLUMNS] for r in rows], dtype=float).reshape(-1, 3))
+        delta=np.array([[num(r[c]) for c in GUESS_COLUMNS] for r in rows], dtype=float).reshape(-1, 3),
+        origin=np.array([r.get("origin") or "" for r in rows], dtype=object),
+        frontend_score=np.array([num(r[SCORE_COLUMN]) for r in rows], dtype=float) if has_score else None)

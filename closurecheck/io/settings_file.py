@@ -40,12 +40,32 @@ def _toml_value(v) -> str:
     if isinstance(v, int):
         return str(v)
     if isinstance(v, str):
-        return '"' + v.replace("\\", "\\\\").replace('"', '\\"') + '"'
+        return _toml_string(v)
     if isinstance(v, (list, tuple)):
         return "[" + ", ".join(_toml_value(x) for x in v) + "]"
     if v is None:
         raise ValueError("None cannot be written to TOML")
     return _toml_value(str(v))
+
+
+def _toml_string(text: str) -> str:
+    """A TOML basic string: quote, backslash and control characters escaped (TOML 1.0, "String")."""
+    out = []
+    for ch in text:
+        if ch in '"\\':
+            out.append("\\" + ch)
+        elif ord(ch) < 0x20 or ord(ch) == 0x7F:
+            out.append(f"\\u{ord(ch):04X}")
+        else:
+            out.append(ch)
+    return '"' + "".join(out) + '"'
+
+
+def _toml_setting(name: str, v) -> str:
+    """``name = value``; a list of lists (rows of a table) gets one row per line."""
+    if isinstance(v, (list, tuple)) and v and all(isinstance(x, (list, tuple)) for x in v):
+        return f"{name} = [\n" + "".join(f"  {_toml_value(x)},\n" for x in v) + "]"
+    return f"{name} = {_toml_value(v)}"
 
 
 def to_toml(obj, header: str = "") -> str:
@@ -62,7 +82,7 @@ def to_toml(obj, header: str = "") -> str:
         if dataclasses.is_dataclass(v):
             tables.append((f.name, v))
         elif v is not None:
-            scalars.append(f"{f.name} = {_toml_value(v)}")
+            scalars.append(_toml_setting(f.name, v))
     lines += scalars
     for name, sub in tables:
         lines.append("")
@@ -70,5 +90,5 @@ def to_toml(obj, header: str = "") -> str:
         for g in dataclasses.fields(sub):
             v = getattr(sub, g.name)
             if v is not None and not dataclasses.is_dataclass(v):
-                lines.append(f"{g.name} = {_toml_value(v)}")
+                lines.append(_toml_setting(g.name, v))
     return "\n".join(lines) + "\n"

@@ -127,7 +127,7 @@ def write_outputs(outcome: RunOutcome, out_dir, *, report: bool = True, score: d
         raise InputError(f"cannot create the output directory ({exc.strerror})", out_dir) from None
     paths = {}
     v = outcome.verdicts
-    extra = {"origin": v.origin}
+    extra = {"origin": v.origin, **v.optional_columns()}
     extra.update(v.figures)
     cov = v.covariance
     extra.update(dict(zip(VARIANCE_COLUMNS, (cov[:, 0, 0], cov[:, 1, 1], cov[:, 2, 2]))))

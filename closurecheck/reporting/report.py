@@ -1,14 +1,19 @@
-"""The run report: a self-contained report.html with embedded PNG pictures.
+"""The run report: a self-contained report.html with zoomable maps, scan overlays and embedded PNG pictures.
 
-The pictures are also written beside it (``figures/*.png``).  Everything the
-page needs is inside the file (no scripts, styles or fonts from the network),
-so it opens in any browser offline and can be mailed to a colleague.
+The pictures are also written beside it (``figures/*.png``, including static
+versions of the maps).  Everything the page needs is inside the file (no
+scripts, styles or fonts from the network), so it opens in any browser
+offline and can be mailed to a colleague.  The maps and the overlay of two
+scans are drawn by the page's own script from the keyframe scans it
+carries (:mod:`closurecheck.reporting.report_script`).
 
 The page reads top to bottom in the order a reviewer asks questions: is the
 run trustworthy at a glance (counts, scores, notes), does the map look right
 (odometry-only next to optimised), where are the closures and the rejected
-candidates, how did each check split them, and finally every candidate in a
-sortable table.
+candidates, which verdicts were close calls (with the two scans laid over
+each other), how did each check split them, and finally every candidate in
+a sortable table; any candidate opens its overlay, and accept / reject
+buttons write rows for ``closurecheck run --decisions``.
 """
 
 from __future__ import annotations
@@ -16,18 +21,20 @@ from __future__ import annotations
 import base64
 import html
 import io
+import json
 import math
-import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
 from ..core import se2
-from ..core.stats import chi2_threshold
 from ..io.atomic import write_bytes, write_text
+from ..verification.margins import CHECKS, Margins, check_bounds, decision_margins
 from ..verification.reasons import GROUPS, Reason
 from ..verification.verdicts import VerdictTable
+from .report_script import VIEWER_CSS, VIEWER_JS
+from .scoring import REFERENCE_NOTE, REFERENCE_VERDICTS, TRAJECTORY_TITLE, curve_rows, score_blocks, trajectory_rows
 
 SAFETY_TEXT = (
     "Verified loop closures are statistical decisions, not guarantees: a closure that passed every "
@@ -52,7 +59,13 @@ REJECT_STYLE = {
     "registration": ("#f4a582", "rejected by registration quality"),
     "odometry": (REJECT_COLOUR, "rejected by the odometry gate"),
     "consistency": ("#c51b7d", "rejected by consistency or graph checks"),
+    "reviewer": ("#4d4d4d", "rejected by a reviewer's decision"),
 }
+# The two scans of an overlay: the candidate's "from" scan and its "to" scan.
+SCAN_FROM_COLOUR = "#1f63b4"
+SCAN_TO_COLOUR = "#e6550d"
+# Close calls listed per side (the accepted with the least margin, the rejected with the most).
+CLOSE_CALLS = 8
 
 HISTOGRAM_FIGURES = (
     ("overlap", "overlap (fraction of points matched)"),
@@ -105,23 +118,13 @@ class ReportData:
 
 
 def check_thresholds(verify_options) -> dict:
-    """Bounds of the verification checks by figure name, for the histograms.
+    """Bounds of the verification checks by figure name, for the histograms and the margins.
 
-    ``verify_options`` is a :class:`closurecheck.verification.verify.VerifyOptions`; the
-    chi-square figures get the quantile of chi-square with 3 degrees of
-    freedom at the configured probability (squared Mahalanobis distance of a
-    3-vector, dimensionless).  Options missing from the object are skipped.
+    :func:`closurecheck.verification.margins.check_bounds` (the one home of
+    the rule): the chi-square figures get the quantile of chi-square with 3
+    degrees of freedom at the configured probability.
     """
-
-    out = {}
-    for key, name in (("overlap", "min_overlap"), ("rmse_m", "max_rmse_m"), ("ambiguity", "max_ambiguity")):
-        if hasattr(verify_options, name):
-            out[key] = float(getattr(verify_options, name))
-    for key, name in (("odometry_chi2", "gate_probability"), ("map_chi2", "map_probability"),
-                      ("graph_chi2", "residual_probability")):
-        if hasattr(verify_options, name):
-            out[key] = chi2_threshold(float(getattr(verify_options, name)))
-    return out
+    return check_bounds(verify_options)
 
 
 def _png(fig) -> bytes:
@@ -375,10 +378,16 @@ def figure_histograms(data: ReportData) -> bytes | None:
     return out
 
 
-def figure_truth(data: ReportData) -> bytes | None:
-    """Odometry-only and optimised trajectories, each rigidly aligned to ground truth."""
-    import matplotlib.pyplot as plt
+def trajectories_in_map_frame(data: ReportData):
+    """(truth, odometry, optimised) keyframe positions (M, 2) in the maps' frame, or None without truth.
 
+    The maps are drawn relative to the first keyframe's pose (x forward).
+    The truth, kept in its own (floor-plan) frame by the log, is brought
+    into that frame by the least-squares rigid alignment onto the optimised
+    trajectory, and the odometry by its rigid alignment onto that truth, as
+    the ATE is measured (a rigid alignment changes no distance, so the
+    errors drawn are the ones scored).  Only keyframes with truth are kept.
+    """
     from .trajectory import align_rigid
 
     if data.truth is None:
@@ -386,19 +395,110 @@ def figure_truth(data: ReportData) -> bytes | None:
     ok = np.isfinite(data.truth).all(axis=1)
     if ok.sum() < 2:
         return None
+    optimised = _anchor(data.poses)[ok, :2]
+    al = align_rigid(data.truth[ok, :2], optimised)
+    truth = data.truth[ok, :2] @ al.rotation.T + al.translation
+    odo = _anchor(data.odom)[ok, :2]
+    al_odo = align_rigid(odo, truth)
+    return truth, odo @ al_odo.rotation.T + al_odo.translation, optimised
+
+
+def figure_truth(data: ReportData) -> bytes | None:
+    """Odometry-only and optimised trajectories against ground truth, in the maps' frame
+    (:func:`trajectories_in_map_frame`)."""
+    import matplotlib.pyplot as plt
+
+    lines = trajectories_in_map_frame(data)
+    if lines is None:
+        return None
+    truth, odo, optimised = lines
     fig, ax = plt.subplots(figsize=(6.2, 5.2))
-    truth = data.truth[ok]
-    ax.plot(truth[:, 0], truth[:, 1], "-", color=TRUTH_COLOUR, lw=3.0, alpha=0.7, label="ground truth")
-    for poses, colour, label in ((data.odom[ok], ODOM_COLOUR, "odometry only"),
-                                 (data.poses[ok], TRAJECTORY_COLOUR, "optimised")):
-        al = align_rigid(poses[:, :2], truth[:, :2])
-        p = poses[:, :2] @ al.rotation.T + al.translation
-        ax.plot(p[:, 0], p[:, 1], "-", color=colour, lw=1.0, label=f"{label} (rigidly aligned)")
+    ax.plot(truth[:, 0], truth[:, 1], "-", color=TRUTH_COLOUR, lw=3.0, alpha=0.7,
+            label="ground truth (rigidly aligned)")
+    ax.plot(odo[:, 0], odo[:, 1], "-", color=ODOM_COLOUR, lw=1.0, label="odometry only (rigidly aligned)")
+    ax.plot(optimised[:, 0], optimised[:, 1], "-", color=TRAJECTORY_COLOUR, lw=1.0, label="optimised")
     ax.set_aspect("equal", adjustable="datalim")
     ax.legend(fontsize=8, loc="upper center", bbox_to_anchor=(0.5, -0.12), ncol=3, frameon=False)
-    ax.set_title("Trajectories against ground truth")
+    ax.set_title("Trajectories against ground truth, in the maps' frame")
     ax.set_xlabel("x (m)")
     ax.set_ylabel("y (m)")
+    fig.tight_layout()
+    out = _png(fig)
+    plt.close(fig)
+    return out
+
+
+def figure_nees(score: dict) -> bytes | None:
+    """The verified closures' NEES against chi-square(3): histogram and quantile-quantile plot.
+
+    Left: NEES on logarithmic bins with the counts chi-square(3)
+    (scipy.stats.chi2) predicts for that many closures.  Right: sorted NEES
+    against chi-square(3) quantiles at (i - 0.5) / n; points on the diagonal
+    are honest covariances, below it too large, above it too small.
+    """
+    import matplotlib.pyplot as plt
+    from scipy.stats import chi2
+
+    x = np.asarray(score.get("nees_values") or [], float)
+    x = np.sort(x[np.isfinite(x) & (x > 0)])
+    if len(x) < 2:
+        return None
+    dist = chi2(3)
+    fig, (ax, aq) = plt.subplots(1, 2, figsize=(12, 4.0))
+    lo = min(float(x[0]), float(dist.ppf(0.001))) / 1.5
+    hi = max(float(x[-1]), float(dist.ppf(0.999))) * 1.5
+    edges = np.geomspace(lo, hi, 31)
+    ax.hist(x, bins=edges, color=ACCEPT_COLOUR, alpha=0.7, label=f"verified closures ({len(x)})")
+    expected = len(x) * np.diff(dist.cdf(edges))
+    ax.step(edges, np.r_[expected, expected[-1]], where="post", color="#1d2733", lw=1.2,
+            label="chi-square(3), expected count")
+    for q, style in ((0.5, ":"), (0.025, "--"), (0.975, "--")):
+        ax.axvline(dist.ppf(q), color="#5b6b7c", ls=style, lw=0.9)
+    ax.set_xscale("log")
+    ax.set_xlabel("NEES (squared Mahalanobis error against truth)")
+    ax.set_ylabel("closures")
+    inside50 = score.get("nees_share_in_central_50pct", math.nan)
+    inside95 = score.get("nees_share_in_central_95pct", math.nan)
+    ax.set_title(f"mean {_num(score.get('nees_mean'))}, median {_num(score.get('nees_median'))} "
+                 f"(honest: 3, 2.37)\ninside the central 50%: {_num(inside50, 2)} (0.5), 95%: "
+                 f"{_num(inside95, 2)} (0.95); dashed: the 95% bounds", fontsize=9)
+    ax.legend(fontsize=8)
+    q = dist.ppf((np.arange(1, len(x) + 1) - 0.5) / len(x))
+    aq.loglog(q, x, ".", color=ACCEPT_COLOUR, ms=3, label="sorted NEES")
+    span = np.array([min(q[0], x[0]), max(q[-1], x[-1])])
+    aq.loglog(span, span, "-", color="#1d2733", lw=1.0, label="honest (y = x)")
+    aq.set_xlabel("chi-square(3) quantile")
+    aq.set_ylabel("NEES")
+    aq.set_title("Quantile-quantile: below the line, covariances too large; above, too small", fontsize=9)
+    aq.legend(fontsize=8)
+    fig.tight_layout()
+    out = _png(fig)
+    plt.close(fig)
+    return out
+
+
+def figure_precision_recall(score: dict) -> bytes | None:
+    """Precision against recall over the front-end's score, with the best recall at precision 1 marked."""
+    import matplotlib.pyplot as plt
+
+    curve = score.get("frontend_pr_curve")
+    if not curve or len(curve.get("recall", [])) < 2:
+        return None
+    fig, ax = plt.subplots(figsize=(6.2, 4.4))
+    reference = "this run's verdicts (a reference, not the truth)" if score.get("reference") == REFERENCE_VERDICTS \
+        else "the ground truth"
+    ax.step(curve["recall"], curve["precision"], where="post", color=TRAJECTORY_COLOUR, lw=1.5,
+            label=f"score >= threshold; average precision {_num(score.get('frontend_average_precision'))}")
+    r1, t1 = score.get("frontend_recall_at_precision_1"), score.get("frontend_threshold_at_precision_1")
+    if r1 is not None and np.isfinite(r1) and r1 > 0:
+        ax.plot([r1], [1.0], "o", color=ACCEPT_COLOUR, ms=7,
+                label=f"highest recall at precision 1: {_num(r1)} (score >= {_num(t1, 4)})")
+    ax.set_xlim(-0.02, 1.02)
+    ax.set_ylim(0.0, 1.05)
+    ax.set_xlabel("recall (share of the right pairs kept)")
+    ax.set_ylabel("precision (right / kept)")
+    ax.set_title(f"Front-end score against {reference}", fontsize=9)
+    ax.legend(fontsize=8, loc="lower left")
     fig.tight_layout()
     out = _png(fig)
     plt.close(fig)
@@ -472,11 +572,27 @@ COLUMN_TEXT = {
     "origin": "which proposer found the pair", "verdict": "accepted or rejected",
     "reason": "the check that decided", "dx (m)": "registered delta, from-frame",
     "dy (m)": "registered delta, from-frame", "dtheta (deg)": "registered heading change",
+    "margin": "signed margin against the deciding check, relative to its bound (docs/verification.md)",
+    "deciding check": "the check the margin is measured against",
+    "score": "the front-end's confidence in the pair (pairs file)",
+    "verifier_reason": "what the checks alone said (without the reviewer's decisions)",
+    "review_note": "the reviewer's note",
     "overlap": "fraction of points matched", "rmse_m": "point-to-line RMS residual (m)",
     "ambiguity": "second-best / best fit score", "odometry_chi2": "squared Mahalanobis distance to odometry",
     "pair_support": "consistent partners (PCM degree)", "graph_chi2": "squared Mahalanobis residual after optimisation",
     "map_chi2": "squared Mahalanobis distance to the verified map", "gnc_weight": "robust weight at the end of GNC",
+    "map_std_m": "relative position standard deviation of the map (m)",
 }
+
+# The figures the overlay lists, in this order, with the words before each bound.
+OVERLAY_FIGURES = ("score", "overlap", "rmse_m", "ambiguity", "odometry_chi2", "pair_support", "map_chi2",
+                   "map_std_m", "gnc_weight", "graph_chi2")
+BOUND_TEXT = {"overlap": "pass: at least", "rmse_m": "pass: at most", "ambiguity": "pass: at most",
+              "odometry_chi2": "gate: at most", "map_chi2": "pass: at most", "map_std_m": "pass: at most",
+              "gnc_weight": "pass: at least", "graph_chi2": "pass: at most"}
+CHECK_TEXT = {"overlap": "the overlap check", "rmse": "the RMSE check", "ambiguity": "the ambiguity check",
+              "odometry_gate": "the odometry gate", "map_gate": "the map gate (distance and map tightness)",
+              "gnc_weight": "the GNC weight floor", "graph_residual": "the residual test after optimisation"}
 
 
 def _img(name: str, png: bytes, alt: str) -> str:
@@ -495,23 +611,30 @@ def _fmt(v) -> tuple[str, str]:
     return (str(v), str(v))
 
 
-def _candidate_table(v: VerdictTable, limit: int) -> str:
+def _candidate_table(v: VerdictTable, limit: int, margins: Margins | None = None) -> str:
     keys = [k for k in v.figures if np.asarray(v.figures[k]).dtype.kind in "fiub"]
-    head = ["from", "to", "origin", "verdict", "reason", "dx (m)", "dy (m)", "dtheta (deg)"] + keys
-    txt_cols = {"origin", "verdict", "reason"}
+    optional = v.optional_columns()
+    head = ["from", "to", "origin", "verdict", "reason", "dx (m)", "dy (m)", "dtheta (deg)"]
+    if margins is not None:
+        head += ["margin", "deciding check"]
+    head += list(optional) + keys
+    txt_cols = {"origin", "verdict", "reason", "deciding check", "verifier_reason", "review_note"}
     out = ['<table class="sortable" id="candidates"><thead><tr>']
     for h in head:
         tip = f' title="{html.escape(COLUMN_TEXT[h])}; click to sort"' if h in COLUMN_TEXT else ' title="click to sort"'
         out.append(f'<th class="{"txt" if h in txt_cols else "num"}"{tip}>{html.escape(h)}</th>')
     out.append("</tr></thead><tbody>")
     figures = [np.asarray(v.figures[key]) for key in keys]
+    extra = [np.asarray(col) for col in optional.values()]
     order = np.lexsort((v.dst, v.src, ~np.asarray(v.accepted, bool)))[:limit]
     for k in order:
         d = v.delta[k]
         vals = [int(v.src[k]), int(v.dst[k]), str(v.origin[k]),
                 "accepted" if v.accepted[k] else "rejected", str(v.reason[k]),
                 float(d[0]), float(d[1]), float(np.degrees(d[2]))]
-        vals += [f[k] for f in figures]
+        if margins is not None:
+            vals += [float(margins.value[k]), str(margins.check[k])]
+        vals += [c[k] for c in extra] + [f[k] for f in figures]
         cells = []
         for h, val in zip(head, vals):
             text, key = _fmt(val)
@@ -519,7 +642,7 @@ def _candidate_table(v: VerdictTable, limit: int) -> str:
             if h == "verdict":
                 klass += " verdict"
             cells.append(f'<td class="{klass.strip()}" data-v="{html.escape(key)}">{html.escape(text)}</td>')
-        out.append(f'<tr class="{"acc" if v.accepted[k] else "rej"}">' + "".join(cells) + "</tr>")
+        out.append(f'<tr class="{"acc" if v.accepted[k] else "rej"}" data-k="{int(k)}">' + "".join(cells) + "</tr>")
     out.append("</tbody></table>")
     return "".join(out)
 
@@ -535,7 +658,7 @@ def _reason_table(v: VerdictTable) -> str:
     rows = []
     for r, n in counts.items():
         width = max(1, round(120 * n / total))
-        bar = f'<span class="bar{" acc" if r == "accepted" else ""}" style="width:{width}px"></span>'
+        bar = f'<span class="bar{" acc" if Reason(r).group == "accepted" else ""}" style="width:{width}px"></span>'
         rows.append(f"<tr><td class='txt'>{html.escape(r)}</td><td>{n}</td><td class='txt'>{bar}</td>"
                     f"<td class='desc'>{html.escape(Reason(r).text)}</td></tr>")
     return '<table class="kv" id="reasons">' + "".join(rows) + "</table>"
@@ -548,55 +671,31 @@ def _num(value, digits: int = 3) -> str:
         return str(int(value))
     if isinstance(value, (float, np.floating)):
         return "n/a" if not np.isfinite(value) else f"{value:.{digits}g}"
+    if value is None:
+        return "n/a"
     return str(value)
 
 
-_SCORE_GROUPS = (
-    ("Loop closures", (("accepted", "verified closures"), ("false_closures", "false closures"),
-                       ("closure_precision", "precision"),
-                       ("true_pairs_among_candidates", "true revisit pairs among candidates"),
-                       ("closure_recall", "recall of those pairs"))),
-    ("Revisit events", (("revisit_events", "revisit events in the truth"),
-                        ("revisit_events_closed", "closed by a verified closure"),
-                        ("revisit_event_recall", "event recall"),
-                        ("candidate_event_recall", "event recall of the candidates"))),
-    ("Covariance honesty (NEES of verified closures)",
-     (("nees_mean", "mean (3 for honest covariances)"), ("nees_median", "median"),
-      ("nees_closures", "closures scored"))),
-    ("Candidate list", (("pairs", "pairs"), ("true_pairs", "true revisit pairs"), ("pair_precision", "precision"),
-                        ("revisit_events_reached", "revisit events reached"),
-                        ("proposals_per_keyframe", "proposals per keyframe"))),
-)
-_TRAJ_KEY = re.compile(r"^(ate|rpe_(?P<d>[0-9.]+)m)_(?P<which>odometry|optimised)_m$")
-
-
 def _score_section(score: dict) -> str:
-    """Scores grouped into small tables; keys this page does not know still show under "Other"."""
-    used = {"candidates"}
-    blocks = []
-    for title, keys in _SCORE_GROUPS:
-        rows = [(label, _num(score[k])) for k, label in keys if k in score]
-        used.update(k for k, _ in keys)
-        if rows:
-            blocks.append(f"<div><h3>{html.escape(title)}</h3>{_kv_table(rows)}</div>")
-    traj: dict = {}
-    for key, value in score.items():
-        m = _TRAJ_KEY.match(key)
-        if m:
-            label = "ATE after rigid alignment" if key.startswith("ate") else f"RPE over {m.group('d')} m"
-            traj.setdefault(label, {})[m.group("which")] = value
-            used.add(key)
+    """Scores grouped into small tables with the labels of :data:`closurecheck.reporting.scoring.SECTIONS`;
+    keys this page does not know still show under "Other"."""
+    sections, other = score_blocks(score, _num)
+    blocks = [f"<div><h3>{html.escape(title)}</h3>{_kv_table(rows)}</div>" for title, rows in sections]
+    traj = trajectory_rows(score)
     if traj:
-        rows = "".join(f"<tr><td class='txt'>{html.escape(label)}</td><td>{_num(vals.get('odometry'))}</td>"
-                       f"<td>{_num(vals.get('optimised'))}</td></tr>" for label, vals in traj.items())
-        blocks.append("<div><h3>Trajectory error (m, RMS)</h3><table class='kv' id='trajectory-error'><tr>"
+        rows = "".join(f"<tr><td class='txt'>{html.escape(label)}</td><td>{_num(a)}</td><td>{_num(b)}</td></tr>"
+                       for label, a, b in traj)
+        blocks.append(f"<div><h3>{html.escape(TRAJECTORY_TITLE)}</h3><table class='kv' id='trajectory-error'><tr>"
                       "<th class='txt'></th><th>odometry only</th><th>optimised</th></tr>"
                       f"{rows}</table></div>")
-    used.add("ate_ratio")
-    other = [(k.replace("_", " "), _num(v)) for k, v in score.items()
-             if k not in used and not isinstance(v, (dict, list))]
     if other:
         blocks.append(f"<div><h3>Other</h3>{_kv_table(other)}</div>")
+    curve = score.get("frontend_pr_curve")
+    if curve:
+        rows = "".join(f"<tr><td>{_num(t, 4)}</td><td>{_num(p)}</td><td>{_num(r)}</td></tr>"
+                       for t, p, r in curve_rows(curve))
+        blocks.append("<div><h3>Precision-recall over the front-end score</h3><table class='kv' id='frontend-curve'>"
+                      "<tr><th>score &gt;=</th><th>precision</th><th>recall</th></tr>" + rows + "</table></div>")
     pairs = score.get("false_closure_pairs")
     if pairs:
         listed = ", ".join(f"{int(a)}-{int(b)}" for a, b in pairs)
@@ -607,6 +706,11 @@ def _score_section(score: dict) -> str:
 def _score_cards(score: dict) -> list:
     """(label, value, state) cards for the top of the page."""
     cards = []
+    if score.get("reference") == REFERENCE_VERDICTS:
+        if "proposals" in score:
+            cards.append(("front-end pairs verified (reference, not truth)",
+                          f"{score.get('proposals_right', 0)} of {score['proposals']}", ""))
+        return cards
     if "false_closures" in score:
         n = int(score["false_closures"])
         cards.append(("false closures (truth)", n, "good" if n == 0 else "bad"))
@@ -624,12 +728,162 @@ def _section(ident: str, title: str, body: str, klass: str = "") -> str:
     return f'<section id="{ident}"{cls}><h2>{html.escape(title)}</h2>{body}</section>'
 
 
+# --------------------------------------------------------------------------
+# the page's data for its script (report_script.py)
+
+
+def _b64(array, dtype) -> str:
+    return base64.b64encode(np.ascontiguousarray(array, dtype=dtype).tobytes()).decode("ascii")
+
+
+def _rounded(values, digits: int = 4) -> list:
+    """JSON-ready numbers with ``digits`` significant digits, None for NaN."""
+    out = []
+    for x in np.asarray(values, dtype=float).tolist():
+        out.append(float(f"{x:.{digits}g}") if math.isfinite(x) else None)
+    return out
+
+
+def encode_scans(scan_points) -> dict:
+    """Keyframe scans as the page carries them: robot-frame points in int16 centimetres, base64.
+
+    Returns ``{"points": base64 of little-endian int16 (x, y) pairs, "offsets":
+    K + 1 point offsets}``.  A centimetre is the resolution a reviewer needs
+    to judge an alignment (and below the scans' own range noise); ±327 m
+    covers any indoor scanner.
+
+    Examples
+    --------
+    >>> import base64, numpy as np
+    >>> from closurecheck.reporting.report import encode_scans
+    >>> enc = encode_scans([np.array([[1.234, -0.5]]), np.zeros((0, 2)), np.array([[2.0, 3.0], [4.0, 5.0]])])
+    >>> enc["offsets"], np.frombuffer(base64.b64decode(enc["points"]), "<i2").tolist()
+    ([0, 1, 1, 3], [123, -50, 200, 300, 400, 500])
+    """
+    parts = [np.asarray(p, dtype=float).reshape(-1, 2) for p in scan_points]
+    counts = [len(p) for p in parts]
+    pts = np.concatenate(parts) if parts else np.zeros((0, 2))
+    cm = np.clip(np.rint(pts * 100.0), -32767, 32767)
+    return {"points": _b64(cm, "<i2"), "offsets": np.concatenate([[0], np.cumsum(counts)]).astype(int).tolist()}
+
+
+def viewer_data(data: ReportData, margins: Margins, ellipse_scale: float) -> dict:
+    """Everything the page's script draws: scans, keyframe poses (both anchored at the first keyframe,
+    as the maps are drawn), and every candidate's pair, delta, verdict, margin and figures."""
+    v = data.verdicts
+    index = {int(i): k for k, i in enumerate(data.ids)}
+    src = [index.get(int(a), -1) for a in v.src]
+    dst = [index.get(int(b), -1) for b in v.dst]
+    reasons = [r.value for r in Reason]
+    checks = list(CHECKS)
+    checks.remove("map_std")
+    cov = np.asarray(v.covariance, dtype=float).reshape(-1, 3, 3)
+    cov_xy = np.stack([cov[:, 0, 0], cov[:, 0, 1], cov[:, 1, 1]], axis=1) if len(cov) else np.zeros((0, 3))
+    figs = {}
+    for name in OVERLAY_FIGURES:
+        if name == "score" and v.frontend_score is not None:
+            figs[name] = _rounded(v.frontend_score, 6)
+        elif name in v.figures and np.asarray(v.figures[name]).dtype.kind in "fiu":
+            figs[name] = _rounded(v.figures[name])
+    check_figures = {c: [CHECKS[c]] for c in checks}
+    check_figures["map_gate"] = ["map_chi2", "map_std_m"]
+    return {
+        "ids": [int(i) for i in data.ids],
+        "scans": encode_scans(data.scan_points),
+        "odom": _b64(_anchor(np.asarray(data.odom, float)), "<f4"),
+        "poses": _b64(_anchor(np.asarray(data.poses, float)), "<f4"),
+        "ellipse_scale": float(ellipse_scale),
+        "colours": {"accept": ACCEPT_COLOUR, "map": MAP_COLOUR, "odom": ODOM_COLOUR, "trajectory": TRAJECTORY_COLOUR,
+                    "ellipse": ELLIPSE_COLOUR, "scan_from": SCAN_FROM_COLOUR, "scan_to": SCAN_TO_COLOUR},
+        "group_colours": {g: REJECT_STYLE[g][0] for g in GROUPS},
+        "reasons": reasons,
+        "reason_text": {r.value: r.text for r in Reason},
+        "reason_groups": [r.group for r in Reason],
+        "checks": checks,
+        "check_text": CHECK_TEXT,
+        "check_figures": check_figures,
+        "figure_order": [n for n in OVERLAY_FIGURES if n in figs],
+        "figure_text": {n: COLUMN_TEXT.get(n, n) for n in figs},
+        "bounds": {k: float(b) for k, b in data.thresholds.items() if k in figs},
+        "bound_text": BOUND_TEXT,
+        "cands": {
+            "src": src, "dst": dst,
+            "delta": _b64(np.asarray(v.delta, float).reshape(-1, 3), "<f4"),
+            "cov_xy": _b64(cov_xy, "<f4"),
+            "acc": [int(a) for a in np.asarray(v.accepted, bool)],
+            "reason": [reasons.index(str(r)) for r in v.reason],
+            "margin": _rounded(margins.value, 3),
+            "check": [checks.index(c) if c in checks else -1 for c in margins.check],
+            "figs": figs,
+        },
+    }
+
+
+def _script_json(obj) -> str:
+    """JSON that is safe inside a <script> element (no "</" can end it early)."""
+    return json.dumps(obj, separators=(",", ":"), allow_nan=False).replace("</", "<\\/")
+
+
+def close_calls(v: VerdictTable, margins: Margins, n: int = CLOSE_CALLS) -> tuple[np.ndarray, np.ndarray]:
+    """The verdicts closest to going the other way: (the ``n`` accepted closures with the least margin,
+    the ``n`` rejected candidates with the most), each list closest first.  Only candidates decided by
+    a bound on a figure have a margin (docs/verification.md, "Margins")."""
+    m = np.asarray(margins.value, float)
+    acc = np.asarray(v.accepted, bool)
+    a = np.flatnonzero(acc & np.isfinite(m))
+    r = np.flatnonzero(~acc & np.isfinite(m))
+    return a[np.argsort(m[a], kind="stable")][:n], r[np.argsort(-m[r], kind="stable")][:n]
+
+
+def _decide_buttons() -> str:
+    return ("<button type='button' class='acc' data-decision='accept' title='add an accept row to the decisions'>"
+            "accept</button><button type='button' class='rej' data-decision='reject' "
+            "title='add a reject row to the decisions'>reject</button>")
+
+
+def _close_call_cards(v: VerdictTable, margins: Margins, rows) -> str:
+    cards = []
+    for k in rows:
+        k = int(k)
+        check = str(margins.check[k])
+        verdict = "verified" if v.accepted[k] else "rejected"
+        cards.append(
+            f"<div class='call' data-k='{k}'><h4>{int(v.src[k])} &ndash; {int(v.dst[k])}: {verdict}, "
+            f"{html.escape(str(v.reason[k]))}</h4><p>margin <b>{_num(float(margins.value[k]), 3)}</b> against "
+            f"{html.escape(CHECK_TEXT.get(check, check))}</p>"
+            "<div class='pair'><div class='viewer call-registered'></div><div class='viewer call-odometry'></div></div>"
+            f"<div class='decide'><button type='button' class='call-open'>open</button>{_decide_buttons()}</div></div>")
+    return "".join(cards)
+
+
+def _overlay_panel() -> str:
+    return (
+        "<div id='overlay-panel' hidden role='dialog' aria-label='overlay of two scans'>"
+        "<div class='ohead'><h3 class='otitle'></h3><span class='overdict'></span>"
+        "<span class='omargin hint'></span><span style='flex:1'></span>"
+        "<button type='button' class='oclose' title='close (Esc)'>close</button></div>"
+        "<div class='obody'><div class='viewer' id='overlay-registered'></div>"
+        "<div class='viewer' id='overlay-odometry'></div><div class='ofig'>"
+        f"<p class='legend'><span class='dot' style='background:{SCAN_FROM_COLOUR}'></span>from scan"
+        f"<span class='dot' style='background:{SCAN_TO_COLOUR}'></span>to scan</p>"
+        "<p class='hint'>Left: the to scan at the registered delta; right: at the delta the odometry "
+        "predicts. Well-registered walls coincide on the left. Wheel or +/&minus; to zoom (both views "
+        "together), drag to pan, double-click to fit.</p>"
+        "<table class='kv'><tbody class='ofigs'></tbody></table>"
+        "<h4>Your decision</h4><div class='decide'>"
+        f"{_decide_buttons()}<input class='onote' type='text' placeholder='note (optional)'></div>"
+        "<p class='hint'>Adds a row to the decisions at the end of the page, for "
+        "<code>closurecheck run LOG --decisions FILE.csv</code>.</p></div></div></div>")
+
+
 def build_report(out_dir, data: ReportData, *, table_limit: int = 5000) -> Path:
     """Draw the pictures and write ``report.html`` into ``out_dir``.
 
     Returns the report's path.  The PNGs are also written to
-    ``out_dir/figures``.  At most ``table_limit`` candidates go into the
-    page's table (accepted first); candidates.csv has them all.
+    ``out_dir/figures`` (the maps too, as static pictures; the page draws
+    its maps itself, zoomable).  At most ``table_limit`` candidates go into
+    the page's table (accepted first); candidates.csv has them all, and
+    every candidate's overlay is in the page.
     """
     import matplotlib
 
@@ -640,21 +894,32 @@ def build_report(out_dir, data: ReportData, *, table_limit: int = 5000) -> Path:
 
     v = data.verdicts
     scale = ellipse_magnification(data)
-    pictures = [("map", figure_maps(data), "Maps: odometry only and with verified closures"),
-                ("loops", figure_loops(data, scale), "Verified closures and rejected candidates on the trajectory")]
+    margins = decision_margins(v.reason, v.figures, data.thresholds)
+    # Static maps for documents and mail; the page draws its own, zoomable.
+    write_bytes(fig_dir / "map.png", figure_maps(data))
+    write_bytes(fig_dir / "loops.png", figure_loops(data, scale))
+    pictures = []
     hist = figure_histograms(data)
     if hist is not None:
         pictures.append(("checks", hist, "Histograms of the check figures"))
-    truth = figure_truth(data) if data.score else None
-    if truth is not None:
-        pictures.append(("truth", truth, "Trajectories against ground truth"))
+    if data.score:
+        for name, fn, alt in (("truth", lambda: figure_truth(data), "Trajectories against ground truth"),
+                              ("nees", lambda: figure_nees(data.score), "NEES against chi-square(3)"),
+                              ("precision-recall", lambda: figure_precision_recall(data.score),
+                               "Precision and recall over the front-end score")):
+            png = fn()
+            if png is not None:
+                pictures.append((name, png, alt))
     for name, png, _ in pictures:
         write_bytes(fig_dir / f"{name}.png", png)
     pics = {name: _img(name, png, alt) for name, png, alt in pictures}
 
     n_acc = int(np.asarray(v.accepted, bool).sum())
+    n_review = int(sum(str(r).startswith("reviewer_") for r in v.reason))
     cards = [("keyframes", len(data.ids), ""), ("candidates", len(v), ""),
              ("verified closures", n_acc, ""), ("rejected", len(v) - n_acc, "")]
+    if n_review:
+        cards.append(("decided by a reviewer", n_review, ""))
     if data.score:
         cards += _score_cards(data.score)
     card_html = "".join(f'<div class="card {state}"><b>{html.escape(str(b))}</b><span>{html.escape(a)}</span></div>'
@@ -663,22 +928,32 @@ def build_report(out_dir, data: ReportData, *, table_limit: int = 5000) -> Path:
     notes = ("<div><h3>Notes</h3><ul id='notes'>" + "".join(f"<li>{html.escape(str(n))}</li>" for n in data.notes)
              + "</ul></div>") if data.notes else ""
     name = html.escape(data.log_name)
-    nav = [("glance", "At a glance"), ("maps", "Maps"), ("loops-section", "Loop closures")]
+    reference = bool(data.score) and data.score.get("reference") == REFERENCE_VERDICTS
+    accepted_calls, rejected_calls = close_calls(v, margins)
+    nav = [("glance", "At a glance"), ("maps", "Maps"), ("loops-section", "Loop closures"),
+           ("close-calls", "Close calls")]
     if "checks" in pics:
         nav.append(("checks-section", "Checks"))
     if data.score:
         nav.append(("score", "Scoring"))
-    nav.append(("table-section", "Candidates"))
+    nav += [("table-section", "Candidates"), ("decisions", "Decisions")]
     if data.config_text:
         nav.append(("config", "Settings"))
     lead = (f"{n_acc} of {len(v)} loop-closure candidates were verified and kept in graph.json; "
             f"the other {len(v) - n_acc} were rejected by the check named in their reason.")
-    key_rej = "".join(f'<span style="background:{c}"></span>{html.escape(lab)}' for c, lab in (REJECT_STYLE[g] for g in GROUPS))
+    if n_review:
+        lead += f" A reviewer's decisions overruled the checks for {n_review} of them."
+    key_rej = "".join(f'<span class="sw" style="background:{c}"></span>{html.escape(lab)}'
+                      for c, lab in (REJECT_STYLE[g] for g in GROUPS))
+    how = ("Wheel or +/&minus; to zoom (to the centimetre), drag to pan, double-click to fit; the two views move "
+           "together. Click a closure line to lay its two scans over each other.")
+    noscript = ("<noscript><p class='caution'>The maps and overlays need JavaScript; static pictures are in "
+                "figures/map.png and figures/loops.png beside this report.</p></noscript>")
     parts = [
         "<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
         "<meta name='viewport' content='width=device-width, initial-scale=1'>",
         f"<title>closurecheck report: {name}</title>",
-        f"<style>{_CSS}</style></head><body>",
+        f"<style>{_CSS}{VIEWER_CSS}</style></head><body>",
         f"<header><h1>Loop-closure report: {name}</h1>",
         "<p>closurecheck: verified loop closures and calibrated covariances for 2D LiDAR pose graphs</p>",
         "<nav>" + "".join(f"<a href='#{i}'>{t}</a>" for i, t in nav) + "</nav></header>",
@@ -690,15 +965,33 @@ def build_report(out_dir, data: ReportData, *, table_limit: int = 5000) -> Path:
                  f"<div><h3>Run</h3>{_kv_table(data.summary)}</div>"
                  f"<div><h3>Time per stage</h3>{timing}</div>{notes}</div>"),
         _section("maps", "Maps",
-                 "<p>Every keyframe scan drawn at its pose (dot: first keyframe): left with odometry alone, "
-                 "right after optimising the graph with the verified closures. Doubled or smeared walls on the "
-                 "left are drift; the right map should show single, sharp walls.</p>" + pics["map"]),
+                 "<p>Every keyframe scan drawn at its pose, in the frame of the first keyframe (its pose is the "
+                 "origin, x forward; dot: the first keyframe): left with odometry alone, right after optimising "
+                 "the graph with the verified closures (green lines). Doubled or smeared walls on the left are "
+                 "drift; on the right the walls should be single and sharp. Not every mark is a wall: people, "
+                 "carts and other things that moved while the robot drove leave faint trails and scattered "
+                 f"points, in both maps.</p><p class='hint'>{how}</p>{noscript}"
+                 "<div class='pair'><div class='viewer' id='map-odometry'></div>"
+                 "<div class='viewer' id='map-optimised'></div></div>"),
         _section("loops-section", "Loop closures",
-                 f"<p class='key'>Left: the verified closures kept in graph.json, each with the 3-sigma position "
-                 f"ellipse of the closure at its second keyframe, magnified x{scale:g} to be visible. Right: the "
-                 f"rejected candidates by the stage that stopped them ({key_rej}). A rejected line spanning "
-                 f"distant places is a look-alike that the checks caught; the table gives each one's reason.</p>"
-                 + pics["loops"]),
+                 f"<p class='key legend'>Left: the verified closures kept in graph.json, each with the 3-sigma "
+                 f"position ellipse of the closure at its second keyframe, magnified x{scale:g} to be visible. "
+                 f"Right: the rejected candidates by the stage that stopped them ({key_rej}). A rejected line "
+                 f"spanning distant places is a look-alike that the checks caught. Both on the optimised "
+                 f"trajectory, in the maps' frame.</p><p class='hint'>{how}</p>"
+                 "<div class='pair'><div class='viewer' id='loops-verified'></div>"
+                 "<div class='viewer' id='loops-rejected'></div></div>"),
+        _section("close-calls", "Close calls",
+                 "<p>The verdicts nearest to going the other way: the verified closures with the least margin "
+                 "and the rejected candidates with the most, measured against the check that decided them "
+                 "(relative to its bound: +0.1 passed by a tenth of the bound, &minus;0.1 failed by a tenth; "
+                 "docs/verification.md, &ldquo;Margins&rdquo;). Each shows its two scans at the registered pose "
+                 "and, for contrast, where the odometry puts them. Confirm or overrule them with the buttons; "
+                 "the rows collect under <a href='#decisions'>Decisions</a>.</p>"
+                 f"<h3>Verified, least margin ({len(accepted_calls)})</h3>"
+                 f"<div class='calls' id='calls-accepted'>{_close_call_cards(v, margins, accepted_calls)}</div>"
+                 f"<h3>Rejected, most margin ({len(rejected_calls)})</h3>"
+                 f"<div class='calls' id='calls-rejected'>{_close_call_cards(v, margins, rejected_calls)}</div>"),
     ]
     if "checks" in pics:
         thr_text = (" Dashed lines are the bounds of this run's checks." if data.thresholds else "")
@@ -707,22 +1000,46 @@ def build_report(out_dir, data: ReportData, *, table_limit: int = 5000) -> Path:
                               "each check; a candidate appears only on the checks it reached." + thr_text
                               + " Heavy-tailed figures use a logarithmic axis.</p>" + pics["checks"]))
     if data.score:
-        truth_img = f"<div class='truth-picture'>{pics['truth']}</div>" if "truth" in pics else ""
-        parts.append(_section("score", "Scoring against ground truth",
-                              "<p>The log carries ground truth, so the run is scored as "
-                              "<code>closurecheck score</code> does. A false closure is a verified closure "
-                              "whose delta is wrong by more than the scoring tolerance.</p>"
-                              f"<div class='scores'>{_score_section(data.score)}{truth_img}</div>"))
+        side = "".join(f"<div class='truth-picture'>{pics[n]}</div>" for n in ("truth", "precision-recall")
+                       if n in pics)
+        nees = f"<div>{pics['nees']}</div>" if "nees" in pics else ""
+        if reference:
+            title = "Scoring against this run's verdicts (a reference, not the truth)"
+            intro = (f"<p class='caution'><b>Reference, not truth.</b> {html.escape(REFERENCE_NOTE)} "
+                     "<code>closurecheck score</code> prints the same.</p>")
+        else:
+            title = "Scoring against ground truth"
+            intro = ("<p>The log carries ground truth, so the run is scored as <code>closurecheck score</code> "
+                     "does (docs/scoring.md defines every figure). Closures are judged by their registered "
+                     "delta; revisits by the true poses alone, so a correct closure between scans a few metres "
+                     "apart or facing opposite ways counts as correct without being at a revisit pair. The "
+                     "trajectories are drawn in the maps' frame, the truth rigidly aligned to it.</p>")
+        parts.append(_section("score", title, intro + f"<div class='scores'>{_score_section(data.score)}{side}</div>"
+                              + nees))
     shown = min(len(v), table_limit)
     parts.append(_section("table-section", "Candidates",
                           f"<p>{shown} of {len(v)} candidates, verified first; click a column heading to sort "
-                          f"(again to reverse). All of them are in candidates.csv, with the variances of x, y and theta (the full covariance of each verified closure is in graph.json).</p>"
-                          f'<div class="scroll">{_candidate_table(v, table_limit)}</div>'))
+                          f"(again to reverse), a row to lay its two scans over each other. All of them are in "
+                          f"candidates.csv, with the variances of x, y and theta (the full covariance of each "
+                          f"verified closure is in graph.json).</p>"
+                          f'<div class="scroll">{_candidate_table(v, table_limit, margins)}</div>'))
+    parts.append(_section("decisions", "Decisions",
+                          "<p>Rows for <code>closurecheck run LOG --decisions decisions.csv</code>: each accept or "
+                          "reject button above adds or replaces the row of its pair; you can also edit the text. "
+                          "The next run overrules the checks for these pairs (docs/verification.md, &ldquo;Reviewer "
+                          "decisions&rdquo;).</p><div class='dtools'><button type='button' id='decisions-copy'>copy"
+                          "</button><button type='button' id='decisions-save'>download decisions.csv</button>"
+                          "<button type='button' id='decisions-clear'>clear</button><span class='hint'>rows: "
+                          "<span id='decisions-count'>0</span></span></div>"
+                          "<textarea id='decisions-text' spellcheck='false'>from,to,decision,note\n</textarea>"))
     if data.config_text:
         parts.append(_section("config", "Settings",
                               "<details><summary>Effective settings of this run (also in config.toml; rerun "
                               f"with --config)</summary><pre>{html.escape(data.config_text)}</pre></details>"))
-    parts.append(f"</main><script>{_SORT_JS}</script></body></html>")
+    parts.append("</main>" + _overlay_panel())
+    parts.append("<script type='application/json' id='report-data'>"
+                 f"{_script_json(viewer_data(data, margins, scale))}</script>")
+    parts.append(f"<script>{_SORT_JS}</script><script>{VIEWER_JS}</script></body></html>")
     path = out_dir / "report.html"
     write_text(path, "\n".join(parts))
     return path

@@ -5,6 +5,8 @@ from __future__ import annotations
 import sys
 import time
 
+from ..verification.reasons import is_accepted
+
 
 class Progress:
     """Stage announcements and bars on stderr; silent when ``quiet``."""
@@ -57,7 +59,7 @@ def format_summary(info: dict, paths: dict) -> str:
         else:
             lines.append("  map: DOUBTFUL, do not use it without review:")
             lines.extend(f"    - {r}" for r in trust["reasons"])
-    rej = {k: v for k, v in info["reasons"].items() if k != "accepted"}
+    rej = {k: v for k, v in info["reasons"].items() if not is_accepted(k)}
     if rej:
         lines.append("  rejected by " + ", ".join(f"{k} {v}" for k, v in rej.items()))
     lines.append(f"  map correction: up to {info['correction_max_m']:.2f} m (mean {info['correction_mean_m']:.2f} m)")

@@ -19,7 +19,7 @@ from __future__ import annotations
 from enum import Enum
 
 # Report groups of rejections, in the order the report lists them.
-GROUPS = ("registration", "odometry", "consistency")
+GROUPS = ("registration", "odometry", "consistency", "reviewer")
 
 
 class Reason(str, Enum):
@@ -37,6 +37,8 @@ class Reason(str, Enum):
     GRAPH_RESIDUAL = "graph_residual"
     SCAN_CONTRADICTION = "scan_contradiction"
     DUPLICATE = "duplicate"
+    REVIEWER_ACCEPTED = "reviewer_accepted"
+    REVIEWER_REJECTED = "reviewer_rejected"
 
     def __str__(self) -> str:
         return self.value
@@ -66,7 +68,23 @@ _TEXT = {
     Reason.SCAN_CONTRADICTION: ("its revisit made the scans of two visits contradict each other (a wall inside "
                                 "the other's free space)", "consistency"),
     Reason.DUPLICATE: ("the same pair was already considered", "consistency"),
+    Reason.REVIEWER_ACCEPTED: ("accepted by a reviewer's decision (--decisions), whatever the checks said; "
+                               "an edge of graph.json", "accepted"),
+    Reason.REVIEWER_REJECTED: ("rejected by a reviewer's decision (--decisions), whatever the checks said",
+                               "reviewer"),
 }
+
+
+def is_accepted(code) -> bool:
+    """Whether a reason code means the pair is an edge of graph.json (``accepted`` or ``reviewer_accepted``).
+
+    Examples
+    --------
+    >>> from closurecheck.verification.reasons import is_accepted
+    >>> is_accepted("reviewer_accepted"), is_accepted("odometry_gate")
+    (True, False)
+    """
+    return Reason(str(code)).group == "accepted"
 
 
 def codes(values) -> list[Reason]:

@@ -28,6 +28,12 @@ class VerdictTable:
     delta : (C, 3) registered delta, NaN when registration gave none.
     covariance : (C, 3, 3) its covariance in the src frame, NaN when none.
     figures : per-candidate numbers behind the verdict, name -> (C,) array.
+    frontend_score : (C,) float, the pairs file's ``score`` (the front-end's
+        confidence, NaN for pairs it did not give), or None when it had none.
+    verifier_reason : (C,) str, the reason the checks alone give each pair
+        (without the reviewer's decisions), or None when there were none.
+    review_note : (C,) str, the reviewer's note on each pair it decided
+        ("" elsewhere), or None when there were no decisions.
     """
 
     src: np.ndarray
@@ -38,9 +44,26 @@ class VerdictTable:
     delta: np.ndarray
     covariance: np.ndarray
     figures: dict = field(default_factory=dict)
+    frontend_score: np.ndarray | None = None
+    verifier_reason: np.ndarray | None = None
+    review_note: np.ndarray | None = None
 
     def __post_init__(self):
         codes(np.unique(self.reason.astype(str)))
+        if self.verifier_reason is not None:
+            codes(np.unique(self.verifier_reason.astype(str)))
+
+    def optional_columns(self) -> dict:
+        """The columns of candidates.csv that only some runs have, by name (docs/formats.md, "Candidate pairs"):
+        ``score`` with a scored pairs file, ``verifier_reason`` and ``review_note`` with reviewer decisions."""
+        out = {}
+        if self.frontend_score is not None:
+            out["score"] = self.frontend_score
+        if self.verifier_reason is not None:
+            out["verifier_reason"] = self.verifier_reason
+        if self.review_note is not None:
+            out["review_note"] = self.review_note
+        return out
 
     def __len__(self) -> int:
         return len(self.src)
@@ -54,7 +77,7 @@ class VerdictTable:
     def checks(self, k: int) -> dict:
         """The figures of candidate k as a plain dict (graph.json ``checks``)."""
         out = {"origin": str(self.origin[k])}
-        for name, arr in self.figures.items():
+        for name, arr in {**self.optional_columns(), **self.figures}.items():
             v = arr[k]
             out[name] = v.item() if hasattr(v, "item") else v
         return out

@@ -17,6 +17,14 @@ the check that decided it (reason codes in :mod:`closurecheck.verification.verdi
    chi-square test of each closure's residual after optimisation, removing
    the worst failing closure and re-optimising until all pass.
 
+A reviewer's decisions (:class:`ReviewerVerdicts`) overrule the checks for
+the pairs they name: a rejected pair is taken out before the odometry gate
+and never reaches a later check; an accepted pair skips the checks (it is
+neither tested by PCM nor a witness in it) and enters every optimisation
+from the strict pass on as a plain, non-robust edge that GNC cannot
+down-weight and the residual test cannot remove, so the map gate and the
+final graph are built with it.
+
 Inputs are arrays: closures join nodes of the keyframe chain (indices into
 ``odom_poses``); deltas ``src^-1 ∘ dst`` in the src frame (m, m, rad) with
 covariances on [x, y, theta] in the src frame.
@@ -53,7 +61,7 @@ from .drift import (
 )
 from .free_space import FreeSpaceCheck, FreeSpaceOptions, KeyframeScans, blame, check_free_space, closure_groups
 from .map_gate import map_gate_distance, relative_posterior
-from .reasons import Reason
+from .reasons import Reason, is_accepted
 
 
 @options
@@ -174,6 +182,19 @@ class Verification:
     notes: tuple = field(default_factory=tuple)
 
 
+@dataclass(frozen=True, eq=False)
+class ReviewerVerdicts:
+    """A reviewer's decisions on K candidates (docs/verification.md, "Reviewer decisions").
+
+    accept : (K,) bool, pairs that become closures whatever the checks say
+        (each needs a registered delta and covariance).
+    reject : (K,) bool, pairs that never enter the graph.  Never both.
+    """
+
+    accept: np.ndarray
+    reject: np.ndarray
+
+
 def odometry_edges(odom_poses: np.ndarray, step_covariances: np.ndarray):
     """Odometry edges between consecutive keyframes: (src, dst, delta, information)."""
     n = len(odom_poses)
@@ -189,26 +210,31 @@ def _loop_information(cov):
     return 0.5 * (info + np.swapaxes(info, -1, -2))
 
 
-def _graph_edges(odom_poses, step_covariances, src, dst, delta, covariance, members):
+def _graph_edges(odom_poses, step_covariances, src, dst, delta, covariance, members, fixed=None):
     o_src, o_dst, o_delta, o_info = odometry_edges(odom_poses, step_covariances)
     e_src = np.concatenate([o_src, src[members]])
     e_dst = np.concatenate([o_dst, dst[members]])
     e_delta = np.concatenate([o_delta, delta[members]])
     e_info = np.concatenate([o_info, _loop_information(covariance[members])])
-    robust = np.r_[np.zeros(len(o_src), bool), np.ones(len(members), bool)]
+    # A reviewer's accepted closures are plain edges, like odometry: no
+    # robust weight, never removed by the residual test.
+    closure_robust = np.ones(len(members), bool) if fixed is None else ~np.asarray(fixed, bool)[members]
+    robust = np.r_[np.zeros(len(o_src), bool), closure_robust]
     return e_src, e_dst, e_delta, e_info, robust, len(o_src)
 
 
 def optimise_closures(members, src, dst, delta, covariance, odom_poses, step_covariances,
-                       options: VerifyOptions):
+                       options: VerifyOptions, fixed=None):
     """GNC then the residual test on odometry + the closures ``members``.
 
     ``members`` indexes the closure arrays (``src``/``dst`` node indices,
     ``delta`` (K, 3) and ``covariance`` (K, 3, 3) in the src frame);
     ``odom_poses`` (N, 3) and ``step_covariances`` (N-1, 3, 3) give the
-    odometry edges.  Returns (kept (len(members),) bool, poses (N, 3) in the
-    odometry frame with node 0 fixed, gnc weights, residuals (len(members),)
-    squared Mahalanobis at the final poses, NaN if dropped by GNC).
+    odometry edges.  ``fixed`` (K,) bool, optional: closures a reviewer
+    accepted, kept whatever GNC and the residual test say (weight 1).
+    Returns (kept (len(members),) bool, poses (N, 3) in the odometry frame
+    with node 0 fixed, gnc weights, residuals (len(members),) squared
+    Mahalanobis at the final poses, NaN if dropped by GNC).
     """
     n_m = len(members)
     gnc_w = np.full(n_m, np.nan)
@@ -216,13 +242,13 @@ def optimise_closures(members, src, dst, delta, covariance, odom_poses, step_cov
     if n_m == 0:
         return np.zeros(0, bool), np.array(odom_poses, dtype=float), gnc_w, res
     e_src, e_dst, e_delta, e_info, robust, n_o = _graph_edges(odom_poses, step_covariances, src, dst, delta,
-                                                              covariance, members)
+                                                              covariance, members, fixed)
     start = np.array(odom_poses, dtype=float)
     keep = np.ones(n_m, dtype=bool)
-    if options.use_gnc:
+    if options.use_gnc and robust[n_o:].any():
         gnc = optimize_gnc(start, e_src, e_dst, e_delta, e_info, robust,
                            GncOptions(inlier_probability=options.residual_probability), check=False)
-        gnc_w = np.array(gnc.weights[n_o:])
+        gnc_w = np.where(robust[n_o:], np.array(gnc.weights[n_o:]), 1.0)
         keep = gnc_w >= options.gnc_min_weight
         start = np.array(gnc.poses)
     sel = np.r_[np.ones(n_o, bool), keep]
@@ -270,8 +296,13 @@ def odometry_scale(chi2_values, options: VerifyOptions) -> float:
     return float(np.clip(factor, 1.0, options.max_odometry_scale))
 
 
-def _consistency_pass(alive0, src, dst, delta, covariance, odom_poses, step_covariances, options, cons, figures):
-    """Odometry gate and PCM over the candidates ``alive0``; returns (reason updates, clique result)."""
+def _consistency_pass(alive0, src, dst, delta, covariance, odom_poses, step_covariances, options, cons, figures,
+                      fixed):
+    """Odometry gate and PCM over the candidates ``alive0``; returns (reason updates, clique result).
+
+    ``fixed`` candidates (a reviewer's acceptances) get the gate's figures
+    but are neither rejected by it nor part of PCM.
+    """
     k = len(src)
     reason = np.full(k, "", dtype=object)
     prefix = se2.chain_prefix(odom_poses, step_covariances)
@@ -280,8 +311,8 @@ def _consistency_pass(alive0, src, dst, delta, covariance, odom_poses, step_cova
         gate = odometry_gate(src[alive], dst[alive], delta[alive], covariance[alive], odom_poses, prefix, cons)
         figures["odometry_chi2"][alive] = gate.distance_sq
         figures["odometry_informative"][alive] = gate.informative
-        reason[alive[gate.informative & ~gate.passed]] = Reason.ODOMETRY_GATE
-    alive = np.flatnonzero(alive0 & (reason == ""))
+        reason[alive[gate.informative & ~gate.passed & ~fixed[alive]]] = Reason.ODOMETRY_GATE
+    alive = np.flatnonzero(alive0 & (reason == "") & ~fixed)
     clique = None
     if len(alive):
         pc = pairwise_consistency(src[alive], dst[alive], delta[alive], covariance[alive], odom_poses, prefix, cons)
@@ -295,17 +326,19 @@ def _consistency_pass(alive0, src, dst, delta, covariance, odom_poses, step_cova
     return reason, clique
 
 
-def _strict_pass(plausible, src, dst, delta, covariance, odom_poses, step_covariances, options, cons, figures):
+def _strict_pass(plausible, src, dst, delta, covariance, odom_poses, step_covariances, options, cons, figures,
+                 fixed):
     """Odometry gate, PCM and the graph test with the odometry model as given.
 
     Returns (per-candidate verdict of this pass, clique result, indices of the
-    verified core).
+    verified core, which includes every ``fixed`` candidate).
     """
     upd, clique = _consistency_pass(plausible, src, dst, delta, covariance, odom_poses, step_covariances,
-                                    options, cons, figures)
+                                    options, cons, figures, fixed)
     first_pass = np.where(upd == "", Reason.ACCEPTED, upd)
     alive = np.flatnonzero(plausible & (first_pass == Reason.ACCEPTED))
-    kept, _, _, _ = optimise_closures(alive, src, dst, delta, covariance, odom_poses, step_covariances, options)
+    kept, _, _, _ = optimise_closures(alive, src, dst, delta, covariance, odom_poses, step_covariances, options,
+                                      fixed)
     first_pass[alive[~kept]] = Reason.GRAPH_RESIDUAL
     return first_pass, clique, alive[kept]
 
@@ -320,7 +353,7 @@ class _Stage:
     notes: tuple
 
 
-def _core_and_map(plausible, src, dst, delta, covariance, step_covariances, options, odom_poses) -> _Stage:
+def _core_and_map(plausible, src, dst, delta, covariance, step_covariances, options, fixed, odom_poses) -> _Stage:
     """Strict pass, odometry variance factor and map gate on one odometry."""
     k = len(src)
     notes = []
@@ -334,7 +367,7 @@ def _core_and_map(plausible, src, dst, delta, covariance, step_covariances, opti
 
     # Pass 1, strict: the odometry model as given decides the core set.
     first_pass, clique, core = _strict_pass(plausible, src, dst, delta, covariance, odom_poses, step_covariances,
-                                            options, cons, figures)
+                                            options, cons, figures, fixed)
 
     # The verified core measures how honest the odometry model is.
     scale = odometry_scale(figures["odometry_chi2"][core], options)
@@ -353,10 +386,10 @@ def _core_and_map(plausible, src, dst, delta, covariance, step_covariances, opti
         if not len(members) or not len(retry):
             break
         kept2, poses_core, _, _ = optimise_closures(members, src, dst, delta, covariance, odom_poses, scaled,
-                                                     dataclasses.replace(options, use_gnc=False))
+                                                     dataclasses.replace(options, use_gnc=False), fixed)
         members = members[kept2]
         e_src, e_dst, e_delta, e_info, _, _ = _graph_edges(odom_poses, scaled, src, dst, delta, covariance,
-                                                           members)
+                                                           members, fixed)
         rel, rel_cov = relative_posterior(poses_core, e_src, e_dst, e_delta, e_info, src[retry], dst[retry])
         d2 = map_gate_distance(rel, rel_cov, delta[retry], covariance[retry])
         std = np.sqrt(np.linalg.eigvalsh(rel_cov[:, :2, :2])[:, -1])
@@ -386,14 +419,15 @@ _EVENT_WINDOW = 20
 _SUSPECTS = 6
 
 
-def _resolve_contradictions(reason, poses, src, dst, delta, covariance, odom_poses, scaled, scans, options):
+def _resolve_contradictions(reason, poses, src, dst, delta, covariance, odom_poses, scaled, scans, options, fixed):
     """Free-space check of the final map; reject the revisit events whose removal resolves contradictions.
 
     Each round tries removing each of the few revisit events (groups of
     accepted closures) most implicated in the contradicting pairs,
     re-optimises without it and checks again; the one that removes the
     most contradictions, if any, is rejected.  Returns (reason, poses,
-    final check, closures rejected).
+    final check, closures rejected).  A reviewer's acceptances (``fixed``)
+    are never tried for removal and stay in every re-optimisation.
     """
     fs_opts = _free_space_options(options)
     travel = odometry_travel(odom_poses)[0]
@@ -412,8 +446,8 @@ def _resolve_contradictions(reason, poses, src, dst, delta, covariance, odom_pos
         suspects = [g for g in np.argsort(-score, kind="stable")[:_SUSPECTS] if score[g] > 0]
         best = None
         for g in suspects:
-            keep = acc[groups != g]
-            kept, trial, _, _ = optimise_closures(keep, src, dst, delta, covariance, odom_poses, scaled, quick)
+            keep = np.union1d(acc[groups != g], np.flatnonzero(fixed))
+            kept, trial, _, _ = optimise_closures(keep, src, dst, delta, covariance, odom_poses, scaled, quick, fixed)
             after = check_free_space(trial, travel, scans, fs_opts)
             if after.count < check.count and (best is None or after.count < best[2].count):
                 best = (g, trial, after, keep[~kept])
@@ -428,7 +462,7 @@ def _resolve_contradictions(reason, poses, src, dst, delta, covariance, odom_pos
 
 
 def verify(closures: RegisteredClosures, chain: OdometryChain, options: VerifyOptions = VerifyOptions(),
-           scans: KeyframeScans | None = None) -> Verification:
+           review: ReviewerVerdicts | None = None, scans: KeyframeScans | None = None) -> Verification:
     """Decide which registered candidates are loop closures, and optimise the graph.
 
     Parameters
@@ -437,6 +471,9 @@ def verify(closures: RegisteredClosures, chain: OdometryChain, options: VerifyOp
         keyframes of ``chain``; deltas and covariances in the src frame).
     chain : the keyframes' odometry with the log's noise model.
     options : thresholds of the checks.
+    review : a reviewer's decisions on these candidates (module docstring);
+        their reasons become ``reviewer_accepted`` / ``reviewer_rejected``.
+        Every accepted one needs a finite delta and covariance.
     scans : the keyframes' scans (in chain order) for the free-space check
         of the final map; None skips it.
 
@@ -474,9 +511,14 @@ def verify(closures: RegisteredClosures, chain: OdometryChain, options: VerifyOp
     dup = np.ones(k, dtype=bool)
     dup[first] = False
     reject(dup, Reason.DUPLICATE)
+    fixed = np.zeros(k, dtype=bool)
+    if review is not None:
+        fixed = np.asarray(review.accept, dtype=bool)
+        reason[fixed] = Reason.ACCEPTED
+        reason[np.asarray(review.reject, dtype=bool)] = Reason.REVIEWER_REJECTED
     plausible = reason == Reason.ACCEPTED
 
-    args = (plausible, src, dst, delta, covariance, step_covariances, options)
+    args = (plausible, src, dst, delta, covariance, step_covariances, options, fixed)
     drift_options = DriftOptions(min_significance=options.drift_min_significance)
     odom_in = np.asarray(odom_poses, dtype=float)
     guess = 0.0
@@ -523,7 +565,7 @@ def verify(closures: RegisteredClosures, chain: OdometryChain, options: VerifyOp
     scaled = step_covariances * scale
 
     kept, poses, gnc_w, res = optimise_closures(members, src, dst, delta, covariance, odom_poses, scaled,
-                                                 options)
+                                                 options, fixed)
     figures["gnc_weight"][members] = gnc_w
     figures["graph_chi2"][members] = res
     final = np.full(k, "", dtype=object)
@@ -532,13 +574,14 @@ def verify(closures: RegisteredClosures, chain: OdometryChain, options: VerifyOp
     reason = np.where(reason != Reason.ACCEPTED, reason,
                       np.where(final != "", final,
                                np.where(first_pass == Reason.ACCEPTED, Reason.GRAPH_RESIDUAL, first_pass)))
+    reason[fixed] = Reason.REVIEWER_ACCEPTED
     removed = int((reason == Reason.GRAPH_RESIDUAL).sum())
     if removed:
         notes.append(f"{removed} closure(s) failed the residual test after optimisation")
     free = None
     if scans is not None and options.check_free_space:
         reason, poses, free, dropped = _resolve_contradictions(reason, poses, src, dst, delta, covariance, odom_poses,
-                                                               scaled, scans, options)
+                                                               scaled, scans, options, fixed)
         if dropped:
             notes.append(f"{dropped} closure(s) rejected because the scans of the map they made contradict each "
                          f"other (free-space check)")
@@ -550,8 +593,9 @@ def verify(closures: RegisteredClosures, chain: OdometryChain, options: VerifyOp
         notes.append(f"the maximum-clique search hit its budget of {options.clique_max_expansions} expansions; "
                      f"the consistent set of {clique.size} closures is the best found, at most "
                      f"{clique.upper_bound} is possible")
-    accepted = reason == Reason.ACCEPTED
-    return Verification(reason=np.array([str(r) for r in reason], dtype=str), accepted=accepted,
+    reason = np.array([str(r) for r in reason], dtype=str)
+    accepted = np.array([is_accepted(r) for r in reason], dtype=bool)
+    return Verification(reason=reason, accepted=accepted,
                         closure_covariance=covariance, figures=figures, poses=poses,
                         clique_exact=clique_exact, clique_size=0 if clique is None else clique.size,
                         odometry_scale=scale, odometry_poses=np.array(odom_poses, dtype=float),

@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 
 from closurecheck.errors import InputError
-from closurecheck.io.pairs_csv import OUTPUT_COLUMNS, read_pairs, write_candidates
+from closurecheck.io.pairs_csv import OUTPUT_COLUMNS, read_candidates, read_pairs, write_candidates
 
 
 def _write(tmp_path, text, name="pairs.csv"):
@@ -55,6 +55,9 @@ def test_header_only_gives_no_pairs(tmp_path):
     ("from,to,dx\n", 1, "dx,dy,dtheta"),
     ("from,to,dx,dy,dtheta\n1,2\n", 2, "row has 2 cells"),
     ("", 1, "missing header row"),
+    ("from,to,score\n1,2,0.5\n3,4,high\n", 3, 'column "score": not a number'),
+    ("from,to,score\n1,2,inf\n", 2, 'column "score": value must be finite'),
+    ("from,to,score,score\n1,2,0.5,0.5\n", 1, 'column "score" appears twice'),
 ])
 def test_errors_name_file_line_and_problem(tmp_path, text, line, needle):
     p = _write(tmp_path, text)
@@ -111,3 +114,22 @@ def test_failure_during_writing_publishes_nothing(tmp_path):
         write_candidates(out, [1, 2], [0, 0], ["accepted", "accepted"], ["ok", "ok"], np.zeros((2, 3)),
                          extra={"note": ["fine", Boom()]})
     assert list(tmp_path.iterdir()) == []
+
+
+def test_score_column_is_optional_and_empty_cells_mean_no_score(tmp_path):
+    assert read_pairs(_write(tmp_path, "from,to\n1,2\n"), 10).score is None
+    pairs = read_pairs(_write(tmp_path, "from,to,score\n1,2,0.75\n3,4,\n5,6,-2e3\n"), 10)
+    assert pairs.score[0] == 0.75 and math.isnan(pairs.score[1]) and pairs.score[2] == -2000.0
+
+
+def test_score_survives_the_output_file(tmp_path):
+    # The front-end's score is a column of candidates.csv and reads back from it, as input and as verdicts.
+    out = tmp_path / "candidates.csv"
+    write_candidates(out, [7, 9], [1, 2], ["accepted", "rejected"], ["accepted", "odometry_gate"],
+                     np.zeros((2, 3)), extra={"origin": ["external", "external"], "score": [0.125, np.nan]})
+    back = read_pairs(out, 10)
+    assert back.score[0] == 0.125 and math.isnan(back.score[1])
+    rows = read_candidates(out)
+    assert rows.frontend_score[0] == 0.125 and math.isnan(rows.frontend_score[1])
+    assert rows.origin.tolist() == ["external", "external"]
+    assert read_candidates(_write(tmp_path, ",".join(OUTPUT_COLUMNS) + "\n", "empty.csv")).frontend_score is None

@@ -2,9 +2,11 @@
 
 Fast tests build a report from a small hand-made ReportData and read it back
 with Python's standard HTML parser (html.parser, an outside reader of the
-page) and the PNG pictures with matplotlib's image reader.  The browser test
-renders a real run's report in headless Chromium, checks that every picture
-decoded and that the candidate table sorts, and saves a screenshot.
+page), the PNG pictures with matplotlib's image reader and the page's data
+with the standard base64 and json modules.  The browser tests render a real
+run's report in headless Chromium: every picture decoded, the candidate
+table sorts, the maps zoom, a click opens the overlay of two scans, and the
+decision buttons write rows; they save screenshots.
 """
 
 from __future__ import annotations
@@ -178,6 +180,7 @@ def test_report_is_self_contained(built):
     assert "http://" not in text and "https://" not in text
     assert not page.links, "no external style sheets"
     assert all("src" not in s for s in page.scripts), "no external scripts"
+    assert "import(" not in text and "fetch(" not in text and "XMLHttpRequest" not in text
     assert page.imgs
     for a in page.imgs.values():
         assert a["src"].startswith("data:image/png;base64,")
@@ -192,7 +195,9 @@ def test_pictures_are_embedded_and_match_the_files(built):
     import matplotlib.image as mpimg
 
     page, fig_dir = built["page"], built["out"] / "figures"
-    for name in ("map", "loops", "checks", "truth"):
+    # The maps are drawn by the page from its data (zoomable); their static pictures are files only.
+    assert "map" not in page.imgs and "loops" not in page.imgs
+    for name in ("checks", "truth"):
         assert name in page.imgs, f"picture {name} missing"
         png = base64.b64decode(page.imgs[name]["src"].split(",", 1)[1], validate=True)
         assert png[:8] == PNG_MAGIC
@@ -469,6 +474,93 @@ def _run_chromium(binary, profile, args, timeout=180):
                           env=dict(os.environ, LANG="C.UTF-8"))
 
 
+def _report_data(text):
+    start = text.index("<script type='application/json' id='report-data'>")
+    start = text.index(">", start) + 1
+    return json.loads(text[start:text.index("</script>", start)])
+
+
+def test_page_carries_every_scan_to_the_centimetre(built):
+    data = built["data"]
+    d = _report_data(built["text"])
+    pts = np.frombuffer(base64.b64decode(d["scans"]["points"]), "<i2").reshape(-1, 2) / 100.0
+    off = d["scans"]["offsets"]
+    assert len(off) == len(data.ids) + 1
+    for k, want in enumerate(data.scan_points):
+        got = pts[off[k]:off[k + 1]]
+        assert got.shape == want.shape
+        assert np.abs(got - want).max() <= 0.005 + 1e-12
+    assert d["ids"] == [int(i) for i in data.ids]
+    # Poses in the maps' frame: the first keyframe at the origin.
+    poses = np.frombuffer(base64.b64decode(d["poses"]), "<f4").reshape(-1, 3)
+    np.testing.assert_allclose(poses[0], 0.0, atol=1e-6)
+    np.testing.assert_allclose(np.hypot(*np.diff(poses[:, :2], axis=0).T),
+                               np.hypot(*np.diff(data.poses[:, :2], axis=0).T), rtol=1e-5)
+
+
+def test_page_carries_every_candidate_for_its_overlay(built):
+    v = built["data"].verdicts
+    c = _report_data(built["text"])["cands"]
+    ids = _report_data(built["text"])["ids"]
+    assert [ids[i] for i in c["src"]] == v.src.tolist() and [ids[i] for i in c["dst"]] == v.dst.tolist()
+    assert c["acc"] == [int(a) for a in v.accepted]
+    delta = np.frombuffer(base64.b64decode(c["delta"]), "<f4").reshape(-1, 3)
+    np.testing.assert_allclose(delta, v.delta.astype(np.float32), equal_nan=True)
+    assert c["figs"]["overlap"] == pytest.approx(v.figures["overlap"].tolist(), rel=1e-3)
+    # Every table row opens the candidate it shows.
+    rows = built["page"].tables["candidates"]["rows"]
+    for r in rows:
+        k = int(r["attrs"]["data-k"])
+        assert (int(r["cells"][0]["text"]), int(r["cells"][1]["text"])) == (int(v.src[k]), int(v.dst[k]))
+
+
+def test_close_calls_are_the_least_and_the_most_sure(built):
+    from closurecheck.verification.margins import decision_margins
+
+    data = built["data"]
+    m = decision_margins(data.verdicts.reason, data.verdicts.figures, data.thresholds)
+    acc, rej = report.close_calls(data.verdicts, m)
+    assert np.all(np.diff(m.value[acc]) >= 0) and np.all(np.diff(m.value[rej]) <= 0)
+    assert np.all(m.value[acc] >= 0) and np.all(m.value[rej] < 0)
+    text = built["text"]
+    for k in list(acc) + list(rej):
+        assert f"class='call' data-k='{int(k)}'" in text
+    # Only verdicts decided by a bound have a margin: the low-overlap one (overlap 0.1 against 0.3) does,
+    # the table shows its margin.
+    k = int(np.flatnonzero(data.verdicts.reason == "low_overlap")[0])
+    assert m.value[k] == pytest.approx((0.1 - 0.3) / 0.3)
+    assert k in rej
+
+
+def test_decisions_area_and_overlay_panel_are_on_the_page(built):
+    text = built["text"]
+    assert "id='decisions-text'" in text and "from,to,decision,note" in text
+    assert "id='overlay-panel'" in text and "id='overlay-registered'" in text and "id='overlay-odometry'" in text
+    assert "--decisions" in text
+
+
+def test_moving_things_are_named_in_the_map_caption(built):
+    words = " ".join(" ".join(built["page"].text).split())
+    assert "single and sharp" in words and "people, carts and other things that moved" in words
+
+
+def test_truth_is_drawn_in_the_maps_frame():
+    """A truth kept in a floor-plan frame turned 180 degrees and shifted lands on the maps' trajectory."""
+    import dataclasses
+
+    data = _data()
+    floor = np.array([12.0, -3.0, math.pi])
+    truth = report.se2.compose(np.broadcast_to(floor, data.poses.shape), data.poses)
+    truth, odo, optimised = report.trajectories_in_map_frame(dataclasses.replace(data, truth=truth))
+    np.testing.assert_allclose(optimised[0], 0.0, atol=1e-12)
+    np.testing.assert_allclose(truth, optimised, atol=1e-9)
+    # The odometry is rigidly aligned onto that truth: its RMS error is the ATE (closurecheck.reporting.trajectory).
+    from closurecheck.reporting.trajectory import ate_rmse
+
+    rms = np.sqrt(np.mean(np.sum((odo - truth) ** 2, axis=1)))
+    assert rms == pytest.approx(ate_rmse(data.odom, data.poses), rel=1e-9)
+
+
 @pytest.fixture(scope="module")
 def real_run(e2e_run, tmp_path_factory):
     if _chromium() is None:
@@ -503,7 +595,7 @@ def test_report_renders_in_headless_chromium(real_run):
     assert found["errors"] == []
 
     ids = {i["id"] for i in found["images"]}
-    assert {"map", "loops", "checks", "truth"} <= ids
+    assert {"checks", "truth", "nees"} <= ids
     for img in found["images"]:
         assert img["complete"] and img["natural"] > 0, f"picture {img['id']} did not decode"
         assert img["shown"] > 300, f"picture {img['id']} is drawn {img['shown']} px wide"
@@ -527,3 +619,130 @@ def test_report_renders_in_headless_chromium(real_run):
     assert pixels.shape[:2] == (3000, 1400)
     assert pixels[..., :3].std() > 0.05, "the screenshot is blank"
     print(f"screenshot: {shot}")
+
+
+# Drives the page's own controls the way a reader does (wheel, click on a closure line, the decision buttons, a
+# table row) and writes what it saw into the page for --dump-dom.
+INTERACT_SCRIPT = """
+<script>
+window.addEventListener('load', function(){
+  var out = {errors: []};
+  function inked(view){
+    var c = view.canvas, d = c.getContext('2d').getImageData(0, 0, c.width, c.height).data, n = 0;
+    for (var i = 0; i < d.length; i += 4) if (d[i] < 200 || d[i + 1] < 200 || d[i + 2] < 200) n++;
+    return n / (c.width * c.height);
+  }
+  try {
+    var cc = window.closurecheck, v = cc.views['map-optimised'], o = cc.views['map-odometry'];
+    v.draw(); o.draw();
+    out.map_inked = inked(v);
+    var s0 = v.cam.s, x0 = v.cam.x, before = v.canvas.toDataURL(), r = v.canvas.getBoundingClientRect();
+    v.canvas.dispatchEvent(new WheelEvent('wheel', {deltaY: -600, clientX: r.left + r.width * 0.7,
+                                                    clientY: r.top + r.height * 0.5, bubbles: true, cancelable: true}));
+    v.draw(); o.draw();
+    out.zoom = v.cam.s / s0;
+    out.centre_moved = v.cam.x !== x0;
+    out.pixels_changed = v.canvas.toDataURL() !== before;
+    out.linked = o.cam.s === v.cam.s;
+    var lv = cc.views['loops-verified']; lv.draw();
+    out.segments = lv.segments.length;
+    var seg = lv.segments[Math.floor(lv.segments.length / 2)], rr = lv.canvas.getBoundingClientRect();
+    var px = rr.left + (seg[1] + seg[3]) / 2, py = rr.top + (seg[2] + seg[4]) / 2;
+    var panel = document.getElementById('overlay-panel');
+    out.hidden_before = panel.hidden;
+    lv.canvas.dispatchEvent(new PointerEvent('pointerdown', {clientX: px, clientY: py, bubbles: true, pointerId: 1}));
+    lv.canvas.dispatchEvent(new PointerEvent('pointerup', {clientX: px, clientY: py, bubbles: true, pointerId: 1}));
+    out.hidden_after = panel.hidden;
+    var reg = cc.views['overlay-registered'], odo = cc.views['overlay-odometry'];
+    reg.draw(); odo.draw();
+    out.opened = reg.k;
+    out.title = panel.querySelector('.otitle').textContent;
+    out.figures = panel.querySelectorAll('.ofigs tr').length;
+    out.overlay_inked = inked(reg);
+    out.odometry_inked = inked(odo);
+    panel.querySelector('input.onote').value = 'walls, line up';
+    panel.querySelector('button[data-decision=reject]').click();
+    panel.querySelector('button[data-decision=accept]').click();
+    out.decisions = document.getElementById('decisions-text').value;
+    panel.querySelector('.oclose').click();
+    out.closed = panel.hidden;
+    var row = document.querySelector('#candidates tbody tr:nth-child(2)');
+    row.click();
+    out.row_k = +row.getAttribute('data-k');
+    out.row_opened = cc.views['overlay-registered'].k;
+    out.row_from = row.cells[0].textContent; out.row_to = row.cells[1].textContent;
+    out.row_title = panel.querySelector('.otitle').textContent;
+    out.calls = document.querySelectorAll('.call').length;
+    var call = document.querySelector('.call');
+    if (call) { var cv = cc.views['call-' + call.getAttribute('data-k')]; cv.draw(); out.call_inked = inked(cv); }
+  } catch (e) { out.errors.push(String(e) + ' ' + (e.stack || '')); }
+  var pre = document.createElement('pre');
+  pre.id = 'check-result';
+  pre.textContent = JSON.stringify(out);
+  document.body.appendChild(pre);
+});
+</script>
+"""
+
+# Opens the overlay of the first close call for the screenshot.
+SHOW_OVERLAY = """
+<script>
+window.addEventListener('load', function(){
+  var call = document.querySelector('#calls-rejected .call') || document.querySelector('.call');
+  window.closurecheck.openCandidate(+(call ? call.getAttribute('data-k') : 0));
+});
+</script>
+"""
+
+
+def _probe(binary, base, out, script, name):
+    probe = out / f"{name}.html"
+    probe.write_text((out / "report.html").read_text(encoding="utf-8").replace("</body>", script + "</body>"),
+                     encoding="utf-8")
+    res = _run_chromium(binary, base / f"profile-{name}", ["--virtual-time-budget=20000", "--dump-dom",
+                                                           probe.resolve().as_uri()])
+    assert res.returncode == 0, res.stderr[-2000:]
+    start = res.stdout.find('<pre id="check-result">')
+    assert start >= 0, "the check script did not run: " + res.stderr[-2000:]
+    return json.loads(html.unescape(res.stdout[start + len('<pre id="check-result">'):
+                                                res.stdout.index("</pre>", start)]))
+
+
+@pytest.mark.browser
+@pytest.mark.slow
+def test_maps_zoom_and_a_click_opens_the_overlay_in_headless_chromium(real_run):
+    import matplotlib.image as mpimg
+
+    base, out = real_run
+    binary = _chromium()
+    found = _probe(binary, base, out, INTERACT_SCRIPT, "interact")
+    assert found["errors"] == []
+    assert found["map_inked"] > 0.002, "the map canvas shows no scans"
+    # Zoom: the wheel scales the view about the cursor, the pixels change, the linked map follows.
+    assert found["zoom"] > 1.5 and found["centre_moved"] and found["pixels_changed"] and found["linked"]
+    # A click on a verified closure's line opens its overlay, both views drawn.
+    assert found["segments"] > 0
+    assert found["hidden_before"] is True and found["hidden_after"] is False
+    assert found["opened"] >= 0 and found["figures"] >= 3
+    assert found["overlay_inked"] > 0.001 and found["odometry_inked"] > 0.001
+    # The decision buttons write one row per pair (the later button replaces the earlier row), note quoted.
+    lines = found["decisions"].strip().splitlines()
+    assert lines[0] == "from,to,decision,note" and len(lines) == 2
+    row = next(csv.reader([lines[1]]))
+    assert row[2:] == ["accept", "walls, line up"] and found["title"].startswith(f"scans {row[0]} ")
+    assert found["closed"] is True
+    # A table row opens the candidate it shows.
+    assert found["row_opened"] == found["row_k"]
+    assert found["row_title"].startswith(f"scans {found['row_from']} (from") and found["row_to"] in found["row_title"]
+    assert found["calls"] > 0 and found["call_inked"] > 0.001
+
+    shot = base / "overlay.png"
+    probe = out / "overlay.html"
+    probe.write_text((out / "report.html").read_text(encoding="utf-8").replace("</body>", SHOW_OVERLAY + "</body>"),
+                     encoding="utf-8")
+    res = _run_chromium(binary, base / "profile-overlay", ["--virtual-time-budget=20000", f"--screenshot={shot}",
+                                                           "--window-size=1400,900", probe.resolve().as_uri()])
+    assert res.returncode == 0 and shot.exists(), res.stderr[-2000:]
+    pixels = mpimg.imread(shot)
+    assert pixels[..., :3].std() > 0.05, "the screenshot is blank"
+    print(f"overlay screenshot: {shot}")

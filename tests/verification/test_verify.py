@@ -199,3 +199,43 @@ def test_closure_floor_adds_the_unmodelled_error_in_quadrature():
     assert np.all(np.linalg.eigvalsh(out - cov) > 0)
     np.testing.assert_array_equal(closure_covariances(cov, VerifyOptions(closure_floor_m=0.0, closure_floor_rad=0.0)),
                                   cov)
+
+
+def test_reviewer_decisions_overrule_the_checks(scene):
+    # The reviewer accepts one look-alike (wrong) closure and rejects one true one.
+    from closurecheck.verification.verify import ReviewerVerdicts
+
+    closures, label = make_closures(scene, 0.5, seed=21)
+    chain = chain_of(scene["odom"], scene["step_cov"])
+    plain = verify(closures, chain)
+    wrong = int(np.flatnonzero(~label & ~plain.accepted)[0])
+    right = int(np.flatnonzero(label & plain.accepted)[0])
+    accept = np.zeros(len(label), bool)
+    reject = np.zeros(len(label), bool)
+    accept[wrong] = True
+    reject[right] = True
+    ver = verify(closures, chain, review=ReviewerVerdicts(accept=accept, reject=reject))
+    assert ver.reason[wrong] == "reviewer_accepted" and ver.accepted[wrong]
+    assert ver.reason[right] == "reviewer_rejected" and not ver.accepted[right]
+    # The forced acceptance took part in the final optimisation: the graph the checks alone built contradicts
+    # it far beyond the residual test, the graph built with it honours it.
+    s_, d_ = closures.src[wrong], closures.dst[wrong]
+    cov = ver.closure_covariance[wrong]
+
+    def residual(poses):
+        e = se2.between(se2.between(poses[s_], poses[d_]), closures.delta[wrong])
+        return float(e @ np.linalg.solve(cov, e))
+
+    threshold = chi2.ppf(0.999, 3)
+    assert residual(plain.poses) > threshold
+    assert residual(ver.poses) <= threshold
+    assert ver.figures["graph_chi2"][wrong] == pytest.approx(residual(ver.poses), rel=1e-6)
+    # The forced rejection never reached the consistency checks.
+    assert np.isnan(ver.figures["odometry_chi2"][right]) and np.isnan(ver.figures["pair_support"][right])
+    # The map gate tests against a map built with the forced closure: the wrong closure's look-alike
+    # neighbours, which the checks alone rejected, now join through it (an acceptance is a statement about
+    # the map, docs/verification.md, "Reviewer decisions").
+    others = ~(accept | reject)
+    joined_wrong = others & ~label & ver.accepted
+    assert joined_wrong.any() and not (plain.accepted & ~label).any()
+    assert np.all(ver.figures["map_chi2"][joined_wrong] <= chi2.ppf(VerifyOptions().map_probability, 3))
