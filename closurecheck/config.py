@@ -116,10 +116,17 @@ class RunConfig:
 
     jobs : worker processes for registration (0 = all cores, 1 = serial).
     batch_pairs : candidate pairs per unit of parallel work.
+    max_pairs : most candidate pairs a run registers (a pairs file and
+        proposals together); more are refused with exit status 2 before
+        any registration.  The default, 200,000, is about half an hour of
+        registration with two workers at the 100-odd pairs per second of
+        docs/performance.md ("Whole runs and parallel registration"); a
+        million pairs would take hours.
     """
 
     jobs: int = 0
     batch_pairs: int = 64
+    max_pairs: int = 200_000
     keyframes: KeyframeOptions = KeyframeOptions()
     odometry: OdometryOverrides = OdometryOverrides()
     descriptors: DescriptorOptions = DescriptorOptions()
@@ -139,3 +146,5 @@ class RunConfig:
             raise InputError(f"jobs must be >= 0 (0 = all cores), got {self.jobs}")
         if self.batch_pairs < 1:
             raise InputError(f"batch_pairs must be >= 1, got {self.batch_pairs}")
+        if self.max_pairs < 1:
+            raise InputError(f"max_pairs must be >= 1, got {self.max_pairs}")

@@ -27,11 +27,11 @@ from .frontend.candidates import (
 )
 from .frontend.keyframes import merge_keyframes, select_keyframes
 from .io.graph_file import PoseGraph
-from .io.inputs import expand_inputs, output_name
+from .io.inputs import RecordingChoice, expand_inputs, load_input, output_names
 from .io.pairs_csv import ExternalPairs
 from .io.scanlog import ScanLog
 from .registration.batch import PairResults, collect, seeds_for
-from .reporting.outputs import RunOutcome, summary, write_index, write_outputs
+from .reporting.outputs import LogRun, RunOutcome, check_run_folder, summary, write_index, write_outputs
 from .reporting.terminal import format_summary
 from .verification.verdicts import VerdictTable
 from .verification.verify import (
@@ -104,6 +104,10 @@ def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPai
     else:
         cands = st.run("candidates", propose_for, data, config.candidates)
 
+    if len(cands) > config.max_pairs:
+        raise InputError(f"{len(cands)} candidate pairs to register, more than max_pairs = {config.max_pairs} "
+                         f"(--max-pairs, docs/cli.md): that would take hours; raise the cap or split the work",
+                         log.source or None)
     regs = st.run("registration", _register_all, log, cands, config, runner, progress)
 
     odom = log.odom[keyframes]
@@ -126,9 +130,19 @@ def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPai
     notes = list(ver.notes)
     if external is not None:
         notes.append(f"candidates taken from an external pairs file ({len(external)} pairs)")
+    if len(cands) == 0:
+        notes.append(_no_candidates_note(log, external, also_propose))
     return RunOutcome(log=log, config=config, keyframes=keyframes, odom=odom, step_covariances=step_cov,
                       candidates=cands, registrations=regs, verification=ver, verdicts=verdicts, graph=graph,
                       timings=st.timings, notes=tuple(notes))
+
+
+def _no_candidates_note(log: ScanLog, external, also_propose: bool) -> str:
+    if external is not None and len(external) == 0 and not also_propose:
+        return "the pairs file holds no pairs: nothing was verified and the graph has odometry edges only"
+    travel = float(np.hypot(*np.diff(log.odom[:, :2], axis=0).T).sum()) if len(log) > 1 else 0.0
+    return (f"no loop-closure candidates: over {travel:.1f} m of odometry the log never came back near a place "
+            "it had passed (no revisits), so the graph has odometry edges only")
 
 
 def _graph(log, keyframes, odom, step_cov, ver: Verification, v: VerdictTable) -> PoseGraph:
@@ -156,22 +170,33 @@ class BatchResult:
 
     text: str
     errors: tuple
-    outcomes: tuple  # (path, RunOutcome or None, error or None)
+    outcomes: tuple  # one LogRun per input, in input order
+
+
+def open_log(path, choice: RecordingChoice | None = None) -> tuple[ScanLog, list[str]]:
+    """Read what ``closurecheck run`` and ``info`` read, refusing what they refuse.
+
+    A scan log or a recording (:func:`closurecheck.io.inputs.load_input`),
+    with its header's odometry noise model checked as a run uses it.
+    Returns (log, notes for the user).
+    """
+    log, notes = load_input(path, choice or RecordingChoice())
+    noise_from_header(log.header, path)
+    return log, notes
 
 
 def run_one(path, out_dir, config: RunConfig, *, candidates=None, choice=None, runner=None, report=True,
             progress=None, also_propose=False):
     """Load one input, run the pipeline and write its outputs. Returns (outcome, paths, info)."""
-    from .io.inputs import RecordingChoice, load_input
     from .io.pairs_csv import read_pairs
 
     if progress is not None:
         progress.stage(f"reading {path}")
-    log, load_notes = load_input(path, choice or RecordingChoice())
+    log, load_notes = open_log(path, choice)
     for note in load_notes:
         if progress is not None:
             progress.info(note)
-    external = read_pairs(candidates, len(log)) if candidates else None
+    external = read_pairs(candidates, len(log), max_pairs=config.max_pairs) if candidates else None
     outcome = run_log(log, config, external=external, runner=runner, progress=progress, also_propose=also_propose)
     if load_notes:
         outcome = dataclasses.replace(outcome, notes=tuple(load_notes) + outcome.notes)
@@ -184,7 +209,9 @@ def run_one(path, out_dir, config: RunConfig, *, candidates=None, choice=None, r
                                outcome.poses)
     if progress is not None:
         progress.stage("writing outputs")
-    paths = write_outputs(outcome, out_dir, report=report, score=score, log_path=Path(path))
+    if progress is not None and len(outcome.candidates) == 0:
+        progress.note(outcome.notes[-1])
+    paths = write_outputs(outcome, out_dir, report=report, score=score, log_path=Path(path), progress=progress)
     return outcome, paths, summary(outcome)
 
 
@@ -198,16 +225,22 @@ def run_paths(paths, out, config: RunConfig = RunConfig(), *, candidates=None, c
     from .runners.factory import make_runner
 
     files = expand_inputs(paths)
+    if str(out) == "":
+        raise InputError("--out is empty: name the output folder")
     out = Path(out)
     if out.exists() and not out.is_dir():
         raise InputError("output path exists and is not a directory", out)
     if candidates and len(files) > 1:
         raise InputError("--candidates applies to a single log; got several inputs")
+    names = output_names(files)
+    targets = [out] if len(files) == 1 else [out / name for name in names]
+    # Before any work: a folder the run could not replace fails now, not after an hour.
+    for target in targets:
+        check_run_folder(target)
     runner = make_runner(config.jobs, dask)
     texts, errors, outcomes = [], [], []
     try:
-        for path in files:
-            target = out if len(files) == 1 else out / output_name(path)
+        for path, name, target in zip(files, names, targets):
             try:
                 outcome, written, info = run_one(path, target, config, candidates=candidates, choice=choice,
                                                  runner=runner, report=report, progress=progress,
@@ -216,10 +249,10 @@ def run_paths(paths, out, config: RunConfig = RunConfig(), *, candidates=None, c
                 if len(files) == 1:
                     raise
                 errors.append(str(exc))
-                outcomes.append((path, None, str(exc)))
+                outcomes.append(LogRun(Path(path), name, None, str(exc)))
                 continue
             texts.append(format_summary(info, written))
-            outcomes.append((path, outcome, None))
+            outcomes.append(LogRun(Path(path), name, outcome, None))
     finally:
         runner.close()
     if len(files) > 1:

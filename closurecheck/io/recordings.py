@@ -26,7 +26,8 @@ from pathlib import Path
 
 import numpy as np
 
-from ..errors import InputError
+from ..errors import InputError, shorten
+from .files import is_regular_file
 from .recording_sync import clean_odometry, pair_scans, yaw_from_quaternion
 from .scanlog import ScanLog, Sensor, make_scanlog
 
@@ -198,6 +199,8 @@ def _storage_files(folder: Path) -> list[Path]:
 
 
 def _sniff(path: Path) -> str | None:
+    if not is_regular_file(path):
+        return None  # opening a named pipe or a device would block or never end
     try:
         with open(path, "rb") as fh:
             head = fh.read(16)
@@ -299,8 +302,7 @@ def _import_rosbags() -> _Rosbags:
 
 
 def _reason(exc: BaseException) -> str:
-    text = " ".join(str(exc).split()) or type(exc).__name__
-    return text if len(text) <= 200 else text[:197] + "..."
+    return shorten(str(exc) or type(exc).__name__, 200)
 
 
 @dataclass

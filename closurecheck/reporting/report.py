@@ -646,30 +646,45 @@ def _section(ident: str, title: str, body: str, klass: str = "") -> str:
     return f'<section id="{ident}"{cls}><h2>{html.escape(title)}</h2>{body}</section>'
 
 
-def build_report(out_dir, data: ReportData, *, table_limit: int = 5000) -> Path:
+def build_report(out_dir, data: ReportData, *, table_limit: int = 5000, progress=None) -> Path:
     """Draw the pictures and write ``report.html`` into ``out_dir``.
 
     Returns the report's path.  The PNGs are also written to
     ``out_dir/figures``.  At most ``table_limit`` candidates go into the
     page's table (accepted first); candidates.csv has them all.
+    ``progress`` (optional, :class:`closurecheck.reporting.terminal.Progress`)
+    is told each picture as it is drawn.
     """
     import matplotlib
 
+    # Before pyplot is imported: no window system, no GUI event loop or
+    # threads that could outlive an interrupted run.
     matplotlib.use("Agg", force=False)
     out_dir = Path(out_dir)
     fig_dir = out_dir / "figures"
     fig_dir.mkdir(parents=True, exist_ok=True)
 
+    def step(text):
+        if progress is not None:
+            progress.step(f"report: {text}")
+
     v = data.verdicts
     scale = ellipse_magnification(data)
-    pictures = [("map", figure_maps(data), "Maps: odometry only and with verified closures"),
-                ("loops", figure_loops(data, scale), "Verified closures and rejected candidates on the trajectory")]
+    step("maps")
+    pictures = [("map", figure_maps(data), "Maps: odometry only and with verified closures")]
+    step("loop closures")
+    pictures.append(("loops", figure_loops(data, scale),
+                     "Verified closures and rejected candidates on the trajectory"))
+    step("check figures")
     hist = figure_histograms(data)
     if hist is not None:
         pictures.append(("checks", hist, "Histograms of the check figures"))
+    if data.score:
+        step("ground truth")
     truth = figure_truth(data) if data.score else None
     if truth is not None:
         pictures.append(("truth", truth, "Trajectories against ground truth"))
+    step("page")
     for name, png, _ in pictures:
         write_bytes(fig_dir / f"{name}.png", png)
     pics = {name: _img(name, png, alt) for name, png, alt in pictures}
