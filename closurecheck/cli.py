@@ -58,7 +58,10 @@ def _interrupts():
         os.write(2, b"closurecheck: interrupted again; stopped at once (output folders are intact)\n")
         os._exit(EXIT_BAD_INPUT)
 
+    received = []
+
     def first(signum, frame):
+        received.append(signum)
         signal.signal(signal.SIGINT, again)
         signal.signal(signal.SIGTERM, again)
         raise _Stopped(signum)
@@ -67,8 +70,11 @@ def _interrupts():
     try:
         yield
     finally:
-        for sig, handler in old.items():
-            signal.signal(sig, handler)
+        # After a signal the process is on its way out: a further one must
+        # still take the quick exit, not Python's default traceback.
+        if not received:
+            for sig, handler in old.items():
+                signal.signal(sig, handler)
 
 
 def _path_arg(text: str) -> str:
@@ -413,6 +419,12 @@ def main(argv=None) -> int:
         what = "stopped by SIGTERM" if getattr(exc, "signum", None) == signal.SIGTERM else "interrupted"
         _print_error(f"closurecheck: {what}; unfinished outputs were discarded, output folders hold their "
                      f"previous complete run or none (docs/cli.md)")
+        if isinstance(exc, _Stopped):
+            # Cleaned up and said so: only the interpreter's exit is left, and
+            # there Python would put back the default handlers, so a further
+            # Ctrl-C would kill the process without a word.  Ignore it instead.
+            for sig in (signal.SIGINT, signal.SIGTERM):
+                signal.signal(sig, signal.SIG_IGN)
         return EXIT_BAD_INPUT
     except SystemExit as exc:  # --help and --version
         return int(exc.code or 0) if isinstance(exc.code, int) else EXIT_OK
