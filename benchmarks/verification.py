@@ -77,8 +77,8 @@ def oracle_ate(log, out, right) -> float:
     candidates can remove: stretches of the route that are never revisited.
     """
     v, ver = out.verdicts, out.verification
-    q = out.registrations.quality()
-    members = np.flatnonzero(right & np.asarray(q["valid"], bool) & np.asarray(q["converged"], bool))
+    q = out.registrations.quality
+    members = np.flatnonzero(right & q.valid & q.converged)
     index = {int(s): k for k, s in enumerate(out.keyframes)}
     src = np.array([index[int(s)] for s in v.src], dtype=np.intp)
     dst = np.array([index[int(d)] for d in v.dst], dtype=np.intp)

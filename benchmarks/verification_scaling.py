@@ -39,9 +39,10 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 from closurecheck.core import se2
-from closurecheck.core.odometry import keyframe_step_covariances, noise_from_header
+from closurecheck.core.odometry import OdometryChain, keyframe_step_covariances, noise_from_header
 from closurecheck.frontend.keyframes import select_keyframes
 from closurecheck.graph.solver import normal_matrix
+from closurecheck.registration.batch import RegisteredClosures, RegistrationQuality
 from closurecheck.simulation.simulate import simulate_log
 
 CACHE = Path("/tmp/wt_map_cache")
@@ -95,9 +96,12 @@ def closures(truth, seed: int = 7, per_keyframe: float = 2.0, true_share: float 
                                                                                                 CLOSURE_COV)
             src.append(a), dst.append(b), delta.append(z), label.append(False)
     k = len(src)
-    quality = {"valid": np.ones(k, bool), "converged": np.ones(k, bool), "overlap": np.full(k, 0.8),
-               "rmse_m": np.full(k, 0.015), "ambiguity": np.full(k, np.nan), "degenerate": np.zeros(k, bool)}
-    return (np.array(src), np.array(dst), np.array(delta), np.repeat(CLOSURE_COV[None], k, 0), quality,
+    quality = RegistrationQuality(
+        valid=np.ones(k, bool), converged=np.ones(k, bool), overlap=np.full(k, 0.8), rmse_m=np.full(k, 0.015),
+        ambiguity=np.full(k, np.nan), degenerate=np.zeros(k, bool), degeneracy=np.full(k, 0.5),
+        iterations=np.full(k, 5), fit_score=np.full(k, 0.9))
+    return (RegisteredClosures(src=np.array(src), dst=np.array(dst), delta=np.array(delta),
+                               covariance=np.repeat(CLOSURE_COV[None], k, 0), quality=quality),
             np.array(label))
 
 
@@ -169,7 +173,8 @@ def run_variant(scans: int, variant: str) -> dict:
     import closurecheck.verification.verify as verify_module
 
     truth, odom, step_cov = scene(scans)
-    src, dst, delta, cov, quality, label = closures(truth)
+    cands, label = closures(truth)
+    chain = OdometryChain.from_steps(np.arange(len(odom)), odom, step_cov)
     spent = {name: 0.0 for name in PARTS}
     calls = {name: 0 for name in PARTS}
     for name, (mod, attr) in PARTS.items():
@@ -189,9 +194,9 @@ def run_variant(scans: int, variant: str) -> dict:
     rss_before = _peak_rss_mb()
     with threadpool_limits(1):
         t0 = time.perf_counter()
-        ver = verify_module.verify(src, dst, delta, cov, quality, odom, step_cov)
+        ver = verify_module.verify(cands, chain)
         total = time.perf_counter() - t0
-    return {"scans": scans, "variant": variant, "keyframes": len(odom), "candidates": len(src),
+    return {"scans": scans, "variant": variant, "keyframes": len(odom), "candidates": len(cands),
             "accepted": int(ver.accepted.sum()), "false_accepted": int((ver.accepted & ~label).sum()),
             "total": total, "spent": spent, "calls": calls, "rss_before": rss_before, "rss_peak": _peak_rss_mb(),
             "reason": ver.reason, "poses": ver.poses}
@@ -203,7 +208,8 @@ def posterior_side_by_side(scans: int) -> dict:
     from closurecheck.verification.map_gate import relative_posterior
 
     truth, odom, step_cov = scene(scans)
-    src, dst, delta, cov, quality, _ = closures(truth)
+    cands, _ = closures(truth)
+    chain = OdometryChain.from_steps(np.arange(len(odom)), odom, step_cov)
     captured = []
     original = verify_module.relative_posterior
 
@@ -213,7 +219,7 @@ def posterior_side_by_side(scans: int) -> dict:
 
     verify_module.relative_posterior = capture
     try:
-        verify_module.verify(src, dst, delta, cov, quality, odom, step_cov)
+        verify_module.verify(cands, chain)
     except _Captured:
         pass
     finally:

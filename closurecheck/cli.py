@@ -15,7 +15,7 @@ import traceback
 from pathlib import Path
 
 from ._version import __version__
-from .errors import EXIT_BAD_INPUT, EXIT_INTERNAL, EXIT_OK, InputError, shorten
+from .errors import EXIT_BAD_INPUT, EXIT_INTERNAL, EXIT_OK, InputError, one_line
 
 # Exit status when stdout is closed early (``closurecheck info LOG | head -1``):
 # 128 + SIGPIPE, what a shell reports for a program stopped by a closed pipe.
@@ -95,26 +95,12 @@ def _pose_arg(text: str):
 
 
 def _cmd_info(args) -> int:
-    import numpy as np
-
     from .pipeline import open_log
+    from .reporting.terminal import describe_log
 
     # What `run` reads, and refused where `run` refuses it.
     log, notes = open_log(args.log, _recording_choice(args))
-    s = log.sensor
-    steps = np.hypot(*np.diff(log.odom[:, :2], axis=0).T) if len(log) > 1 else np.zeros(0)
-    fov = np.degrees(abs(s.angle_step) * (s.beams - 1))
-    valid = np.isfinite(log.ranges).mean() if log.ranges.size else 0.0
-    lines = [
-        f"{args.log}: {len(log)} scans over {log.t[-1] - log.t[0] if len(log) else 0.0:.1f} s",
-        f"  sensor: {s.beams} beams over {fov:.1f} deg, ranges {s.min_range:g}-{s.max_range:g} m,"
-        f" {100 * valid:.1f}% of beams with a return",
-        f"  odometry: {steps.sum():.1f} m travelled",
-        f"  ground truth: {'yes' if log.has_truth else 'no'}",
-    ]
-    if log.header.get("notes"):
-        lines.append(f"  notes: {shorten(log.header['notes'], 300)}")
-    lines += [f"  {line}" for note in notes for line in note.splitlines()]
+    lines = [describe_log(log, args.log)] + [f"  {line}" for note in notes for line in note.splitlines()]
     print("\n".join(lines))
     return EXIT_OK
 
@@ -137,37 +123,45 @@ def _recording_choice(args):
                            max_odom_gap_s=args.max_odom_gap)
 
 
+# The main thresholds on the command line: flag, type, metavar, then the
+# configuration table and setting it sets (None = top level), and the help.
+THRESHOLD_OPTIONS = (
+    ("--keyframe-spacing", float, "M", "keyframes", "spacing_m",
+     "odometry path length between keyframes (default 0.5 m)"),
+    ("--keyframe-turn", float, "RAD", "keyframes", "turn_rad",
+     "turn that makes a new keyframe (default 0.349 rad = 20 deg)"),
+    ("--odom-translation-noise", float, "M_PER_SQRT_M", "odometry", "translation_m_per_sqrt_m",
+     "odometry position noise per sqrt(metre) (default: log header, else 0.03)"),
+    ("--odom-heading-noise", float, "RAD_PER_SQRT_M", "odometry", "heading_rad_per_sqrt_m",
+     "odometry heading noise per sqrt(metre) (default: log header, else 0.01)"),
+    ("--odom-turn-noise", float, "RAD_PER_SQRT_RAD", "odometry", "heading_rad_per_sqrt_rad",
+     "odometry heading noise per sqrt(radian turned) (default: log header, else 0.03)"),
+    ("--max-candidates", int, "N", "candidates", "max_per_keyframe", "candidates proposed per keyframe at most"),
+    ("--min-overlap", float, "FRACTION", "verify", "min_overlap",
+     "fraction of points that must match after registration"),
+    ("--max-rmse", float, "M", "verify", "max_rmse_m", "largest point-to-line RMS residual after registration"),
+    ("--gate-probability", float, "P", "verify", "gate_probability", "chi-square probability of the odometry gate"),
+    ("--pair-probability", float, "P", "verify", "pair_probability",
+     "chi-square probability of the pairwise cycle test"),
+    ("--residual-probability", float, "P", "verify", "residual_probability",
+     "chi-square probability of the residual test after optimisation"),
+)
+
+
 def _run_config(args):
     """Defaults, then --config FILE, then the command-line options."""
-    from .config import RunConfig, merge
-    from .io.settings_file import load_toml
+    from .config import build_config
 
-    config = RunConfig()
-    if args.config:
-        config = merge(config, load_toml(args.config), path=args.config)
     updates: dict = {}
-
-    def put(section, key, value):
+    if args.jobs is not None:
+        updates["jobs"] = args.jobs
+    if args.max_pairs is not None:
+        updates["max_pairs"] = args.max_pairs
+    for flag, _, _, table, key, _ in THRESHOLD_OPTIONS:
+        value = getattr(args, flag[2:].replace("-", "_"))
         if value is not None:
-            if section is None:
-                updates[key] = value
-            else:
-                updates.setdefault(section, {})[key] = value
-
-    put(None, "jobs", args.jobs)
-    put(None, "max_pairs", args.max_pairs)
-    put("keyframes", "min_travel_m", args.keyframe_travel)
-    put("keyframes", "min_rotation_rad", args.keyframe_rotation)
-    put("odometry", "translation_m_per_sqrt_m", args.odom_translation_noise)
-    put("odometry", "heading_rad_per_sqrt_m", args.odom_heading_noise)
-    put("odometry", "heading_rad_per_sqrt_rad", args.odom_turn_noise)
-    put("candidates", "max_per_keyframe", args.max_candidates)
-    put("verify", "min_overlap", args.min_overlap)
-    put("verify", "max_rmse_m", args.max_rmse)
-    put("verify", "gate_probability", args.gate_probability)
-    put("verify", "pair_probability", args.pair_probability)
-    put("verify", "residual_probability", args.residual_probability)
-    return merge(config, updates) if updates else config
+            updates.setdefault(table, {})[key] = value
+    return build_config(args.config, updates)
 
 
 def _cmd_run(args) -> int:
@@ -200,32 +194,11 @@ def _cmd_demo(args) -> int:
 
 
 def _cmd_score(args) -> int:
-    import json
+    from .reporting.scoring import format_score, score_run, write_score
 
-    from .io.inputs import load_input
-    from .io.json_file import write_json
-    from .reporting.scoring import format_score, score_pairs, score_run_dir
-
-    run_dir = Path(args.run_dir)
-    log_path = args.log
-    if log_path is None:
-        try:
-            log_path = json.loads((run_dir / "summary.json").read_text())["log_path"]
-        except (OSError, ValueError, KeyError, TypeError, RecursionError):
-            raise InputError("cannot tell which log this run used; pass --log LOG", run_dir) from None
-        if not isinstance(log_path, str):
-            raise InputError("cannot tell which log this run used; pass --log LOG", run_dir)
-    log, _ = load_input(log_path, _recording_choice(args))
-    if args.candidates:
-        from .frontend.keyframes import select_keyframes
-        from .io.pairs_csv import read_pairs
-
-        pairs = read_pairs(args.candidates, len(log))
-        score = score_pairs(log, pairs, select_keyframes(log.odom))
-    else:
-        score = score_run_dir(run_dir, log)
+    score = score_run(args.run_dir, log_path=args.log, candidates=args.candidates, choice=_recording_choice(args))
     if args.json:
-        write_json(args.json, score)
+        write_score(args.json, score)
     if not args.quiet:
         print(format_score(score))
     return EXIT_OK
@@ -280,28 +253,8 @@ def build_parser() -> argparse.ArgumentParser:
                          help="refuse to register more than N candidate pairs (default 200000, about half an "
                               "hour with two workers)")
     t = runopts.add_argument_group("main thresholds (all settings: --config)")
-    t.add_argument("--keyframe-travel", type=float, default=None, metavar="M",
-                   help="odometry travel that makes a new keyframe (default 0.5 m)")
-    t.add_argument("--keyframe-rotation", type=float, default=None, metavar="RAD",
-                   help="turn that makes a new keyframe (default 0.349 rad = 20 deg)")
-    t.add_argument("--odom-translation-noise", type=float, default=None, metavar="M_PER_SQRT_M",
-                   help="odometry position noise per sqrt(metre) (default: log header, else 0.03)")
-    t.add_argument("--odom-heading-noise", type=float, default=None, metavar="RAD_PER_SQRT_M",
-                   help="odometry heading noise per sqrt(metre) (default: log header, else 0.01)")
-    t.add_argument("--odom-turn-noise", type=float, default=None, metavar="RAD_PER_SQRT_RAD",
-                   help="odometry heading noise per sqrt(radian turned) (default: log header, else 0.03)")
-    t.add_argument("--max-candidates", type=int, default=None, metavar="N",
-                   help="candidates proposed per keyframe at most")
-    t.add_argument("--min-overlap", type=float, default=None, metavar="FRACTION",
-                   help="fraction of points that must match after registration")
-    t.add_argument("--max-rmse", type=float, default=None, metavar="M",
-                   help="largest point-to-line RMS residual after registration")
-    t.add_argument("--gate-probability", type=float, default=None, metavar="P",
-                   help="chi-square probability of the odometry gate")
-    t.add_argument("--pair-probability", type=float, default=None, metavar="P",
-                   help="chi-square probability of the pairwise cycle test")
-    t.add_argument("--residual-probability", type=float, default=None, metavar="P",
-                   help="chi-square probability of the residual test after optimisation")
+    for flag, kind, metavar, _, _, text in THRESHOLD_OPTIONS:
+        t.add_argument(flag, type=kind, default=None, metavar=metavar, help=text)
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     sub.required = True
 
@@ -412,8 +365,8 @@ def main(argv=None) -> int:
         # environment, not a bug; output folders keep their previous content.
         if verbose:
             traceback.print_exc()
-        where = f" {shorten(exc.filename, 300)}" if getattr(exc, "filename", None) else ""
-        _print_error(f"closurecheck: error: cannot access{where}: {shorten(exc.strerror or exc, 200)}")
+        where = f" {one_line(exc.filename, 300)}" if getattr(exc, "filename", None) else ""
+        _print_error(f"closurecheck: error: cannot access{where}: {one_line(exc.strerror or exc, 200)}")
         return EXIT_BAD_INPUT
     except KeyboardInterrupt as exc:
         what = "stopped by SIGTERM" if getattr(exc, "signum", None) == signal.SIGTERM else "interrupted"
@@ -435,7 +388,7 @@ def main(argv=None) -> int:
 def _internal_error(exc: BaseException, verbose: bool) -> int:
     if verbose:
         traceback.print_exc()
-    _print_error(f"closurecheck: internal error: {type(exc).__name__}: {shorten(exc, 300)} "
+    _print_error(f"closurecheck: internal error: {type(exc).__name__}: {one_line(exc, 300)} "
                  f"(rerun with --verbose for details)")
     return EXIT_INTERNAL
 

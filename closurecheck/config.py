@@ -1,103 +1,27 @@
-"""The run's configuration: one frozen record of every stage's options, built from defaults, a TOML file and the command line.
+"""The run's configuration: one frozen record of every stage's options.
+
+Built from the defaults, a TOML file and the command line.
 
 ``--config FILE`` loads a TOML file over the defaults, command-line options
 go on top, and the effective configuration is written next to the outputs
 so that a run can be reproduced with ``--config DIR/config.toml``
-(docs/cli.md, "Settings").
+(docs/cli.md, "Settings").  Every value is checked here, when the
+configuration is built, before any scan is read.
 """
 
 from __future__ import annotations
 
-import dataclasses
-import math
-import typing
-from dataclasses import dataclass
-
+from .core.options import OptionError, options, setting, updated
 from .errors import InputError
 from .frontend.candidates import CandidateOptions
 from .frontend.descriptors import DescriptorOptions
 from .frontend.keyframes import KeyframeOptions
+from .io.settings_file import load_toml
 from .registration.icp import RegistrationOptions
 from .verification.verify import VerifyOptions
 
 
-def _field_types(cls) -> dict:
-    return typing.get_type_hints(cls)
-
-
-def _coerce(value, typ, where: str, path):
-    """Check a TOML value against a field's annotated type."""
-    origin = typing.get_origin(typ)
-    args = typing.get_args(typ)
-    if origin is typing.Union or (origin is not None and str(origin) == "<class 'types.UnionType'>"):
-        if value is None and type(None) in args:
-            return None
-        last = None
-        for a in args:
-            if a is type(None):
-                continue
-            try:
-                return _coerce(value, a, where, path)
-            except InputError as exc:
-                last = exc
-        raise last or InputError(f"{where}: unsupported value {value!r}", path)
-    if origin is typing.Literal:
-        if value not in args:
-            raise InputError(f"{where}: must be one of {', '.join(map(repr, args))}, got {value!r}", path)
-        return value
-    if origin in (tuple, list):
-        if not isinstance(value, (list, tuple)):
-            raise InputError(f"{where}: expected a list, got {value!r}", path)
-        inner = args[0] if args else float
-        return tuple(_coerce(v, inner, where, path) for v in value)
-    if typ is bool:
-        if not isinstance(value, bool):
-            raise InputError(f"{where}: expected true or false, got {value!r}", path)
-        return value
-    if typ is int:
-        if isinstance(value, bool) or not isinstance(value, int):
-            raise InputError(f"{where}: expected an integer, got {value!r}", path)
-        return value
-    if typ is float:
-        if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
-            raise InputError(f"{where}: expected a finite number, got {value!r}", path)
-        return float(value)
-    if typ is str:
-        if not isinstance(value, str):
-            raise InputError(f"{where}: expected a string, got {value!r}", path)
-        return value
-    return value
-
-
-def merge(obj, updates: dict, path=None, prefix: str = ""):
-    """Return a copy of dataclass ``obj`` with ``updates`` (nested dicts) applied.
-
-    Unknown keys and values of the wrong type raise :class:`InputError`.
-    """
-    if not isinstance(updates, dict):
-        raise InputError(f"{prefix or 'config'}: expected a table", path)
-    names = {f.name: f for f in dataclasses.fields(obj)}
-    types = _field_types(type(obj))
-    changes = {}
-    for key, value in updates.items():
-        where = f"{prefix}.{key}" if prefix else key
-        if key not in names:
-            known = ", ".join(sorted(names))
-            raise InputError(f"unknown setting '{where}' (known here: {known})", path)
-        current = getattr(obj, key)
-        if dataclasses.is_dataclass(current):
-            changes[key] = merge(current, value, path, where)
-        else:
-            changes[key] = _coerce(value, types[key], where, path)
-    try:
-        new = dataclasses.replace(obj, **changes)
-    except (TypeError, ValueError) as exc:
-        raise InputError(f"{prefix or 'config'}: {exc}", path) from None
-    return new
-
-
-
-@dataclass(frozen=True)
+@options
 class OdometryOverrides:
     """Odometry noise model settings that override the log header's.
 
@@ -105,12 +29,12 @@ class OdometryOverrides:
     built-in default when the log has none (docs/formats.md).
     """
 
-    translation_m_per_sqrt_m: float | None = None
-    heading_rad_per_sqrt_m: float | None = None
-    heading_rad_per_sqrt_rad: float | None = None
+    translation_m_per_sqrt_m: float | None = setting(None, at_least=0.0)
+    heading_rad_per_sqrt_m: float | None = setting(None, at_least=0.0)
+    heading_rad_per_sqrt_rad: float | None = setting(None, at_least=0.0)
 
 
-@dataclass(frozen=True)
+@options
 class RunConfig:
     """Every setting of a run; one TOML table per stage (docs/cli.md, "Settings").
 
@@ -124,9 +48,9 @@ class RunConfig:
         million pairs would take hours.
     """
 
-    jobs: int = 0
-    batch_pairs: int = 64
-    max_pairs: int = 200_000
+    jobs: int = setting(0, at_least=0)
+    batch_pairs: int = setting(64, at_least=1)
+    max_pairs: int = setting(200_000, at_least=1)
     keyframes: KeyframeOptions = KeyframeOptions()
     odometry: OdometryOverrides = OdometryOverrides()
     descriptors: DescriptorOptions = DescriptorOptions()
@@ -141,10 +65,38 @@ class RunConfig:
                                                             coarse_angle_step_rad=0.01)
     verify: VerifyOptions = VerifyOptions()
 
-    def __post_init__(self):
-        if self.jobs < 0:
-            raise InputError(f"jobs must be >= 0 (0 = all cores), got {self.jobs}")
-        if self.batch_pairs < 1:
-            raise InputError(f"batch_pairs must be >= 1, got {self.batch_pairs}")
-        if self.max_pairs < 1:
-            raise InputError(f"max_pairs must be >= 1, got {self.max_pairs}")
+
+def build_config(config_file=None, updates: dict | None = None) -> RunConfig:
+    """The run's configuration: defaults, then a TOML file, then ``updates`` (the command line).
+
+    Parameters
+    ----------
+    config_file : path of a TOML settings file, or None.
+    updates : nested dict ``{table: {setting: value}}`` (top-level settings
+        directly), applied after the file.
+
+    Raises InputError naming the setting (``verify.kernel``) and the file for
+    any unknown setting or bad value.
+
+    Examples
+    --------
+    >>> from closurecheck.config import build_config
+    >>> build_config(updates={"verify": {"min_overlap": 0.4}}).verify.min_overlap
+    0.4
+    >>> build_config(updates={"verify": {"kernel": "nonsense"}})
+    Traceback (most recent call last):
+    ...
+    closurecheck.errors.InputError: verify.kernel: must be one of 'l2', 'huber', 'cauchy', ...
+    """
+    config = RunConfig()
+    if config_file is not None:
+        try:
+            config = updated(config, load_toml(config_file))
+        except OptionError as exc:
+            raise InputError(str(exc), config_file) from None
+    if updates:
+        try:
+            config = updated(config, updates)
+        except OptionError as exc:
+            raise InputError(str(exc)) from None
+    return config

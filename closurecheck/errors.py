@@ -1,4 +1,4 @@
-"""The one error type for bad input, the exit codes the CLI maps to, and how values are shown in messages."""
+"""The one error type for bad input, the exit codes the CLI maps to, and how a bad value is quoted."""
 
 from __future__ import annotations
 
@@ -6,63 +6,67 @@ EXIT_OK = 0
 EXIT_INTERNAL = 1
 EXIT_BAD_INPUT = 2
 
-# Characters of one value quoted in an error message (a repr), and of a whole
-# problem text: a message stays one readable line whatever the input holds
-# (a 20 MB cell of a CSV file, a megabyte-long JSON token).
-VALUE_CHARS = 60
-PROBLEM_CHARS = 500
+# A value quoted in an error message is cut to this many characters: a
+# message stays one readable line even when the value is a 20 MB string.
+QUOTE_MAX_CHARS = 60
+# A whole problem text (an exception's message, a long list of names) is cut
+# to this many characters, whatever check produced it.
+PROBLEM_MAX_CHARS = 500
 
 
-def shorten(text, limit: int = PROBLEM_CHARS) -> str:
-    """``text`` on one line (whitespace runs become one space), cut to about ``limit`` characters.
-
-    A cut text ends with ``...`` and says how long the whole was, so the
-    reader knows the value was not shown in full.
+def shorten(value, limit: int = QUOTE_MAX_CHARS) -> str:
+    """``repr(value)`` cut to ``limit`` characters with the original length said.
 
     Examples
     --------
-    >>> shorten("two\\nlines")
+    >>> shorten("huber")
+    "'huber'"
+    >>> shorten("x" * 1000, limit=12)
+    "'xxxxxxxxxx... (1002 characters)"
+    """
+    if isinstance(value, (str, bytes)) and len(value) > 4 * limit:
+        # The repr of a huge string would copy all of it; only its head is shown.
+        text, total = repr(value[: 2 * limit]), len(repr(value[:1])) + len(value) - 1
+    else:
+        text = repr(value)
+        total = len(text)
+    if total <= limit:
+        return text
+    return f"{text[:limit - 1]}... ({total} characters)"
+
+
+def one_line(text, limit: int = PROBLEM_MAX_CHARS) -> str:
+    """Free text (an exception's message) on one line, cut to ``limit`` characters with the length said.
+
+    Whitespace runs, line breaks included, become one space.
+
+    Examples
+    --------
+    >>> one_line("two\\nlines")
     'two lines'
-    >>> shorten("x" * 1000, limit=10)
+    >>> one_line("x" * 1000, limit=10)
     'xxxxxxxxxx... (1000 characters)'
     """
     text = str(text)
     if len(text) > 4 * limit:
-        # Collapsing whitespace of a huge text costs its size; only the head is shown anyway.
-        total = len(text)
-        return " ".join(text[: 2 * limit].split())[:limit] + f"... ({total} characters)"
-    one = " ".join(text.split())
-    return one if len(one) <= limit else one[:limit] + f"... ({len(one)} characters)"
-
-
-def show(value, limit: int = VALUE_CHARS) -> str:
-    """``repr(value)`` for an error message, cut to about ``limit`` characters (see :func:`shorten`).
-
-    Examples
-    --------
-    >>> show("1.5")
-    "'1.5'"
-    >>> show("a" * 100, limit=8)
-    "'aaaaaaa... (102 characters)"
-    """
-    if isinstance(value, (str, bytes)) and len(value) > 4 * limit:
-        # repr of a huge string would copy all of it; the head is all that is shown.
-        head = shorten(repr(value[: 2 * limit]), limit)
-        return head.split("... (")[0] + f"... ({len(value) + 2} characters)"
-    return shorten(repr(value), limit)
+        # Collapsing the whitespace of a huge text costs its size; only its head is shown.
+        return " ".join(text[: 2 * limit].split())[:limit] + f"... ({len(text)} characters)"
+    flat = " ".join(text.split())
+    return flat if len(flat) <= limit else flat[:limit] + f"... ({len(flat)} characters)"
 
 
 class InputError(ValueError):
     """Bad input from a user: a file, an option or an array at the public API.
 
     The message is one line: ``path:line: problem`` when the place is known.
-    The problem text is cut to :data:`PROBLEM_CHARS` characters
-    (:func:`shorten`); values inside it should be quoted with :func:`show`.
+    The problem is cut to :data:`PROBLEM_MAX_CHARS` characters
+    (:func:`one_line`), whatever a check put into it; values inside it
+    should be quoted with :func:`shorten`.
     """
 
     def __init__(self, problem: str, path=None, line: int | None = None):
-        self.problem = shorten(problem)
-        self.path = None if path is None else shorten(path)
+        self.problem = one_line(problem)
+        self.path = None if path is None else one_line(path)
         self.line = line
         super().__init__(self._format())
 

@@ -14,8 +14,9 @@ from pathlib import Path
 
 import numpy as np
 
-from .config import OdometryOverrides, RunConfig, merge
-from .core.odometry import OdometryNoise, keyframe_step_covariances, noise_from_header
+from .config import OdometryOverrides, RunConfig
+from .core.odometry import OdometryChain, OdometryNoise, noise_from_header
+from .core.options import updated
 from .errors import InputError
 from .frontend.candidates import (
     CandidateSet,
@@ -30,13 +31,12 @@ from .io.graph_file import PoseGraph
 from .io.inputs import RecordingChoice, expand_inputs, load_input, output_names
 from .io.pairs_csv import ExternalPairs
 from .io.scanlog import ScanLog
-from .registration.batch import PairResults, collect, seeds_for
+from .registration.batch import RegisteredClosures, collect, seeds_for
 from .reporting.outputs import LogRun, RunOutcome, check_run_folder, summary, write_index, write_outputs
 from .reporting.terminal import format_summary
 from .verification.verdicts import VerdictTable
 from .verification.verify import (
     Verification,
-    closure_covariances,
     odometry_edges,
     verify,
 )
@@ -46,7 +46,7 @@ def effective_noise(log: ScanLog, overrides: OdometryOverrides) -> OdometryNoise
     """The log header's odometry model with the run's overrides applied."""
     base = noise_from_header(log.header, log.source or None)
     changes = {k: v for k, v in dataclasses.asdict(overrides).items() if v is not None}
-    return merge(base, changes) if changes else base
+    return updated(base, changes) if changes else base
 
 
 class _Stages:
@@ -65,7 +65,7 @@ class _Stages:
         return out
 
 
-def _register_all(log: ScanLog, cands: CandidateSet, config: RunConfig, runner, progress) -> PairResults:
+def _register_all(log: ScanLog, cands: CandidateSet, config: RunConfig, runner, progress) -> RegisteredClosures:
     ids = np.unique(np.concatenate([cands.src, cands.dst])) if len(cands) else np.zeros(0, np.int64)
     points = {int(i): log.points(int(i)) for i in ids}
     window = config.registration.coarse_window_rad if config.registration.coarse else 0.0
@@ -74,9 +74,8 @@ def _register_all(log: ScanLog, cands: CandidateSet, config: RunConfig, runner, 
         from .runners.serial import SerialRunner
 
         runner = SerialRunner()
-    results = runner.register(points, cands.src, cands.dst, seeds, config.registration, config.batch_pairs,
-                              progress)
-    return collect(results)
+    fits = runner.register(points, cands.src, cands.dst, seeds, config.registration, config.batch_pairs, progress)
+    return collect(cands.src, cands.dst, fits)
 
 
 def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPairs | None = None,
@@ -84,7 +83,8 @@ def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPai
     """Run the pipeline on a scan log held in memory.
 
     ``external`` replaces the proposed candidates with the pairs of a CSV
-    (docs/formats.md, "Candidate pairs"), or joins them when ``also_propose`` is set.  ``runner`` executes the registration batches
+    (docs/formats.md, "Candidate pairs"), or joins them when
+    ``also_propose`` is set.  ``runner`` executes the registration batches
     (serial, local pool or Dask; :mod:`closurecheck.runners`).
     """
     if len(log) < 2:
@@ -110,29 +110,23 @@ def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPai
                          log.source or None)
     regs = st.run("registration", _register_all, log, cands, config, runner, progress)
 
-    odom = log.odom[keyframes]
-    step_cov = keyframe_step_covariances(noise, log.odom, keyframes)
-    index = {int(s): k for k, s in enumerate(keyframes)}
-    src_idx = np.array([index[int(s)] for s in cands.src], dtype=np.intp)
-    dst_idx = np.array([index[int(d)] for d in cands.dst], dtype=np.intp)
-    closure_cov = closure_covariances(regs.covariance, config.verify)
-    ver = st.run("verification", verify, src_idx, dst_idx, regs.delta, closure_cov, regs.quality(),
-                 odom, step_cov, config.verify)
+    chain = OdometryChain.build(log.odom, keyframes, noise)
+    ver = st.run("verification", verify, regs, chain, config.verify)
 
-    figures = dict(regs.figures())
-    figures.update({k: v for k, v in ver.figures.items()})
+    figures = dict(regs.quality.figures())
+    figures.update(ver.figures)
     figures["descriptor_distance"] = cands.descriptor_distance
     figures["odometry_gap_m"] = np.hypot(cands.odometry_delta[:, 0], cands.odometry_delta[:, 1])
     verdicts = VerdictTable(src=cands.src, dst=cands.dst, origin=np.asarray(cands.source_names(), dtype=object),
                             accepted=ver.accepted, reason=ver.reason, delta=regs.delta,
-                            covariance=closure_cov, figures=figures)
-    graph = _graph(log, keyframes, odom, step_cov, ver, verdicts)
+                            covariance=ver.closure_covariance, figures=figures)
+    graph = _graph(log, chain, ver, verdicts)
     notes = list(ver.notes)
     if external is not None:
         notes.append(f"candidates taken from an external pairs file ({len(external)} pairs)")
     if len(cands) == 0:
         notes.append(_no_candidates_note(log, external, also_propose))
-    return RunOutcome(log=log, config=config, keyframes=keyframes, odom=odom, step_covariances=step_cov,
+    return RunOutcome(log=log, config=config, keyframes=keyframes, odom=chain.poses, step_covariances=chain.steps,
                       candidates=cands, registrations=regs, verification=ver, verdicts=verdicts, graph=graph,
                       timings=st.timings, notes=tuple(notes))
 
@@ -145,17 +139,18 @@ def _no_candidates_note(log: ScanLog, external, also_propose: bool) -> str:
             "it had passed (no revisits), so the graph has odometry edges only")
 
 
-def _graph(log, keyframes, odom, step_cov, ver: Verification, v: VerdictTable) -> PoseGraph:
+def _graph(log, chain: OdometryChain, ver: Verification, v: VerdictTable) -> PoseGraph:
     # The odometry edges are the ones the poses were optimised with: heading
     # drift removed and the covariance calibrated, so that a downstream
     # solver reaches the same optimum.  Nodes keep the input odometry.
-    used = odom if ver.odometry_poses is None else ver.odometry_poses
-    o_src, o_dst, o_delta, o_info = odometry_edges(used, step_cov * ver.odometry_scale)
+    used = chain.poses if ver.odometry_poses is None else ver.odometry_poses
+    o_src, o_dst, o_delta, o_info = odometry_edges(used, chain.steps * ver.odometry_scale)
     acc = np.flatnonzero(v.accepted)
     l_info = np.linalg.inv(v.covariance[acc]) if len(acc) else np.zeros((0, 3, 3))
     checks = tuple({} for _ in o_src) + tuple(v.checks(int(k)) for k in acc)
+    keyframes = chain.ids
     return PoseGraph(
-        ids=np.asarray(keyframes, dtype=np.int64), t=log.t[keyframes], poses=ver.poses, odom=odom,
+        ids=keyframes, t=log.t[keyframes], poses=ver.poses, odom=chain.poses,
         src=np.concatenate([keyframes[o_src], v.src[acc]]).astype(np.int64),
         dst=np.concatenate([keyframes[o_dst], v.dst[acc]]).astype(np.int64),
         kind=np.array(["odometry"] * len(o_src) + ["loop"] * len(acc), dtype=object),
@@ -185,6 +180,22 @@ def open_log(path, choice: RecordingChoice | None = None) -> tuple[ScanLog, list
     return log, notes
 
 
+def _write(outcome, log: ScanLog, out_dir, *, report: bool, progress, log_path: Path | None):
+    """Score against the log's truth when it has some, then write the run's outputs."""
+    score = None
+    if log.has_truth:
+        from .reporting.scoring import score_closures
+
+        v = outcome.verdicts
+        score = score_closures(log, outcome.keyframes, v.src, v.dst, v.accepted, v.delta, v.covariance,
+                               outcome.poses)
+    if progress is not None:
+        progress.stage("writing outputs")
+        if len(outcome.candidates) == 0:
+            progress.note(outcome.notes[-1])
+    return write_outputs(outcome, out_dir, report=report, score=score, log_path=log_path, progress=progress)
+
+
 def run_one(path, out_dir, config: RunConfig, *, candidates=None, choice=None, runner=None, report=True,
             progress=None, also_propose=False):
     """Load one input, run the pipeline and write its outputs. Returns (outcome, paths, info)."""
@@ -200,19 +211,60 @@ def run_one(path, out_dir, config: RunConfig, *, candidates=None, choice=None, r
     outcome = run_log(log, config, external=external, runner=runner, progress=progress, also_propose=also_propose)
     if load_notes:
         outcome = dataclasses.replace(outcome, notes=tuple(load_notes) + outcome.notes)
-    score = None
-    if log.has_truth:
-        from .reporting.scoring import score_closures
-
-        score = score_closures(log, outcome.keyframes, outcome.verdicts.src, outcome.verdicts.dst,
-                               outcome.verdicts.accepted, outcome.verdicts.delta, outcome.verdicts.covariance,
-                               outcome.poses)
-    if progress is not None:
-        progress.stage("writing outputs")
-    if progress is not None and len(outcome.candidates) == 0:
-        progress.note(outcome.notes[-1])
-    paths = write_outputs(outcome, out_dir, report=report, score=score, log_path=Path(path), progress=progress)
+    paths = _write(outcome, log, out_dir, report=report, progress=progress, log_path=Path(path))
     return outcome, paths, summary(outcome)
+
+
+def run(log, out=None, *, config: RunConfig | None = None, candidates=None, jobs: int | None = None,
+        report: bool = True) -> RunOutcome:
+    """The whole job from Python: what ``closurecheck run LOG --out DIR`` does.
+
+    Parameters
+    ----------
+    log : a :class:`~closurecheck.io.scanlog.ScanLog`, or the path of a scan
+        log or robot recording.
+    out : folder for graph.json, candidates.csv, config.toml, summary.json
+        and report.html (docs/formats.md); None writes nothing.
+    config : the settings (:class:`~closurecheck.config.RunConfig`, e.g.
+        from :func:`~closurecheck.config.build_config`); None for defaults.
+    candidates : path of a pairs CSV to verify instead of proposing.
+    jobs : worker processes for registration (overrides ``config.jobs``;
+        0 = all cores, 1 = this process).
+    report : also write report.html (when ``out`` is given).
+
+    Returns
+    -------
+    RunOutcome : the keyframes, candidates, registrations, verdicts
+    (``outcome.verdicts``), optimised keyframe poses (``outcome.poses``, odometry
+    frame) and the pose graph written to graph.json (``outcome.graph``).
+
+    Examples
+    --------
+    >>> import closurecheck
+    >>> log = closurecheck.simulate_log("ring", seed=4, scans=60)
+    >>> outcome = closurecheck.run(log, jobs=1)
+    >>> len(outcome.verdicts) == len(outcome.candidates), outcome.poses.shape[1]
+    (True, 3)
+    """
+    from .io.pairs_csv import read_pairs
+    from .runners.factory import make_runner
+
+    config = config or RunConfig()
+    if jobs is not None:
+        config = updated(config, {"jobs": jobs})
+    log_path = None
+    if not isinstance(log, ScanLog):
+        log_path = Path(log)
+        log, _ = open_log(log_path)
+    external = read_pairs(candidates, len(log), max_pairs=config.max_pairs) if candidates else None
+    runner = make_runner(config.jobs)
+    try:
+        outcome = run_log(log, config, external=external, runner=runner)
+    finally:
+        runner.close()
+    if out is not None:
+        _write(outcome, log, out, report=report, progress=None, log_path=log_path)
+    return outcome
 
 
 def run_paths(paths, out, config: RunConfig = RunConfig(), *, candidates=None, choice=None, dask=None,
@@ -231,7 +283,7 @@ def run_paths(paths, out, config: RunConfig = RunConfig(), *, candidates=None, c
     if out.exists() and not out.is_dir():
         raise InputError("output path exists and is not a directory", out)
     if candidates and len(files) > 1:
-        raise InputError("--candidates applies to a single log; got several inputs")
+        raise InputError("a candidates file applies to a single log; got several inputs")
     names = output_names(files)
     targets = [out] if len(files) == 1 else [out / name for name in names]
     # Before any work: a folder the run could not replace fails now, not after an hour.

@@ -1,50 +1,82 @@
-"""TOML configuration: merge rules, errors and the round trip of the effective config."""
+"""The run's configuration: TOML round trip, and every options table refusing a bad value before any scan is read."""
 
 import dataclasses
 
 import pytest
 
-from closurecheck.config import merge
+from closurecheck import cli
+from closurecheck.config import RunConfig, build_config
+from closurecheck.core.options import is_options
 from closurecheck.errors import InputError
 from closurecheck.io.settings_file import load_toml, to_toml
 
 
-@dataclasses.dataclass(frozen=True)
-class Inner:
-    max_correspondence_m: float = 0.5
-    iterations: int = 30
-    kernel: str = "cauchy"
-    enabled: bool = True
-    window_m: tuple[float, ...] = (1.0, 2.0)
-    budget_s: float | None = None
-
-
-@dataclasses.dataclass(frozen=True)
-class Outer:
-    seed: int = 0
-    inner: Inner = Inner()
-
-
 def test_round_trip_through_toml(tmp_path):
-    cfg = merge(Outer(), {"seed": 3, "inner": {"max_correspondence_m": 0.25, "kernel": "huber",
-                                               "window_m": [0.5], "budget_s": 2}})
+    cfg = build_config(updates={"jobs": 3, "verify": {"min_overlap": 0.25, "kernel": "huber"},
+                                "odometry": {"translation_m_per_sqrt_m": 2}})
     path = tmp_path / "c.toml"
     path.write_text(to_toml(cfg, header="effective configuration"))
-    again = merge(Outer(), load_toml(path))
+    again = build_config(path)
     assert again == cfg
-    assert again.inner.budget_s == 2.0 and isinstance(again.inner.budget_s, float)
+    assert again.odometry.translation_m_per_sqrt_m == 2.0
+    assert isinstance(again.odometry.translation_m_per_sqrt_m, float)
 
 
-@pytest.mark.parametrize("updates,words", [
-    ({"nope": 1}, "unknown setting 'nope'"),
-    ({"inner": {"iterations": 2.5}}, "inner.iterations: expected an integer"),
-    ({"inner": {"enabled": 1}}, "true or false"),
-    ({"inner": {"max_correspondence_m": "far"}}, "finite number"),
-    ({"inner": 3}, "expected a table"),
-])
-def test_bad_settings_are_one_line_input_errors(updates, words):
-    with pytest.raises(InputError, match=words):
-        merge(Outer(), updates, path="run.toml")
+def test_every_table_of_the_configuration_is_an_options_record():
+    tables = [f.name for f in dataclasses.fields(RunConfig) if is_options(getattr(RunConfig(), f.name))]
+    assert set(tables) == {"keyframes", "odometry", "descriptors", "candidates", "registration", "verify"}
+
+
+# One bad value per table (and the top level): each is refused when the
+# configuration is built, naming the setting and the file.
+BAD = [
+    ("jobs = -1", "jobs: must be >= 0"),
+    ("batch_pairs = 0", "batch_pairs: must be >= 1"),
+    ("[keyframes]\nspacing_m = 0.0", "keyframes.spacing_m: must be > 0"),
+    ("[odometry]\nheading_rad_per_sqrt_m = -0.1", "odometry.heading_rad_per_sqrt_m: must be >= 0"),
+    ("[descriptors]\nrings = 0", "descriptors.rings: must be >= 1"),
+    ("[candidates]\ntree = \"forest\"", "candidates.tree: must be one of 'kd_tree', 'ball_tree'"),
+    ("[registration]\nkernel = \"nonsense\"", "registration.kernel: must be one of"),
+    ("[verify]\nkernel = \"nonsense\"", "verify.kernel: must be one of"),
+    ("[verify]\nmap_rounds = -1", "verify.map_rounds: must be >= 0"),
+    ("[verify]\nmin_overlap = 7", "verify.min_overlap: must be <= 1"),
+    ("[verify]\nmin_overlap = -1.0", "verify.min_overlap: must be >= 0"),
+    ("[verify]\nmap_probability = -2.0", "verify.map_probability: must be > 0"),
+    ("[verify]\ngate_probability = 1.5", "verify.gate_probability: must be < 1"),
+    ("[verify]\nuse_gnc = 1", "verify.use_gnc: must be true or false"),
+    ("[verify]\nclique_max_expansions = 2.5", "verify.clique_max_expansions: must be an integer"),
+    ("[verify]\nnope = 1", "verify.nope: unknown setting"),
+    ("[registration]\nmin_line_points = 40", "min_line_points: must not exceed line_neighbours"),
+    ("verify = 3", "verify: must be a table"),
+]
+
+
+@pytest.mark.parametrize("text,words", BAD, ids=[b[1].split(":")[0] for b in BAD])
+def test_a_bad_setting_fails_before_any_scan_is_read(tmp_path, capsys, text, words):
+    cfg = tmp_path / "bad.toml"
+    cfg.write_text(text + "\n")
+    # The log does not exist: a check made after reading would complain about it instead.
+    code = cli.main(["run", str(tmp_path / "missing.jsonl"), "--out", str(tmp_path / "out"), "--config", str(cfg),
+                     "-q"])
+    err = capsys.readouterr().err.strip()
+    assert code == 2
+    assert err.count("\n") == 0
+    assert words in err and "bad.toml" in err and "missing.jsonl" not in err
+    assert not (tmp_path / "out").exists()
+
+
+def test_a_huge_bad_value_is_quoted_short(tmp_path):
+    cfg = tmp_path / "big.toml"
+    cfg.write_text('[verify]\nkernel = "' + "k" * 2_000_000 + '"\n')
+    with pytest.raises(InputError) as err:
+        build_config(cfg)
+    assert len(str(err.value)) < 400 and "characters" in str(err.value)
+
+
+def test_command_line_values_are_checked_like_the_file(tmp_path, capsys):
+    code = cli.main(["run", str(tmp_path / "missing.jsonl"), "--out", str(tmp_path / "o"), "--min-overlap", "7"])
+    assert code == 2
+    assert "verify.min_overlap: must be <= 1" in capsys.readouterr().err
 
 
 def test_toml_syntax_error_names_the_file(tmp_path):

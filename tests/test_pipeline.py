@@ -14,9 +14,8 @@ import numpy as np
 import pytest
 
 from closurecheck import cli
-from closurecheck.config import RunConfig, merge
+from closurecheck.config import RunConfig, build_config
 from closurecheck.io.graph_file import read_graph
-from closurecheck.io.settings_file import load_toml
 
 
 @pytest.fixture(scope="module")
@@ -74,7 +73,7 @@ def test_candidates_csv_lists_every_verdict(run):
 
 
 def test_effective_config_is_recorded_and_loads(run):
-    cfg = merge(RunConfig(), load_toml(run["out"] / "config.toml"))
+    cfg = build_config(run["out"] / "config.toml")
     assert cfg == RunConfig()
 
 

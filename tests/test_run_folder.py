@@ -38,7 +38,7 @@ def small(tmp_path_factory):
     for runs through the command line that fail while writing.
     """
     base = tmp_path_factory.mktemp("folder")
-    log = simulate_log("ring", seed=4, scans=300)
+    log = simulate_log("ring", seed=4, scans=150)
     path = base / "small.jsonl.gz"
     write_scanlog(path, log)
     tiny = base / "tiny.jsonl.gz"

@@ -1,1 +1,5 @@
-"""Mathematics every stage shares: SE(2) algebra, robust kernels, the odometry model, chi-square gates, option checking."""
+"""Mathematics every stage shares.
+
+SE(2) algebra, robust kernels, the odometry model, chi-square bounds, and
+the options toolbox.
+"""

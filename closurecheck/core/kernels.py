@@ -36,6 +36,8 @@ _ALIASES = {
     "charbonnier": "pseudo_huber",
     "gm": "geman_mcclure",
 }
+# Every name kernel_from_name accepts (options declare these as their choices).
+KERNEL_CHOICES = KERNEL_NAMES + tuple(_ALIASES)
 
 
 def barron_rho(x, alpha: float, c: float):

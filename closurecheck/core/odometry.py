@@ -9,10 +9,10 @@ distance driven and the angle turned, independently from step to step.
 with ``a = translation_m_per_sqrt_m``, ``b = heading_rad_per_sqrt_m`` and
 ``c = heading_rad_per_sqrt_rad``.  "distance" is the odometry path length of
 the step and "|rotation|" its accumulated absolute heading change (see
-:func:`closurecheck.frontend.keyframes.odometry_travel`), so a step that wiggles costs
+:func:`odometry_travel`), so a step that wiggles costs
 more than its net motion suggests.
 
-A scan log may carry the model in its header (contract section 1 allows
+A scan log may carry the model in its header (docs/formats.md, "Scan log", allows
 tool-defined optional keys)::
 
     "odometry_noise": {"translation_m_per_sqrt_m": 0.03,
@@ -35,15 +35,15 @@ from dataclasses import dataclass, fields
 
 import numpy as np
 
-from ..errors import InputError, show
-from ..frontend.keyframes import odometry_travel
+from ..errors import InputError, shorten
 from . import se2
+from .options import options, setting
 
 HEADER_KEY = "odometry_noise"
 _MODEL_KEYS = ("translation_m_per_sqrt_m", "heading_rad_per_sqrt_m", "heading_rad_per_sqrt_rad")
 
 
-@dataclass(frozen=True)
+@options
 class OdometryNoise:
     """Random-walk odometry noise model (see the module docstring).
 
@@ -58,17 +58,11 @@ class OdometryNoise:
     invertible covariance.
     """
 
-    translation_m_per_sqrt_m: float = 0.03
-    heading_rad_per_sqrt_m: float = 0.01
-    heading_rad_per_sqrt_rad: float = 0.03
-    min_translation_std_m: float = 1e-3
-    min_heading_std_rad: float = 1e-4
-
-    def __post_init__(self):
-        for f in fields(self):
-            v = getattr(self, f.name)
-            if not _finite_number(v) or v < 0:
-                raise InputError(f"odometry noise {f.name} must be a finite number >= 0, got {show(v)}")
+    translation_m_per_sqrt_m: float = setting(0.03, at_least=0.0)
+    heading_rad_per_sqrt_m: float = setting(0.01, at_least=0.0)
+    heading_rad_per_sqrt_rad: float = setting(0.03, at_least=0.0)
+    min_translation_std_m: float = setting(1e-3, at_least=0.0)
+    min_heading_std_rad: float = setting(1e-4, at_least=0.0)
 
     def to_header(self) -> dict:
         """The model as the ``odometry_noise`` header object."""
@@ -129,9 +123,33 @@ def noise_from_header(header: dict | None, path=None) -> OdometryNoise:
                          f'(expected {", ".join(_MODEL_KEYS)})', path, 1)
     for key, value in raw.items():
         if not _finite_number(value) or value < 0:
-            raise InputError(f'header: "{HEADER_KEY}" "{key}" must be a finite number >= 0, got {show(value)}',
+            raise InputError(f'header: "{HEADER_KEY}" "{key}" must be a finite number >= 0, got {shorten(value)}',
                              path, 1)
     return OdometryNoise(**{k: float(v) for k, v in raw.items()})
+
+
+def odometry_travel(odom) -> tuple[np.ndarray, np.ndarray]:
+    """Cumulative odometry path length and accumulated absolute rotation.
+
+    Parameters
+    ----------
+    odom : (N, 3) odometry poses ``[x, y, theta]`` in the odometry frame.
+
+    Returns
+    -------
+    travel_m : (N,) path length in metres from scan 0 to each scan.
+    rotation_rad : (N,) sum of absolute wrapped heading steps (radians)
+        from scan 0 to each scan.
+    """
+    odom = np.asarray(odom, dtype=float).reshape(-1, 3)
+    travel = np.zeros(len(odom))
+    rotation = np.zeros(len(odom))
+    if len(odom) > 1:
+        step = np.hypot(np.diff(odom[:, 0]), np.diff(odom[:, 1]))
+        turn = np.abs(se2.wrap(np.diff(odom[:, 2])))
+        travel[1:] = np.cumsum(step)
+        rotation[1:] = np.cumsum(turn)
+    return travel, rotation
 
 
 def keyframe_step_covariances(noise: OdometryNoise, odom, keyframes) -> np.ndarray:
@@ -156,34 +174,34 @@ def keyframe_step_covariances(noise: OdometryNoise, odom, keyframes) -> np.ndarr
     return noise.step_covariance(np.diff(travel[keyframes]), np.diff(rotation[keyframes]))
 
 
-def _inverse_jacobian(delta) -> np.ndarray:
-    """Parameter Jacobian (..., 3, 3) of ``se2.inverse`` at ``delta``."""
-    x, y, t = delta[..., 0], delta[..., 1], delta[..., 2]
-    c, s = np.cos(t), np.sin(t)
-    j = np.zeros(delta.shape[:-1] + (3, 3))
-    j[..., 0, 0] = -c
-    j[..., 0, 1] = -s
-    j[..., 0, 2] = s * x - c * y
-    j[..., 1, 0] = s
-    j[..., 1, 1] = -c
-    j[..., 1, 2] = c * x + s * y
-    j[..., 2, 2] = -1.0
-    return j
-
-
 @dataclass(frozen=True, eq=False)
 class OdometryChain:
-    """Odometry of the keyframes with the prefix sums of its uncertainty.
+    """The keyframes' odometry with its noise model: the one odometry record every stage uses.
 
     Attributes
     ----------
     ids : (K,) increasing keyframe scan ids.
     poses : (K, 3) odometry poses of the keyframes (odometry frame).
-    prefix : (K, 3, 3) :func:`closurecheck.core.se2.chain_prefix` of the chain.
+    steps : (K - 1, 3, 3) covariance of each keyframe-to-keyframe step, in
+        the step's start frame on ``[x, y, theta]``
+        (:func:`keyframe_step_covariances`).
+    prefix : (K, 3, 3) :func:`closurecheck.core.se2.chain_prefix` of the
+        chain: any sub-chain's covariance in O(1).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from closurecheck.core.odometry import OdometryChain, OdometryNoise
+    >>> odom = np.column_stack([np.arange(5.0), np.zeros(5), np.zeros(5)])  # 1 m steps along x
+    >>> chain = OdometryChain.build(odom, [0, 2, 4], OdometryNoise(translation_m_per_sqrt_m=0.1))
+    >>> delta, cov = chain.relative([0], [4])
+    >>> delta.round(6).tolist(), round(float(cov[0, 0, 0]), 6)
+    ([[4.0, 0.0, 0.0]], 0.04)
     """
 
     ids: np.ndarray
     poses: np.ndarray
+    steps: np.ndarray
     prefix: np.ndarray
 
     @classmethod
@@ -191,9 +209,14 @@ class OdometryChain:
         """Chain over ``keyframes`` (scan ids) of a log with odometry ``odom`` (N, 3)."""
         keyframes = np.asarray(keyframes, dtype=np.int64)
         odom = np.asarray(odom, dtype=float)
-        poses = odom[keyframes]
-        steps = keyframe_step_covariances(noise, odom, keyframes)
-        return cls(keyframes, poses, se2.chain_prefix(poses, steps))
+        return cls.from_steps(keyframes, odom[keyframes], keyframe_step_covariances(noise, odom, keyframes))
+
+    @classmethod
+    def from_steps(cls, ids, poses, steps) -> "OdometryChain":
+        """Chain of keyframe ``poses`` (K, 3) with step covariances ``steps`` (K - 1, 3, 3)."""
+        poses = np.asarray(poses, dtype=float)
+        steps = np.asarray(steps, dtype=float)
+        return cls(np.asarray(ids, dtype=np.int64), poses, steps, se2.chain_prefix(poses, steps))
 
     def __len__(self) -> int:
         return len(self.ids)
@@ -211,40 +234,9 @@ class OdometryChain:
     def forward(self, lo, hi) -> tuple[np.ndarray, np.ndarray]:
         """Delta ``x_lo^-1 ∘ x_hi`` and covariance for positions ``lo <= hi`` (1-D arrays).
 
-        The same quantity as :func:`closurecheck.core.se2.chain_relative`, written
-        out element by element: the covariance is ``M (S[hi] - S[lo]) M^T``
-        with ``M = blockdiag(R(dtheta), 1) Ad(x_hi^-1)``, which simplifies to
-        ``[[R(theta_lo)^T, w], [0, 0, 1]]`` with ``w = R(dtheta) (y', -x')``
-        and ``(x', y')`` the position of ``x_hi^-1``.  Written this way it
-        avoids stacks of 3x3 matrix products, about 3x faster on 10^6 pairs,
-        which is what the proximity gate evaluates.
+        :func:`closurecheck.core.se2.chain_relative_unrolled` on this chain.
         """
-        lo = np.asarray(lo, dtype=np.int64).reshape(-1)
-        hi = np.asarray(hi, dtype=np.int64).reshape(-1)
-        p = self.poses
-        xi, yi, ti = p[lo, 0], p[lo, 1], p[lo, 2]
-        xj, yj, tj = p[hi, 0], p[hi, 1], p[hi, 2]
-        ci, si = np.cos(ti), np.sin(ti)
-        cj, sj = np.cos(tj), np.sin(tj)
-        dx, dy = xj - xi, yj - yi
-        dt = tj - ti
-        delta = np.stack([ci * dx + si * dy, -si * dx + ci * dy, se2.wrap(dt)], axis=-1)
-        px, py = -cj * xj - sj * yj, sj * xj - cj * yj
-        cd, sd = np.cos(dt), np.sin(dt)
-        w0, w1 = cd * py + sd * px, sd * py - cd * px
-        s = self.prefix[hi] - self.prefix[lo]
-        a, b, c, d, e, f = s[:, 0, 0], s[:, 0, 1], s[:, 0, 2], s[:, 1, 1], s[:, 1, 2], s[:, 2, 2]
-        # Rows of M: r0 = (ci, si, w0), r1 = (-si, ci, w1), r2 = (0, 0, 1).
-        s_r0 = (a * ci + b * si + c * w0, b * ci + d * si + e * w0, c * ci + e * si + f * w0)
-        s_r1 = (-a * si + b * ci + c * w1, -b * si + d * ci + e * w1, -c * si + e * ci + f * w1)
-        cov = np.empty(s.shape)
-        cov[:, 0, 0] = ci * s_r0[0] + si * s_r0[1] + w0 * s_r0[2]
-        cov[:, 0, 1] = cov[:, 1, 0] = -si * s_r0[0] + ci * s_r0[1] + w1 * s_r0[2]
-        cov[:, 1, 1] = -si * s_r1[0] + ci * s_r1[1] + w1 * s_r1[2]
-        cov[:, 0, 2] = cov[:, 2, 0] = s_r0[2]
-        cov[:, 1, 2] = cov[:, 2, 1] = s_r1[2]
-        cov[:, 2, 2] = f
-        return delta, cov
+        return se2.chain_relative_unrolled(self.poses, self.prefix, lo, hi)
 
     def relative_by_index(self, a, b) -> tuple[np.ndarray, np.ndarray]:
         """Odometry delta ``x_a^-1 ∘ x_b`` and covariance for keyframe positions a, b.
@@ -262,7 +254,7 @@ class OdometryChain:
         if np.any(flip):
             # Going backwards along the chain is the inverse relative pose;
             # its covariance follows by the inverse's Jacobian.
-            j = _inverse_jacobian(delta)
+            j = se2.inverse_jacobian(delta)
             inv_cov = j @ cov @ np.swapaxes(j, -1, -2)
             delta = np.where(flip[..., None], se2.inverse(delta), delta)
             cov = np.where(flip[..., None, None], 0.5 * (inv_cov + np.swapaxes(inv_cov, -1, -2)), cov)

@@ -224,6 +224,26 @@ def compose_jacobians(a, b):
     return ja, jb
 
 
+def inverse_jacobian(p):
+    """Parameter Jacobian (..., 3, 3) of :func:`inverse` at poses ``p``, written out.
+
+    Equal to the first Jacobian of ``between(p, identity)``
+    (tests/core/test_se2.py ties the two together); used wherever a relative
+    pose is turned around together with its covariance.
+    """
+    x, y, t = _split(p)
+    c, s = np.cos(t), np.sin(t)
+    j = np.zeros(np.shape(x) + (3, 3))
+    j[..., 0, 0] = -c
+    j[..., 0, 1] = -s
+    j[..., 0, 2] = s * x - c * y
+    j[..., 1, 0] = s
+    j[..., 1, 1] = -c
+    j[..., 1, 2] = c * x + s * y
+    j[..., 2, 2] = -1.0
+    return j
+
+
 def between_jacobians(a, b):
     """Parameter Jacobians of ``d = between(a, b)``: (J_a, J_b), each (..., 3, 3).
 
@@ -245,17 +265,6 @@ def between_jacobians(a, b):
     ja[..., 0, 2] = -s * dx + c * dy
     ja[..., 1, 2] = -c * dx - s * dy
     return ja, jb
-
-
-def propagate_compose(cov_a, cov_b, a, b):
-    """First-order covariance of ``compose(a, b)`` for independent a and b.
-
-    ``cov_a`` is the covariance of a's ``[x, y, theta]`` in a's parent frame,
-    ``cov_b`` the covariance of the relative pose b in a's frame.  Returns the
-    (..., 3, 3) covariance of the composition in a's parent frame.
-    """
-    ja, jb = compose_jacobians(a, b)
-    return ja @ cov_a @ np.swapaxes(ja, -1, -2) + jb @ cov_b @ np.swapaxes(jb, -1, -2)
 
 
 def chain(deltas, covariances=None):
@@ -323,7 +332,7 @@ def mahalanobis_sq(error, covariance):
     return np.einsum("...i,...i->...", e, sol)
 
 
-def _frame_rotation(theta):
+def frame_rotation(theta):
     """blockdiag(R(theta), 1): maps a right-tangent perturbation to [x, y, theta]."""
     theta = np.asarray(theta, dtype=float)
     m = np.zeros(theta.shape + (3, 3))
@@ -359,7 +368,7 @@ def chain_prefix(poses, step_covariances):
     steps = between(poses[:-1], poses[1:])
     # Additive noise on a step's [x, y, theta] is the right-tangent noise
     # rotated by the step's own heading.
-    b = _frame_rotation(steps[:, 2])
+    b = frame_rotation(steps[:, 2])
     q = np.swapaxes(b, -1, -2) @ step_covariances @ b
     ad = adjoint(poses[1:])
     terms = ad @ q @ np.swapaxes(ad, -1, -2)
@@ -382,6 +391,45 @@ def chain_relative(poses, prefix, i, j):
     delta = between(poses[i], poses[j])
     ad_inv = adjoint(inverse(poses[j]))
     c = ad_inv @ (prefix[j] - prefix[i]) @ np.swapaxes(ad_inv, -1, -2)
-    b = _frame_rotation(delta[..., 2])
+    b = frame_rotation(delta[..., 2])
     cov = b @ c @ np.swapaxes(b, -1, -2)
     return delta, 0.5 * (cov + np.swapaxes(cov, -1, -2))
+
+
+def chain_relative_unrolled(poses, prefix, lo, hi):
+    """:func:`chain_relative` for 1-D index arrays ``lo <= hi``, written out element by element.
+
+    The covariance is ``M (S[hi] - S[lo]) M^T`` with
+    ``M = blockdiag(R(dtheta), 1) Ad(x_hi^-1)``, which simplifies to
+    ``[[R(theta_lo)^T, w], [0, 0, 1]]`` with ``w = R(dtheta) (y', -x')`` and
+    ``(x', y')`` the position of ``x_hi^-1``.  Written this way it avoids
+    stacks of 3x3 matrix products, about 3x faster on 10^6 pairs (what the
+    candidates' proximity gate evaluates); tests/core/test_se2.py ties it to
+    :func:`chain_relative`.
+    """
+    lo = np.asarray(lo, dtype=np.int64).reshape(-1)
+    hi = np.asarray(hi, dtype=np.int64).reshape(-1)
+    p = np.asarray(poses, dtype=float)
+    xi, yi, ti = p[lo, 0], p[lo, 1], p[lo, 2]
+    xj, yj, tj = p[hi, 0], p[hi, 1], p[hi, 2]
+    ci, si = np.cos(ti), np.sin(ti)
+    cj, sj = np.cos(tj), np.sin(tj)
+    dx, dy = xj - xi, yj - yi
+    dt = tj - ti
+    delta = np.stack([ci * dx + si * dy, -si * dx + ci * dy, wrap(dt)], axis=-1)
+    px, py = -cj * xj - sj * yj, sj * xj - cj * yj
+    cd, sd = np.cos(dt), np.sin(dt)
+    w0, w1 = cd * py + sd * px, sd * py - cd * px
+    s = prefix[hi] - prefix[lo]
+    a, b, c, d, e, f = s[:, 0, 0], s[:, 0, 1], s[:, 0, 2], s[:, 1, 1], s[:, 1, 2], s[:, 2, 2]
+    # Rows of M: r0 = (ci, si, w0), r1 = (-si, ci, w1), r2 = (0, 0, 1).
+    s_r0 = (a * ci + b * si + c * w0, b * ci + d * si + e * w0, c * ci + e * si + f * w0)
+    s_r1 = (-a * si + b * ci + c * w1, -b * si + d * ci + e * w1, -c * si + e * ci + f * w1)
+    cov = np.empty(s.shape)
+    cov[:, 0, 0] = ci * s_r0[0] + si * s_r0[1] + w0 * s_r0[2]
+    cov[:, 0, 1] = cov[:, 1, 0] = -si * s_r0[0] + ci * s_r0[1] + w1 * s_r0[2]
+    cov[:, 1, 1] = -si * s_r1[0] + ci * s_r1[1] + w1 * s_r1[2]
+    cov[:, 0, 2] = cov[:, 2, 0] = s_r0[2]
+    cov[:, 1, 2] = cov[:, 2, 1] = s_r1[2]
+    cov[:, 2, 2] = f
+    return delta, cov

@@ -66,6 +66,8 @@ from sklearn.neighbors import NearestNeighbors
 
 from ..core import se2
 from ..core.odometry import OdometryChain, OdometryNoise, noise_from_header
+from ..core.options import options, setting
+from ..core.stats import chi2_threshold
 from ..errors import InputError
 from ..io.pairs_csv import ExternalPairs
 from .descriptors import (
@@ -82,7 +84,7 @@ SOURCE_EXTERNAL = 4
 _SOURCE_NAMES = ((SOURCE_EXTERNAL, "external"), (SOURCE_DESCRIPTOR, "descriptor"), (SOURCE_PROXIMITY, "proximity"))
 
 
-@dataclass(frozen=True)
+@options
 class CandidateOptions:
     """Thresholds of candidate proposal (see the module docstring).
 
@@ -120,59 +122,29 @@ class CandidateOptions:
         memory, not the results).
     """
 
-    exclude_time_s: float = 20.0
-    exclude_travel_m: float = 5.0
-    descriptor_neighbours: int = 10
-    proximity_neighbours: int = 48
-    proximity_max_radius_m: float = 15.0
-    near_distance_m: float = 1.0
-    near_heading_rad: float = math.radians(30.0)
-    gate_probability: float = 0.99
-    max_per_keyframe: int = 4
-    max_ungated_per_keyframe: int = 1
-    descriptor_weight: float = 1.0
-    ungated_penalty: float = 1.0
-    max_score: float = 32.0
-    suppress_keyframes: int = 4
-    yaw_hypotheses: int = 3
-    tree: str = "kd_tree"
-    search_dims: int = 12
-    block_keyframes: int = 2048
-
-    def __post_init__(self):
-        for name in ("exclude_time_s", "exclude_travel_m"):
-            v = getattr(self, name)
-            if not (isinstance(v, (int, float)) and math.isfinite(v) and v >= 0):
-                raise InputError(f"candidate option {name} must be a finite number >= 0, got {v!r}")
-        for name in ("proximity_max_radius_m", "near_distance_m", "near_heading_rad"):
-            v = getattr(self, name)
-            if not (isinstance(v, (int, float)) and math.isfinite(v) and v > 0):
-                raise InputError(f"candidate option {name} must be a positive finite number, got {v!r}")
-        if not (isinstance(self.max_score, (int, float)) and self.max_score > 0):
-            raise InputError(f"candidate option max_score must be a positive number (inf allowed), "
-                             f"got {self.max_score!r}")
-        for name in ("descriptor_weight", "ungated_penalty"):
-            v = getattr(self, name)
-            if not (isinstance(v, (int, float)) and math.isfinite(v) and v >= 0):
-                raise InputError(f"candidate option {name} must be a finite number >= 0, got {v!r}")
-        for name in ("descriptor_neighbours", "proximity_neighbours", "suppress_keyframes",
-                     "max_ungated_per_keyframe", "search_dims"):
-            v = getattr(self, name)
-            if not (isinstance(v, int) and not isinstance(v, bool) and v >= 0):
-                raise InputError(f"candidate option {name} must be an integer >= 0, got {v!r}")
-        for name in ("max_per_keyframe", "yaw_hypotheses", "block_keyframes"):
-            v = getattr(self, name)
-            if not (isinstance(v, int) and not isinstance(v, bool) and v >= 1):
-                raise InputError(f"candidate option {name} must be an integer >= 1, got {v!r}")
-        if not 0 < self.gate_probability < 1:
-            raise InputError(f"candidate option gate_probability must be in (0, 1), got {self.gate_probability!r}")
-        if self.tree not in ("kd_tree", "ball_tree"):
-            raise InputError(f"candidate option tree must be 'kd_tree' or 'ball_tree', got {self.tree!r}")
+    exclude_time_s: float = setting(20.0, at_least=0.0)
+    exclude_travel_m: float = setting(5.0, at_least=0.0)
+    descriptor_neighbours: int = setting(10, at_least=0)
+    proximity_neighbours: int = setting(48, at_least=0)
+    proximity_max_radius_m: float = setting(15.0, above=0.0)
+    near_distance_m: float = setting(1.0, above=0.0)
+    near_heading_rad: float = setting(math.radians(30.0), above=0.0)
+    gate_probability: float = setting(0.99, above=0.0, below=1.0)
+    max_per_keyframe: int = setting(4, at_least=1)
+    max_ungated_per_keyframe: int = setting(1, at_least=0)
+    descriptor_weight: float = setting(1.0, at_least=0.0)
+    ungated_penalty: float = setting(1.0, at_least=0.0)
+    max_score: float = setting(32.0, above=0.0, allow_inf=True)
+    suppress_keyframes: int = setting(4, at_least=0)
+    yaw_hypotheses: int = setting(3, at_least=1)
+    tree: str = setting("kd_tree", choices=("kd_tree", "ball_tree"))
+    search_dims: int = setting(12, at_least=0)
+    block_keyframes: int = setting(2048, at_least=1)
 
     @property
     def gate_threshold(self) -> float:
         """Chi-square(3) quantile of the proximity gate (e.g. 11.345 at 0.99)."""
-        return float(scipy.stats.chi2.ppf(self.gate_probability, 3))
+        return chi2_threshold(self.gate_probability)
 
 
 @dataclass(frozen=True, eq=False)

@@ -53,13 +53,14 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..core import se2
+from ..core.options import options, setting
 from ..errors import InputError
 from ..io.scanlog import Sensor
 
 TWO_PI = 2.0 * math.pi
 
 
-@dataclass(frozen=True)
+@options
 class DescriptorOptions:
     """Shape of the descriptor and of the yaw signature.
 
@@ -76,30 +77,14 @@ class DescriptorOptions:
     batch_scans : scans processed per block (bounds memory, not results).
     """
 
-    rings: int = 8
-    max_radius_m: float = 12.0
-    harmonics: int = 4
-    no_return_weight: float = 0.5
-    compress_offset: float = 0.01
-    yaw_sectors: int = 360
-    yaw_min_overlap: float = 0.25
-    batch_scans: int = 256
-
-    def __post_init__(self):
-        if not (isinstance(self.rings, int) and self.rings >= 1):
-            raise InputError(f"descriptor option rings must be an integer >= 1, got {self.rings!r}")
-        if not (isinstance(self.harmonics, int) and self.harmonics >= 0):
-            raise InputError(f"descriptor option harmonics must be an integer >= 0, got {self.harmonics!r}")
-        if not (isinstance(self.yaw_sectors, int) and self.yaw_sectors >= 8):
-            raise InputError(f"descriptor option yaw_sectors must be an integer >= 8, got {self.yaw_sectors!r}")
-        if not (math.isfinite(self.max_radius_m) and self.max_radius_m > 0):
-            raise InputError(f"descriptor option max_radius_m must be positive, got {self.max_radius_m!r}")
-        if not (0 <= self.no_return_weight and math.isfinite(self.no_return_weight)):
-            raise InputError(f"descriptor option no_return_weight must be >= 0, got {self.no_return_weight!r}")
-        if not (0 <= self.compress_offset and math.isfinite(self.compress_offset)):
-            raise InputError(f"descriptor option compress_offset must be >= 0, got {self.compress_offset!r}")
-        if not 0 < self.yaw_min_overlap <= 1:
-            raise InputError(f"descriptor option yaw_min_overlap must be in (0, 1], got {self.yaw_min_overlap!r}")
+    rings: int = setting(8, at_least=1)
+    max_radius_m: float = setting(12.0, above=0.0)
+    harmonics: int = setting(4, at_least=0)
+    no_return_weight: float = setting(0.5, at_least=0.0)
+    compress_offset: float = setting(0.01, at_least=0.0)
+    yaw_sectors: int = setting(360, at_least=8)
+    yaw_min_overlap: float = setting(0.25, above=0.0, at_most=1.0)
+    batch_scans: int = setting(256, at_least=1)
 
     @property
     def size(self) -> int:

@@ -10,7 +10,7 @@ every row: the selection costs O(K log N) for K keyframes among N scans.
 
 Using accumulated rather than net motion means a robot that drives 1 m
 forward and back still gets keyframes (it has seen new things on the way),
-and a robot turning on the spot gets a keyframe every ``min_rotation_rad``.
+and a robot turning on the spot gets a keyframe every ``turn_rad``.
 
 Node ids are scan ids (the 0-based row of the scan in the log, contract
 section 1), so the returned arrays hold scan ids, sorted and unique.  Scans
@@ -21,68 +21,37 @@ named by external candidate pairs that are not keyframes are added with
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
 
 import numpy as np
 
-from ..core import se2
-from ..errors import InputError
+from ..core.odometry import odometry_travel
+from ..core.options import options, setting
 
 
-@dataclass(frozen=True)
+@options
 class KeyframeOptions:
     """Thresholds of keyframe selection.
 
-    min_travel_m : odometry path length (metres) since the last keyframe that
-        triggers a new keyframe.  0.5 m suits indoor robots with a 20 m range
+    spacing_m : odometry path length (metres) since the last keyframe that
+        makes a new keyframe.  0.5 m suits indoor robots with a 20 m range
         sensor: consecutive keyframes share almost all of their view (common
         practice).
-    min_rotation_rad : accumulated absolute heading change (radians) since the
-        last keyframe that triggers a new keyframe (default 20 degrees,
-        common practice for 2D range sensors).
+    turn_rad : accumulated absolute heading change (radians) since the last
+        keyframe that makes a new keyframe (default 20 degrees, common
+        practice for 2D range sensors).
     """
 
-    min_travel_m: float = 0.5
-    min_rotation_rad: float = math.radians(20.0)
-
-    def __post_init__(self):
-        for name in ("min_travel_m", "min_rotation_rad"):
-            v = getattr(self, name)
-            if not (isinstance(v, (int, float)) and math.isfinite(v) and v > 0):
-                raise InputError(f"keyframe option {name} must be a positive finite number, got {v!r}")
-
-
-def odometry_travel(odom) -> tuple[np.ndarray, np.ndarray]:
-    """Cumulative odometry path length and accumulated absolute rotation.
-
-    Parameters
-    ----------
-    odom : (N, 3) odometry poses ``[x, y, theta]`` in the odometry frame.
-
-    Returns
-    -------
-    travel_m : (N,) path length in metres from scan 0 to each scan.
-    rotation_rad : (N,) sum of absolute wrapped heading steps (radians)
-        from scan 0 to each scan.
-    """
-    odom = np.asarray(odom, dtype=float).reshape(-1, 3)
-    travel = np.zeros(len(odom))
-    rotation = np.zeros(len(odom))
-    if len(odom) > 1:
-        step = np.hypot(np.diff(odom[:, 0]), np.diff(odom[:, 1]))
-        turn = np.abs(se2.wrap(np.diff(odom[:, 2])))
-        travel[1:] = np.cumsum(step)
-        rotation[1:] = np.cumsum(turn)
-    return travel, rotation
+    spacing_m: float = setting(0.5, above=0.0)
+    turn_rad: float = setting(math.radians(20.0), above=0.0)
 
 
 def select_keyframes(odom, options: KeyframeOptions = KeyframeOptions()) -> np.ndarray:
     """Scan ids of the keyframes of a log, from its odometry.
 
     Scan 0 is always a keyframe.  Scan k becomes the next keyframe after
-    keyframe j when ``travel[k] - travel[j] >= options.min_travel_m`` or
-    ``rotation[k] - rotation[j] >= options.min_rotation_rad`` (see
-    :func:`odometry_travel`), whichever happens first.
+    keyframe j when ``travel[k] - travel[j] >= options.spacing_m`` or
+    ``rotation[k] - rotation[j] >= options.turn_rad`` (see
+    :func:`closurecheck.core.odometry.odometry_travel`), whichever happens first.
 
     Parameters
     ----------
@@ -103,8 +72,8 @@ def select_keyframes(odom, options: KeyframeOptions = KeyframeOptions()) -> np.n
     while True:
         # First scan whose cumulative motion reaches the threshold; both
         # cumulative sums are non-decreasing, so searchsorted is exact.
-        k_travel = np.searchsorted(travel, travel[last] + options.min_travel_m, side="left")
-        k_turn = np.searchsorted(rotation, rotation[last] + options.min_rotation_rad, side="left")
+        k_travel = np.searchsorted(travel, travel[last] + options.spacing_m, side="left")
+        k_turn = np.searchsorted(rotation, rotation[last] + options.turn_rad, side="left")
         nxt = int(min(k_travel, k_turn))
         if nxt >= n:
             break

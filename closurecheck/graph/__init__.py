@@ -1,1 +1,5 @@
-"""The pose graph's least squares: sparse Levenberg-Marquardt with robust kernels, GNC, and selected blocks of the inverse."""
+"""The pose graph's least squares.
+
+Sparse Levenberg-Marquardt with robust kernels and GNC, and selected blocks
+of the inverse normal matrix.
+"""

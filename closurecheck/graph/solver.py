@@ -20,6 +20,12 @@ nodes that no edge connects to node 0 keep their initial poses.
 
 The normalised residual of an edge is its Mahalanobis distance
 ``r = sqrt(e^T Omega e)`` (dimensionless); robust kernels and GNC act on it.
+
+The public functions check their arrays (shapes, finite values, symmetric
+positive definite information) and raise InputError; a caller that built
+the arrays itself from checked data (the verification stage, which solves
+the same graph many times) passes ``check=False`` and skips the checks,
+among them an eigen-decomposition of every information matrix.
 """
 
 from __future__ import annotations
@@ -30,20 +36,18 @@ import numpy as np
 import scipy.sparse as sp
 import scipy.sparse.csgraph as csgraph
 import scipy.sparse.linalg as spla
-from scipy.stats import chi2
 
 from ..core import se2
 from ..core.kernels import Kernel
+from ..core.options import options, setting
+from ..core.stats import POSE_DOF, chi2_threshold
 from ..errors import InputError
-
-POSE_DOF = 3
-
 
 # ---------------------------------------------------------------------------
 # Options and results
 
 
-@dataclass(frozen=True)
+@options
 class SolverOptions:
     """Levenberg-Marquardt settings.
 
@@ -69,34 +73,18 @@ class SolverOptions:
         graphs).
     """
 
-    max_iterations: int = 100
-    relative_cost_tolerance: float = 1e-8
-    step_tolerance: float = 1e-9
-    initial_damping: float = 1e-5
-    max_damping: float = 1e12
-    linear_solver: str = "splu"
-    permc_spec: str = "MMD_AT_PLUS_A"
-    supernode_relax: int = 3
-    panel_size: int = 3
-
-    def __post_init__(self):
-        if self.max_iterations < 0:
-            raise InputError(f"max_iterations must be >= 0, got {self.max_iterations}")
-        if self.linear_solver not in ("splu", "spsolve"):
-            raise InputError(f"linear_solver must be 'splu' or 'spsolve', got {self.linear_solver!r}")
-        if self.permc_spec not in ("NATURAL", "MMD_ATA", "MMD_AT_PLUS_A", "COLAMD"):
-            raise InputError(f"unknown permc_spec {self.permc_spec!r}")
-        for name in ("supernode_relax", "panel_size"):
-            value = getattr(self, name)
-            if not (isinstance(value, int) and value >= 1):
-                raise InputError(f"{name} must be a positive integer, got {value!r}")
-        for name in ("relative_cost_tolerance", "step_tolerance", "initial_damping", "max_damping"):
-            value = getattr(self, name)
-            if not (np.isfinite(value) and value >= 0):
-                raise InputError(f"{name} must be a finite number >= 0, got {value!r}")
+    max_iterations: int = setting(100, at_least=0)
+    relative_cost_tolerance: float = setting(1e-8, at_least=0.0)
+    step_tolerance: float = setting(1e-9, at_least=0.0)
+    initial_damping: float = setting(1e-5, at_least=0.0)
+    max_damping: float = setting(1e12, at_least=0.0)
+    linear_solver: str = setting("splu", choices=("splu", "spsolve"))
+    permc_spec: str = setting("MMD_AT_PLUS_A", choices=("NATURAL", "MMD_ATA", "MMD_AT_PLUS_A", "COLAMD"))
+    supernode_relax: int = setting(3, at_least=1)
+    panel_size: int = setting(3, at_least=1)
 
 
-@dataclass(frozen=True)
+@options
 class GncOptions:
     """Graduated non-convexity settings (Yang, Antonante, Tzoumas, Carlone, RA-L 2020).
 
@@ -117,26 +105,14 @@ class GncOptions:
         and of the final solve with the last weights.
     """
 
-    surrogate: str = "geman_mcclure"
-    inlier_probability: float = 0.99
-    inlier_bound: float | None = None
-    mu_factor: float = 1.4
-    max_rounds: int = 200
-    weight_tolerance: float = 1e-6
-    iterations_per_round: int = 2
+    surrogate: str = setting("geman_mcclure", choices=("geman_mcclure", "truncated_least_squares"))
+    inlier_probability: float = setting(0.99, above=0.0, below=1.0)
+    inlier_bound: float | None = setting(None, above=0.0)
+    mu_factor: float = setting(1.4, above=1.0)
+    max_rounds: int = setting(200, at_least=0)
+    weight_tolerance: float = setting(1e-6, at_least=0.0)
+    iterations_per_round: int = setting(2, at_least=1)
     solver: SolverOptions = field(default_factory=SolverOptions)
-
-    def __post_init__(self):
-        if self.surrogate not in ("geman_mcclure", "truncated_least_squares"):
-            raise InputError(f"GNC surrogate must be 'geman_mcclure' or 'truncated_least_squares', got {self.surrogate!r}")
-        if not 0.0 < self.inlier_probability < 1.0:
-            raise InputError(f"inlier_probability must lie in (0, 1), got {self.inlier_probability!r}")
-        if self.inlier_bound is not None and not (np.isfinite(self.inlier_bound) and self.inlier_bound > 0):
-            raise InputError(f"inlier_bound must be positive, got {self.inlier_bound!r}")
-        if not self.mu_factor > 1.0:
-            raise InputError(f"mu_factor must be > 1, got {self.mu_factor!r}")
-        if self.iterations_per_round < 1 or self.max_rounds < 0:
-            raise InputError("iterations_per_round must be >= 1 and max_rounds >= 0")
 
     @property
     def bound(self) -> float:
@@ -196,16 +172,6 @@ class PruneResult:
     removed: np.ndarray
     removed_residuals_sq: np.ndarray
     threshold: float
-
-
-def chi2_threshold(probability: float, dof: int = POSE_DOF) -> float:
-    """Chi-square quantile: the bound on a squared Mahalanobis distance of ``dof`` dimensions
-    that a consistent residual stays below with the given probability."""
-    if not 0.0 < probability < 1.0:
-        raise InputError(f"probability must lie in (0, 1), got {probability!r}")
-    if int(dof) != dof or dof < 1:
-        raise InputError(f"degrees of freedom must be a positive integer, got {dof!r}")
-    return float(chi2.ppf(probability, int(dof)))
 
 
 # ---------------------------------------------------------------------------
@@ -279,6 +245,16 @@ def _validate(poses, src, dst, delta, information, robust):
 def _check_kernel(kernel):
     if kernel is not None and not isinstance(kernel, Kernel):
         raise InputError(f"kernel must be a closurecheck.core.kernels.Kernel or None, got {type(kernel).__name__}")
+
+
+def _inputs(poses, src, dst, delta, information, robust, check: bool):
+    """The arrays of a graph problem: validated at the public boundary, taken as they are from trusted callers."""
+    if check:
+        return _validate(poses, src, dst, delta, information, robust)
+    e = len(src)
+    return (np.asarray(poses, dtype=float), np.asarray(src, dtype=np.int64), np.asarray(dst, dtype=np.int64),
+            np.asarray(delta, dtype=float), np.asarray(information, dtype=float),
+            np.ones(e, dtype=bool) if robust is None else np.asarray(robust, dtype=bool))
 
 
 # ---------------------------------------------------------------------------
@@ -520,18 +496,18 @@ def _optimise(graph, poses, kernel, active, options):
 # Public API
 
 
-def edge_residuals(poses, src, dst, delta, information):
+def edge_residuals(poses, src, dst, delta, information, *, check: bool = True):
     """Errors and squared Mahalanobis distances of every edge.
 
     Returns ``(e, s)``: ``e`` (E, 3) is ``between(x_src, x_dst) - delta``
     (m, m, rad; angle wrapped) in the ``src`` frame, ``s`` (E,) is
     ``e^T Omega e`` (dimensionless).
     """
-    args = _validate(poses, src, dst, delta, information, None)
+    args = _inputs(poses, src, dst, delta, information, None, check)
     return _Graph(*args).errors(args[0])
 
 
-def normal_matrix(poses, src, dst, delta, information, weights=None):
+def normal_matrix(poses, src, dst, delta, information, weights=None, *, check: bool = True):
     """Gauge-fixed normal equations ``(J^T W J, J^T W e)`` at ``poses``.
 
     Node 0 is removed (its three columns are not variables); variables are
@@ -540,7 +516,7 @@ def normal_matrix(poses, src, dst, delta, information, weights=None):
     shape (3M, 3M) and the gradient (3M,), where M is the number of nodes
     connected to node 0 (excluding it).
     """
-    poses, src, dst, delta, information, robust = _validate(poses, src, dst, delta, information, None)
+    poses, src, dst, delta, information, robust = _inputs(poses, src, dst, delta, information, None, check)
     graph = _Graph(poses, src, dst, delta, information, robust)
     w = np.ones(len(src)) if weights is None else np.asarray(weights, dtype=float)
     if w.shape != (len(src),) or not np.all(np.isfinite(w)) or np.any(w < 0):
@@ -552,7 +528,7 @@ def normal_matrix(poses, src, dst, delta, information, weights=None):
 
 
 def optimize_graph(poses, src, dst, delta, information, robust=None, kernel: Kernel | None = None,
-                   options: SolverOptions = SolverOptions()) -> GraphSolution:
+                   options: SolverOptions = SolverOptions(), *, check: bool = True) -> GraphSolution:
     """Optimise a pose graph by Levenberg-Marquardt with IRLS robust weights.
 
     Parameters follow the module docstring: ``poses`` (N, 3) initial world
@@ -566,8 +542,9 @@ def optimize_graph(poses, src, dst, delta, information, robust=None, kernel: Ker
     iteration reweights robust edges by ``kernel.weight`` at the current
     poses (iteratively reweighted least squares).
     """
-    _check_kernel(kernel)
-    args = _validate(poses, src, dst, delta, information, robust)
+    if check:
+        _check_kernel(kernel)
+    args = _inputs(poses, src, dst, delta, information, robust, check)
     graph = _Graph(*args)
     return _optimise(graph, args[0], kernel, np.ones(len(args[1]), dtype=bool), options)
 
@@ -583,7 +560,7 @@ def _gnc_weights(r2, mu, c2, surrogate):
 
 
 def optimize_gnc(poses, src, dst, delta, information, robust=None,
-                 options: GncOptions = GncOptions()) -> GraphSolution:
+                 options: GncOptions = GncOptions(), *, check: bool = True) -> GraphSolution:
     """Optimise with graduated non-convexity on the robust edges.
 
     Yang, Antonante, Tzoumas and Carlone, "Graduated Non-Convexity for Robust
@@ -599,7 +576,7 @@ def optimize_gnc(poses, src, dst, delta, information, robust=None,
     Returns a :class:`GraphSolution` whose ``weights`` hold the final GNC
     weight of each robust edge in [0, 1] (near 0: outlier).
     """
-    args = _validate(poses, src, dst, delta, information, robust)
+    args = _inputs(poses, src, dst, delta, information, robust, check)
     graph = _Graph(*args)
     e_count = len(args[1])
     active = np.ones(e_count, dtype=bool)
@@ -650,7 +627,8 @@ def optimize_gnc(poses, src, dst, delta, information, robust=None,
 
 
 def prune_inconsistent_edges(poses, src, dst, delta, information, robust=None, kernel: Kernel | None = None,
-                             probability: float = 0.99, options: SolverOptions = SolverOptions()) -> PruneResult:
+                             probability: float = 0.99, options: SolverOptions = SolverOptions(), *,
+                             check: bool = True) -> PruneResult:
     """Final check: drop robust edges whose residual fails a chi-square test, worst first.
 
     Optimises the graph (with ``kernel`` on robust edges, or plain least
@@ -662,9 +640,10 @@ def prune_inconsistent_edges(poses, src, dst, delta, information, robust=None, k
     Returns a :class:`PruneResult` with the removal order and the residual
     of each removed edge when it was removed.
     """
-    _check_kernel(kernel)
+    if check:
+        _check_kernel(kernel)
     threshold = chi2_threshold(probability, POSE_DOF)
-    args = _validate(poses, src, dst, delta, information, robust)
+    args = _inputs(poses, src, dst, delta, information, robust, check)
     graph = _Graph(*args)
     kept = np.ones(len(args[1]), dtype=bool)
     removed, removed_s = [], []

@@ -1,4 +1,4 @@
-"""The pose-graph file ``graph.json`` (docs/formats.md, contract section 3).
+"""The pose-graph file ``graph.json`` (docs/formats.md, "Pose graph").
 
 Writing is atomic; reading validates the structure so that ``closurecheck
 score`` and downstream scripts get one clear error for a damaged file.
@@ -13,7 +13,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ..errors import InputError, shorten
+from ..errors import InputError, one_line
 from .files import check_regular_file
 from .json_file import jsonable, write_json
 
@@ -69,7 +69,7 @@ def _symmetric(m: np.ndarray) -> np.ndarray:
 
 
 def graph_to_dict(graph: PoseGraph) -> dict:
-    """The JSON document of ``graph`` (contract section 3)."""
+    """The JSON document of ``graph`` (docs/formats.md, "Pose graph")."""
     info = _symmetric(np.asarray(graph.information, dtype=float))
     cov = _symmetric(np.linalg.inv(info)) if len(info) else info
     nodes = [{"id": int(i), "t": float(t), "pose": [float(v) for v in p], "odom": [float(v) for v in o]}
@@ -107,7 +107,22 @@ def _pose(value, where, path) -> list:
 
 
 def read_graph(path) -> PoseGraph:
-    """Read and validate a graph.json file."""
+    """Read and validate a graph.json file (docs/formats.md, "Pose graph").
+
+    Returns a :class:`PoseGraph`: node ids (scan ids), times (s), optimised
+    and odometry poses (m, m, rad), and the edges with their deltas
+    (``from^-1 ∘ to`` in the ``from`` frame) and 3x3 information matrices.
+
+    Examples
+    --------
+    >>> import tempfile, pathlib
+    >>> import closurecheck
+    >>> out = pathlib.Path(tempfile.mkdtemp())
+    >>> result = closurecheck.run(closurecheck.simulate_log("ring", seed=4, scans=60), out, jobs=1)
+    >>> graph = closurecheck.read_graph(out / "graph.json")
+    >>> len(graph.ids) == len(result.keyframes), int(graph.loop_mask.sum()) == int(result.verdicts.accepted.sum())
+    (True, True)
+    """
     path = check_regular_file(path, "graph.json file")
     try:
         doc = json.loads(path.read_text(encoding="utf-8"))
@@ -118,7 +133,7 @@ def read_graph(path) -> PoseGraph:
     except IsADirectoryError:
         raise InputError("is a directory, expected graph.json", path) from None
     except (ValueError, UnicodeDecodeError) as exc:
-        raise InputError(f"not a JSON document ({shorten(exc, 200)})", path) from None
+        raise InputError(f"not a JSON document ({one_line(exc, 200)})", path) from None
     if not isinstance(doc, dict) or doc.get("graph") != GRAPH_VERSION:
         raise InputError('not a pose graph of version 1 (missing "graph": 1)', path)
     nodes, edges = doc.get("nodes"), doc.get("edges")

@@ -1,4 +1,4 @@
-"""Candidate-pairs CSV files (contract section 4).
+"""Candidate-pairs CSV files (docs/formats.md, "Candidate pairs").
 
 Input (``--candidates PAIRS.csv``): a header row, required columns ``from``
 and ``to`` (scan ids), optional ``dx,dy,dtheta`` (an initial guess of the
@@ -24,7 +24,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ..errors import InputError, shorten, show
+from ..errors import InputError, one_line, shorten
 from .atomic import atomic_open
 from .files import check_regular_file
 
@@ -32,6 +32,9 @@ REQUIRED_COLUMNS = ("from", "to")
 GUESS_COLUMNS = ("dx", "dy", "dtheta")
 OUTPUT_COLUMNS = ("from", "to", "verdict", "reason", "dx", "dy", "dtheta")
 VERDICTS = ("accepted", "rejected")
+# The diagonal of each candidate's covariance, after the figure columns
+# (docs/formats.md, "Candidate pairs").
+VARIANCE_COLUMNS = ("var_x_m2", "var_y_m2", "var_theta_rad2")
 
 
 @dataclass(frozen=True, eq=False)
@@ -66,7 +69,7 @@ def _parse_id(text: str, column: str, scan_count: int, path, line: int) -> int:
     try:
         value = int(s)
     except ValueError:
-        raise InputError(f'column "{column}": scan id must be an integer, got {show(s)}', path, line) from None
+        raise InputError(f'column "{column}": scan id must be an integer, got {shorten(s)}', path, line) from None
     if not 0 <= value < scan_count:
         raise InputError(f'column "{column}": unknown scan id {value} (the log has scans 0..{scan_count - 1})',
                          path, line)
@@ -78,14 +81,14 @@ def _parse_number(text: str, column: str, path, line: int) -> float:
     try:
         value = float(s)
     except ValueError:
-        raise InputError(f'column "{column}": not a number: {show(s)}', path, line) from None
+        raise InputError(f'column "{column}": not a number: {shorten(s)}', path, line) from None
     if not math.isfinite(value):
-        raise InputError(f'column "{column}": value must be finite, got {show(s)}', path, line)
+        raise InputError(f'column "{column}": value must be finite, got {shorten(s)}', path, line)
     return value
 
 
 def read_pairs(path, scan_count: int, max_pairs: int | None = None) -> ExternalPairs:
-    """Read a candidate-pairs CSV (contract section 4) for a log of ``scan_count`` scans.
+    """Read a candidate-pairs CSV (docs/formats.md, "Candidate pairs") for a log of ``scan_count`` scans.
 
     Raises :class:`InputError` naming the file and line for: a missing
     file or header row, missing ``from``/``to`` columns, only part of the
@@ -161,7 +164,7 @@ def read_pairs(path, scan_count: int, max_pairs: int | None = None) -> ExternalP
             guess.append(g)
             lines.append(line)
     except csv.Error as exc:
-        raise InputError(f"malformed CSV ({shorten(exc, 120)})", path, reader.line_num) from None
+        raise InputError(f"malformed CSV ({one_line(exc, 120)})", path, reader.line_num) from None
     return ExternalPairs(
         src=np.asarray(src, dtype=np.int64),
         dst=np.asarray(dst, dtype=np.int64),
@@ -186,7 +189,7 @@ def _cell(value) -> str:
 
 
 def write_candidates(path, src, dst, verdict, reason, delta, extra: dict | None = None) -> None:
-    """Write ``candidates.csv`` (contract section 4) atomically.
+    """Write ``candidates.csv`` (docs/formats.md, "Candidate pairs") atomically.
 
     Parameters
     ----------
@@ -228,3 +231,54 @@ def write_candidates(path, src, dst, verdict, reason, delta, extra: dict | None 
                    _cell(delta[i, 0]), _cell(delta[i, 1]), _cell(delta[i, 2])]
             row.extend(_cell(c[i]) for c in extra_cols)
             writer.writerow(row)
+
+
+@dataclass(frozen=True, eq=False)
+class VerdictRows:
+    """The verdict columns of a run's candidates.csv, as arrays.
+
+    src, dst : (P,) int64 scan ids; accepted : (P,) bool; reason : (P,) str
+    codes; delta : (P, 3) registered delta (NaN where none).
+    """
+
+    src: np.ndarray
+    dst: np.ndarray
+    accepted: np.ndarray
+    reason: np.ndarray
+    delta: np.ndarray
+
+    def __len__(self) -> int:
+        return len(self.src)
+
+
+def read_candidates(path) -> VerdictRows:
+    """Read the verdict columns of a run's ``candidates.csv`` (written by :func:`write_candidates`).
+
+    Raises InputError for a missing file or one without the output columns.
+    """
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise InputError("no such file", path) from None
+    except UnicodeDecodeError:
+        raise InputError("not UTF-8 text", path) from None
+    rows = list(csv.DictReader(io.StringIO(text)))
+    if rows and any(k not in rows[0] for k in OUTPUT_COLUMNS):
+        raise InputError(f"not a candidates.csv of a run (needs columns {','.join(OUTPUT_COLUMNS)})", path)
+
+    def num(v):
+        try:
+            return float(v) if v not in ("", None) else math.nan
+        except ValueError:
+            return math.nan
+
+    try:
+        src = np.array([int(r["from"]) for r in rows], dtype=np.int64)
+        dst = np.array([int(r["to"]) for r in rows], dtype=np.int64)
+    except (TypeError, ValueError):
+        raise InputError("a from/to cell is not a scan id", path) from None
+    return VerdictRows(
+        src=src, dst=dst, accepted=np.array([r["verdict"] == "accepted" for r in rows], dtype=bool),
+        reason=np.array([r["reason"] for r in rows], dtype=str),
+        delta=np.array([[num(r[c]) for c in GUESS_COLUMNS] for r in rows], dtype=float).reshape(-1, 3))

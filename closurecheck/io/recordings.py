@@ -26,7 +26,8 @@ from pathlib import Path
 
 import numpy as np
 
-from ..errors import InputError, shorten
+from ..core.options import options, setting
+from ..errors import InputError, one_line
 from .files import is_regular_file
 from .recording_sync import clean_odometry, pair_scans, yaw_from_quaternion
 from .scanlog import ScanLog, Sensor, make_scanlog
@@ -43,7 +44,7 @@ _SUFFIXES = {".bag": "ROS 1 bag", ".mcap": "ROS 2 MCAP file", ".db3": "ROS 2 SQL
 _TOPIC_LIST_MAX = 8
 
 
-@dataclass(frozen=True)
+@options
 class RecordingOptions:
     """Thresholds for turning a recording into a scan log.
 
@@ -56,14 +57,8 @@ class RecordingOptions:
         scan message's before the recording counts as inconsistent (radians).
     """
 
-    max_odom_gap_s: float = 0.5
-    angle_tolerance_rad: float = 1e-5
-
-    def __post_init__(self):
-        if not (self.max_odom_gap_s > 0 and math.isfinite(self.max_odom_gap_s)):
-            raise InputError(f"max_odom_gap_s must be a positive number of seconds, got {self.max_odom_gap_s!r}")
-        if not (self.angle_tolerance_rad >= 0 and math.isfinite(self.angle_tolerance_rad)):
-            raise InputError(f"angle_tolerance_rad must be >= 0, got {self.angle_tolerance_rad!r}")
+    max_odom_gap_s: float = setting(0.5, above=0.0)
+    angle_tolerance_rad: float = setting(1e-5, at_least=0.0)
 
 
 @dataclass(frozen=True)
@@ -302,7 +297,7 @@ def _import_rosbags() -> _Rosbags:
 
 
 def _reason(exc: BaseException) -> str:
-    return shorten(str(exc) or type(exc).__name__, 200)
+    return one_line(str(exc) or type(exc).__name__, 200)
 
 
 @dataclass
@@ -327,8 +322,8 @@ def _read_streams(rb: _Rosbags, path: Path, target: Path, storage: str, scan_top
     typestore = rb.typestore_ros1 if target.suffix.lower() == ".bag" else rb.typestore_ros2
     with rb.AnyReader([target], default_typestore=typestore) as reader:
         topics = {name: info.msgtype for name, info in reader.topics.items()}
-        scan_name = _choose_topic(topics, SCAN_TYPE, scan_topic, "laser scan", "--scan-topic", path)
-        odom_name = _choose_topic(topics, ODOM_TYPE, odom_topic, "odometry", "--odom-topic", path)
+        scan_name = _choose_topic(topics, SCAN_TYPE, scan_topic, "laser scan", "scan_topic", path)
+        odom_name = _choose_topic(topics, ODOM_TYPE, odom_topic, "odometry", "odom_topic", path)
         conns = [c for c in reader.connections if c.topic in (scan_name, odom_name)]
         scans = _ScanCollector(scan_name, options, path)
         odom_ns, odom_rec, odom_rows = [], [], []
@@ -389,7 +384,7 @@ def _choose_topic(topics: dict, msgtype: str, wanted, what: str, option: str, pa
             shown += f", ... ({len(listed) - _TOPIC_LIST_MAX} more)"
         raise InputError(f"no {what} topic ({msgtype}) in the recording; its topics: {shown or 'none'}", path)
     raise InputError(f"{len(candidates)} {what} topics ({msgtype}): {', '.join(candidates)}; "
-                     f"choose one with {option}", path)
+                     f"choose one with the {option} setting", path)
 
 
 class _ScanCollector:

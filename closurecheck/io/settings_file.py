@@ -7,7 +7,7 @@ import math
 import sys
 from pathlib import Path
 
-from ..errors import InputError, shorten
+from ..errors import InputError, one_line
 from .files import check_regular_file
 
 if sys.version_info >= (3, 11):
@@ -29,7 +29,7 @@ def load_toml(path) -> dict:
     except IsADirectoryError:
         raise InputError("is a directory, expected a TOML file", path) from None
     except tomllib.TOMLDecodeError as exc:
-        raise InputError(f"not valid TOML ({shorten(exc, 200)})", path) from None
+        raise InputError(f"not valid TOML ({one_line(exc, 200)})", path) from None
     except UnicodeDecodeError:
         raise InputError("not valid UTF-8 text", path) from None
 

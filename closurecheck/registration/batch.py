@@ -14,7 +14,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..core import se2
-from .icp import PreparedScan, RegistrationOptions, prepare_scan, register_prepared
+from .icp import PreparedScan, RegistrationOptions, register_prepared
 
 # Registration needs a few points to fit three parameters; scans with fewer
 # valid returns than this are not registered at all (reason "no_points").
@@ -22,15 +22,37 @@ MIN_POINTS = 20
 
 
 @dataclass(frozen=True, eq=False)
-class PairResults:
-    """Registration figures for P pairs, as arrays (NaN where none).
+class PairFit:
+    """One registered pair, as it crosses a process boundary (small to pickle).
 
-    delta : (P, 3) ``src^-1 ∘ dst`` in the src frame; covariance : (P, 3, 3).
-    valid : both scans had enough points and registration produced a result.
+    delta : (3,) ``src^-1 ∘ dst`` in the src frame (m, m, rad).
+    covariance : (3, 3) its covariance in the src frame.
+    The other fields are :class:`closurecheck.registration.icp.Registration`'s
+    figures of the same names (``rmse_m`` is its ``rmse``).
     """
 
     delta: np.ndarray
     covariance: np.ndarray
+    converged: bool
+    overlap: float
+    rmse_m: float
+    ambiguity: float
+    degenerate: bool
+    degeneracy: float
+    iterations: int
+    fit_score: float
+
+
+@dataclass(frozen=True, eq=False)
+class RegistrationQuality:
+    """Quality figures of P registered pairs, (P,) arrays; NaN / False where a pair got no result.
+
+    valid : both scans could be prepared and registration produced a result.
+    converged, overlap, rmse_m (m), ambiguity (NaN without a coarse search),
+    degenerate, degeneracy, iterations, fit_score : as in
+    :class:`closurecheck.registration.icp.Registration`.
+    """
+
     valid: np.ndarray
     converged: np.ndarray
     overlap: np.ndarray
@@ -41,26 +63,52 @@ class PairResults:
     iterations: np.ndarray
     fit_score: np.ndarray
 
-    def quality(self) -> dict:
-        """The arrays :func:`closurecheck.verification.verify.verify` reads."""
-        return {"valid": self.valid, "converged": self.converged, "overlap": self.overlap,
-                "rmse_m": self.rmse_m, "ambiguity": self.ambiguity, "degenerate": self.degenerate}
-
     def figures(self) -> dict:
-        """Per-pair numbers for the verdict trail."""
+        """Per-pair numbers for the verdict trail (candidates.csv columns, graph.json ``checks``)."""
         return {"overlap": self.overlap, "rmse_m": self.rmse_m, "ambiguity": self.ambiguity,
                 "degeneracy": self.degeneracy, "iterations": self.iterations, "fit_score": self.fit_score}
 
 
-_FLOAT_FIELDS = ("overlap", "rmse_m", "ambiguity", "degeneracy", "fit_score")
+@dataclass(frozen=True, eq=False)
+class RegisteredClosures:
+    """The registration stage's hand-over: P candidate pairs with their registered deltas.
+
+    src, dst : (P,) int scan ids; the delta is ``src^-1 ∘ dst``.
+    delta : (P, 3) in the src frame (m, m, rad), NaN where registration gave none.
+    covariance : (P, 3, 3) registration's covariance in the src frame, NaN where none.
+    quality : the figures the verification's first checks read.
+    """
+
+    src: np.ndarray
+    dst: np.ndarray
+    delta: np.ndarray
+    covariance: np.ndarray
+    quality: RegistrationQuality
+
+    def __len__(self) -> int:
+        return len(self.src)
 
 
-def empty_results(p: int) -> PairResults:
-    return PairResults(
-        delta=np.full((p, 3), np.nan), covariance=np.full((p, 3, 3), np.nan),
+def collect(src, dst, fits: list) -> RegisteredClosures:
+    """Assemble the per-pair :class:`PairFit` results (None where a scan lacked points) into arrays."""
+    p = len(fits)
+    delta = np.full((p, 3), np.nan)
+    covariance = np.full((p, 3, 3), np.nan)
+    q = RegistrationQuality(
         valid=np.zeros(p, bool), converged=np.zeros(p, bool), overlap=np.full(p, np.nan),
         rmse_m=np.full(p, np.nan), ambiguity=np.full(p, np.nan), degenerate=np.zeros(p, bool),
         degeneracy=np.full(p, np.nan), iterations=np.zeros(p, np.int64), fit_score=np.full(p, np.nan))
+    for k, r in enumerate(fits):
+        if r is None:
+            continue
+        delta[k] = r.delta
+        covariance[k] = r.covariance
+        q.valid[k] = True
+        for name in ("converged", "overlap", "rmse_m", "ambiguity", "degenerate", "degeneracy", "iterations",
+                     "fit_score"):
+            getattr(q, name)[k] = getattr(r, name)
+    return RegisteredClosures(src=np.asarray(src, dtype=np.int64), dst=np.asarray(dst, dtype=np.int64),
+                              delta=delta, covariance=covariance, quality=q)
 
 
 def seeds_for(guess: np.ndarray, yaw: np.ndarray, window_rad: float) -> np.ndarray:
@@ -80,16 +128,10 @@ def seeds_for(guess: np.ndarray, yaw: np.ndarray, window_rad: float) -> np.ndarr
     return np.asarray(seeds, dtype=float)
 
 
-def prepare_scans(points_by_id: dict, options: RegistrationOptions) -> dict:
-    """PreparedScan per scan id for every scan with enough points."""
-    return {sid: prepare_scan(pts, options) for sid, pts in points_by_id.items() if len(pts) >= MIN_POINTS}
-
-
 def register_batch(prepared: dict, src, dst, seeds: list, options: RegistrationOptions) -> list:
     """Register pairs ``(src[k], dst[k])``: target = src scan, source = dst scan.
 
-    Returns a list of per-pair tuples (or None where a scan lacked points);
-    plain tuples keep what crosses process boundaries small.
+    Returns one :class:`PairFit` per pair (None where a scan lacked points).
     """
     out = []
     for s, d, seed in zip(src, dst, seeds):
@@ -99,29 +141,8 @@ def register_batch(prepared: dict, src, dst, seeds: list, options: RegistrationO
             out.append(None)
             continue
         r = register_prepared(srcs, tgt, seed, options)
-        out.append((r.delta, r.covariance, bool(r.converged), float(r.overlap), float(r.rmse),
-                    float(r.ambiguity), bool(r.degenerate), float(r.degeneracy), int(r.iterations),
-                    float(r.fit_score)))
+        out.append(PairFit(delta=r.delta, covariance=r.covariance, converged=bool(r.converged),
+                           overlap=float(r.overlap), rmse_m=float(r.rmse), ambiguity=float(r.ambiguity),
+                           degenerate=bool(r.degenerate), degeneracy=float(r.degeneracy),
+                           iterations=int(r.iterations), fit_score=float(r.fit_score)))
     return out
-
-
-def collect(results: list) -> PairResults:
-    """Assemble per-pair tuples from :func:`register_batch` into arrays."""
-    p = len(results)
-    res = empty_results(p)
-    for k, r in enumerate(results):
-        if r is None:
-            continue
-        delta, cov, conv, overlap, rmse, amb, degen, degeneracy, its, fit = r
-        res.delta[k] = delta
-        res.covariance[k] = cov
-        res.valid[k] = True
-        res.converged[k] = conv
-        res.overlap[k] = overlap
-        res.rmse_m[k] = rmse
-        res.ambiguity[k] = amb
-        res.degenerate[k] = degen
-        res.degeneracy[k] = degeneracy
-        res.iterations[k] = its
-        res.fit_score[k] = fit
-    return res

@@ -41,18 +41,19 @@ import scipy.sparse.csgraph
 import scipy.spatial
 
 from ..core import se2
+from ..core.options import options, setting
 from ..frontend.candidates import CandidateOptions, excluded
 
 
-@dataclass(frozen=True)
+@options
 class RevisitOptions:
     """Definition of a true revisit and of candidate coverage (module docstring)."""
 
-    max_distance_m: float = 1.0
-    max_heading_rad: float = math.radians(30.0)
-    neighbourhood_keyframes: int = 2
-    event_link_keyframes: int = 2
-    event_span_keyframes: int = 10
+    max_distance_m: float = setting(1.0, above=0.0)
+    max_heading_rad: float = setting(math.radians(30.0), above=0.0)
+    neighbourhood_keyframes: int = setting(2, at_least=0)
+    event_link_keyframes: int = setting(2, at_least=0)
+    event_span_keyframes: int = setting(10, at_least=0)
 
 
 # --------------------------------------------------------------------------

@@ -1,4 +1,8 @@
-"""The run's output folder: graph.json, candidates.csv, config.toml, summary.json, report.html, and a batch's index page."""
+"""The run's output folder.
+
+graph.json, candidates.csv, config.toml, summary.json and report.html, and
+a batch's index page.
+"""
 
 from __future__ import annotations
 
@@ -11,15 +15,15 @@ import numpy as np
 
 from .._version import __version__
 from ..core import se2
-from ..errors import InputError, show
+from ..errors import InputError, shorten
 from ..frontend.candidates import CandidateSet
 from ..io.atomic import staged_folder, write_text
 from ..io.graph_file import PoseGraph, write_graph
 from ..io.json_file import write_json
-from ..io.pairs_csv import write_candidates
+from ..io.pairs_csv import VARIANCE_COLUMNS, write_candidates
 from ..io.scanlog import ScanLog
 from ..io.settings_file import to_toml
-from ..registration.batch import PairResults
+from ..registration.batch import RegisteredClosures
 from ..verification.verdicts import VerdictTable
 from ..verification.verify import Verification
 
@@ -49,7 +53,7 @@ class RunOutcome:
     odom: np.ndarray  # (K, 3) odometry poses of the keyframes
     step_covariances: np.ndarray  # (K-1, 3, 3)
     candidates: CandidateSet
-    registrations: PairResults
+    registrations: RegisteredClosures
     verification: Verification
     verdicts: VerdictTable
     graph: PoseGraph
@@ -132,7 +136,7 @@ def check_run_folder(out_dir) -> None:
     foreign = foreign_entries(out_dir)
     if foreign:
         more = f" and {len(foreign) - 1} more" if len(foreign) > 1 else ""
-        raise InputError(f"the output folder holds files that are not a run's outputs ({show(foreign[0])}{more}); "
+        raise InputError(f"the output folder holds files that are not a run's outputs ({shorten(foreign[0])}{more}); "
                          "the run replaces the folder as a whole, so give a new or empty folder", out_dir)
 
 
@@ -167,7 +171,7 @@ def write_outputs(outcome: RunOutcome, out_dir, *, report: bool = True, score: d
         extra = {"origin": v.origin}
         extra.update(v.figures)
         cov = v.covariance
-        extra.update({"sxx": cov[:, 0, 0], "syy": cov[:, 1, 1], "stt": cov[:, 2, 2]})
+        extra.update(dict(zip(VARIANCE_COLUMNS, (cov[:, 0, 0], cov[:, 1, 1], cov[:, 2, 2]))))
         step("candidates.csv")
         write_candidates(d / names["candidates"], v.src, v.dst, np.where(v.accepted, "accepted", "rejected"),
                          v.reason, v.delta, extra)

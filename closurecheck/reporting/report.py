@@ -24,7 +24,9 @@ from pathlib import Path
 import numpy as np
 
 from ..core import se2
+from ..core.stats import chi2_threshold
 from ..io.atomic import write_bytes, write_text
+from ..verification.reasons import GROUPS, Reason
 from ..verification.verdicts import VerdictTable
 
 SAFETY_TEXT = (
@@ -44,25 +46,12 @@ ELLIPSE_COLOUR = "#54278f"
 # Rejected candidates grouped by the stage that stopped them, lightest for
 # the everyday "scans do not match" and strongest for pairs that matched well
 # but contradict the rest of the graph (the look-alike places).
-REJECT_GROUPS = (
-    ("registration", ("no_points", "not_converged", "low_overlap", "high_rmse", "ambiguous", "degenerate"),
-     "#f4a582", "rejected by registration quality"),
-    ("odometry", ("odometry_gate",), REJECT_COLOUR, "rejected by the odometry gate"),
-    ("graph", None, "#c51b7d", "rejected by consistency or graph checks"),
-)
-
-REASON_TEXT = {
-    "accepted": "passed every check; an edge of graph.json",
-    "no_points": "a scan had too few valid returns to register",
-    "not_converged": "registration did not settle on an alignment",
-    "low_overlap": "too few points found a partner after alignment",
-    "high_rmse": "the aligned scans stay too far apart",
-    "ambiguous": "a distinct second alignment fits almost as well (look-alike place)",
-    "degenerate": "the geometry leaves a direction unobservable (e.g. a bare corridor)",
-    "odometry_gate": "the registered motion is implausible given the odometry",
-    "pair_inconsistent": "does not close consistent cycles with the other closures",
-    "graph_residual": "failed the chi-square residual test after optimisation",
-    "duplicate": "the same pair was already considered",
+# Colour and legend of each report group of rejections (the groups of
+# closurecheck.verification.reasons, in their order).
+REJECT_STYLE = {
+    "registration": ("#f4a582", "rejected by registration quality"),
+    "odometry": (REJECT_COLOUR, "rejected by the odometry gate"),
+    "consistency": ("#c51b7d", "rejected by consistency or graph checks"),
 }
 
 HISTOGRAM_FIGURES = (
@@ -123,7 +112,6 @@ def check_thresholds(verify_options) -> dict:
     freedom at the configured probability (squared Mahalanobis distance of a
     3-vector, dimensionless).  Options missing from the object are skipped.
     """
-    from scipy.stats import chi2
 
     out = {}
     for key, name in (("overlap", "min_overlap"), ("rmse_m", "max_rmse_m"), ("ambiguity", "max_ambiguity")):
@@ -132,7 +120,7 @@ def check_thresholds(verify_options) -> dict:
     for key, name in (("odometry_chi2", "gate_probability"), ("map_chi2", "map_probability"),
                       ("graph_chi2", "residual_probability")):
         if hasattr(verify_options, name):
-            out[key] = float(chi2.ppf(float(getattr(verify_options, name)), 3))
+            out[key] = chi2_threshold(float(getattr(verify_options, name)))
     return out
 
 
@@ -235,13 +223,6 @@ def _panel_height(poses: np.ndarray, width: float = 6.5) -> float:
     return float(np.clip(width * h / max(w, 1e-9), 4.5, 11.0))
 
 
-def _reject_group(reason: str) -> str:
-    for name, reasons, _, _ in REJECT_GROUPS:
-        if reasons is None or reason in reasons:
-            return name
-    return REJECT_GROUPS[-1][0]
-
-
 def figure_loops(data: ReportData, ellipse_scale: float) -> bytes:
     """Two panels on the optimised trajectory: verified closures with their
     3-sigma position ellipses (magnified ``ellipse_scale`` times), and the
@@ -280,8 +261,9 @@ def figure_loops(data: ReportData, ellipse_scale: float) -> bytes:
     ax.set_title(f"Verified loop closures ({len(acc)})")
 
     ax = axes[1]
-    groups = np.array([_reject_group(str(r)) for r in v.reason[rej]], dtype=object)
-    for name, _, colour, label in REJECT_GROUPS:
+    groups = np.array([Reason(str(r)).group for r in v.reason[rej]], dtype=object)
+    for name in GROUPS:
+        colour, label = REJECT_STYLE[name]
         sel = rej[groups == name] if len(rej) else rej
         seg = _segments(poses, index, v.src[sel], v.dst[sel])
         if seg is not None:
@@ -549,17 +531,13 @@ def _kv_table(rows, klass: str = "kv") -> str:
 
 def _reason_table(v: VerdictTable) -> str:
     counts = v.counts()
-    known = set(counts)
-    extra = sorted({str(r) for r in v.reason} - known)  # codes newer than REASONS still show
-    for r in extra:
-        counts[r] = int((v.reason.astype(str) == r).sum())
     total = max(len(v), 1)
     rows = []
     for r, n in counts.items():
         width = max(1, round(120 * n / total))
         bar = f'<span class="bar{" acc" if r == "accepted" else ""}" style="width:{width}px"></span>'
         rows.append(f"<tr><td class='txt'>{html.escape(r)}</td><td>{n}</td><td class='txt'>{bar}</td>"
-                    f"<td class='desc'>{html.escape(REASON_TEXT.get(r, ''))}</td></tr>")
+                    f"<td class='desc'>{html.escape(Reason(r).text)}</td></tr>")
     return '<table class="kv" id="reasons">' + "".join(rows) + "</table>"
 
 
@@ -710,7 +688,7 @@ def build_report(out_dir, data: ReportData, *, table_limit: int = 5000, progress
         nav.append(("config", "Settings"))
     lead = (f"{n_acc} of {len(v)} loop-closure candidates were verified and kept in graph.json; "
             f"the other {len(v) - n_acc} were rejected by the check named in their reason.")
-    key_rej = "".join(f'<span style="background:{c}"></span>{html.escape(lab)}' for _, _, c, lab in REJECT_GROUPS)
+    key_rej = "".join(f'<span style="background:{c}"></span>{html.escape(lab)}' for c, lab in (REJECT_STYLE[g] for g in GROUPS))
     parts = [
         "<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
         "<meta name='viewport' content='width=device-width, initial-scale=1'>",
@@ -753,7 +731,7 @@ def build_report(out_dir, data: ReportData, *, table_limit: int = 5000, progress
     shown = min(len(v), table_limit)
     parts.append(_section("table-section", "Candidates",
                           f"<p>{shown} of {len(v)} candidates, verified first; click a column heading to sort "
-                          f"(again to reverse). All of them, with covariances, are in candidates.csv.</p>"
+                          f"(again to reverse). All of them are in candidates.csv, with the variances of x, y and theta (the full covariance of each verified closure is in graph.json).</p>"
                           f'<div class="scroll">{_candidate_table(v, table_limit)}</div>'))
     if data.config_text:
         parts.append(_section("config", "Settings",

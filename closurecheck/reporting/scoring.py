@@ -23,15 +23,13 @@ Definitions (docs/scoring.md):
 
 from __future__ import annotations
 
-import csv
-import io
 import math
-from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
 from ..core import se2
+from ..core.options import options, setting
 from ..errors import InputError
 from ..frontend.candidates import CandidateOptions
 from ..frontend.keyframes import odometry_travel
@@ -39,10 +37,10 @@ from .ground_truth import RevisitOptions, candidate_recall
 from .trajectory import ate_rmse, rpe
 
 
-@dataclass(frozen=True)
+@options
 class ScoreOptions:
-    false_distance_m: float = 0.3
-    false_heading_rad: float = math.radians(3.0)
+    false_distance_m: float = setting(0.3, above=0.0)
+    false_heading_rad: float = setting(math.radians(3.0), above=0.0)
     rpe_distances_m: tuple = (1.0, 5.0, 10.0, 25.0)
 
 
@@ -119,40 +117,17 @@ def score_closures(log, keyframes, src, dst, accepted, delta, covariance, poses=
     return out
 
 
-def read_verdicts(path):
-    """Read a run's candidates.csv: (src, dst, accepted, delta) as arrays (delta NaN where none)."""
-    path = Path(path)
-    try:
-        text = path.read_text(encoding="utf-8")
-    except FileNotFoundError:
-        raise InputError("no such file", path) from None
-    rows = list(csv.DictReader(io.StringIO(text)))
-    need = ("from", "to", "verdict", "dx", "dy", "dtheta")
-    if rows and any(k not in rows[0] for k in need):
-        raise InputError(f"not a candidates.csv of a run (needs columns {','.join(need)})", path)
-
-    def num(v):
-        try:
-            return float(v) if v not in ("", None) else math.nan
-        except ValueError:
-            return math.nan
-
-    src = np.array([int(r["from"]) for r in rows], dtype=np.int64)
-    dst = np.array([int(r["to"]) for r in rows], dtype=np.int64)
-    accepted = np.array([r["verdict"] == "accepted" for r in rows], dtype=bool)
-    delta = np.array([[num(r["dx"]), num(r["dy"]), num(r["dtheta"])] for r in rows], dtype=float).reshape(-1, 3)
-    return src, dst, accepted, delta
-
-
 def score_run_dir(run_dir, log, options: ScoreOptions = ScoreOptions()) -> dict:
     """Score the outputs of ``closurecheck run`` in ``run_dir`` against ``log``."""
     from ..io.graph_file import read_graph
+    from ..io.pairs_csv import read_candidates
 
     run_dir = Path(run_dir)
     if not run_dir.is_dir():
         raise InputError("not a run directory", run_dir)
     graph = read_graph(run_dir / "graph.json")
-    src, dst, accepted, delta = read_verdicts(run_dir / "candidates.csv")
+    rows = read_candidates(run_dir / "candidates.csv")
+    src, dst, accepted, delta = rows.src, rows.dst, rows.accepted, rows.delta
     if len(graph.ids) and (graph.ids.max() >= len(log)):
         raise InputError("graph.json names scans that the log does not have; is this the run's log?", run_dir)
     cov = np.full((len(src), 3, 3), np.nan)
@@ -199,3 +174,36 @@ def format_score(score: dict) -> str:
         rows.append((k.replace("_", " "), str(v)))
     width = max(len(a) for a, _ in rows) if rows else 0
     return "\n".join(f"{a.ljust(width)}  {b}" for a, b in rows)
+
+
+def score_run(run_dir, *, log_path=None, candidates=None, choice=None) -> dict:
+    """``closurecheck score``: a run's verdicts, or another front-end's pairs, against the log's truth.
+
+    ``log_path`` defaults to the log recorded in ``run_dir/summary.json``;
+    ``candidates`` (a pairs CSV) scores that list instead of the run's verdicts.
+    """
+    import json
+
+    from ..frontend.keyframes import select_keyframes
+    from ..io.inputs import RecordingChoice, load_input
+    from ..io.pairs_csv import read_pairs
+
+    run_dir = Path(run_dir)
+    if log_path is None:
+        try:
+            log_path = json.loads((run_dir / "summary.json").read_text())["log_path"]
+        except (OSError, ValueError, KeyError, TypeError, RecursionError):
+            raise InputError("cannot tell which log this run used; pass --log LOG", run_dir) from None
+        if not isinstance(log_path, str) or not log_path:
+            raise InputError("cannot tell which log this run used; pass --log LOG", run_dir)
+    log, _ = load_input(log_path, choice or RecordingChoice())
+    if candidates:
+        return score_pairs(log, read_pairs(candidates, len(log)), select_keyframes(log.odom))
+    return score_run_dir(run_dir, log)
+
+
+def write_score(path, score: dict) -> None:
+    """Write the scores as strict JSON, atomically: an undefined score (NaN) is ``null``."""
+    from ..io.json_file import write_json
+
+    write_json(path, score)

@@ -5,6 +5,8 @@ from __future__ import annotations
 import sys
 import time
 
+from ..errors import one_line
+
 # Plain progress lines (stderr not a terminal: a file, a pipe, CI) come at
 # most this often; a bar redraws in place instead.
 PLAIN_INTERVAL_S = 10.0
@@ -166,4 +168,24 @@ def format_summary(info: dict, paths: dict) -> str:
     for name in ("graph", "candidates", "report"):
         if name in paths:
             lines.append(f"  {name}: {paths[name]}")
+    return "\n".join(lines)
+
+
+def describe_log(log, name) -> str:
+    """The lines ``closurecheck info`` prints about a scan log."""
+    import numpy as np
+
+    s = log.sensor
+    steps = np.hypot(*np.diff(log.odom[:, :2], axis=0).T) if len(log) > 1 else np.zeros(0)
+    fov = np.degrees(abs(s.angle_step) * (s.beams - 1))
+    valid = np.isfinite(log.ranges).mean() if log.ranges.size else 0.0
+    lines = [
+        f"{name}: {len(log)} scans over {log.t[-1] - log.t[0] if len(log) else 0.0:.1f} s",
+        f"  sensor: {s.beams} beams over {fov:.1f} deg, ranges {s.min_range:g}-{s.max_range:g} m,"
+        f" {100 * valid:.1f}% of beams with a return",
+        f"  odometry: {steps.sum():.1f} m travelled",
+        f"  ground truth: {'yes' if log.has_truth else 'no'}",
+    ]
+    if log.header.get("notes"):
+        lines.append(f"  notes: {one_line(log.header['notes'], 300)}")
     return "\n".join(lines)

@@ -31,10 +31,6 @@ class RigidAlignment:
     def angle(self) -> float:
         return float(np.arctan2(self.rotation[1, 0], self.rotation[0, 0]))
 
-    def apply(self, poses: np.ndarray) -> np.ndarray:
-        """Map (N, 3) poses from the estimate's frame into the truth frame."""
-        return se2.compose(np.array([*self.translation, self.angle]), poses)
-
 
 def align_rigid(estimate_xy, truth_xy) -> RigidAlignment:
     """Least-squares rigid alignment of (N, 2) estimated positions onto truth."""

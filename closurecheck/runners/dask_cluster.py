@@ -26,7 +26,7 @@ import uuid
 from collections import OrderedDict
 
 from .._version import __version__
-from ..errors import InputError, shorten
+from ..errors import InputError, one_line
 from .work import (
     CACHE_SCANS,
     OrderedPairs,
@@ -38,7 +38,7 @@ from .work import (
     single_thread_blas,
 )
 
-MISSING_EXTRA = "--dask needs the optional extra: pip install 'closurecheck[dask]'"
+MISSING_EXTRA = "running on Dask needs the optional extra: pip install 'closurecheck[dask]'"
 
 # Seconds to wait for a remote scheduler to answer, and for it to have a worker.
 CONNECT_TIMEOUT_S = 5.0
@@ -84,7 +84,7 @@ def _worker_version() -> str:
 
 
 def _one_line(exc: BaseException) -> str:
-    return shorten(str(exc) or type(exc).__name__, 200)
+    return one_line(str(exc) or type(exc).__name__, 200)
 
 
 class DaskRunner:
@@ -107,7 +107,7 @@ class DaskRunner:
         except ImportError:
             raise InputError(MISSING_EXTRA) from None
         if workers < 0:
-            raise InputError(f"--jobs must be >= 0 (0 = all cores), got {workers}")
+            raise InputError(f"workers must be >= 0 (0 = all cores), got {workers}")
         address = str(address).strip()
         self.address = address
         self.cache_scans = cache_scans
@@ -123,7 +123,7 @@ class DaskRunner:
             self.name = f"dask local cluster ({n} workers)"
             return
         if not address.startswith("tcp://") or ":" not in address[len("tcp://"):]:
-            raise InputError(f"--dask takes 'local' or tcp://HOST:PORT, got {address!r}")
+            raise InputError(f"the Dask address must be 'local' or tcp://HOST:PORT, got {address!r}")
         try:
             self.client = distributed.Client(address, timeout=f"{CONNECT_TIMEOUT_S}s", set_as_default=False)
         except Exception as exc:  # noqa: BLE001 - OSError, TimeoutError and Dask's own wrap the same failure

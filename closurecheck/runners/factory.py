@@ -18,7 +18,7 @@ def make_runner(jobs: int = 0, dask: str | None = None):
         cluster, ``"tcp://HOST:PORT"`` for an existing Dask scheduler.
     """
     if jobs < 0:
-        raise InputError(f"--jobs must be >= 0 (0 = all cores), got {jobs}")
+        raise InputError(f"jobs must be >= 0 (0 = all cores), got {jobs}")
     if dask:
         from .dask_cluster import DaskRunner
 

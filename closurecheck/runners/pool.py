@@ -113,7 +113,7 @@ class PoolRunner:
 
     def __init__(self, workers: int = 0, cache_scans: int = CACHE_SCANS):
         if workers < 0:
-            raise InputError(f"--jobs must be >= 0 (0 = all cores), got {workers}")
+            raise InputError(f"workers must be >= 0 (0 = all cores), got {workers}")
         self.workers = workers or os.cpu_count() or 1
         self.cache_scans = cache_scans
         self.last_builds = 0

@@ -1,1 +1,5 @@
-"""Deciding which registered candidates are loop closures: gates, pairwise consistency, the map gate, the verdict trail."""
+"""Deciding which registered candidates are loop closures.
+
+Gates, pairwise consistency, the map gate, heading-drift calibration, the
+reason codes and the verdict trail.
+"""

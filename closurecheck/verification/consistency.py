@@ -40,20 +40,21 @@ import scipy.sparse
 import scipy.stats
 
 from ..core import se2
+from ..core.options import options, setting
+from ..core.stats import chi2_threshold
 from ..errors import InputError
 
 __all__ = [
     "ConsistencyOptions",
     "OdometryGate",
     "PairConsistency",
-    "chi2_threshold",
     "odometry_gate",
     "pair_distances",
     "pairwise_consistency",
 ]
 
 
-@dataclass(frozen=True)
+@options
 class ConsistencyOptions:
     """Thresholds of the consistency checks.
 
@@ -80,35 +81,12 @@ class ConsistencyOptions:
         (roughly 1 kB per pair).
     """
 
-    gate_probability: float = 0.99
-    pair_probability: float = 0.99
-    informative_max_std_m: float = 1.0
-    informative_max_std_rad: float = 0.25
-    pair_shared_odometry: bool = True
-    pairs_per_block: int = 100_000
-
-    def __post_init__(self):
-        for name in ("gate_probability", "pair_probability"):
-            p = getattr(self, name)
-            if not (isinstance(p, (int, float)) and 0.0 < p < 1.0):
-                raise InputError(f"{name} must be a probability strictly between 0 and 1, got {p!r}")
-        for name in ("informative_max_std_m", "informative_max_std_rad"):
-            v = getattr(self, name)
-            if not (isinstance(v, (int, float)) and v > 0.0):
-                raise InputError(f"{name} must be a positive number, got {v!r}")
-        if not (isinstance(self.pairs_per_block, int) and self.pairs_per_block >= 1):
-            raise InputError(f"pairs_per_block must be a positive integer, got {self.pairs_per_block!r}")
-
-
-def chi2_threshold(dof: int, probability: float) -> float:
-    """Quantile of the chi-square distribution: the squared Mahalanobis
-    distance below which a correct measurement with ``dof`` degrees of freedom
-    falls with the given probability (e.g. 7.815 for 3 DoF at 0.95)."""
-    if not (isinstance(dof, (int, np.integer)) and dof >= 1):
-        raise InputError(f"degrees of freedom must be a positive integer, got {dof!r}")
-    if not (0.0 < probability < 1.0):
-        raise InputError(f"probability must be strictly between 0 and 1, got {probability!r}")
-    return float(scipy.stats.chi2.ppf(probability, dof))
+    gate_probability: float = setting(0.99, above=0.0, below=1.0)
+    pair_probability: float = setting(0.99, above=0.0, below=1.0)
+    informative_max_std_m: float = setting(1.0, above=0.0)
+    informative_max_std_rad: float = setting(0.25, above=0.0)
+    pair_shared_odometry: bool = setting(True)
+    pairs_per_block: int = setting(100_000, at_least=1)
 
 
 @dataclass(frozen=True)
@@ -156,72 +134,19 @@ class PairConsistency:
 
 
 # --------------------------------------------------------------------------
-# validation at the public boundary
+# inputs (the verification stage hands over checked arrays)
 
 
-def _check_inputs(src, dst, deltas, covariances, poses, prefix):
-    poses = np.asarray(poses, dtype=float)
-    prefix = np.asarray(prefix, dtype=float)
-    if poses.ndim != 2 or poses.shape[1] != 3 or len(poses) < 1:
-        raise InputError(f"odometry poses must have shape (N, 3) with N >= 1, got {poses.shape}")
-    n = len(poses)
-    if prefix.shape != (n, 3, 3):
-        raise InputError(f"odometry prefix must have shape ({n}, 3, 3) to match the poses, got {prefix.shape}")
-    if not (np.all(np.isfinite(poses)) and np.all(np.isfinite(prefix))):
-        raise InputError("odometry poses and prefix must be finite")
-    src = np.asarray(src)
-    dst = np.asarray(dst)
-    if src.ndim != 1 or dst.shape != src.shape:
-        raise InputError(f"closure src and dst must be 1-D arrays of equal length, got {src.shape} and {dst.shape}")
-    k = len(src)
-    for name, idx in (("src", src), ("dst", dst)):
-        if k and not np.issubdtype(idx.dtype, np.integer):
-            raise InputError(f"closure {name} must hold integer node indices, got dtype {idx.dtype}")
-        if k and (idx.min() < 0 or idx.max() >= n):
-            raise InputError(f"closure {name} indices must lie in [0, {n - 1}], got range [{idx.min()}, {idx.max()}]")
-    src = src.astype(np.intp)
-    dst = dst.astype(np.intp)
-    deltas = np.asarray(deltas, dtype=float)
+def _arrays(src, dst, deltas, covariances, poses, prefix):
+    """The closure and chain arrays as float/int arrays, covariances symmetrised to the last bit."""
     covariances = np.asarray(covariances, dtype=float)
-    if deltas.shape != (k, 3):
-        raise InputError(f"closure deltas must have shape ({k}, 3), got {deltas.shape}")
-    if covariances.shape != (k, 3, 3):
-        raise InputError(f"closure covariances must have shape ({k}, 3, 3), got {covariances.shape}")
-    if not (np.all(np.isfinite(deltas)) and np.all(np.isfinite(covariances))):
-        raise InputError("closure deltas and covariances must be finite")
-    if k:
-        asym = np.abs(covariances - np.swapaxes(covariances, 1, 2)).max(axis=(1, 2))
-        scale = np.abs(covariances).max(axis=(1, 2))
-        bad = np.flatnonzero(asym > 1e-9 * np.maximum(scale, 1e-300))
-        if len(bad):
-            raise InputError(f"closure covariance {bad[0]} is not symmetric")
-        sym = 0.5 * (covariances + np.swapaxes(covariances, 1, 2))
-        bad = np.flatnonzero(np.linalg.eigvalsh(sym)[:, 0] <= 0.0)
-        if len(bad):
-            raise InputError(f"closure covariance {bad[0]} is not positive definite")
-        covariances = sym
-    return src, dst, deltas, covariances, poses, prefix
+    return (np.asarray(src, dtype=np.intp), np.asarray(dst, dtype=np.intp), np.asarray(deltas, dtype=float),
+            0.5 * (covariances + np.swapaxes(covariances, 1, 2)), np.asarray(poses, dtype=float),
+            np.asarray(prefix, dtype=float))
 
 
 # --------------------------------------------------------------------------
 # small vectorised helpers
-
-
-def _frame(theta):
-    """blockdiag(R(theta), 1) of shape (..., 3, 3).
-
-    Maps a right-tangent perturbation tau of a pose p to the change of p's
-    ``[x, y, theta]``: ``p ∘ Exp(tau) ≈ p + F(theta_p) tau``.
-    """
-    theta = np.asarray(theta, dtype=float)
-    m = np.zeros(theta.shape + (3, 3))
-    c, s = np.cos(theta), np.sin(theta)
-    m[..., 0, 0] = c
-    m[..., 0, 1] = -s
-    m[..., 1, 0] = s
-    m[..., 1, 1] = c
-    m[..., 2, 2] = 1.0
-    return m
 
 
 def _t(m):
@@ -268,7 +193,7 @@ def _predicted(poses, prefix, src, dst):
         # follows through the Jacobian of inversion, J = d inv(p) / dp
         # (= the first Jacobian of between(p, identity)).
         d = delta[flip]
-        j_inv, _ = se2.between_jacobians(d, np.zeros_like(d))
+        j_inv = se2.inverse_jacobian(d)
         delta = delta.copy()
         cov = cov.copy()
         delta[flip] = se2.inverse(d)
@@ -301,8 +226,8 @@ def odometry_gate(src, dst, deltas, covariances, poses, prefix, options: Consist
         sum of the measurement's and the odometry chain's contributions
         (independent), and ``distance_sq = e^T S^-1 e``.
     """
-    src, dst, deltas, covariances, poses, prefix = _check_inputs(src, dst, deltas, covariances, poses, prefix)
-    threshold = chi2_threshold(3, options.gate_probability)
+    src, dst, deltas, covariances, poses, prefix = _arrays(src, dst, deltas, covariances, poses, prefix)
+    threshold = chi2_threshold(options.gate_probability)
     pred, pred_cov = _predicted(poses, prefix, src, dst)
     err = se2.between(pred, deltas)
     j_pred, j_meas = se2.between_jacobians(pred, deltas)
@@ -360,7 +285,7 @@ def _oriented(src, dst, deltas, covariances):
     deltas = deltas.copy()
     covariances = covariances.copy()
     d = deltas[flip]
-    j_inv, _ = se2.between_jacobians(d, np.zeros_like(d))
+    j_inv = se2.inverse_jacobian(d)
     deltas[flip] = se2.inverse(d)
     c = j_inv @ covariances[flip] @ _t(j_inv)
     covariances[flip] = 0.5 * (c + _t(c))
@@ -373,7 +298,7 @@ def _closure_terms(src, dst, deltas, covariances, poses):
     xb = poses[dst]
     mismatch = se2.compose(se2.compose(xa, deltas), se2.inverse(xb))
     minv = se2.inverse(mismatch)
-    f = _frame(deltas[:, 2])
+    f = se2.frame_rotation(deltas[:, 2])
     sigma_tau = _t(f) @ covariances @ f  # right-tangent covariance of z
     ad_b = se2.adjoint(xb)
     return _ClosureTerms(
@@ -560,7 +485,7 @@ def pair_distances(
     in time); ``shared_odometry=False`` then treats them as independent and
     overstates the cycle covariance (a conservative, weaker test).
     """
-    src, dst, deltas, covariances, poses, prefix = _check_inputs(src, dst, deltas, covariances, poses, prefix)
+    src, dst, deltas, covariances, poses, prefix = _arrays(src, dst, deltas, covariances, poses, prefix)
     k = len(src)
     first = np.asarray(first)
     second = np.asarray(second)
@@ -622,9 +547,9 @@ def pairwise_consistency(src, dst, deltas, covariances, poses, prefix, options: 
     -------
     PairConsistency
     """
-    src, dst, deltas, covariances, poses, prefix = _check_inputs(src, dst, deltas, covariances, poses, prefix)
+    src, dst, deltas, covariances, poses, prefix = _arrays(src, dst, deltas, covariances, poses, prefix)
     k = len(src)
-    threshold = chi2_threshold(3, options.pair_probability)
+    threshold = chi2_threshold(options.pair_probability)
     # Dense float32 distances and a dense boolean mask filled in place: most
     # pairs are consistent, so index lists of the consistent pairs would
     # take several times the memory of the mask (K = 6,000: 36 MB mask,

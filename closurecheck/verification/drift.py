@@ -31,9 +31,11 @@ import numpy as np
 import scipy.linalg
 
 from ..core import se2
+from ..core.odometry import odometry_travel
+from ..core.options import options, setting
 
 
-@dataclass(frozen=True)
+@options
 class DriftOptions:
     """When a heading drift is estimated and applied.
 
@@ -53,12 +55,12 @@ class DriftOptions:
         the winner needs this many times the votes of zero drift.
     """
 
-    min_closures: int = 10
-    min_significance: float = 3.0
-    outlier_sigmas: float = 4.0
-    max_closures: int = 1500
-    consensus_sigmas: float = 3.0
-    consensus_margin: float = 1.5
+    min_closures: int = setting(10, at_least=2)
+    min_significance: float = setting(3.0, at_least=0.0)
+    outlier_sigmas: float = setting(4.0, above=0.0)
+    max_closures: int = setting(1500, at_least=2)
+    consensus_sigmas: float = setting(3.0, above=0.0)
+    consensus_margin: float = setting(1.5, at_least=1.0)
 
 
 @dataclass(frozen=True)
@@ -88,9 +90,7 @@ NO_DRIFT = HeadingDrift(0.0, float("nan"), 0, False)
 
 def chain_travel(odom_poses) -> np.ndarray:
     """Cumulative path length (m) along the keyframe chain, (N,), 0 at node 0."""
-    odom_poses = np.asarray(odom_poses, dtype=float)
-    steps = se2.between(odom_poses[:-1], odom_poses[1:])
-    return np.r_[0.0, np.cumsum(np.hypot(steps[:, 0], steps[:, 1]))]
+    return odometry_travel(odom_poses)[0]
 
 
 def _heading_residuals(odom_poses, step_covariances, src, dst, delta, covariance):

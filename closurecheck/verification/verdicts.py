@@ -1,20 +1,7 @@
 """The verdict trail: one row per candidate considered, as arrays.
 
-Reason codes (docs/verification.md lists them with their checks):
-
-========================  ====================================================
-``accepted``              passed every check and stayed in the final graph
-``no_points``             a scan had too few valid returns to register
-``not_converged``         ICP did not converge
-``low_overlap``           too few source points found a partner in the target
-``high_rmse``             the aligned scans stay too far apart
-``ambiguous``             a second, distinct alignment fits almost as well
-``degenerate``            the geometry leaves a direction unobservable
-``odometry_gate``         the registered delta is implausible under odometry
-``pair_inconsistent``     outside the largest pairwise-consistent set (PCM)
-``graph_residual``        failed the chi-square test after optimisation
-``duplicate``             the same pair was already accepted
-========================  ====================================================
+Reason codes and their meaning: :class:`closurecheck.verification.reasons.Reason`
+(docs/verification.md lists them with their checks).
 """
 
 from __future__ import annotations
@@ -23,10 +10,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-REASONS = (
-    "accepted", "no_points", "not_converged", "low_overlap", "high_rmse", "ambiguous", "degenerate",
-    "odometry_gate", "pair_inconsistent", "graph_residual", "duplicate",
-)
+from .reasons import Reason, codes
 
 
 @dataclass(frozen=True, eq=False)
@@ -39,7 +23,8 @@ class VerdictTable:
     origin : (C,) str, which proposer found the pair (descriptor,
         proximity, external).
     accepted : (C,) bool.
-    reason : (C,) str, one of :data:`REASONS`.
+    reason : (C,) str, a :class:`~closurecheck.verification.reasons.Reason` code each
+        (checked when the table is built: an unknown code is an error).
     delta : (C, 3) registered delta, NaN when registration gave none.
     covariance : (C, 3, 3) its covariance in the src frame, NaN when none.
     figures : per-candidate numbers behind the verdict, name -> (C,) array.
@@ -54,14 +39,17 @@ class VerdictTable:
     covariance: np.ndarray
     figures: dict = field(default_factory=dict)
 
+    def __post_init__(self):
+        codes(np.unique(self.reason.astype(str)))
+
     def __len__(self) -> int:
         return len(self.src)
 
     def counts(self) -> dict:
-        """Number of candidates per reason code, in the order of REASONS."""
+        """Number of candidates per reason code, in the order of :class:`Reason`."""
         vals, n = np.unique(self.reason.astype(str), return_counts=True)
         found = dict(zip(vals.tolist(), n.tolist()))
-        return {r: found[r] for r in REASONS if r in found}
+        return {r.value: found[r.value] for r in Reason if r.value in found}
 
     def checks(self, k: int) -> dict:
         """The figures of candidate k as a plain dict (graph.json ``checks``)."""

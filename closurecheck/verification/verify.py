@@ -28,16 +28,19 @@ import dataclasses
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy.stats import chi2
 
 from ..core import se2
-from ..core.kernels import kernel_from_name
+from ..core.kernels import KERNEL_CHOICES, kernel_from_name
+from ..core.odometry import OdometryChain
+from ..core.options import options, setting
+from ..core.stats import chi2_median, chi2_threshold
 from ..graph.solver import (
     GncOptions,
     SolverOptions,
     optimize_gnc,
     prune_inconsistent_edges,
 )
+from ..registration.batch import RegisteredClosures
 from .clique import CliqueOptions, max_clique
 from .consistency import ConsistencyOptions, odometry_gate, pairwise_consistency
 from .drift import (
@@ -49,9 +52,10 @@ from .drift import (
     remove_heading_drift,
 )
 from .map_gate import map_gate_distance, relative_posterior
+from .reasons import Reason
 
 
-@dataclass(frozen=True)
+@options
 class VerifyOptions:
     """Thresholds of the verification stage (units in the names).
 
@@ -95,39 +99,42 @@ class VerifyOptions:
         (:mod:`closurecheck.verification.drift`).
     """
 
-    min_overlap: float = 0.3
-    max_rmse_m: float = 0.08
-    max_ambiguity: float = 0.95
-    reject_degenerate: bool = True
-    gate_probability: float = 0.999
-    gate_max_chain_std_m: float = 1.0
-    gate_max_chain_std_rad: float = 0.25
-    pair_probability: float = 0.999
-    clique_max_expansions: int = 200_000
-    min_clique_size: int = 1
-    use_gnc: bool = True
-    gnc_min_weight: float = 0.5
-    kernel: str = "cauchy"
-    kernel_scale: float = 3.0
-    residual_probability: float = 0.999
-    min_closures_for_scale: int = 10
-    max_odometry_scale: float = 100.0
-    extend_with_map: bool = True
-    map_probability: float = 0.999
-    map_max_std_m: float = 0.25
-    map_rounds: int = 3
-    calibrate_heading_drift: bool = True
-    closure_floor_m: float = 0.001
-    closure_floor_rad: float = 0.000175
-    drift_min_significance: float = 3.0
+    min_overlap: float = setting(0.3, at_least=0.0, at_most=1.0)
+    max_rmse_m: float = setting(0.08, above=0.0)
+    max_ambiguity: float = setting(0.95, above=0.0, at_most=1.0)
+    reject_degenerate: bool = setting(True)
+    gate_probability: float = setting(0.999, above=0.0, below=1.0)
+    gate_max_chain_std_m: float = setting(1.0, above=0.0)
+    gate_max_chain_std_rad: float = setting(0.25, above=0.0)
+    pair_probability: float = setting(0.999, above=0.0, below=1.0)
+    clique_max_expansions: int = setting(200_000, at_least=1)
+    min_clique_size: int = setting(1, at_least=1)
+    use_gnc: bool = setting(True)
+    gnc_min_weight: float = setting(0.5, at_least=0.0, at_most=1.0)
+    kernel: str = setting("cauchy", choices=KERNEL_CHOICES)
+    kernel_scale: float = setting(3.0, above=0.0)
+    residual_probability: float = setting(0.999, above=0.0, below=1.0)
+    min_closures_for_scale: int = setting(10, at_least=1)
+    max_odometry_scale: float = setting(100.0, at_least=1.0)
+    extend_with_map: bool = setting(True)
+    map_probability: float = setting(0.999, above=0.0, below=1.0)
+    map_max_std_m: float = setting(0.25, above=0.0)
+    map_rounds: int = setting(3, at_least=0)
+    calibrate_heading_drift: bool = setting(True)
+    closure_floor_m: float = setting(0.001, at_least=0.0)
+    closure_floor_rad: float = setting(0.000175, at_least=0.0)
+    drift_min_significance: float = setting(3.0, at_least=0.0)
 
 
 @dataclass(frozen=True, eq=False)
 class Verification:
     """Outcome of :func:`verify` for K candidates on an N-node chain.
 
-    reason : (K,) str reason codes ("accepted" for verified closures).
+    reason : (K,) str reason codes (:class:`~closurecheck.verification.reasons.Reason`
+        values; "accepted" for verified closures).
     accepted : (K,) bool.
+    closure_covariance : (K, 3, 3) the covariance each closure was judged
+        with: registration's plus the floor of :func:`closure_covariances`.
     figures : name -> (K,) arrays of the numbers behind the verdicts.
     poses : (N, 3) optimised keyframe poses (odometry frame, node 0 fixed).
     odometry_scale : variance factor applied to the odometry step covariances.
@@ -141,6 +148,7 @@ class Verification:
 
     reason: np.ndarray
     accepted: np.ndarray
+    closure_covariance: np.ndarray
     figures: dict
     poses: np.ndarray
     clique_exact: bool
@@ -198,14 +206,14 @@ def optimise_closures(members, src, dst, delta, covariance, odom_poses, step_cov
     keep = np.ones(n_m, dtype=bool)
     if options.use_gnc:
         gnc = optimize_gnc(start, e_src, e_dst, e_delta, e_info, robust,
-                           GncOptions(inlier_probability=options.residual_probability))
+                           GncOptions(inlier_probability=options.residual_probability), check=False)
         gnc_w = np.array(gnc.weights[n_o:])
         keep = gnc_w >= options.gnc_min_weight
         start = np.array(gnc.poses)
     sel = np.r_[np.ones(n_o, bool), keep]
     kernel = kernel_from_name(options.kernel, options.kernel_scale)
     pr = prune_inconsistent_edges(start, e_src[sel], e_dst[sel], e_delta[sel], e_info[sel], robust[sel], kernel,
-                                  probability=options.residual_probability, options=SolverOptions())
+                                  probability=options.residual_probability, options=SolverOptions(), check=False)
     kept = keep.copy()
     kept[np.flatnonzero(keep)] = pr.kept[n_o:]
     res[np.flatnonzero(keep)] = pr.solution.residuals_sq[n_o:]
@@ -243,7 +251,7 @@ def odometry_scale(chi2_values, options: VerifyOptions) -> float:
     x = x[np.isfinite(x)]
     if len(x) < options.min_closures_for_scale:
         return 1.0
-    factor = float(np.median(x) / chi2.median(3))
+    factor = float(np.median(x) / chi2_median())
     return float(np.clip(factor, 1.0, options.max_odometry_scale))
 
 
@@ -257,7 +265,7 @@ def _consistency_pass(alive0, src, dst, delta, covariance, odom_poses, step_cova
         gate = odometry_gate(src[alive], dst[alive], delta[alive], covariance[alive], odom_poses, prefix, cons)
         figures["odometry_chi2"][alive] = gate.distance_sq
         figures["odometry_informative"][alive] = gate.informative
-        reason[alive[gate.informative & ~gate.passed]] = "odometry_gate"
+        reason[alive[gate.informative & ~gate.passed]] = Reason.ODOMETRY_GATE
     alive = np.flatnonzero(alive0 & (reason == ""))
     clique = None
     if len(alive):
@@ -268,7 +276,7 @@ def _consistency_pass(alive0, src, dst, delta, covariance, odom_poses, step_cova
         out[clique.members] = False
         if clique.size < options.min_clique_size:
             out[:] = True
-        reason[alive[out]] = "pair_inconsistent"
+        reason[alive[out]] = Reason.PAIR_INCONSISTENT
     return reason, clique
 
 
@@ -280,10 +288,10 @@ def _strict_pass(plausible, src, dst, delta, covariance, odom_poses, step_covari
     """
     upd, clique = _consistency_pass(plausible, src, dst, delta, covariance, odom_poses, step_covariances,
                                     options, cons, figures)
-    first_pass = np.where(upd == "", "accepted", upd)
-    alive = np.flatnonzero(plausible & (first_pass == "accepted"))
+    first_pass = np.where(upd == "", Reason.ACCEPTED, upd)
+    alive = np.flatnonzero(plausible & (first_pass == Reason.ACCEPTED))
     kept, _, _, _ = optimise_closures(alive, src, dst, delta, covariance, odom_poses, step_covariances, options)
-    first_pass[alive[~kept]] = "graph_residual"
+    first_pass[alive[~kept]] = Reason.GRAPH_RESIDUAL
     return first_pass, clique, alive[kept]
 
 
@@ -321,7 +329,8 @@ def _core_and_map(plausible, src, dst, delta, covariance, step_covariances, opti
                      f"{len(core)} verified closures)")
 
     members = core
-    retry = np.flatnonzero(plausible & np.isin(first_pass, ("odometry_gate", "pair_inconsistent")))
+    retry = np.flatnonzero(plausible & ((first_pass == Reason.ODOMETRY_GATE)
+                                        | (first_pass == Reason.PAIR_INCONSISTENT)))
     for _ in range(options.map_rounds if options.extend_with_map else 0):
         # Candidates the odometry could not vouch for, gated against the map
         # that the closures verified so far pin down.  Only where the map is
@@ -338,7 +347,7 @@ def _core_and_map(plausible, src, dst, delta, covariance, step_covariances, opti
         std = np.sqrt(np.linalg.eigvalsh(rel_cov[:, :2, :2])[:, -1])
         figures["map_chi2"][retry] = d2
         figures["map_std_m"][retry] = std
-        ok = (d2 <= chi2.ppf(options.map_probability, 3)) & (std <= options.map_max_std_m)
+        ok = (d2 <= chi2_threshold(options.map_probability)) & (std <= options.map_max_std_m)
         if not ok.any():
             break
         members = np.union1d(members, retry[ok])
@@ -350,41 +359,52 @@ def _core_and_map(plausible, src, dst, delta, covariance, step_covariances, opti
                   notes=tuple(notes))
 
 
-def verify(src, dst, delta, covariance, quality: dict, odom_poses, step_covariances,
+def verify(closures: RegisteredClosures, chain: OdometryChain,
            options: VerifyOptions = VerifyOptions()) -> Verification:
-    """Run the checks of the module docstring and optimise the graph.
+    """Decide which registered candidates are loop closures, and optimise the graph.
 
-    ``quality`` holds (K,) arrays from registration: ``valid`` (a result
-    exists), ``converged``, ``overlap``, ``rmse_m``, ``ambiguity`` (NaN when
-    no coarse search ran), ``degenerate``.
+    Parameters
+    ----------
+    closures : the registration stage's hand-over (scan ids that are
+        keyframes of ``chain``; deltas and covariances in the src frame).
+    chain : the keyframes' odometry with the log's noise model.
+    options : thresholds of the checks.
+
+    Returns
+    -------
+    Verification : a verdict and a :class:`~closurecheck.verification.reasons.Reason`
+    per candidate, the optimised keyframe poses (odometry frame, node 0 fixed)
+    and the figures behind each decision.
     """
-    src = np.asarray(src, dtype=np.intp)
-    dst = np.asarray(dst, dtype=np.intp)
+    src = chain.index_of(closures.src).astype(np.intp)
+    dst = chain.index_of(closures.dst).astype(np.intp)
+    delta = closures.delta
+    covariance = closure_covariances(closures.covariance, options)
+    odom_poses, step_covariances = chain.poses, chain.steps
+    quality = closures.quality
     k = len(src)
     n = len(odom_poses)
-    reason = np.full(k, "accepted", dtype=object)
+    reason = np.full(k, Reason.ACCEPTED, dtype=object)
     notes: list[str] = []
 
-    def reject(mask, code):
-        mask = mask & (reason == "accepted")
+    def reject(mask, code: Reason):
+        mask = mask & (reason == Reason.ACCEPTED)
         reason[mask] = code
 
-    valid = np.asarray(quality["valid"], dtype=bool)
-    reject(~valid, "no_points")
-    reject(~np.asarray(quality["converged"], dtype=bool), "not_converged")
-    reject(np.asarray(quality["overlap"], float) < options.min_overlap, "low_overlap")
-    reject(np.asarray(quality["rmse_m"], float) > options.max_rmse_m, "high_rmse")
-    amb = np.asarray(quality["ambiguity"], float)
-    reject(np.isfinite(amb) & (amb > options.max_ambiguity), "ambiguous")
+    reject(~quality.valid, Reason.NO_POINTS)
+    reject(~quality.converged, Reason.NOT_CONVERGED)
+    reject(quality.overlap < options.min_overlap, Reason.LOW_OVERLAP)
+    reject(quality.rmse_m > options.max_rmse_m, Reason.HIGH_RMSE)
+    reject(np.isfinite(quality.ambiguity) & (quality.ambiguity > options.max_ambiguity), Reason.AMBIGUOUS)
     if options.reject_degenerate:
-        reject(np.asarray(quality["degenerate"], dtype=bool), "degenerate")
-    reject(src == dst, "duplicate")
+        reject(quality.degenerate, Reason.DEGENERATE)
+    reject(src == dst, Reason.DUPLICATE)
     lo, hi = np.minimum(src, dst), np.maximum(src, dst)
     _, first = np.unique(lo * (n + 1) + hi, return_index=True)
     dup = np.ones(k, dtype=bool)
     dup[first] = False
-    reject(dup, "duplicate")
-    plausible = reason == "accepted"
+    reject(dup, Reason.DUPLICATE)
+    plausible = reason == Reason.ACCEPTED
 
     args = (plausible, src, dst, delta, covariance, step_covariances, options)
     drift_options = DriftOptions(min_significance=options.drift_min_significance)
@@ -437,12 +457,12 @@ def verify(src, dst, delta, covariance, quality: dict, odom_poses, step_covarian
     figures["gnc_weight"][members] = gnc_w
     figures["graph_chi2"][members] = res
     final = np.full(k, "", dtype=object)
-    final[members[kept]] = "accepted"
-    final[members[~kept]] = "graph_residual"
-    reason = np.where(reason != "accepted", reason,
+    final[members[kept]] = Reason.ACCEPTED
+    final[members[~kept]] = Reason.GRAPH_RESIDUAL
+    reason = np.where(reason != Reason.ACCEPTED, reason,
                       np.where(final != "", final,
-                               np.where(first_pass == "accepted", "graph_residual", first_pass)))
-    removed = int((reason == "graph_residual").sum())
+                               np.where(first_pass == Reason.ACCEPTED, Reason.GRAPH_RESIDUAL, first_pass)))
+    removed = int((reason == Reason.GRAPH_RESIDUAL).sum())
     if removed:
         notes.append(f"{removed} closure(s) failed the residual test after optimisation")
     clique_exact = True if clique is None else clique.exact
@@ -450,8 +470,9 @@ def verify(src, dst, delta, covariance, quality: dict, odom_poses, step_covarian
         notes.append(f"the maximum-clique search hit its budget of {options.clique_max_expansions} expansions; "
                      f"the consistent set of {clique.size} closures is the best found, at most "
                      f"{clique.upper_bound} is possible")
-    accepted = reason == "accepted"
-    return Verification(reason=reason.astype(str), accepted=accepted, figures=figures, poses=poses,
+    accepted = reason == Reason.ACCEPTED
+    return Verification(reason=np.array([str(r) for r in reason], dtype=str), accepted=accepted,
+                        closure_covariance=covariance, figures=figures, poses=poses,
                         clique_exact=clique_exact, clique_size=0 if clique is None else clique.size,
                         odometry_scale=scale, odometry_poses=np.array(odom_poses, dtype=float),
                         heading_drift=drift, notes=tuple(notes))

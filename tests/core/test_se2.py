@@ -231,3 +231,36 @@ class TestCovariancePropagation:
         e = RNG.normal(size=(10, 3))
         expected = np.einsum("ni,nij,nj->n", e, np.linalg.inv(covs), e)
         np.testing.assert_allclose(se2.mahalanobis_sq(e, covs), expected, rtol=1e-10)
+
+
+# ---------------------------------------------------------------------------
+# The written-out forms against the reference forms they replace on hot paths.
+
+
+def test_inverse_jacobian_is_the_first_jacobian_of_between_with_identity():
+    rng = np.random.default_rng(5)
+    p = np.column_stack([rng.uniform(-20, 20, (50, 2)), rng.uniform(-np.pi, np.pi, 50)])
+    ref, _ = se2.between_jacobians(p, np.zeros_like(p))
+    np.testing.assert_array_equal(se2.inverse_jacobian(p), ref)
+    # and it is the derivative of inverse(): central differences
+    h = 1e-6
+    num = np.stack([(se2.inverse(p + h * e) - se2.inverse(p - h * e)) / (2 * h) for e in np.eye(3)], axis=-1)
+    np.testing.assert_allclose(se2.inverse_jacobian(p), num, atol=1e-6)
+
+
+def test_chain_relative_unrolled_equals_the_matrix_form():
+    rng = np.random.default_rng(6)
+    n = 40
+    steps = np.column_stack([rng.uniform(0.2, 1.0, n - 1), rng.normal(0, 0.1, n - 1), rng.normal(0, 0.3, n - 1)])
+    poses = np.zeros((n, 3))
+    for k in range(1, n):
+        poses[k] = se2.compose(poses[k - 1], steps[k - 1])
+    q = np.zeros((n - 1, 3, 3))
+    q[:, 0, 0] = q[:, 1, 1] = rng.uniform(1e-4, 1e-2, n - 1)
+    q[:, 2, 2] = rng.uniform(1e-5, 1e-3, n - 1)
+    prefix = se2.chain_prefix(poses, q)
+    i, j = np.triu_indices(n)
+    d_ref, c_ref = se2.chain_relative(poses, prefix, i, j)
+    d, c = se2.chain_relative_unrolled(poses, prefix, i, j)
+    np.testing.assert_allclose(d, d_ref, atol=1e-12)
+    np.testing.assert_allclose(c, c_ref, rtol=1e-9, atol=1e-15)

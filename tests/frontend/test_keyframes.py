@@ -22,14 +22,14 @@ def _straight(n, step):
 def test_straight_line_keeps_a_scan_every_threshold():
     # 0.125 m steps are exact in binary, so 4 steps make exactly 0.5 m.
     odom = _straight(41, 0.125)
-    ids = select_keyframes(odom, KeyframeOptions(min_travel_m=0.5, min_rotation_rad=1.0))
+    ids = select_keyframes(odom, KeyframeOptions(spacing_m=0.5, turn_rad=1.0))
     np.testing.assert_array_equal(ids, np.arange(0, 41, 4))
 
 
 def test_turning_on_the_spot_keeps_a_scan_every_rotation_threshold():
     theta = se2.wrap(np.arange(100) * 0.1)  # passes through the +-pi wrap
     odom = np.column_stack([np.zeros(100), np.zeros(100), theta])
-    ids = select_keyframes(odom, KeyframeOptions(min_travel_m=0.5, min_rotation_rad=0.35))
+    ids = select_keyframes(odom, KeyframeOptions(spacing_m=0.5, turn_rad=0.35))
     # 0.3 rad < 0.35 <= 0.4 rad: every 4th scan, across the wrap as well.
     np.testing.assert_array_equal(ids, np.arange(0, 100, 4))
 
@@ -38,7 +38,7 @@ def test_path_length_counts_driving_back_and_forth():
     # 0.25 m forward, 0.25 m back, repeatedly: net motion never exceeds 0.25 m.
     x = np.tile([0.0, 0.25], 10)
     odom = np.column_stack([x, np.zeros(20), np.zeros(20)])
-    ids = select_keyframes(odom, KeyframeOptions(min_travel_m=0.5, min_rotation_rad=1.0))
+    ids = select_keyframes(odom, KeyframeOptions(spacing_m=0.5, turn_rad=1.0))
     np.testing.assert_array_equal(ids, np.arange(0, 20, 2))
 
 
@@ -52,20 +52,20 @@ def test_keyframes_are_minimal_and_far_enough_on_a_random_walk():
     rng = np.random.default_rng(3)
     steps = np.column_stack([rng.uniform(0, 0.08, 2000), rng.normal(0, 0.01, 2000), rng.normal(0, 0.05, 2000)])
     odom, _ = se2.chain(steps)
-    opt = KeyframeOptions(min_travel_m=0.5, min_rotation_rad=math.radians(20))
+    opt = KeyframeOptions(spacing_m=0.5, turn_rad=math.radians(20))
     ids = select_keyframes(odom, opt)
     travel, rotation = odometry_travel(odom)
     assert ids[0] == 0 and np.all(np.diff(ids) > 0)
     dt, dr = np.diff(travel[ids]), np.diff(rotation[ids])
     # Every keyframe reached a threshold ...
-    assert np.all((dt >= opt.min_travel_m) | (dr >= opt.min_rotation_rad))
+    assert np.all((dt >= opt.spacing_m) | (dr >= opt.turn_rad))
     # ... and the scan before it had not (the first scan to reach it is kept).
     before = ids[1:] - 1
     bt, br = travel[before] - travel[ids[:-1]], rotation[before] - rotation[ids[:-1]]
-    assert np.all((bt < opt.min_travel_m) & (br < opt.min_rotation_rad))
+    assert np.all((bt < opt.spacing_m) & (br < opt.turn_rad))
     # After the last keyframe no scan reaches a threshold.
-    assert travel[-1] - travel[ids[-1]] < opt.min_travel_m
-    assert rotation[-1] - rotation[ids[-1]] < opt.min_rotation_rad
+    assert travel[-1] - travel[ids[-1]] < opt.spacing_m
+    assert rotation[-1] - rotation[ids[-1]] < opt.turn_rad
 
 
 def test_odometry_travel_sums_step_lengths_and_absolute_turns():
@@ -82,8 +82,8 @@ def test_merge_keyframes_adds_external_scans():
     assert merged.dtype == np.int64
 
 
-@pytest.mark.parametrize("kwargs", [{"min_travel_m": 0.0}, {"min_rotation_rad": -1.0},
-                                    {"min_travel_m": float("nan")}])
+@pytest.mark.parametrize("kwargs", [{"spacing_m": 0.0}, {"turn_rad": -1.0},
+                                    {"spacing_m": float("nan")}])
 def test_bad_options_raise_input_error(kwargs):
     with pytest.raises(InputError):
         KeyframeOptions(**kwargs)

@@ -11,7 +11,6 @@ from closurecheck.errors import InputError
 from closurecheck.graph.solver import (
     GncOptions,
     SolverOptions,
-    chi2_threshold,
     edge_residuals,
     normal_matrix,
     optimize_gnc,
@@ -254,22 +253,6 @@ def test_gnc_without_outliers_matches_least_squares(small_graph):
 
 
 # --- Final chi-square check.
-
-
-def test_chi2_threshold_matches_published_table():
-    # NIST/SEMATECH e-Handbook of Statistical Methods, section 1.3.6.7.4,
-    # critical values of the chi-square distribution, 3 degrees of freedom.
-    assert chi2_threshold(0.95, 3) == pytest.approx(7.815, abs=5e-4)
-    assert chi2_threshold(0.99, 3) == pytest.approx(11.345, abs=5e-4)
-    # 1 and 2 degrees of freedom at 0.95: 3.841 and 5.991 (value from memory for the NIST page;
-    # the same figures appear in other printed chi-square tables).
-    assert chi2_threshold(0.95, 1) == pytest.approx(3.841, abs=5e-4)
-    assert chi2_threshold(0.95, 2) == pytest.approx(5.991, abs=5e-4)
-    assert chi2_threshold(0.9, 3) == chi2.ppf(0.9, 3)
-    with pytest.raises(InputError):
-        chi2_threshold(1.0)
-    with pytest.raises(InputError):
-        chi2_threshold(0.95, 0)
 
 
 def test_prune_removes_injected_wrong_edge_and_keeps_consistent_ones():

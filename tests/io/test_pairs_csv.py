@@ -1,4 +1,4 @@
-"""Candidate-pairs CSV (contract section 4): reading with clear errors, atomic writing."""
+"""Candidate-pairs CSV (docs/formats.md, "Candidate pairs"): reading with clear errors, atomic writing."""
 
 import csv
 import math

@@ -1,4 +1,4 @@
-"""Scan-log reading and writing (contract section 1) and its error messages."""
+"""Scan-log reading and writing (docs/formats.md, "Scan log") and its error messages."""
 
 import gzip
 import json
@@ -52,7 +52,7 @@ class TestReading:
         assert log.sensor == SENSOR
         assert log.header == {"notes": "unit test"}
         assert log.ranges.dtype == np.float32
-        # null and values outside [min_range, max_range] are no return (contract section 1).
+        # null and values outside [min_range, max_range] are no return (docs/formats.md, "Scan log").
         assert np.isnan(log.ranges[0, 1]) and np.isnan(log.ranges[1, 0]) and np.isnan(log.ranges[1, 1])
         assert log.ranges[0, 2] == 3.0
         # Angles are wrapped to (-pi, pi].

@@ -2,7 +2,7 @@
 
 Scan pairs are ray cast (closurecheck.simulation.raycast) in a small invented floor
 plan from two poses with 1.5 cm Gaussian range noise; the true relative pose
-is ``se2.between(a, b)`` (contract section 5: target at a, source at b).
+is ``se2.between(a, b)`` (docs/formats.md, "Python API": target at a, source at b).
 """
 
 import numpy as np

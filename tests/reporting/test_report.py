@@ -65,7 +65,7 @@ def _data(log_name="room.jsonl", accepted=(True, True, False, False, False), sco
     dst = np.array([0, 5, 10, 20, 35])[:n]
     acc = np.array(accepted, bool)
     if reasons is None:
-        reasons = ["accepted" if a else r for a, r in zip(acc, ["x", "x", "odometry_gate", "low_overlap",
+        reasons = ["accepted" if a else r for a, r in zip(acc, ["pair_inconsistent", "pair_inconsistent", "odometry_gate", "low_overlap",
                                                                "pair_inconsistent"])]
     cov = np.tile(np.diag([0.02 ** 2, 0.05 ** 2, 0.01 ** 2]), (n, 1, 1))
     cov[~acc] = np.nan
@@ -275,11 +275,10 @@ def test_reason_counts_match_the_verdicts(built):
     assert got == v.counts()
 
 
-def test_unknown_reason_code_still_counted(tmp_path):
-    data = _data(accepted=(True, False), score=False, reasons=["accepted", "some_new_check"])
-    _, page = _parse(build_report(tmp_path, data))
-    got = {r["cells"][0]["text"]: int(r["cells"][1]["text"]) for r in page.tables["reasons"]["rows"]}
-    assert got == {"accepted": 1, "some_new_check": 1}
+def test_unknown_reason_code_is_an_error():
+    # A misspelt code must not silently vanish from the counts.
+    with pytest.raises(ValueError, match="unknown reason code 'some_new_check'"):
+        _data(accepted=(True, False), score=False, reasons=["accepted", "some_new_check"])
 
 
 def test_score_section_shows_every_figure(built):

@@ -18,8 +18,9 @@ import pytest
 from scipy.stats import chi2
 
 from closurecheck.core import se2
-from closurecheck.core.odometry import keyframe_step_covariances, noise_from_header
+from closurecheck.core.odometry import OdometryChain, keyframe_step_covariances, noise_from_header
 from closurecheck.frontend.keyframes import select_keyframes
+from closurecheck.registration.batch import RegisteredClosures, RegistrationQuality
 from closurecheck.simulation.simulate import simulate_log
 from closurecheck.verification.map_gate import relative_posterior
 from closurecheck.verification.verify import (
@@ -67,16 +68,24 @@ def make_closures(scene, fraction_wrong, seed):
             z = se2.compose(se2.between(truth[a], truth[b]), offset) + rng.multivariate_normal(np.zeros(3), cov)
             src.append(a), dst.append(b), delta.append(z), label.append(False)
     k = len(src)
-    quality = {"valid": np.ones(k, bool), "converged": np.ones(k, bool), "overlap": np.full(k, 0.8),
-               "rmse_m": np.full(k, 0.015), "ambiguity": np.full(k, np.nan), "degenerate": np.zeros(k, bool)}
-    return (np.array(src), np.array(dst), np.array(delta), np.repeat(cov[None], k, 0), quality,
-            np.array(label))
+    quality = RegistrationQuality(
+        valid=np.ones(k, bool), converged=np.ones(k, bool), overlap=np.full(k, 0.8), rmse_m=np.full(k, 0.015),
+        ambiguity=np.full(k, np.nan), degenerate=np.zeros(k, bool), degeneracy=np.full(k, 0.5),
+        iterations=np.full(k, 5), fit_score=np.full(k, 0.9))
+    closures = RegisteredClosures(src=np.array(src), dst=np.array(dst), delta=np.array(delta),
+                                  covariance=np.repeat(cov[None], k, 0), quality=quality)
+    return closures, np.array(label)
+
+
+def chain_of(odom, step_cov):
+    """The keyframe chain with node i standing for scan id i."""
+    return OdometryChain.from_steps(np.arange(len(odom)), odom, step_cov)
 
 
 @pytest.mark.parametrize("fraction_wrong", [0.5, 0.9])
 def test_injected_look_alike_closures_are_rejected(scene, fraction_wrong):
-    src, dst, delta, cov, quality, label = make_closures(scene, fraction_wrong, seed=7)
-    ver = verify(src, dst, delta, cov, quality, scene["odom"], scene["step_cov"])
+    closures, label = make_closures(scene, fraction_wrong, seed=7)
+    ver = verify(closures, chain_of(scene["odom"], scene["step_cov"]))
     assert not np.any(ver.accepted & ~label), "a wrong closure was accepted"
     assert ver.accepted[label].mean() >= 0.9
     assert set(ver.reason[~label]) <= {"odometry_gate", "pair_inconsistent", "graph_residual"}
@@ -89,14 +98,14 @@ def test_injected_look_alike_closures_are_rejected(scene, fraction_wrong):
 
 
 def test_quality_checks_record_their_reason(scene):
-    src, dst, delta, cov, quality, label = make_closures(scene, 0.0, seed=1)
-    quality = {k: v.copy() for k, v in quality.items()}
-    quality["converged"][0] = False
-    quality["overlap"][1] = 0.05
-    quality["rmse_m"][2] = 1.0
-    quality["ambiguity"][3] = 0.99
-    quality["degenerate"][4] = True
-    ver = verify(src, dst, delta, cov, quality, scene["odom"], scene["step_cov"])
+    closures, label = make_closures(scene, 0.0, seed=1)
+    q = closures.quality
+    q.converged[0] = False
+    q.overlap[1] = 0.05
+    q.rmse_m[2] = 1.0
+    q.ambiguity[3] = 0.99
+    q.degenerate[4] = True
+    ver = verify(closures, chain_of(scene["odom"], scene["step_cov"]))
     assert list(ver.reason[:5]) == ["not_converged", "low_overlap", "high_rmse", "ambiguous", "degenerate"]
     assert ver.accepted[5:].mean() >= 0.9
 
@@ -147,10 +156,9 @@ def test_heading_drift_is_measured_and_removed(scene):
     from closurecheck.verification.drift import chain_travel, remove_heading_drift
 
     odom = remove_heading_drift(scene["odom"], -0.0005)
-    src, dst, delta, cov, quality, label = make_closures(scene, 0.5, seed=11)
-    on = verify(src, dst, delta, cov, quality, odom, scene["step_cov"])
-    off = verify(src, dst, delta, cov, quality, odom, scene["step_cov"],
-                 VerifyOptions(calibrate_heading_drift=False))
+    closures, label = make_closures(scene, 0.5, seed=11)
+    on = verify(closures, chain_of(odom, scene["step_cov"]))
+    off = verify(closures, chain_of(odom, scene["step_cov"]), VerifyOptions(calibrate_heading_drift=False))
     assert not np.any(on.accepted & ~label) and not np.any(off.accepted & ~label)
     assert on.heading_drift.applied and not off.heading_drift.applied
     travel = chain_travel(odom)
@@ -170,10 +178,9 @@ def test_a_large_heading_drift_is_found_from_the_candidates(scene):
     from closurecheck.verification.drift import remove_heading_drift
 
     odom = remove_heading_drift(scene["odom"], -0.0025)
-    src, dst, delta, cov, quality, label = make_closures(scene, 0.9, seed=12)
-    on = verify(src, dst, delta, cov, quality, odom, scene["step_cov"])
-    off = verify(src, dst, delta, cov, quality, odom, scene["step_cov"],
-                 VerifyOptions(calibrate_heading_drift=False))
+    closures, label = make_closures(scene, 0.9, seed=12)
+    on = verify(closures, chain_of(odom, scene["step_cov"]))
+    off = verify(closures, chain_of(odom, scene["step_cov"]), VerifyOptions(calibrate_heading_drift=False))
     assert not np.any(on.accepted & ~label)
     assert on.accepted[label].mean() >= 0.9
     assert off.accepted[label].mean() < 0.5

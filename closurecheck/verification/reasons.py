@@ -1,0 +1,77 @@
+"""Reason codes: which check decided a candidate, what it means, and where the report groups it.
+
+The codes are the ``reason`` column of candidates.csv and the keys of
+summary.json's ``reasons`` (docs/formats.md, "Candidate pairs"; docs/verification.md
+lists the checks).  Every code is a member of :class:`Reason`; an unknown
+code is an error, never a row that silently vanishes from a count.
+
+Examples
+--------
+>>> from closurecheck.verification.reasons import Reason
+>>> Reason("odometry_gate").group
+'odometry'
+>>> str(Reason.LOW_OVERLAP), Reason.LOW_OVERLAP.text
+('low_overlap', 'too few points found a partner after alignment')
+"""
+
+from __future__ import annotations
+
+from enum import Enum
+
+# Report groups of rejections, in the order the report lists them.
+GROUPS = ("registration", "odometry", "consistency")
+
+
+class Reason(str, Enum):
+    """The check that decided a candidate (``accepted`` when it passed them all)."""
+
+    ACCEPTED = "accepted"
+    NO_POINTS = "no_points"
+    NOT_CONVERGED = "not_converged"
+    LOW_OVERLAP = "low_overlap"
+    HIGH_RMSE = "high_rmse"
+    AMBIGUOUS = "ambiguous"
+    DEGENERATE = "degenerate"
+    ODOMETRY_GATE = "odometry_gate"
+    PAIR_INCONSISTENT = "pair_inconsistent"
+    GRAPH_RESIDUAL = "graph_residual"
+    DUPLICATE = "duplicate"
+
+    def __str__(self) -> str:
+        return self.value
+
+    @property
+    def text(self) -> str:
+        """One line for people: what the code means."""
+        return _TEXT[self][0]
+
+    @property
+    def group(self) -> str:
+        """``accepted`` or the report group of the rejection (one of :data:`GROUPS`)."""
+        return _TEXT[self][1]
+
+
+_TEXT = {
+    Reason.ACCEPTED: ("passed every check; an edge of graph.json", "accepted"),
+    Reason.NO_POINTS: ("a scan had too few valid returns or no straight structure to register", "registration"),
+    Reason.NOT_CONVERGED: ("registration did not settle on an alignment", "registration"),
+    Reason.LOW_OVERLAP: ("too few points found a partner after alignment", "registration"),
+    Reason.HIGH_RMSE: ("the aligned scans stay too far apart", "registration"),
+    Reason.AMBIGUOUS: ("a distinct second alignment fits almost as well (look-alike place)", "registration"),
+    Reason.DEGENERATE: ("the geometry leaves a direction unobservable (e.g. a bare corridor)", "registration"),
+    Reason.ODOMETRY_GATE: ("the registered motion is implausible given the odometry", "odometry"),
+    Reason.PAIR_INCONSISTENT: ("does not close consistent cycles with the other closures", "consistency"),
+    Reason.GRAPH_RESIDUAL: ("failed the chi-square residual test after optimisation", "consistency"),
+    Reason.DUPLICATE: ("the same pair was already considered", "consistency"),
+}
+
+
+def codes(values) -> list[Reason]:
+    """The :class:`Reason` of each code in ``values``; raises ValueError naming an unknown code."""
+    out = []
+    for v in values:
+        try:
+            out.append(Reason(str(v)))
+        except ValueError:
+            raise ValueError(f"unknown reason code {str(v)!r}") from None
+    return out
