@@ -11,6 +11,7 @@ configuration is built, before any scan is read.
 
 from __future__ import annotations
 
+from .calibration.odometry import CalibrationOptions
 from .core.options import OptionError, options, setting, updated
 from .errors import InputError
 from .frontend.candidates import CandidateOptions
@@ -53,6 +54,7 @@ class RunConfig:
     max_pairs: int = setting(200_000, at_least=1)
     keyframes: KeyframeOptions = KeyframeOptions()
     odometry: OdometryOverrides = OdometryOverrides()
+    calibration: CalibrationOptions = CalibrationOptions()
     descriptors: DescriptorOptions = DescriptorOptions()
     candidates: CandidateOptions = CandidateOptions()
     # Candidates arrive with guesses good to a metre or so (odometry shrunk

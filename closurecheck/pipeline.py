@@ -14,8 +14,10 @@ from pathlib import Path
 
 import numpy as np
 
+from .calibration.odometry import OdometryCalibration, calibrate, step_pairs
 from .config import OdometryOverrides, RunConfig
-from .core.odometry import OdometryChain, OdometryNoise, noise_from_header
+from .core import se2
+from .core.odometry import OdometryChain, OdometryNoise, noise_from_header, odometry_travel
 from .core.options import updated
 from .errors import InputError
 from .frontend.candidates import (
@@ -65,17 +67,46 @@ class _Stages:
         return out
 
 
-def _register_all(log: ScanLog, cands: CandidateSet, config: RunConfig, runner, progress) -> RegisteredClosures:
-    ids = np.unique(np.concatenate([cands.src, cands.dst])) if len(cands) else np.zeros(0, np.int64)
+def _register(log: ScanLog, src, dst, seeds, options, config: RunConfig, runner, progress) -> RegisteredClosures:
+    """Register the pairs (src, dst) of scan ids from their seeds with the run's runner."""
+    ids = np.unique(np.concatenate([src, dst])) if len(src) else np.zeros(0, np.int64)
     points = {int(i): log.points(int(i)) for i in ids}
-    window = config.registration.coarse_window_rad if config.registration.coarse else 0.0
-    seeds = [seeds_for(cands.guess[k], cands.yaw[k], window) for k in range(len(cands))]
     if runner is None:
         from .runners.serial import SerialRunner
 
         runner = SerialRunner()
-    fits = runner.register(points, cands.src, cands.dst, seeds, config.registration, config.batch_pairs, progress)
-    return collect(cands.src, cands.dst, fits)
+    fits = runner.register(points, src, dst, seeds, options, config.batch_pairs, progress)
+    return collect(src, dst, fits)
+
+
+def _register_candidates(log: ScanLog, cands: CandidateSet, config: RunConfig, runner, progress):
+    window = config.registration.coarse_window_rad if config.registration.coarse else 0.0
+    seeds = [seeds_for(cands.guess[k], cands.yaw[k], window) for k in range(len(cands))]
+    return _register(log, cands.src, cands.dst, seeds, config.registration, config, runner, progress)
+
+
+def _calibrate(log: ScanLog, keyframes, config: RunConfig, runner, progress) -> OdometryCalibration:
+    """Register each keyframe to the next and measure the odometry against those steps."""
+    prior = effective_noise(log, config.odometry)
+    src, dst = step_pairs(keyframes)
+    if config.calibration.enabled:
+        # Consecutive keyframes are half a metre apart: the odometry step is a
+        # guess good to centimetres, so ICP alone suffices.
+        seeds = [se2.between(log.odom[a], log.odom[b])[None] for a, b in zip(src, dst)]
+        steps = _register(log, src, dst, seeds, dataclasses.replace(config.registration, coarse=False), config,
+                          runner, progress)
+    else:
+        steps = collect(src, dst, [None] * len(src))
+    cal = calibrate(log.odom, keyframes, steps, prior, config.calibration)
+    overrides = {k: v for k, v in dataclasses.asdict(config.odometry).items() if v is not None}
+    if overrides and cal.measured:
+        # Settings the user gave explicitly win over the fitted noise.
+        noise = updated(cal.noise, overrides)
+        travel, rotation = odometry_travel(log.odom)
+        keep = np.diag(noise.step_covariance(np.diff(travel[keyframes]), np.diff(rotation[keyframes])).T).T
+        chain = OdometryChain.from_steps(keyframes, cal.chain.poses, np.maximum(cal.chain.steps, keep))
+        cal = dataclasses.replace(cal, noise=noise, chain=chain)
+    return cal
 
 
 def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPairs | None = None,
@@ -90,12 +121,19 @@ def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPai
     if len(log) < 2:
         raise InputError("the log needs at least two scans", log.source or None)
     st = _Stages(progress)
-    noise = effective_noise(log, config.odometry)
 
     keyframes = st.run("keyframes", select_keyframes, log.odom, config.keyframes)
     if external is not None:
         keyframes = merge_keyframes(keyframes, external.scan_ids)
-    data = st.run("descriptors", prepare, log, keyframes, proposal_noise(noise), config.descriptors)
+    cal = st.run("calibration", _calibrate, log, keyframes, config, runner, progress)
+    chain = cal.chain
+    # Proposals must reach revisits even where the fitted model is tight: the
+    # proximity gate uses at least the default noise.
+    travel, rotation = odometry_travel(log.odom)
+    lengths, turns = np.diff(travel[keyframes]), np.diff(rotation[keyframes])
+    wide = np.maximum(chain.steps, proposal_noise(cal.noise).step_covariance(lengths, turns))
+    data = st.run("descriptors", prepare, log, keyframes, descriptor_options=config.descriptors,
+                  chain=OdometryChain.from_steps(keyframes, chain.poses, wide))
     if external is not None:
         cands = st.run("candidates", external_candidates, external, data.descriptors, data.chain,
                        config.candidates)
@@ -108,9 +146,7 @@ def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPai
         raise InputError(f"{len(cands)} candidate pairs to register, more than max_pairs = {config.max_pairs} "
                          f"(--max-pairs, docs/cli.md): that would take hours; raise the cap or split the work",
                          log.source or None)
-    regs = st.run("registration", _register_all, log, cands, config, runner, progress)
-
-    chain = OdometryChain.build(log.odom, keyframes, noise)
+    regs = st.run("registration", _register_candidates, log, cands, config, runner, progress)
     ver = st.run("verification", verify, regs, chain, config.verify)
 
     figures = dict(regs.quality.figures())
@@ -121,12 +157,12 @@ def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPai
                             accepted=ver.accepted, reason=ver.reason, delta=regs.delta,
                             covariance=ver.closure_covariance, figures=figures)
     graph = _graph(log, chain, ver, verdicts)
-    notes = list(ver.notes)
+    notes = list(cal.notes) + list(ver.notes)
     if external is not None:
         notes.append(f"candidates taken from an external pairs file ({len(external)} pairs)")
     if len(cands) == 0:
         notes.append(_no_candidates_note(log, external, also_propose))
-    return RunOutcome(log=log, config=config, keyframes=keyframes, odom=chain.poses, step_covariances=chain.steps,
+    return RunOutcome(log=log, config=config, keyframes=keyframes, odom=log.odom[keyframes], step_covariances=chain.steps,
                       candidates=cands, registrations=regs, verification=ver, verdicts=verdicts, graph=graph,
                       timings=st.timings, notes=tuple(notes))
 
@@ -145,12 +181,13 @@ def _graph(log, chain: OdometryChain, ver: Verification, v: VerdictTable) -> Pos
     # solver reaches the same optimum.  Nodes keep the input odometry.
     used = chain.poses if ver.odometry_poses is None else ver.odometry_poses
     o_src, o_dst, o_delta, o_info = odometry_edges(used, chain.steps * ver.odometry_scale)
+    odom = log.odom[chain.ids]
     acc = np.flatnonzero(v.accepted)
     l_info = np.linalg.inv(v.covariance[acc]) if len(acc) else np.zeros((0, 3, 3))
     checks = tuple({} for _ in o_src) + tuple(v.checks(int(k)) for k in acc)
     keyframes = chain.ids
     return PoseGraph(
-        ids=keyframes, t=log.t[keyframes], poses=ver.poses, odom=chain.poses,
+        ids=keyframes, t=log.t[keyframes], poses=ver.poses, odom=odom,
         src=np.concatenate([keyframes[o_src], v.src[acc]]).astype(np.int64),
         dst=np.concatenate([keyframes[o_dst], v.dst[acc]]).astype(np.int64),
         kind=np.array(["odometry"] * len(o_src) + ["loop"] * len(acc), dtype=object),

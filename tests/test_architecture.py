@@ -19,7 +19,7 @@ LAYERS = [
     {"core"},
     {"io"},
     {"simulation", "frontend", "registration", "graph"},
-    {"runners", "verification"},
+    {"runners", "calibration", "verification"},
     {"reporting"},
     {"config"},
     {"pipeline"},
@@ -77,7 +77,7 @@ def test_every_stage_is_a_folder_and_every_module_has_a_layer():
     stages = {_stage(m) for m, _ in _modules()}
     assert stages <= set(RANK), f"modules outside the layer map: {sorted(stages - set(RANK))}"
     for stage in ("core", "io", "frontend", "registration", "runners", "graph", "verification", "simulation",
-                  "reporting"):
+                  "reporting", "calibration"):
         assert (PACKAGE / stage / "__init__.py").exists()
 
 

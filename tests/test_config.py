@@ -24,7 +24,7 @@ def test_round_trip_through_toml(tmp_path):
 
 def test_every_table_of_the_configuration_is_an_options_record():
     tables = [f.name for f in dataclasses.fields(RunConfig) if is_options(getattr(RunConfig(), f.name))]
-    assert set(tables) == {"keyframes", "odometry", "descriptors", "candidates", "registration", "verify"}
+    assert set(tables) == {"keyframes", "odometry", "calibration", "descriptors", "candidates", "registration", "verify"}
 
 
 # One bad value per table (and the top level): each is refused when the
@@ -34,6 +34,7 @@ BAD = [
     ("batch_pairs = 0", "batch_pairs: must be >= 1"),
     ("[keyframes]\nspacing_m = 0.0", "keyframes.spacing_m: must be > 0"),
     ("[odometry]\nheading_rad_per_sqrt_m = -0.1", "odometry.heading_rad_per_sqrt_m: must be >= 0"),
+    ("[calibration]\nmin_steps = 2", "calibration.min_steps: must be >= 5"),
     ("[descriptors]\nrings = 0", "descriptors.rings: must be >= 1"),
     ("[candidates]\ntree = \"forest\"", "candidates.tree: must be one of 'kd_tree', 'ball_tree'"),
     ("[registration]\nkernel = \"nonsense\"", "registration.kernel: must be one of"),

@@ -638,18 +638,22 @@ def proposal_noise(log_noise: OdometryNoise) -> OdometryNoise:
 
 
 def prepare(log, keyframe_ids, noise: OdometryNoise | None = None,
-            descriptor_options: DescriptorOptions = DescriptorOptions()) -> KeyframeData:
+            descriptor_options: DescriptorOptions = DescriptorOptions(),
+            chain: OdometryChain | None = None) -> KeyframeData:
     """Describe the keyframes of a :class:`closurecheck.io.scanlog.ScanLog`.
 
-    ``noise`` is the proximity gate's model; by default
-    :func:`proposal_noise` of the model in the log's header.
+    ``chain`` is the keyframes' odometry the proximity gate uses (the
+    pipeline passes the calibrated one); without it, the log's odometry with
+    ``noise``, by default :func:`proposal_noise` of the model in the log's
+    header.
     """
     ids = np.asarray(keyframe_ids, dtype=np.int64)
-    if noise is None:
-        noise = proposal_noise(noise_from_header(log.header, log.source or None))
+    if chain is None:
+        if noise is None:
+            noise = proposal_noise(noise_from_header(log.header, log.source or None))
+        chain = OdometryChain.build(log.odom, ids, noise)
     travel, _ = odometry_travel(log.odom)
     desc = describe(log.ranges[ids], log.sensor, descriptor_options)
-    chain = OdometryChain.build(log.odom, ids, noise)
     return KeyframeData(ids, np.asarray(log.t)[ids], travel[ids], desc, chain)
 
 

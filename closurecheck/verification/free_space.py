@@ -1,0 +1,218 @@
+"""The scans must not contradict each other: surfaces of one visit in the free space of another.
+
+A range beam says two things: there is a surface at its range, and there is
+none before it.  Once the map is optimised, two keyframes from different
+visits of one place see the same walls, so every surface point of one scan
+must lie at or beyond the other scan's beam in that direction, never in
+front of it.  A wrong loop closure misplaces one visit against the other,
+and its walls then cross the space the other visit saw through.  This check
+needs no ground truth: only the scans and the optimised poses.
+
+For a keyframe pair (a, b) the points of b are placed in a's sensor frame
+and each is compared with a's beam in its direction and the two beside it:
+the point contradicts a when it lies closer than all three returns by more
+than ``margin_m + margin_per_m * range`` (pose error after optimisation,
+beam width and grazing walls).  Beams without a return say nothing (a
+dropout is not free space).  The pair's figure is the larger of the two
+directions' shares of contradicting points among the points that fell on a
+beam with a return.  A person or cart that moved between the visits also
+contradicts, but only in a few points; a misplaced visit contradicts along
+whole walls.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.spatial
+
+from ..core import se2
+from ..core.options import options, setting
+from ..io.scanlog import Sensor
+
+
+@options
+class FreeSpaceOptions:
+    """Which keyframe pairs are compared, and when a pair contradicts.
+
+    max_distance_m : pairs of keyframes closer than this in the optimised
+        map are compared.
+    max_heading_rad : ... whose headings differ by less than this (their
+        views overlap).
+    min_gap_m : ... and whose odometry path lengths differ by more than this
+        (different visits, not consecutive views).
+    pairs_per_keyframe : nearest other-visit keyframes compared per keyframe.
+    margin_m, margin_per_m : a point contradicts a beam when it lies closer
+        than the beam's return by more than ``margin_m + margin_per_m * range``.
+    min_run : contradicting points count only in runs of at least this many
+        consecutive points.
+    min_judged_m : a pair is judged only when at least this much surface fell
+        on beams with a return, both directions together (metres).
+    min_length_m, max_share : a pair contradicts when at least this much
+        surface and more than this share of it contradicts.
+    """
+
+    max_distance_m: float = setting(2.0, above=0.0)
+    max_heading_rad: float = setting(1.0, above=0.0)
+    min_gap_m: float = setting(5.0, at_least=0.0)
+    pairs_per_keyframe: int = setting(3, at_least=1)
+    margin_m: float = setting(0.25, above=0.0)
+    margin_per_m: float = setting(0.02, at_least=0.0)
+    min_run: int = setting(5, at_least=1)
+    min_judged_m: float = setting(5.0, above=0.0)
+    min_length_m: float = setting(3.0, above=0.0)
+    max_share: float = setting(0.2, above=0.0, below=1.0)
+
+
+@dataclass(frozen=True, eq=False)
+class KeyframeScans:
+    """The keyframes' scans as the check reads them.
+
+    ranges : (K, beams) float32 metres, NaN where no return.
+    sensor : the beam geometry (and mount) of the log.
+    """
+
+    ranges: np.ndarray
+    sensor: Sensor
+
+    def points(self, k: int) -> np.ndarray:
+        """(M, 2) points of keyframe k in its sensor frame (metres)."""
+        r = self.ranges[k].astype(np.float64)
+        ok = np.isfinite(r) & (r >= self.sensor.min_range) & (r <= self.sensor.max_range)
+        b = self.sensor.bearings()[ok]
+        return np.column_stack([r[ok] * np.cos(b), r[ok] * np.sin(b)])
+
+
+@dataclass(frozen=True, eq=False)
+class FreeSpaceCheck:
+    """Contradiction figures of the compared keyframe pairs.
+
+    a, b : (P,) keyframe positions (a < b).
+    share : (P,) the larger of the two directions' contradicting shares of
+        judged surface.
+    length_m : (P,) contradicting surface, both directions (metres).
+    judged_m : (P,) surface that fell on beams with a return (metres).
+    contradicts : (P,) bool.
+    """
+
+    a: np.ndarray
+    b: np.ndarray
+    share: np.ndarray
+    length_m: np.ndarray
+    judged_m: np.ndarray
+    contradicts: np.ndarray
+
+    @property
+    def count(self) -> int:
+        return int(self.contradicts.sum())
+
+
+def _sensor_poses(poses, sensor: Sensor):
+    mount = np.asarray(sensor.mount, dtype=float)
+    return se2.compose(poses, mount) if np.any(mount) else np.asarray(poses, dtype=float)
+
+
+def compared_pairs(poses, travel, options: FreeSpaceOptions = FreeSpaceOptions()) -> tuple[np.ndarray, np.ndarray]:
+    """Keyframe pairs (a < b) of different visits that overlap in the map.
+
+    ``poses`` (K, 3) optimised keyframe poses; ``travel`` (K,) odometry path
+    length (m).  Each keyframe is paired with at most ``pairs_per_keyframe``
+    nearest keyframes of other visits within ``max_distance_m`` and
+    ``max_heading_rad``.
+    """
+    poses = np.asarray(poses, dtype=float)
+    k = len(poses)
+    if k < 2:
+        return np.zeros(0, np.int64), np.zeros(0, np.int64)
+    tree = scipy.spatial.cKDTree(poses[:, :2])
+    # Enough neighbours to find a few of other visits past the consecutive ones.
+    want = min(k, 16 + 2 * options.pairs_per_keyframe)
+    dist, idx = tree.query(poses[:, :2], k=want, distance_upper_bound=options.max_distance_m)
+    rows = np.repeat(np.arange(k), want)
+    cols = idx.ravel()
+    ok = cols < k
+    rows, cols, dist = rows[ok], cols[ok], dist.ravel()[ok]
+    ok = (np.abs(travel[rows] - travel[cols]) > options.min_gap_m) & \
+        (np.abs(se2.wrap(poses[rows, 2] - poses[cols, 2])) < options.max_heading_rad)
+    rows, cols, dist = rows[ok], cols[ok], dist[ok]
+    # The nearest few per keyframe (query results come sorted by distance).
+    first = np.r_[0, np.flatnonzero(np.diff(rows)) + 1]
+    rank = np.arange(len(rows)) - np.repeat(first, np.diff(np.r_[first, len(rows)]))
+    keep = rank < options.pairs_per_keyframe
+    a, b = np.minimum(rows[keep], cols[keep]), np.maximum(rows[keep], cols[keep])
+    pairs = np.unique(a * k + b)
+    return (pairs // k).astype(np.int64), (pairs % k).astype(np.int64)
+
+
+def _against(points_b, pose_ab, ranges_a, sensor: Sensor, options: FreeSpaceOptions):
+    """Contradicting and judged surface (metres) of b's points (b's sensor frame, in beam order) against a's beams.
+
+    A point stands for ``range * angle_step`` metres of surface, so a cart
+    a metre from the sensor weighs what it is, not the hundred beams it
+    covers.  Contradicting points count only in runs of at least
+    ``min_run`` consecutive points: a single beam through a gap a hand
+    wide is not a misplaced wall.
+    """
+    p = se2.transform_points(pose_ab, points_b)
+    rho = np.hypot(p[:, 0], p[:, 1])
+    phi = np.arctan2(p[:, 1], p[:, 0])
+    beam = np.rint(np.mod(phi - sensor.first_angle, 2.0 * np.pi) / sensor.angle_step).astype(np.int64)
+    inside = (beam >= 1) & (beam < sensor.beams - 1) & (rho <= sensor.max_range)
+    r = np.asarray(ranges_a, dtype=np.float64)
+    bb = np.where(inside, beam, 1)
+    near = np.stack([r[bb - 1], r[bb], r[bb + 1]])
+    seen = inside & np.isfinite(near).all(axis=0)
+    closest = np.min(np.where(np.isfinite(near), near, np.inf), axis=0)
+    bad = seen & (rho < closest - (options.margin_m + options.margin_per_m * rho))
+    # Runs of consecutive contradicting points (the points are in beam order).
+    edges = np.diff(np.r_[0, bad.astype(np.int8), 0])
+    start, stop = np.flatnonzero(edges == 1), np.flatnonzero(edges == -1)
+    long = np.zeros(len(bad) + 1, dtype=np.int64)
+    runs = (stop - start) >= options.min_run
+    np.add.at(long, start[runs], 1)
+    np.add.at(long, stop[runs], -1)
+    counted = np.cumsum(long)[:-1] > 0
+    arc = rho * abs(sensor.angle_step)
+    return float(arc[counted].sum()), float(arc[seen].sum())
+
+
+def check_free_space(poses, travel, scans: KeyframeScans, options: FreeSpaceOptions = FreeSpaceOptions(),
+                     pairs=None) -> FreeSpaceCheck:
+    """Compare overlapping keyframes of different visits for scans that contradict each other.
+
+    Parameters
+    ----------
+    poses : (K, 3) optimised keyframe poses (robot frames, one map frame).
+    travel : (K,) odometry path length of each keyframe (m).
+    scans : the keyframes' ranges and the sensor.
+    options : :class:`FreeSpaceOptions`.
+    pairs : optional (a, b) arrays of keyframe positions to compare instead
+        of :func:`compared_pairs`.
+
+    Returns
+    -------
+    FreeSpaceCheck
+    """
+    poses = _sensor_poses(np.asarray(poses, dtype=float), scans.sensor)
+    a, b = compared_pairs(poses, np.asarray(travel, float), options) if pairs is None else pairs
+    share = np.zeros(len(a))
+    length = np.zeros(len(a))
+    judged = np.zeros(len(a))
+    cache: dict = {}
+
+    def pts(k):
+        if k not in cache:
+            cache[k] = scans.points(k)
+        return cache[k]
+
+    for n, (i, j) in enumerate(zip(a.tolist(), b.tolist())):
+        t_ij = se2.between(poses[i], poses[j])
+        bad_b, seen_b = _against(pts(j), t_ij, scans.ranges[i], scans.sensor, options)
+        bad_a, seen_a = _against(pts(i), se2.inverse(t_ij), scans.ranges[j], scans.sensor, options)
+        judged[n] = seen_a + seen_b
+        length[n] = bad_a + bad_b
+        share[n] = max(bad_b / max(seen_b, 1e-9), bad_a / max(seen_a, 1e-9))
+    contradicts = (judged >= options.min_judged_m) & (length >= options.min_length_m) & (share > options.max_share)
+    return FreeSpaceCheck(a=np.asarray(a, np.int64), b=np.asarray(b, np.int64), share=share, length_m=length,
+                          judged_m=judged, contradicts=contradicts)
