@@ -74,6 +74,7 @@ class Progress:
         self.terminal = _is_terminal(self.stream)
         self._work: dict[str, _Work] = {}
         self._t0 = time.perf_counter()
+        self._stage = ""
 
     def _line(self, text: str) -> None:
         bars = [w.bar for w in self._work.values() if w.bar is not None]
@@ -90,6 +91,7 @@ class Progress:
     def stage(self, name: str) -> None:
         """A new stage begins (closes the bars of the previous one)."""
         self._close_bars()
+        self._stage = name
         if not self.quiet:
             self._line(f"{self._stamp()} {name}")
 
@@ -116,6 +118,8 @@ class Progress:
         work.done += n
         if self.quiet:
             return
+        # Registration runs for the odometry calibration too: name the stage the user sees.
+        stage = self._stage if self._stage and " " not in self._stage else stage
         now = time.perf_counter()
         if first and work.done < work.total:
             work.last_line = now
