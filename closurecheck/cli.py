@@ -6,19 +6,80 @@ Exit status: 0 success, 2 bad input or usage, 1 internal error.
 from __future__ import annotations
 
 import argparse
+import contextlib
+import os
+import signal
 import sys
+import threading
 import traceback
-from pathlib import Path
 
 from ._version import __version__
-from .errors import EXIT_BAD_INPUT, EXIT_DOUBTFUL, EXIT_INTERNAL, EXIT_OK, InputError
+from .errors import EXIT_BAD_INPUT, EXIT_DOUBTFUL, EXIT_INTERNAL, EXIT_OK, InputError, one_line
+
+# Exit status when stdout is closed early (``closurecheck info LOG | head -1``):
+# 128 + SIGPIPE, what a shell reports for a program stopped by a closed pipe.
+EXIT_BROKEN_PIPE = 128 + 13
+COMMANDS = ("run", "demo", "score", "info", "simulate", "convert")
 
 
 class _Parser(argparse.ArgumentParser):
     """argparse that reports usage errors as InputError (exit 2, one line)."""
 
     def error(self, message):
-        raise InputError(f"{self.prog}: {message}")
+        # "closurecheck run: ..." would repeat the "closurecheck:" of the error line.
+        sub = self.prog.split(" ", 1)[1] if " " in self.prog else ""
+        raise InputError(f"{sub}: {message}" if sub else message)
+
+
+class _Stopped(KeyboardInterrupt):
+    """Ctrl-C or SIGTERM: unwinds like KeyboardInterrupt (cleanup runs), remembers which signal."""
+
+    def __init__(self, signum: int):
+        super().__init__(signum)
+        self.signum = signum
+
+
+@contextlib.contextmanager
+def _interrupts():
+    """Ctrl-C and SIGTERM stop the run cleanly; a second one stops it at once.
+
+    The first signal raises :class:`_Stopped` where the main thread is:
+    the pool's workers are killed, the staging folder is removed, and main
+    prints one line.  If that cleanup is itself interrupted, the process
+    exits immediately with a message (output folders stay intact; a hidden
+    staging folder may remain, and the next run removes it).
+    """
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+
+    def again(signum, frame):
+        os.write(2, b"closurecheck: interrupted again; stopped at once (output folders are intact)\n")
+        os._exit(EXIT_BAD_INPUT)
+
+    received = []
+
+    def first(signum, frame):
+        received.append(signum)
+        signal.signal(signal.SIGINT, again)
+        signal.signal(signal.SIGTERM, again)
+        raise _Stopped(signum)
+
+    old = {sig: signal.signal(sig, first) for sig in (signal.SIGINT, signal.SIGTERM)}
+    try:
+        yield
+    finally:
+        # After a signal the process is on its way out: a further one must
+        # still take the quick exit, not Python's default traceback.
+        if not received:
+            for sig, handler in old.items():
+                signal.signal(sig, handler)
+
+
+def _path_arg(text: str) -> str:
+    if not text.strip():
+        raise argparse.ArgumentTypeError("must name a path, got an empty string")
+    return text
 
 
 def _pose_arg(text: str):
@@ -33,10 +94,13 @@ def _pose_arg(text: str):
 
 
 def _cmd_info(args) -> int:
-    from .io.scanlog import read_scanlog
+    from .pipeline import open_log
     from .reporting.terminal import describe_log
 
-    print(describe_log(read_scanlog(args.log), args.log))
+    # What `run` reads, and refused where `run` refuses it.
+    log, notes = open_log(args.log, _recording_choice(args))
+    lines = [describe_log(log, args.log)] + [f"  {line}" for note in notes for line in note.splitlines()]
+    print("\n".join(lines))
     return EXIT_OK
 
 
@@ -90,6 +154,8 @@ def _run_config(args):
     updates: dict = {}
     if args.jobs is not None:
         updates["jobs"] = args.jobs
+    if args.max_pairs is not None:
+        updates["max_pairs"] = args.max_pairs
     for flag, _, _, table, key, _ in THRESHOLD_OPTIONS:
         value = getattr(args, flag[2:].replace("-", "_"))
         if value is not None:
@@ -117,7 +183,7 @@ def _cmd_run(args) -> int:
         print(f"closurecheck: error: {message}", file=sys.stderr)
     if result.errors:
         return EXIT_BAD_INPUT
-    doubtful = [str(path) for path, outcome, _ in result.outcomes if outcome is not None and not outcome.trust.sound]
+    doubtful = [str(r.path) for r in result.outcomes if r.outcome is not None and not r.outcome.trust.sound]
     if doubtful:
         print(f"closurecheck: doubtful map: {', '.join(doubtful)} (see the report; exit status 3)", file=sys.stderr)
         return EXIT_DOUBTFUL
@@ -128,10 +194,8 @@ def _cmd_demo(args) -> int:
     from .io.inputs import DEMO_LOG
 
     args.logs = [str(DEMO_LOG)]
-    code = _cmd_run(args)
-    if code == EXIT_OK:
-        print(f"report: {Path(args.out).resolve() / 'report.html'}")
-    return code
+    # The run's summary already ends with the report's path.
+    return _cmd_run(args)
 
 
 def _cmd_score(args) -> int:
@@ -178,10 +242,11 @@ def build_parser() -> argparse.ArgumentParser:
     g.add_argument("--max-odom-gap", type=float, default=None, metavar="SECONDS",
                    help="drop scans inside odometry gaps longer than this (default: 0.5 s)")
     runopts = argparse.ArgumentParser(add_help=False)
-    runopts.add_argument("--out", required=True, help="output directory (created if missing)")
-    runopts.add_argument("--candidates", default=None, metavar="PAIRS.csv",
+    runopts.add_argument("--out", required=True, type=_path_arg,
+                         help="output directory (created if missing; replaced as a whole when the run is done)")
+    runopts.add_argument("--candidates", default=None, metavar="PAIRS.csv", type=_path_arg,
                          help="verify these pairs (columns from,to[,dx,dy,dtheta][,score]) instead of proposing")
-    runopts.add_argument("--config", default=None, metavar="FILE.toml",
+    runopts.add_argument("--config", default=None, metavar="FILE.toml", type=_path_arg,
                          help="settings file; a run's own config.toml reproduces it")
     runopts.add_argument("--also-propose", action="store_true",
                          help="with --candidates: verify the file's pairs and the tool's own proposals together")
@@ -192,6 +257,9 @@ def build_parser() -> argparse.ArgumentParser:
     runopts.add_argument("--dask", default=None, metavar="ADDRESS",
                          help="run registration on Dask: 'local' or tcp://HOST:PORT (needs the dask extra)")
     runopts.add_argument("--no-report", action="store_true", help="skip report.html (faster)")
+    runopts.add_argument("--max-pairs", type=int, default=None, metavar="N",
+                         help="refuse to register more than N candidate pairs (default 200000, about half an "
+                              "hour with two workers)")
     t = runopts.add_argument_group("main thresholds (all settings: --config)")
     for flag, kind, metavar, _, _, text in THRESHOLD_OPTIONS:
         t.add_argument(flag, type=kind, default=None, metavar=metavar, help=text)
@@ -213,18 +281,20 @@ def build_parser() -> argparse.ArgumentParser:
                        help="score a run (or a candidate list) against the log's ground truth, or without truth "
                             "against the run's verdicts (a reference, not the truth)")
     p.add_argument("run_dir", metavar="RUN_DIR", help="output directory of closurecheck run")
-    p.add_argument("--log", default=None, help="the run's log (default: the one recorded in RUN_DIR)")
-    p.add_argument("--candidates", default=None, metavar="PAIRS.csv",
+    p.add_argument("--log", default=None, type=_path_arg, help="the run's log (default: the one recorded in RUN_DIR)")
+    p.add_argument("--candidates", default=None, metavar="PAIRS.csv", type=_path_arg,
                    help="score this candidate list (another front-end's proposals) instead of the run")
-    p.add_argument("--json", default=None, metavar="FILE", help="also write the scores as JSON")
+    p.add_argument("--json", default=None, metavar="FILE", type=_path_arg,
+                   help="also write the scores as JSON (strict JSON: null where a score is undefined)")
     p.set_defaults(func=_cmd_score)
 
-    p = sub.add_parser("info", parents=[common], help="check a scan log and summarise it")
-    p.add_argument("log", help="scan log (.jsonl or .jsonl.gz)")
+    p = sub.add_parser("info", parents=[common, rec],
+                       help="check a scan log or recording as run reads it, and summarise it")
+    p.add_argument("log", help="scan log (.jsonl or .jsonl.gz) or robot recording")
     p.set_defaults(func=_cmd_info)
 
     p = sub.add_parser("simulate", parents=[common], help="write a simulated scan log with ground truth")
-    p.add_argument("--out", required=True, help="output scan log (.jsonl or .jsonl.gz)")
+    p.add_argument("--out", required=True, type=_path_arg, help="output scan log (.jsonl or .jsonl.gz)")
     p.add_argument("--scenario", default=simulate.DEFAULT_SCENARIO, choices=sorted(simulate.SCENARIOS),
                    help="invented floor plan to drive through (default: %(default)s)")
     p.add_argument("--seed", type=int, default=0, help="random seed; same seed, same log (default: 0)")
@@ -235,43 +305,101 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("convert", parents=[common, rec],
                        help="write a scan log from a robot recording (ROS 1 bag, ROS 2 MCAP or SQLite)")
     p.add_argument("recording", help="recording file or ROS 2 bag folder")
-    p.add_argument("--out", required=True, help="output scan log (.jsonl or .jsonl.gz)")
+    p.add_argument("--out", required=True, type=_path_arg, help="output scan log (.jsonl or .jsonl.gz)")
     p.set_defaults(func=_cmd_convert)
     return parser
+
+
+def _stdout_is_broken() -> bool:
+    """True when stdout is a pipe whose reader has gone (not some other pipe, e.g. a worker's)."""
+    try:
+        import select
+
+        poller = select.poll()
+        poller.register(sys.stdout.fileno(), select.POLLOUT)
+        # The write end of a pipe without a reader reports an error condition.
+        return any(ev & select.POLLERR for _, ev in poller.poll(0))
+    except (AttributeError, ValueError, OSError):  # no poll (Windows), or stdout is not a real file
+        try:
+            sys.stdout.flush()
+        except BrokenPipeError:
+            return True
+        except (OSError, ValueError):
+            return False
+        return False
+
+
+def _silence_stdout() -> None:
+    # Later flushes (at exit) would fail again and print a warning.
+    with contextlib.suppress(OSError, ValueError, AttributeError):
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        os.close(devnull)
+
+
+def _print_error(text: str) -> None:
+    with contextlib.suppress(OSError, ValueError):
+        print(text, file=sys.stderr, flush=True)
 
 
 def main(argv=None) -> int:
     """Entry point of the ``closurecheck`` command; returns the exit status."""
     argv = sys.argv[1:] if argv is None else list(argv)
     verbose = "-v" in argv or "--verbose" in argv
+    parser = build_parser()
+    if not argv:
+        # A bare command: how to use it, not only that something is missing.
+        with contextlib.suppress(OSError, ValueError):
+            sys.stderr.write(parser.format_usage())
+        _print_error(f"closurecheck: error: choose a command: {', '.join(COMMANDS)} "
+                     f"(closurecheck --help describes them)")
+        return EXIT_BAD_INPUT
     try:
-        args = build_parser().parse_args(argv)
-        return int(args.func(args) or EXIT_OK)
+        with _interrupts():
+            args = parser.parse_args(argv)
+            return int(args.func(args) or EXIT_OK)
     except InputError as exc:
         if verbose:
             traceback.print_exc()
-        print(f"closurecheck: error: {exc}", file=sys.stderr)
+        _print_error(f"closurecheck: error: {exc}")
         return EXIT_BAD_INPUT
+    except BrokenPipeError as exc:
+        if _stdout_is_broken():
+            # The reader of our output stopped early (`| head -1`): not an error to report.
+            _silence_stdout()
+            return EXIT_BROKEN_PIPE
+        return _internal_error(exc, verbose)
     except OSError as exc:
         # Disk full, permission denied, a path that is a file: the user's
-        # environment, not a bug; atomic writes left earlier outputs intact.
+        # environment, not a bug; output folders keep their previous content.
         if verbose:
             traceback.print_exc()
-        where = f" {exc.filename}" if getattr(exc, "filename", None) else ""
-        print(f"closurecheck: error: cannot access{where}: {exc.strerror or exc}", file=sys.stderr)
+        where = f" {one_line(exc.filename, 300)}" if getattr(exc, "filename", None) else ""
+        _print_error(f"closurecheck: error: cannot access{where}: {one_line(exc.strerror or exc, 200)}")
         return EXIT_BAD_INPUT
-    except KeyboardInterrupt:
-        print("closurecheck: interrupted; finished outputs were kept, nothing was half-written",
-              file=sys.stderr)
+    except KeyboardInterrupt as exc:
+        what = "stopped by SIGTERM" if getattr(exc, "signum", None) == signal.SIGTERM else "interrupted"
+        _print_error(f"closurecheck: {what}; unfinished outputs were discarded, output folders hold their "
+                     f"previous complete run or none (docs/cli.md)")
+        if isinstance(exc, _Stopped):
+            # Cleaned up and said so: only the interpreter's exit is left, and
+            # there Python would put back the default handlers, so a further
+            # Ctrl-C would kill the process without a word.  Ignore it instead.
+            for sig in (signal.SIGINT, signal.SIGTERM):
+                signal.signal(sig, signal.SIG_IGN)
         return EXIT_BAD_INPUT
     except SystemExit as exc:  # --help and --version
         return int(exc.code or 0) if isinstance(exc.code, int) else EXIT_OK
     except Exception as exc:  # noqa: BLE001 - the last line of defence maps to exit 1
-        if verbose:
-            traceback.print_exc()
-        print(f"closurecheck: internal error: {type(exc).__name__}: {exc} (rerun with --verbose for details)",
-              file=sys.stderr)
-        return EXIT_INTERNAL
+        return _internal_error(exc, verbose)
+
+
+def _internal_error(exc: BaseException, verbose: bool) -> int:
+    if verbose:
+        traceback.print_exc()
+    _print_error(f"closurecheck: internal error: {type(exc).__name__}: {one_line(exc, 300)} "
+                 f"(rerun with --verbose for details)")
+    return EXIT_INTERNAL
 
 
 if __name__ == "__main__":

@@ -69,10 +69,17 @@ class RunConfig:
 
     jobs : worker processes for registration (0 = all cores, 1 = serial).
     batch_pairs : candidate pairs per unit of parallel work.
+    max_pairs : most candidate pairs a run registers (a pairs file and
+        proposals together); more are refused with exit status 2 before
+        any registration.  The default, 200,000, is about half an hour of
+        registration with two workers at the 100-odd pairs per second of
+        docs/performance.md ("Whole runs and parallel registration"); a
+        million pairs would take hours.
     """
 
     jobs: int = setting(0, at_least=0)
     batch_pairs: int = setting(64, at_least=1)
+    max_pairs: int = setting(200_000, at_least=1)
     keyframes: KeyframeOptions = KeyframeOptions()
     odometry: OdometryOverrides = OdometryOverrides()
     calibration: CalibrationOptions = CalibrationOptions()

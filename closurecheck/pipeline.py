@@ -32,11 +32,11 @@ from .frontend.candidates import (
 from .frontend.keyframes import merge_keyframes, select_keyframes
 from .io.decisions_csv import ReviewDecisions, decision_rows, read_decisions
 from .io.graph_file import PoseGraph
-from .io.inputs import expand_inputs, output_name
+from .io.inputs import RecordingChoice, expand_inputs, load_input, output_names
 from .io.pairs_csv import ExternalPairs
 from .io.scanlog import ScanLog
 from .registration.batch import RegisteredClosures, collect, seeds_for
-from .reporting.outputs import RunOutcome, summary, write_index, write_outputs
+from .reporting.outputs import LogRun, RunOutcome, check_run_folder, summary, write_index, write_outputs
 from .reporting.terminal import format_summary
 from .verification.free_space import KeyframeScans
 from .verification.reasons import Reason
@@ -246,6 +246,10 @@ def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPai
     if decisions is not None:
         cands = _reviewed_candidates(cands, decisions, data, config)
 
+    if len(cands) > config.max_pairs:
+        raise InputError(f"{len(cands)} candidate pairs to register, more than max_pairs = {config.max_pairs} "
+                         f"(--max-pairs, docs/cli.md): that would take hours; raise the cap or split the work",
+                         log.source or None)
     regs = st.run("registration", _register_candidates, log, cands, config, runner, progress)
 
     review = notes_review = verifier_reason = None
@@ -282,10 +286,20 @@ def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPai
         notes.append(f"{len(decisions)} reviewer decision(s) applied ({n_acc} accepted, {len(decisions) - n_acc} "
                      f"rejected, from {config.review.decisions_file or decisions.source}); the verdicts the checks "
                      f"alone give are in candidates.csv's verifier_reason column")
+    if len(cands) == 0:
+        notes.append(_no_candidates_note(log, external, also_propose))
     return RunOutcome(log=log, config=config, keyframes=keyframes, odom=log.odom[keyframes], step_covariances=chain.steps,
                       candidates=cands, registrations=regs, verification=ver, verdicts=verdicts, graph=graph,
                       calibration=cal, trust=trust,
                       timings=st.timings, notes=tuple(notes))
+
+
+def _no_candidates_note(log: ScanLog, external, also_propose: bool) -> str:
+    if external is not None and len(external) == 0 and not also_propose:
+        return "the pairs file holds no pairs: nothing was verified and the graph has odometry edges only"
+    travel = float(np.hypot(*np.diff(log.odom[:, :2], axis=0).T).sum()) if len(log) > 1 else 0.0
+    return (f"no loop-closure candidates: over {travel:.1f} m of odometry the log never came back near a place "
+            "it had passed (no revisits), so the graph has odometry edges only")
 
 
 def _graph(log, chain: OdometryChain, ver: Verification, v: VerdictTable) -> PoseGraph:
@@ -315,7 +329,19 @@ class BatchResult:
 
     text: str
     errors: tuple
-    outcomes: tuple  # (path, RunOutcome or None, error or None)
+    outcomes: tuple  # one LogRun per input, in input order
+
+
+def open_log(path, choice: RecordingChoice | None = None) -> tuple[ScanLog, list[str]]:
+    """Read what ``closurecheck run`` and ``info`` read, refusing what they refuse.
+
+    A scan log or a recording (:func:`closurecheck.io.inputs.load_input`),
+    with its header's odometry noise model checked as a run uses it.
+    Returns (log, notes for the user).
+    """
+    log, notes = load_input(path, choice or RecordingChoice())
+    noise_from_header(log.header, path)
+    return log, notes
 
 
 def _write(outcome, log: ScanLog, out_dir, *, report: bool, progress, log_path: Path | None):
@@ -325,7 +351,9 @@ def _write(outcome, log: ScanLog, out_dir, *, report: bool, progress, log_path: 
     score = score_outcome(outcome)
     if progress is not None:
         progress.stage("writing outputs")
-    return write_outputs(outcome, out_dir, report=report, score=score, log_path=log_path)
+        if len(outcome.candidates) == 0:
+            progress.note(outcome.notes[-1])
+    return write_outputs(outcome, out_dir, report=report, score=score, log_path=log_path, progress=progress)
 
 
 def run_one(path, out_dir, config: RunConfig, *, candidates=None, choice=None, runner=None, report=True,
@@ -334,16 +362,15 @@ def run_one(path, out_dir, config: RunConfig, *, candidates=None, choice=None, r
 
     ``decisions``: read by :func:`with_decisions` (which also records them in ``config``).
     """
-    from .io.inputs import RecordingChoice, load_input
     from .io.pairs_csv import read_pairs
 
     if progress is not None:
         progress.stage(f"reading {path}")
-    log, load_notes = load_input(path, choice or RecordingChoice())
+    log, load_notes = open_log(path, choice)
     for note in load_notes:
         if progress is not None:
             progress.info(note)
-    external = read_pairs(candidates, len(log)) if candidates else None
+    external = read_pairs(candidates, len(log), max_pairs=config.max_pairs) if candidates else None
     outcome = run_log(log, config, external=external, runner=runner, progress=progress, also_propose=also_propose,
                       decisions=decisions)
     if load_notes:
@@ -400,7 +427,6 @@ def run(log, out=None, *, config: RunConfig | None = None, candidates=None, jobs
     >>> outcome.config.review.decisions
     ((50, 10, 'reject', 'not the same room'),)
     """
-    from .io.inputs import load_input
     from .io.pairs_csv import read_pairs
     from .runners.factory import make_runner
 
@@ -413,8 +439,8 @@ def run(log, out=None, *, config: RunConfig | None = None, candidates=None, jobs
     log_path = None
     if not isinstance(log, ScanLog):
         log_path = Path(log)
-        log, _ = load_input(log_path)
-    external = read_pairs(candidates, len(log)) if candidates else None
+        log, _ = open_log(log_path)
+    external = read_pairs(candidates, len(log), max_pairs=config.max_pairs) if candidates else None
     runner = make_runner(config.jobs)
     try:
         outcome = run_log(log, config, external=external, runner=runner, decisions=review)
@@ -436,6 +462,8 @@ def run_paths(paths, out, config: RunConfig = RunConfig(), *, candidates=None, c
     from .runners.factory import make_runner
 
     files = expand_inputs(paths)
+    if str(out) == "":
+        raise InputError("--out is empty: name the output folder")
     out = Path(out)
     if out.exists() and not out.is_dir():
         raise InputError("output path exists and is not a directory", out)
@@ -447,11 +475,15 @@ def run_paths(paths, out, config: RunConfig = RunConfig(), *, candidates=None, c
                          "log; got several inputs")
     if decisions is not None:
         config, review = with_decisions(config, decisions)
+    names = output_names(files)
+    targets = [out] if len(files) == 1 else [out / name for name in names]
+    # Before any work: a folder the run could not replace fails now, not after an hour.
+    for target in targets:
+        check_run_folder(target)
     runner = make_runner(config.jobs, dask)
     texts, errors, outcomes = [], [], []
     try:
-        for path in files:
-            target = out if len(files) == 1 else out / output_name(path)
+        for path, name, target in zip(files, names, targets):
             try:
                 outcome, written, info = run_one(path, target, config, candidates=candidates, choice=choice,
                                                  runner=runner, report=report, progress=progress,
@@ -460,10 +492,10 @@ def run_paths(paths, out, config: RunConfig = RunConfig(), *, candidates=None, c
                 if len(files) == 1:
                     raise
                 errors.append(str(exc))
-                outcomes.append((path, None, str(exc)))
+                outcomes.append(LogRun(Path(path), name, None, str(exc)))
                 continue
             texts.append(format_summary(info, written))
-            outcomes.append((path, outcome, None))
+            outcomes.append(LogRun(Path(path), name, outcome, None))
     finally:
         runner.close()
     if len(files) > 1:

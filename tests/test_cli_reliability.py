@@ -116,3 +116,327 @@ def test_rerun_from_recorded_config_reproduces_the_graph(small_run, tmp_path):
     assert (out2 / "graph.json").read_bytes() == small_run["snapshot"]["graph.json"]
     summary = json.loads((out2 / "summary.json").read_text())
     assert summary["log_path"].endswith("small.jsonl.gz")
+
+
+# --- strict JSON (no bare NaN) -----------------------------------------------------------------------
+
+def _strict(text: str):
+    """Parse as strict JSON (RFC 8259 has no NaN or Infinity): such a token raises."""
+    def refuse(token):
+        raise ValueError(f"not JSON: {token}")
+    return json.loads(text, parse_constant=refuse)
+
+
+def test_summary_and_score_json_hold_null_not_nan(small_run, tmp_path, capsys):
+    # The small run verifies no closure, so precision and NEES are undefined.
+    summary = _strict((small_run["out"] / "summary.json").read_text())
+    assert summary["score"]["accepted"] == 0
+    assert summary["score"]["closure_precision"] is None
+    scores = tmp_path / "scores.json"
+    assert cli.main(["score", str(small_run["out"]), "--json", str(scores), "-q"]) == 0
+    doc = _strict(scores.read_text())
+    assert doc["closure_precision"] is None and doc["nees_mean"] is None
+
+
+def test_one_json_writer_refuses_what_it_cannot_make_strict():
+    from closurecheck.io.json_file import json_text
+
+    text = json_text({"a": float("nan"), "b": [float("inf"), -float("inf"), 1.5], "c": {"d": float("nan")}})
+    assert _strict(text) == {"a": None, "b": [None, None, 1.5], "c": {"d": None}}
+
+
+# --- cap on pairs, expected time --------------------------------------------------------------------
+
+def test_pairs_above_max_pairs_are_refused_before_registration(small_run, tmp_path, capsys):
+    pairs = tmp_path / "pairs.csv"
+    pairs.write_text("from,to\n" + "".join(f"{a},{a + 5}\n" for a in range(0, 120)))
+    out = tmp_path / "o"
+    assert cli.main(["run", str(small_run["log"]), "--out", str(out), "--candidates", str(pairs),
+                     "--max-pairs", "100", "-q", "--jobs", "1"]) == 2
+    err = one_line_error(capsys, "pairs.csv:102", "more than 100 pairs", "--max-pairs")
+    assert "Traceback" not in err
+    assert not out.exists()
+
+
+def test_default_pair_cap_is_finite_and_documented():
+    from pathlib import Path
+
+    from closurecheck.config import RunConfig
+
+    cap = RunConfig().max_pairs
+    assert 10_000 <= cap < 10 ** 7
+    doc = (Path(__file__).resolve().parents[1] / "docs" / "cli.md").read_text()
+    assert "--max-pairs" in doc and f"{cap:,}" in doc
+
+
+def test_expected_time_after_the_first_batch_and_plain_lines_off_a_terminal(monkeypatch):
+    import io
+
+    from closurecheck.reporting import terminal
+
+    clock = [100.0]
+    monkeypatch.setattr(terminal.time, "perf_counter", lambda: clock[0])
+    stream = io.StringIO()
+    progress = terminal.Progress(stream=stream)
+    progress.stage("registration")
+    progress.begin("registration", 1_000_000, parallel=2)
+    clock[0] += 3.0  # the first batch of 64 pairs took 3 s while the other worker ran its own
+    progress.advance("registration", 64, 1_000_000)
+    for _ in range(400):  # then two workers hand back a batch every 1.5 s, for 600 s
+        clock[0] += 1.5
+        progress.advance("registration", 64, 1_000_000)
+    text = stream.getvalue()
+    assert "\r" not in text and "\x1b" not in text  # no bar redrawn in place
+    lines = text.splitlines()
+    first = next(ln for ln in lines if "first batch" in ln)
+    # 1,000,000 pairs at 2 x 64 pairs per 3 s: 23,436 s, about 6.5 hours.
+    assert "1000000 pairs" in first and "6 h 31 min" in first
+    plain = [ln for ln in lines if "pairs (" in ln]
+    assert 50 <= len(plain) <= 62  # a line per 10 s or so of the 603 s, not one per batch
+    assert "about 6 h" in plain[-1]  # the pace held: still about 6 hours to go
+    assert all(len(ln) < 120 for ln in lines)
+
+
+# --- feedback to a new user ---------------------------------------------------------------------------
+
+def test_writing_outputs_shows_its_steps(tmp_path, capsys):
+    log = tmp_path / "short.jsonl.gz"
+    write_scanlog(log, simulate_log("ring", seed=3, scans=40))
+    out = tmp_path / "o"
+    assert cli.main(["run", str(log), "--out", str(out), "--jobs", "1"]) == 0
+    err = capsys.readouterr().err
+    for step in ("writing outputs", "candidates.csv", "report: maps", "report: loop closures",
+                 "report: check figures", "putting the outputs in place"):
+        assert step in err, err
+
+
+def test_a_log_without_revisits_says_so(tmp_path, capsys):
+    log = tmp_path / "short.jsonl.gz"
+    write_scanlog(log, simulate_log("ring", seed=3, scans=40))
+    out = tmp_path / "o"
+    assert cli.main(["run", str(log), "--out", str(out), "--jobs", "1", "--no-report"]) == 0
+    captured = capsys.readouterr()
+    assert "no loop-closure candidates" in captured.out and "no revisits" in captured.out
+    assert "no loop-closure candidates" in captured.err  # said while running, too
+    assert any("no revisits" in n for n in json.loads((out / "summary.json").read_text())["notes"])
+
+
+def test_an_empty_pairs_file_says_so(small_run, tmp_path, capsys):
+    pairs = tmp_path / "none.csv"
+    pairs.write_text("from,to\n")
+    out = tmp_path / "o"
+    assert cli.main(["run", str(small_run["log"]), "--out", str(out), "--candidates", str(pairs),
+                     "--jobs", "1", "--no-report"]) == 0
+    assert "the pairs file holds no pairs" in capsys.readouterr().out
+
+
+def test_bare_command_prints_usage_and_one_error_line(capsys):
+    assert cli.main([]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 2 and err[0].startswith("usage: closurecheck")
+    assert err[1].startswith("closurecheck: error: choose a command") and err[1].count("closurecheck:") == 1
+
+
+def test_usage_errors_have_one_prefix(capsys):
+    assert cli.main(["run", "-q"]) == 2
+    err = one_line_error(capsys, "run: the following arguments are required")
+    assert err.count("closurecheck") == 1
+
+
+@pytest.mark.parametrize("args", [["run", "LOG", "--out", ""], ["run", "LOG", "--out", " "],
+                                  ["simulate", "--out", ""], ["score", "x", "--json", ""]])
+def test_empty_paths_are_refused(small_run, tmp_path, monkeypatch, capsys, args):
+    monkeypatch.chdir(tmp_path)
+    args = [str(small_run["log"]) if a == "LOG" else a for a in args]
+    assert cli.main(args + ["-q"]) == 2
+    one_line_error(capsys, "empty")
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_demo_prints_the_report_path_once(tmp_path, monkeypatch, capsys):
+    from closurecheck.io import inputs
+
+    log = tmp_path / "mini_demo.jsonl.gz"
+    write_scanlog(log, simulate_log("ring", seed=3, scans=40))
+    monkeypatch.setattr(inputs, "DEMO_LOG", log)
+    assert cli.main(["demo", "--out", str(tmp_path / "d"), "--jobs", "1"]) == 0
+    out = capsys.readouterr().out
+    assert out.count("report.html") == 1
+
+
+def test_readme_install_command_is_one_line_and_not_silent():
+    from pathlib import Path
+
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text()
+    line = next(ln for ln in readme.splitlines() if "pip install" in ln and "-e ." in ln and "venv" in ln)
+    assert " -q" not in line and "&&" in line and "closurecheck demo" in line
+
+
+def test_broken_stdout_pipe_is_quiet(small_run):
+    import os
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parents[1]
+    read_end, write_end = os.pipe()
+    os.close(read_end)  # the reader is gone before anything is written, as after `| head -1`
+    try:
+        res = subprocess.run([sys.executable, "-m", "closurecheck", "info", str(small_run["log"])],
+                             stdout=write_end, stderr=subprocess.PIPE, text=True, cwd=small_run["log"].parent,
+                             env=dict(os.environ, PYTHONPATH=str(root)), timeout=120)
+    finally:
+        os.close(write_end)
+    assert res.returncode == cli.EXIT_BROKEN_PIPE == 141
+    assert res.stderr == ""
+
+
+# --- what run reads, info reads -----------------------------------------------------------------------
+
+def test_info_refuses_a_malformed_odometry_noise_header_like_run(tmp_path, capsys):
+    log = simulate_log("ring", seed=3, scans=30)
+    bad = tmp_path / "noisy.jsonl"
+    write_scanlog(bad, log)
+    lines = bad.read_text().splitlines()
+    header = json.loads(lines[0])
+    header["odometry_noise"] = {"translation_m_per_sqrt_m": "a lot"}
+    bad.write_text("\n".join([json.dumps(header)] + lines[1:]) + "\n")
+    assert cli.main(["info", str(bad)]) == 2
+    info_err = one_line_error(capsys, "noisy.jsonl:1", "odometry_noise")
+    assert cli.main(["run", str(bad), "--out", str(tmp_path / "o"), "-q", "--jobs", "1"]) == 2
+    assert one_line_error(capsys) == info_err
+
+
+# --- non-regular files, long values -----------------------------------------------------------------
+
+@pytest.mark.parametrize("command", ["info", "run"])
+def test_a_named_pipe_is_refused_without_waiting(tmp_path, command):
+    import os
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    fifo = tmp_path / "stream.jsonl"
+    os.mkfifo(fifo)
+    root = Path(__file__).resolve().parents[1]
+    args = [sys.executable, "-m", "closurecheck", command, str(fifo)]
+    if command == "run":
+        args += ["--out", str(tmp_path / "o"), "-q"]
+    # Opening a FIFO with no writer blocks forever: the old reader hung here.
+    res = subprocess.run(args, capture_output=True, text=True, cwd=tmp_path,
+                         env=dict(os.environ, PYTHONPATH=str(root)), timeout=60)
+    assert res.returncode == 2
+    err = res.stderr.strip()
+    assert err.count("\n") == 0 and "named pipe" in err and "stream.jsonl" in err
+
+
+@pytest.mark.parametrize("which", ["pairs", "config"])
+def test_a_named_pipe_as_pairs_or_config_file_is_refused(small_run, tmp_path, capsys, which):
+    import os
+
+    fifo = tmp_path / "fifo"
+    os.mkfifo(fifo)
+    option = "--candidates" if which == "pairs" else "--config"
+    assert cli.main(["run", str(small_run["log"]), "--out", str(tmp_path / "o"), option, str(fifo), "-q"]) == 2
+    one_line_error(capsys, "named pipe")
+
+
+def test_huge_bad_values_are_cut_in_the_error_line(small_run, tmp_path, capsys):
+    pairs = tmp_path / "huge.csv"
+    pairs.write_text("from,to\n1," + "7x" * 50_000 + "\n")
+    assert cli.main(["run", str(small_run["log"]), "--out", str(tmp_path / "o"), "--candidates", str(pairs),
+                     "-q"]) == 2
+    err = one_line_error(capsys, "huge.csv:2", "100002 characters")
+    assert len(err) < 400
+    # A 20 MB value in a settings file: the message is cut whatever check reports it.
+    cfg = tmp_path / "huge.toml"
+    cfg.write_text("[verify]\nmin_overlap = '" + "x" * 20_000_000 + "'\n")
+    assert cli.main(["run", str(small_run["log"]), "--out", str(tmp_path / "o"), "--config", str(cfg), "-q"]) == 2
+    err = one_line_error(capsys, "huge.toml", "min_overlap")
+    assert len(err) < 1000
+
+
+# --- Ctrl-C at several points (subprocesses, Ctrl-C to the whole process group as a terminal does) ----
+
+@pytest.fixture(scope="module")
+def interrupt_case(tmp_path_factory):
+    base = tmp_path_factory.mktemp("sigint")
+    log = base / "ring.jsonl.gz"
+    write_scanlog(log, simulate_log("ring", seed=4, scans=300))
+    template = base / "template"
+    assert cli.main(["run", str(log), "--out", str(template), "-q", "--jobs", "1", "--no-report"]) == 0
+    return log, template
+
+
+def _interrupted_run(interrupt_case, tmp_path, marker, signals=1):
+    import os
+    import shutil
+    import signal
+    import subprocess
+    import sys
+    import time
+    from pathlib import Path
+
+    from procs import alive, descendants  # tests/procs.py
+
+    log, template = interrupt_case
+    out = tmp_path / "run"
+    shutil.copytree(template, out)
+    before = {p: p.read_bytes() for p in sorted(out.rglob("*")) if p.is_file()}
+    root = Path(__file__).resolve().parents[1]
+    proc = subprocess.Popen([sys.executable, "-m", "closurecheck", "run", str(log), "--out", str(out),
+                             "--jobs", "2"], cwd=tmp_path, env=dict(os.environ, PYTHONPATH=str(root)),
+                            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True, start_new_session=True)
+    seen, children = [], []
+    try:
+        for line in proc.stderr:
+            seen.append(line)
+            if marker in line:
+                break
+        assert marker in "".join(seen), "".join(seen)
+        children = descendants(proc.pid)
+        for k in range(signals):
+            os.killpg(proc.pid, signal.SIGINT)
+            time.sleep(0.05)
+        t0 = time.monotonic()
+        rest = proc.stderr.read()
+        proc.wait(timeout=30)
+        took = time.monotonic() - t0
+        deadline = time.monotonic() + 10
+        while time.monotonic() < deadline and any(alive(c) for c in children):
+            time.sleep(0.1)
+        survivors = [c for c in children if alive(c)]
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+        for c in children:
+            if alive(c):
+                os.kill(c, signal.SIGKILL)
+    after = {p: p.read_bytes() for p in sorted(out.rglob("*")) if p.is_file()}
+    leftovers = [p.name for p in tmp_path.iterdir() if p.name.startswith(".run.closurecheck-")]
+    return proc.returncode, rest, took, survivors, after == before, leftovers
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("marker", ["at the first batch's pace", "report: maps", "report: check figures"])
+def test_ctrl_c_stops_cleanly_at_any_point(interrupt_case, tmp_path, marker):
+    code, err, took, survivors, unchanged, leftovers = _interrupted_run(interrupt_case, tmp_path, marker)
+    assert code == 2, err
+    lines = [ln for ln in err.splitlines() if ln.startswith("closurecheck:")]
+    assert len(lines) == 1 and "interrupted" in lines[0], err
+    for bad in ("Traceback", "Fatal Python error", "Exception ignored", "KeyboardInterrupt"):
+        assert bad not in err, err
+    assert took < 20, took  # seconds from Ctrl-C to exit; about 1 s on an idle machine
+    assert survivors == []
+    assert unchanged and leftovers == []
+
+
+@pytest.mark.slow
+def test_a_second_ctrl_c_exits_at_once_with_a_message(interrupt_case, tmp_path):
+    code, err, took, survivors, unchanged, _ = _interrupted_run(interrupt_case, tmp_path,
+                                                                "at the first batch's pace", signals=2)
+    assert code == 2, err
+    assert "interrupted" in err and "Traceback" not in err and "Fatal Python error" not in err
+    assert took < 20
+    assert survivors == []
+    assert unchanged

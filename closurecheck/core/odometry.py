@@ -35,7 +35,7 @@ from dataclasses import dataclass, fields
 
 import numpy as np
 
-from ..errors import InputError
+from ..errors import InputError, shorten
 from . import se2
 from .options import options, setting
 
@@ -95,6 +95,16 @@ def _is_number(v) -> bool:
     return isinstance(v, (int, float)) and not isinstance(v, bool)
 
 
+def _finite_number(v) -> bool:
+    """A number (not a boolean) that is finite as a float64; a 400-digit integer is not."""
+    if not _is_number(v):
+        return False
+    try:
+        return math.isfinite(v)
+    except OverflowError:
+        return False
+
+
 def noise_from_header(header: dict | None, path=None) -> OdometryNoise:
     """Read the optional ``odometry_noise`` key of a scan-log header.
 
@@ -112,8 +122,9 @@ def noise_from_header(header: dict | None, path=None) -> OdometryNoise:
         raise InputError(f'header: unknown key "{unknown[0]}" in "{HEADER_KEY}" '
                          f'(expected {", ".join(_MODEL_KEYS)})', path, 1)
     for key, value in raw.items():
-        if not _is_number(value) or not math.isfinite(value) or value < 0:
-            raise InputError(f'header: "{HEADER_KEY}" "{key}" must be a finite number >= 0, got {value!r}', path, 1)
+        if not _finite_number(value) or value < 0:
+            raise InputError(f'header: "{HEADER_KEY}" "{key}" must be a finite number >= 0, got {shorten(value)}',
+                             path, 1)
     return OdometryNoise(**{k: float(v) for k, v in raw.items()})
 
 

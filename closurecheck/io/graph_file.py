@@ -9,12 +9,12 @@ from __future__ import annotations
 import json
 import math
 from dataclasses import dataclass, field
-from pathlib import Path
 
 import numpy as np
 
-from ..errors import InputError
-from .atomic import write_text
+from ..errors import InputError, one_line
+from .files import check_regular_file
+from .json_file import jsonable, write_json
 
 GRAPH_VERSION = 1
 EDGE_KINDS = ("odometry", "loop")
@@ -80,37 +80,27 @@ def graph_to_dict(graph: PoseGraph) -> dict:
                 "delta": [float(v) for v in graph.delta[k]], "information": _matrix(info[k])}
         if edge["kind"] == "loop":
             edge["covariance"] = _matrix(cov[k])
-            edge["checks"] = _jsonable(checks[k])
+            edge["checks"] = jsonable(checks[k])
         edges.append(edge)
     return {"graph": GRAPH_VERSION, "source": graph.source, "nodes": nodes, "edges": edges}
 
 
-def _jsonable(value):
-    """Plain JSON types for the free-form checks (numpy scalars, NaN -> null)."""
-    if isinstance(value, dict):
-        return {str(k): _jsonable(v) for k, v in value.items()}
-    if isinstance(value, np.ndarray):
-        return _jsonable(value.tolist())
-    if isinstance(value, (list, tuple)):
-        return [_jsonable(v) for v in value]
-    if isinstance(value, (bool, np.bool_)):
-        return bool(value)
-    if isinstance(value, (int, np.integer)):
-        return int(value)
-    if isinstance(value, (float, np.floating)):
-        return float(value) if math.isfinite(value) else None
-    return value if value is None or isinstance(value, str) else str(value)
-
-
 def write_graph(path, graph: PoseGraph) -> None:
     """Write ``graph`` to ``path`` atomically as graph.json."""
-    write_text(path, json.dumps(graph_to_dict(graph), indent=1, allow_nan=False) + "\n")
+    write_json(path, graph_to_dict(graph))
+
+
+def _finite_number(v) -> bool:
+    if not isinstance(v, (int, float)) or isinstance(v, bool):
+        return False
+    try:
+        return math.isfinite(v)
+    except OverflowError:  # an integer beyond float64
+        return False
 
 
 def _pose(value, where, path) -> list:
-    if (not isinstance(value, list) or len(value) != 3
-            or not all(isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v)
-                       for v in value)):
+    if not isinstance(value, list) or len(value) != 3 or not all(_finite_number(v) for v in value):
         raise InputError(f"{where} must be [x, y, theta] of finite numbers", path)
     return value
 
@@ -132,15 +122,17 @@ def read_graph(path) -> PoseGraph:
     >>> len(graph.ids) == len(result.keyframes), int(graph.loop_mask.sum()) == int(result.verdicts.accepted.sum())
     (True, True)
     """
-    path = Path(path)
+    path = check_regular_file(path, "graph.json file")
     try:
         doc = json.loads(path.read_text(encoding="utf-8"))
+    except RecursionError:
+        raise InputError("not a JSON document (nested too deeply)", path) from None
     except FileNotFoundError:
         raise InputError("no such file", path) from None
     except IsADirectoryError:
         raise InputError("is a directory, expected graph.json", path) from None
     except (ValueError, UnicodeDecodeError) as exc:
-        raise InputError(f"not a JSON document ({exc})", path) from None
+        raise InputError(f"not a JSON document ({one_line(exc, 200)})", path) from None
     if not isinstance(doc, dict) or doc.get("graph") != GRAPH_VERSION:
         raise InputError('not a pose graph of version 1 (missing "graph": 1)', path)
     nodes, edges = doc.get("nodes"), doc.get("edges")
@@ -151,7 +143,13 @@ def read_graph(path) -> PoseGraph:
         if not isinstance(n, dict) or not isinstance(n.get("id"), int):
             raise InputError(f"node {k}: needs an integer id", path)
         ids.append(n["id"])
-        ts.append(float(n.get("t", math.nan)))
+        t = n.get("t", math.nan)
+        if not isinstance(t, (int, float)) or isinstance(t, bool):
+            raise InputError(f"node {n['id']}: t must be a number", path)
+        try:
+            ts.append(float(t))
+        except OverflowError:
+            raise InputError(f"node {n['id']}: t is out of the range of numbers", path) from None
         poses.append(_pose(n.get("pose"), f"node {n['id']} pose", path))
         odoms.append(_pose(n.get("odom"), f"node {n['id']} odom", path))
     known = set(ids)
@@ -165,7 +163,10 @@ def read_graph(path) -> PoseGraph:
             raise InputError(f"edge {k}: from/to must be node ids", path)
         if e.get("kind") not in EDGE_KINDS:
             raise InputError(f"edge {k}: kind must be one of {', '.join(EDGE_KINDS)}", path)
-        m = np.asarray(e.get("information"), dtype=float) if isinstance(e.get("information"), list) else None
+        try:
+            m = np.asarray(e.get("information"), dtype=float) if isinstance(e.get("information"), list) else None
+        except (TypeError, ValueError, OverflowError):
+            m = None
         if m is None or m.shape != (3, 3) or not np.isfinite(m).all():
             raise InputError(f"edge {k}: information must be a 3x3 matrix of numbers", path)
         src.append(e["from"])

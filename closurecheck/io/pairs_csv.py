@@ -27,8 +27,9 @@ from pathlib import Path
 
 import numpy as np
 
-from ..errors import InputError
+from ..errors import InputError, one_line, shorten
 from .atomic import atomic_open
+from .files import check_regular_file
 
 REQUIRED_COLUMNS = ("from", "to")
 GUESS_COLUMNS = ("dx", "dy", "dtheta")
@@ -77,7 +78,7 @@ def _parse_id(text: str, column: str, scan_count: int, path, line: int) -> int:
     try:
         value = int(s)
     except ValueError:
-        raise InputError(f'column "{column}": scan id must be an integer, got {s!r}', path, line) from None
+        raise InputError(f'column "{column}": scan id must be an integer, got {shorten(s)}', path, line) from None
     if not 0 <= value < scan_count:
         raise InputError(f'column "{column}": unknown scan id {value} (the log has scans 0..{scan_count - 1})',
                          path, line)
@@ -89,14 +90,15 @@ def _parse_number(text: str, column: str, path, line: int) -> float:
     try:
         value = float(s)
     except ValueError:
-        raise InputError(f'column "{column}": not a number: {s!r}', path, line) from None
+        raise InputError(f'column "{column}": not a number: {shorten(s)}', path, line) from None
     if not math.isfinite(value):
-        raise InputError(f'column "{column}": value must be finite, got {s!r}', path, line)
+        raise InputError(f'column "{column}": value must be finite, got {shorten(s)}', path, line)
     return value
 
 
 def open_csv(path: Path):
     """A ``csv.reader`` over a UTF-8 file (a byte-order mark is skipped); unreadable files are InputErrors."""
+    path = check_regular_file(path, "CSV file")
     try:
         text = path.read_bytes().decode("utf-8-sig")
     except FileNotFoundError:
@@ -123,14 +125,17 @@ def csv_header(reader, path: Path, expected: str) -> tuple[list, int]:
     return [h.strip() for h in header], reader.line_num
 
 
-def read_pairs(path, scan_count: int) -> ExternalPairs:
+def read_pairs(path, scan_count: int, max_pairs: int | None = None) -> ExternalPairs:
     """Read a candidate-pairs CSV (docs/formats.md, "Candidate pairs") for a log of ``scan_count`` scans.
 
     Raises :class:`InputError` naming the file and line for: a missing
     file or header row, missing ``from``/``to`` columns, only part of the
     ``dx,dy,dtheta`` columns, non-integer or unknown scan ids, ``from ==
     to``, non-numeric or non-finite guesses or scores, a row with too few
-    cells, and a pair given twice (in either orientation).
+    cells, a pair given twice (in either orientation), and more than
+    ``max_pairs`` pairs (None: no cap; ``closurecheck run --max-pairs``,
+    docs/cli.md).  Anything but a regular file (a named pipe, a device) is
+    refused.
 
     Examples
     --------
@@ -182,6 +187,9 @@ def read_pairs(path, scan_count: int) -> ExternalPairs:
             if key in seen:
                 raise InputError(f"pair ({a}, {b}) given twice (first on line {seen[key]})", path, line)
             seen[key] = line
+            if max_pairs is not None and len(seen) > max_pairs:
+                raise InputError(f"more than {max_pairs} pairs, the cap of --max-pairs (docs/cli.md): registering "
+                                 f"them would take hours; raise the cap or split the file", path, line)
             g = (math.nan, math.nan, math.nan)
             if present:
                 cells = [row[col[c]].strip() for c in GUESS_COLUMNS]
@@ -199,7 +207,7 @@ def read_pairs(path, scan_count: int) -> ExternalPairs:
             guess.append(g)
             lines.append(line)
     except csv.Error as exc:
-        raise InputError(f"malformed CSV ({exc})", path, reader.line_num) from None
+        raise InputError(f"malformed CSV ({one_line(exc, 120)})", path, reader.line_num) from None
     return ExternalPairs(
         src=np.asarray(src, dtype=np.int64),
         dst=np.asarray(dst, dtype=np.int64),

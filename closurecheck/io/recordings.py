@@ -27,7 +27,8 @@ from pathlib import Path
 import numpy as np
 
 from ..core.options import options, setting
-from ..errors import InputError
+from ..errors import InputError, one_line
+from .files import is_regular_file
 from .recording_sync import clean_odometry, pair_scans, yaw_from_quaternion
 from .scanlog import ScanLog, Sensor, make_scanlog
 
@@ -193,6 +194,8 @@ def _storage_files(folder: Path) -> list[Path]:
 
 
 def _sniff(path: Path) -> str | None:
+    if not is_regular_file(path):
+        return None  # opening a named pipe or a device would block or never end
     try:
         with open(path, "rb") as fh:
             head = fh.read(16)
@@ -294,8 +297,7 @@ def _import_rosbags() -> _Rosbags:
 
 
 def _reason(exc: BaseException) -> str:
-    text = " ".join(str(exc).split()) or type(exc).__name__
-    return text if len(text) <= 200 else text[:197] + "..."
+    return one_line(str(exc) or type(exc).__name__, 200)
 
 
 @dataclass

@@ -18,13 +18,35 @@ from pathlib import Path
 import numpy as np
 
 from ..core import se2
-from ..errors import InputError
+from ..errors import InputError, shorten
 from .atomic import atomic_open
+from .files import check_regular_file
 
 FORMAT_VERSION = 1
 GZIP_MAGIC = b"\x1f\x8b"
-_BLOCK_ROWS = 2048
 _SENSOR_KEYS = ("first_angle", "angle_step", "beams", "min_range", "max_range")
+
+# Caps on what one file may ask of the reader (docs/formats.md, "Limits"):
+# without them a header could size a buffer of hundreds of GiB before any
+# scan is read, and a file without line breaks (or /dev/zero) would be read
+# whole into one line.  2D scanners give a few hundred to a few thousand
+# beams per scan; 65,536 leaves a wide margin.
+MAX_BEAMS = 65_536
+MAX_HEADER_BYTES = 1 << 20
+# A scan line holds t, odom, ranges and truth: 64 bytes per beam fit any
+# number JSON can write in full precision with its separator and spaces
+# (a float64 needs at most 24 characters); 64 KiB more for the rest.
+LINE_BYTES_PER_BEAM = 64
+LINE_BYTES_EXTRA = 64 * 1024
+
+# Ranges are collected in blocks of about 8.5 MB (2048 rows of 1081 beams):
+# few enough copies for long logs, small enough for wide scans.
+_BLOCK_BYTES = 2048 * 1081 * 4
+
+
+def max_line_bytes(beams: int) -> int:
+    """Longest scan line accepted for a sensor of ``beams`` beams, in bytes (docs/formats.md, "Limits")."""
+    return LINE_BYTES_EXTRA + LINE_BYTES_PER_BEAM * int(beams)
 
 
 @dataclass(frozen=True)
@@ -110,17 +132,32 @@ def _is_number(v) -> bool:
     return isinstance(v, (int, float)) and not isinstance(v, bool)
 
 
+def _finite(v) -> bool:
+    """A JSON number that is finite as a float64 (a 400-digit integer is not); False for anything else."""
+    if type(v) is float:
+        return math.isfinite(v)
+    if type(v) is int:
+        try:
+            return math.isfinite(float(v))
+        except OverflowError:
+            return False
+    return False
+
+
 def _parse_sensor(obj, path, line) -> Sensor:
     if not isinstance(obj, dict):
         raise InputError('header: "sensor" must be an object', path, line)
     vals = {}
     for key in _SENSOR_KEYS:
         v = obj.get(key)
-        if not _is_number(v) or not math.isfinite(v):
+        if not _finite(v):
             raise InputError(f'header: sensor "{key}" must be a finite number', path, line)
         vals[key] = v
     if int(vals["beams"]) != vals["beams"] or vals["beams"] < 1:
         raise InputError('header: sensor "beams" must be a positive integer', path, line)
+    if vals["beams"] > MAX_BEAMS:
+        raise InputError(f'header: sensor "beams" is {shorten(vals["beams"])}, more than this tool reads '
+                         f'({MAX_BEAMS}, docs/formats.md "Limits")', path, line)
     if vals["angle_step"] == 0:
         raise InputError('header: sensor "angle_step" must not be zero', path, line)
     if not 0 <= vals["min_range"] < vals["max_range"]:
@@ -132,21 +169,36 @@ def _parse_sensor(obj, path, line) -> Sensor:
 def _parse_pose(value, what, path, line):
     if not isinstance(value, list) or len(value) != 3 or not all(_is_number(v) for v in value):
         raise InputError(f'"{what}" must be a list of 3 numbers [x, y, theta]', path, line)
-    if not all(math.isfinite(v) for v in value):
+    if not all(_finite(v) for v in value):
         raise InputError(f'non-finite pose in "{what}"', path, line)
     return value
+
+
+def _loads(raw: bytes):
+    """json.loads of one line; a nesting too deep for the parser is a ValueError like any bad JSON."""
+    try:
+        return json.loads(raw)
+    except RecursionError:
+        raise ValueError("nested too deeply") from None
+
+
+def _refuse_constant(token: str):
+    raise ValueError(f"{token} is not a JSON number (write null for no return)")
 
 
 def parse_header(raw: bytes, path) -> tuple[Sensor, dict]:
     """Parse and validate line 1 of a scan log; returns (sensor, other keys)."""
     try:
-        obj = json.loads(raw)
+        obj = json.loads(raw, parse_constant=_refuse_constant)
+    except RecursionError:
+        raise InputError("missing or ill-formed header: not JSON (nested too deeply)", path, 1) from None
     except ValueError as exc:
         raise InputError(f"missing or ill-formed header: not JSON ({_json_reason(exc)})", path, 1) from None
     if not isinstance(obj, dict) or "scanlog" not in obj:
         raise InputError('missing header: line 1 must be a JSON object with "scanlog": 1', path, 1)
     if obj["scanlog"] != FORMAT_VERSION or isinstance(obj["scanlog"], bool):
-        raise InputError(f'unsupported scan log version {obj["scanlog"]!r} (this tool reads version 1)', path, 1)
+        raise InputError(f'unsupported scan log version {shorten(obj["scanlog"])} (this tool reads version 1)',
+                         path, 1)
     if "sensor" not in obj:
         raise InputError('header: missing "sensor"', path, 1)
     sensor = _parse_sensor(obj["sensor"], path, 1)
@@ -166,6 +218,7 @@ def _json_reason(exc: ValueError) -> str:
 
 
 def _open_bytes(path: Path):
+    check_regular_file(path, "scan log file")
     try:
         with open(path, "rb") as fh:
             magic = fh.read(2)
@@ -180,18 +233,38 @@ def _open_bytes(path: Path):
     return open(path, "rb")
 
 
-def _lines(path: Path):
-    """Yield (line_number, bytes) for each line; decompression errors become InputError."""
-    number = 0
-    fh = _open_bytes(path)
-    try:
-        with fh:
-            for number, raw in enumerate(fh, start=1):
-                yield number, raw
-    except EOFError:
-        raise InputError(f"truncated gzip stream (file ends inside line {number + 1})", path, number + 1) from None
-    except (gzip.BadGzipFile, zlib.error, OSError) as exc:
-        raise InputError(f"corrupt compressed data ({exc})", path, number + 1) from None
+class _Lines:
+    """Numbered lines of a plain or gzip file, each at most ``limit`` bytes.
+
+    Reading stops at the cap, so a file without line breaks costs no more
+    memory than one line may take; decompression errors become InputError.
+    """
+
+    def __init__(self, path: Path):
+        self.path = path
+        self.fh = _open_bytes(path)
+        self.number = 0
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.fh.close()
+
+    def read(self, limit: int) -> bytes:
+        """The next line (b"" at the end of the file); InputError when longer than ``limit`` bytes."""
+        self.number += 1
+        try:
+            raw = self.fh.readline(limit + 1)
+        except EOFError:
+            raise InputError(f"truncated gzip stream (file ends inside line {self.number})", self.path,
+                             self.number) from None
+        except (gzip.BadGzipFile, zlib.error, OSError) as exc:
+            raise InputError(f"corrupt compressed data ({exc})", self.path, self.number) from None
+        if len(raw) > limit:
+            raise InputError(f"line longer than {limit} bytes, the most a line may hold here "
+                             f'(docs/formats.md "Limits"); is this a scan log?', self.path, self.number)
+        return raw
 
 
 def read_scanlog(path) -> ScanLog:
@@ -208,7 +281,8 @@ def read_scanlog(path) -> ScanLog:
     frame), ranges (m, NaN = no return) and truth poses where given.
 
     Raises :class:`InputError` naming the file, the line number and the
-    problem for any deviation from the format.
+    problem for any deviation from the format, and for a file beyond the
+    reader's limits (docs/formats.md, "Limits").
 
     Examples
     --------
@@ -221,16 +295,56 @@ def read_scanlog(path) -> ScanLog:
     (20, 721, 2)
     """
     path = Path(path)
-    lines = _lines(path)
-    first = next(lines, None)
-    if first is None or not first[1].strip():
-        raise InputError("missing header: the file is empty" if first is None else
+    # A range beyond float32 (1e39) becomes inf, i.e. no return, without a warning on the terminal.
+    with _Lines(path) as lines, np.errstate(over="ignore"):
+        return _read_lines(lines, path)
+
+
+_SCAN_KEYS = frozenset(("t", "odom", "ranges", "truth"))
+
+
+def _plain_ranges(raw: bytes, rec: dict) -> bool:
+    """True when the bytes of the line's ranges list can hold only numbers and null.
+
+    Called once ``t``, ``odom`` and ``truth`` are known to be numbers, so with
+    no other keys the first ``"ranges"`` is the key, and its list ends at the
+    first ``]`` (a nested list fails the conversion to float32 anyway).  A
+    string needs a quote and a boolean a ``t`` or an ``f``, none of which a
+    number or null contains.  Three byte searches over the list take about
+    1 us for 1081 beams against about 300 us for parsing the line; False
+    sends the line to the exact check of every value.
+    """
+    if not _SCAN_KEYS.issuperset(rec):
+        return False
+    k = raw.find(b'"ranges"')
+    e = raw.find(b"]", k)
+    if k < 0 or e < 0 or raw.find(b'"ranges"', e) >= 0:
+        return False
+    return raw.find(b'"', k + 8, e) < 0 and raw.find(b"t", k, e) < 0 and raw.find(b"f", k, e) < 0
+
+
+def _bad_range(rng, path, number):
+    """InputError for the first range that is not a number (a string, a boolean, a list, ...)."""
+    for k, v in enumerate(rng):
+        if type(v) is not float and type(v) is not int:
+            return InputError(f'"ranges" must hold numbers or null; beam {k} is {shorten(v)}', path, number)
+        if type(v) is int and not _finite(v):
+            return InputError(f'"ranges": beam {k} is out of the range of numbers ({shorten(v)})', path, number)
+    return InputError('"ranges" must hold numbers or null', path, number)
+
+
+def _read_lines(lines: _Lines, path: Path) -> ScanLog:
+    first = lines.read(MAX_HEADER_BYTES)
+    if not first.strip():
+        raise InputError("missing header: the file is empty" if not first else
                          "missing header: line 1 is empty", path, 1)
-    sensor, extra = parse_header(first[1], path)
+    sensor, extra = parse_header(first, path)
     beams = sensor.beams
+    limit = max_line_bytes(beams)
+    block_rows = max(16, _BLOCK_BYTES // (4 * beams))
 
     blocks: list[np.ndarray] = []
-    block = np.empty((_BLOCK_ROWS, beams), dtype=np.float32)
+    block = np.empty((block_rows, beams), dtype=np.float32)
     fill = 0
     times: list[float] = []
     odoms: list[list] = []
@@ -239,25 +353,39 @@ def read_scanlog(path) -> ScanLog:
     last_t = -math.inf
     pending_blank = None
 
-    for number, raw in lines:
+    while True:
+        raw = lines.read(limit)
+        if not raw:
+            break
+        number = lines.number
         if not raw.strip():
             pending_blank = number
             continue
         if pending_blank is not None:
             raise InputError("empty line inside the log", path, pending_blank)
+        if b"N" in raw or b"I" in raw:
+            # Python's json module reads NaN and Infinity, strict JSON has no
+            # such tokens; a valid line has no capital N or I outside strings,
+            # so only then does a strict parse look for them (and only them).
+            try:
+                json.loads(raw, parse_constant=_refuse_constant)
+            except RecursionError:
+                pass
+            except ValueError as exc:
+                raise InputError(f"not JSON ({_json_reason(exc)})", path, number) from None
         try:
             # JSON null is "no return"; parsing it as NaN lets the ranges list
             # go to float32 in one C-level conversion.
-            rec = json.loads(raw.replace(b"null", b"NaN"))
+            rec = _loads(raw.replace(b"null", b"NaN"))
         except ValueError as exc:
             raise InputError(f"not JSON ({_json_reason(exc)})", path, number) from None
         if not isinstance(rec, dict):
             raise InputError("a scan line must be a JSON object", path, number)
         t = rec.get("t")
-        if not _is_number(t) or not math.isfinite(t):
+        if not _finite(t):
             raise InputError('"t" must be a finite number (seconds)', path, number)
         if t < last_t:
-            raise InputError(f"time goes backwards (t={t!r} after t={last_t!r})", path, number)
+            raise InputError(f"time goes backwards (t={shorten(t)} after t={shorten(last_t)})", path, number)
         last_t = t
         if "odom" not in rec:
             raise InputError('missing "odom"', path, number)
@@ -273,15 +401,20 @@ def read_scanlog(path) -> ScanLog:
             raise InputError('missing "ranges" list', path, number)
         if len(rng) != beams:
             raise InputError(f"wrong beam count: {len(rng)} ranges, header says {beams}", path, number)
+        # numpy would take "1.5" and true as numbers; each range is looked at
+        # only when the line's bytes leave room for a string or a boolean.
+        if not _plain_ranges(raw, rec):
+            if not all(type(v) is float or type(v) is int for v in rng):
+                raise _bad_range(rng, path, number)
         try:
             block[fill] = rng
-        except (TypeError, ValueError):
-            raise InputError('"ranges" must hold numbers or null', path, number) from None
+        except (TypeError, ValueError, OverflowError):
+            raise _bad_range(rng, path, number) from None
         times.append(t)
         fill += 1
-        if fill == _BLOCK_ROWS:
+        if fill == block_rows:
             blocks.append(block)
-            block = np.empty((_BLOCK_ROWS, beams), dtype=np.float32)
+            block = np.empty((block_rows, beams), dtype=np.float32)
             fill = 0
 
     blocks.append(block[:fill])
@@ -308,8 +441,9 @@ def _poses(rows, n) -> np.ndarray:
 
 def _mask_out_of_range(ranges: np.ndarray, sensor: Sensor) -> None:
     lo, hi = np.float32(sensor.min_range), np.float32(sensor.max_range)
-    for start in range(0, len(ranges), _BLOCK_ROWS):
-        part = ranges[start:start + _BLOCK_ROWS]
+    rows = max(16, _BLOCK_BYTES // (4 * max(1, sensor.beams)))
+    for start in range(0, len(ranges), rows):
+        part = ranges[start:start + rows]
         with np.errstate(invalid="ignore"):
             part[~((part >= lo) & (part <= hi))] = np.nan
 

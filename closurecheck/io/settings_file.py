@@ -5,9 +5,9 @@ from __future__ import annotations
 import dataclasses
 import math
 import sys
-from pathlib import Path
 
-from ..errors import InputError
+from ..errors import InputError, one_line
+from .files import check_regular_file
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -17,16 +17,18 @@ else:  # pragma: no cover - exercised on Python 3.10 only
 
 def load_toml(path) -> dict:
     """Parse a TOML file; syntax errors become one-line InputErrors."""
-    path = Path(path)
+    path = check_regular_file(path, "TOML file")
     try:
         with open(path, "rb") as fh:
             return tomllib.load(fh)
+    except RecursionError:
+        raise InputError("not valid TOML (nested too deeply)", path) from None
     except FileNotFoundError:
         raise InputError("no such file", path) from None
     except IsADirectoryError:
         raise InputError("is a directory, expected a TOML file", path) from None
     except tomllib.TOMLDecodeError as exc:
-        raise InputError(f"not valid TOML ({exc})", path) from None
+        raise InputError(f"not valid TOML ({one_line(exc, 200)})", path) from None
     except UnicodeDecodeError:
         raise InputError("not valid UTF-8 text", path) from None
 

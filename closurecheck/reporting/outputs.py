@@ -6,20 +6,21 @@ a batch's index page.
 
 from __future__ import annotations
 
-import json
+import os
 from dataclasses import dataclass, field
 from pathlib import Path
+from urllib.parse import quote
 
 import numpy as np
 
 from .._version import __version__
 from ..calibration.odometry import OdometryCalibration
 from ..core import se2
-from ..errors import InputError
+from ..errors import InputError, shorten
 from ..frontend.candidates import CandidateSet
-from ..io.atomic import write_text
+from ..io.atomic import staged_folder, write_text
 from ..io.graph_file import PoseGraph, write_graph
-from ..io.inputs import output_name
+from ..io.json_file import write_json
 from ..io.pairs_csv import VARIANCE_COLUMNS, write_candidates
 from ..io.scanlog import ScanLog
 from ..io.settings_file import to_toml
@@ -27,6 +28,21 @@ from ..registration.batch import RegisteredClosures
 from ..verification.trust import TrustVerdict
 from ..verification.verdicts import VerdictTable
 from ..verification.verify import Verification
+
+
+@dataclass(frozen=True, eq=False)
+class LogRun:
+    """One log of a ``closurecheck run``: where it came from, its output folder's name, and how it ended.
+
+    path : the log as given; name : its folder under ``--out`` (unique in
+    the batch, :func:`closurecheck.io.inputs.output_names`); outcome : the
+    :class:`RunOutcome`, or None when the log failed with ``error`` (one line).
+    """
+
+    path: Path
+    name: str
+    outcome: "RunOutcome | None" = None
+    error: str | None = None
 
 
 @dataclass(frozen=True, eq=False)
@@ -111,62 +127,107 @@ def summary(outcome: RunOutcome) -> dict:
     }
 
 
-def write_outputs(outcome: RunOutcome, out_dir, *, report: bool = True, score: dict | None = None,
-                  log_path: Path | None = None) -> dict:
-    """Write graph.json, candidates.csv, config.toml, summary.json and the report.
+# What a run folder holds (docs/cli.md, "run"); a folder holding anything
+# else is not replaced, so a user's own files are never lost.
+RUN_ENTRIES = ("graph.json", "candidates.csv", "config.toml", "summary.json", "report.html", "figures")
 
-    Each file is written atomically, so an interruption leaves either the
-    previous complete file or the new one.  Returns the paths written.
+
+def foreign_entries(folder: Path) -> list[str]:
+    """Names in ``folder`` that a run did not write (a run's temporary ``.NAME.*.part`` files count as its own)."""
+    try:
+        names = sorted(p.name for p in Path(folder).iterdir())
+    except (FileNotFoundError, NotADirectoryError):
+        return []
+    own = set(RUN_ENTRIES)
+    return [n for n in names if n not in own and not _own_part_file(n, own)]
+
+
+def _own_part_file(name: str, own: set) -> bool:
+    # atomic_open's temporary files are ".TARGET.RANDOM.part".
+    return name.startswith(".") and name.endswith(".part") and name[1:].rsplit(".", 2)[0] in own
+
+
+def check_run_folder(out_dir) -> None:
+    """Refuse an output folder that a run cannot replace as a whole (exit status 2).
+
+    The run's outputs replace the folder in one step (docs/cli.md, "What
+    an interrupted or failed run leaves"), so it must be new, empty or a
+    previous run's folder, and must not be the current folder or hold it.
     """
     out_dir = Path(out_dir)
     if out_dir.exists() and not out_dir.is_dir():
         raise InputError("output path exists and is not a directory", out_dir)
+    real, cwd = Path(os.path.realpath(out_dir)), Path(os.getcwd()).resolve()
+    if real == cwd or real in cwd.parents:
+        raise InputError("the output folder is the current folder or holds it; the run replaces its output "
+                         "folder as a whole, so name a folder below the current one", out_dir)
+    foreign = foreign_entries(out_dir)
+    if foreign:
+        more = f" and {len(foreign) - 1} more" if len(foreign) > 1 else ""
+        raise InputError(f"the output folder holds files that are not a run's outputs ({shorten(foreign[0])}{more}); "
+                         "the run replaces the folder as a whole, so give a new or empty folder", out_dir)
+
+
+def write_outputs(outcome: RunOutcome, out_dir, *, report: bool = True, score: dict | None = None,
+                  log_path: Path | None = None, progress=None) -> dict:
+    """Write graph.json, candidates.csv, config.toml, summary.json and the report into ``out_dir``.
+
+    Everything is written into a hidden staging folder beside ``out_dir``
+    that then replaces ``out_dir`` as a whole
+    (:func:`closurecheck.io.atomic.staged_folder`): ``out_dir`` holds either
+    its previous complete content or the new one, never a mix, and a rerun
+    with ``report=False`` leaves no old report behind.  ``out_dir`` must
+    pass :func:`check_run_folder`.  ``progress`` (optional) is told each
+    step.  Returns the final paths written.
+    """
+    out_dir = Path(out_dir)
+    check_run_folder(out_dir)
     try:
-        out_dir.mkdir(parents=True, exist_ok=True)
+        Path(os.path.realpath(out_dir)).parent.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise InputError(f"cannot create the output directory ({exc.strerror})", out_dir) from None
-    paths = {}
-    v = outcome.verdicts
-    extra = {"origin": v.origin, **v.optional_columns()}
-    extra.update(v.figures)
-    cov = v.covariance
-    extra.update(dict(zip(VARIANCE_COLUMNS, (cov[:, 0, 0], cov[:, 1, 1], cov[:, 2, 2]))))
-    paths["candidates"] = out_dir / "candidates.csv"
-    write_candidates(paths["candidates"], v.src, v.dst, np.where(v.accepted, "accepted", "rejected"), v.reason,
-                     v.delta, extra)
-    paths["graph"] = out_dir / "graph.json"
-    write_graph(paths["graph"], outcome.graph)
-    paths["config"] = out_dir / "config.toml"
-    write_text(paths["config"], to_toml(outcome.config, header=f"closurecheck {__version__}: effective "
-                                        f"configuration of the run on {outcome.log.source}\nrerun with "
-                                        f"--config this_file"))
-    info = summary(outcome)
-    if log_path is not None:
-        info["log_path"] = str(Path(log_path).resolve())
-    if score is not None:
-        info["score"] = score
-    paths["summary"] = out_dir / "summary.json"
-    write_text(paths["summary"], json.dumps(info, indent=1, default=_json_default) + "\n")
-    if report:
-        from .report import ReportData, build_report, check_thresholds
 
-        data = ReportData(
-            log_name=outcome.log.source or "scan log", ids=outcome.keyframes, odom=outcome.odom,
-            poses=outcome.poses, scan_points=[outcome.log.points(int(i)) for i in outcome.keyframes],
-            verdicts=v, summary=_summary_rows(info), timings=outcome.timings, score=score,
-            truth=outcome.log.truth[outcome.keyframes] if outcome.log.has_truth else None,
-            config_text=to_toml(outcome.config), notes=list(outcome.notes),
-            thresholds=check_thresholds(outcome.config.verify))
-        paths["report"] = build_report(out_dir, data)
-    return paths
+    def step(text):
+        if progress is not None:
+            progress.step(text)
 
+    names = {"candidates": "candidates.csv", "graph": "graph.json", "config": "config.toml",
+             "summary": "summary.json"}
+    with staged_folder(out_dir, check=check_run_folder) as stage:
+        d = stage.path
+        v = outcome.verdicts
+        extra = {"origin": v.origin, **v.optional_columns()}
+        extra.update(v.figures)
+        cov = v.covariance
+        extra.update(dict(zip(VARIANCE_COLUMNS, (cov[:, 0, 0], cov[:, 1, 1], cov[:, 2, 2]))))
+        step("candidates.csv")
+        write_candidates(d / names["candidates"], v.src, v.dst, np.where(v.accepted, "accepted", "rejected"),
+                         v.reason, v.delta, extra)
+        step("graph.json, config.toml, summary.json")
+        write_graph(d / names["graph"], outcome.graph)
+        write_text(d / names["config"], to_toml(outcome.config, header=f"closurecheck {__version__}: effective "
+                                                f"configuration of the run on {outcome.log.source}\nrerun with "
+                                                f"--config this_file"))
+        info = summary(outcome)
+        if log_path is not None:
+            info["log_path"] = str(Path(log_path).resolve())
+        if score is not None:
+            info["score"] = score
+        write_json(d / names["summary"], info)
+        if report:
+            from .report import ReportData, build_report, check_thresholds
 
-def _json_default(v):
-    if isinstance(v, (np.integer,)):
-        return int(v)
-    if isinstance(v, (np.floating,)):
-        return float(v)
-    raise TypeError(f"not JSON serialisable: {type(v).__name__}")
+            data = ReportData(
+                log_name=outcome.log.source or "scan log", ids=outcome.keyframes, odom=outcome.odom,
+                poses=outcome.poses, scan_points=[outcome.log.points(int(i)) for i in outcome.keyframes],
+                verdicts=v, summary=_summary_rows(info), timings=outcome.timings, score=score,
+                truth=outcome.log.truth[outcome.keyframes] if outcome.log.has_truth else None,
+                config_text=to_toml(outcome.config), notes=list(outcome.notes),
+                thresholds=check_thresholds(outcome.config.verify))
+            build_report(d, data, progress=progress)
+            names["report"] = "report.html"
+        step(f"putting the outputs in place: {out_dir}")
+    return {key: out_dir / name for key, name in names.items()}
 
 
 def _summary_rows(info: dict) -> list:
@@ -180,13 +241,17 @@ def _summary_rows(info: dict) -> list:
 
 
 def write_index(out: Path, outcomes) -> Path:
-    """index.html linking the report of each log of a batch run."""
+    """index.html linking the report of each log of a batch run.
+
+    ``outcomes`` holds one :class:`LogRun` per log; each log's outputs are
+    in ``out/<name>/``.
+    """
     import html
 
     out.mkdir(parents=True, exist_ok=True)
     rows = []
-    for path, outcome, error in outcomes:
-        name = output_name(Path(path))
+    for item in outcomes:
+        name, outcome, error = item.name, item.outcome, item.error
         if outcome is None:
             rows.append(f"<tr><td>{html.escape(name)}</td><td colspan='4' class='err'>failed: "
                         f"{html.escape(error)}</td></tr>")
@@ -194,7 +259,7 @@ def write_index(out: Path, outcomes) -> Path:
         info = summary(outcome)
         # Without --no-report the report is the page to open; otherwise the summary.
         target = "report.html" if (out / name / "report.html").exists() else "summary.json"
-        rows.append(f"<tr><td><a href='{html.escape(name)}/{target}'>{html.escape(name)}</a></td>"
+        rows.append(f"<tr><td><a href='{html.escape(quote(name))}/{target}'>{html.escape(name)}</a></td>"
                     f"<td>{info['keyframes']}</td><td>{info['candidates']}</td><td>{info['accepted']}</td>"
                     f"<td>{info['correction_max_m']:.2f} m</td></tr>")
     from .report import SAFETY_TEXT

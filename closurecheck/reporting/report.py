@@ -876,33 +876,45 @@ def _overlay_panel() -> str:
         "<code>closurecheck run LOG --decisions FILE.csv</code>.</p></div></div></div>")
 
 
-def build_report(out_dir, data: ReportData, *, table_limit: int = 5000) -> Path:
+def build_report(out_dir, data: ReportData, *, table_limit: int = 5000, progress=None) -> Path:
     """Draw the pictures and write ``report.html`` into ``out_dir``.
 
     Returns the report's path.  The PNGs are also written to
     ``out_dir/figures`` (the maps too, as static pictures; the page draws
     its maps itself, zoomable).  At most ``table_limit`` candidates go into
     the page's table (accepted first); candidates.csv has them all, and
-    every candidate's overlay is in the page.
+    every candidate's overlay is in the page.  ``progress`` (optional,
+    :class:`closurecheck.reporting.terminal.Progress`) is told each picture
+    as it is drawn.
     """
     import matplotlib
 
+    # Before pyplot is imported: no window system, no GUI event loop or
+    # threads that could outlive an interrupted run.
     matplotlib.use("Agg", force=False)
     out_dir = Path(out_dir)
     fig_dir = out_dir / "figures"
     fig_dir.mkdir(parents=True, exist_ok=True)
 
+    def step(text):
+        if progress is not None:
+            progress.step(f"report: {text}")
+
     v = data.verdicts
     scale = ellipse_magnification(data)
     margins = decision_margins(v.reason, v.figures, data.thresholds)
     # Static maps for documents and mail; the page draws its own, zoomable.
+    step("maps")
     write_bytes(fig_dir / "map.png", figure_maps(data))
+    step("loop closures")
     write_bytes(fig_dir / "loops.png", figure_loops(data, scale))
     pictures = []
+    step("check figures")
     hist = figure_histograms(data)
     if hist is not None:
         pictures.append(("checks", hist, "Histograms of the check figures"))
     if data.score:
+        step("ground truth and scores")
         for name, fn, alt in (("truth", lambda: figure_truth(data), "Trajectories against ground truth"),
                               ("nees", lambda: figure_nees(data.score), "NEES against chi-square(3)"),
                               ("precision-recall", lambda: figure_precision_recall(data.score),
@@ -910,6 +922,7 @@ def build_report(out_dir, data: ReportData, *, table_limit: int = 5000) -> Path:
             png = fn()
             if png is not None:
                 pictures.append((name, png, alt))
+    step("page")
     for name, png, _ in pictures:
         write_bytes(fig_dir / f"{name}.png", png)
     pics = {name: _img(name, png, alt) for name, png, alt in pictures}

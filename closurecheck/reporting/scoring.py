@@ -543,8 +543,10 @@ def score_run(run_dir, *, log_path=None, candidates=None, choice=None) -> dict:
     if log_path is None:
         try:
             log_path = json.loads((run_dir / "summary.json").read_text())["log_path"]
-        except (OSError, ValueError, KeyError, TypeError):
+        except (OSError, ValueError, KeyError, TypeError, RecursionError):
             raise InputError("cannot tell which log this run used; pass --log LOG", run_dir) from None
+        if not isinstance(log_path, str) or not log_path:
+            raise InputError("cannot tell which log this run used; pass --log LOG", run_dir)
     log, _ = load_input(log_path, choice or RecordingChoice())
     if candidates:
         pairs = read_pairs(candidates, len(log))
@@ -554,22 +556,7 @@ def score_run(run_dir, *, log_path=None, candidates=None, choice=None) -> dict:
 
 
 def write_score(path, score: dict) -> None:
-    """Write the scores as JSON, atomically (NaN as null)."""
-    import json
+    """Write the scores as strict JSON, atomically: an undefined score (NaN) is ``null``."""
+    from ..io.json_file import write_json
 
-    from ..io.atomic import write_text
-
-    write_text(path, json.dumps(_json_safe(score), indent=1) + "\n")
-
-
-def _json_safe(v):
-    """NaN and infinity as null (JSON has neither); numpy scalars as Python numbers."""
-    if isinstance(v, dict):
-        return {k: _json_safe(x) for k, x in v.items()}
-    if isinstance(v, (list, tuple)):
-        return [_json_safe(x) for x in v]
-    if isinstance(v, (np.integer,)):
-        return int(v)
-    if isinstance(v, (float, np.floating)):
-        return float(v) if math.isfinite(v) else None
-    return v
+    write_json(path, score)

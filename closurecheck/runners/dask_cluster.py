@@ -26,13 +26,14 @@ import uuid
 from collections import OrderedDict
 
 from .._version import __version__
-from ..errors import InputError
+from ..errors import InputError, one_line
 from .work import (
     CACHE_SCANS,
     OrderedPairs,
     ScanCache,
     as_table,
     batch_slices,
+    begin,
     run_batch,
     single_thread_blas,
 )
@@ -83,8 +84,7 @@ def _worker_version() -> str:
 
 
 def _one_line(exc: BaseException) -> str:
-    text = " ".join(str(exc).split()) or type(exc).__name__
-    return text if len(text) <= 200 else text[:197] + "..."
+    return one_line(str(exc) or type(exc).__name__, 200)
 
 
 class DaskRunner:
@@ -163,6 +163,7 @@ class DaskRunner:
         table = client.scatter(as_table(points), broadcast=True, hash=False)
         work = OrderedPairs(src, dst, seeds)
         slices = batch_slices(len(work), self.workers, batch_pairs)
+        begin(progress, len(work), min(self.workers, len(slices)))
         futures = [client.submit(_dask_batch, token, table, options, self.cache_scans, work.src[sl], work.dst[sl],
                                  work.seeds[sl], key=f"closurecheck-batch-{token}-{k}")
                    for k, sl in enumerate(slices)]

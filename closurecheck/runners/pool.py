@@ -2,11 +2,14 @@
 
 from __future__ import annotations
 
+import contextlib
 import multiprocessing
 import os
 from concurrent.futures import ProcessPoolExecutor, as_completed
+from pathlib import Path
 
 from ..errors import InputError
+from .lifeline import guard_worker
 from .serial import SerialRunner
 from .work import (
     CACHE_SCANS,
@@ -14,6 +17,7 @@ from .work import (
     ScanCache,
     advance,
     as_table,
+    begin,
     batch_slices,
     run_batch,
     single_thread_blas,
@@ -24,6 +28,7 @@ _WORKER: dict = {}
 
 def _pool_init(table, options, cache_scans):
     # Set once for the life of the worker: the process runs nothing else.
+    guard_worker()
     _WORKER["blas"] = single_thread_blas()
     _WORKER["cache"] = ScanCache(table, options, cache_scans)
 
@@ -34,16 +39,65 @@ def _pool_batch(src, dst, seeds):
     return os.getpid(), cache.builds, out
 
 
+def package_root() -> str:
+    """The folder holding the ``closurecheck`` package this process runs."""
+    return str(Path(__file__).resolve().parents[2])
+
+
+@contextlib.contextmanager
+def _child_environment():
+    # The fork server starts as ``python -c ...``, which puts the current
+    # folder first on its sys.path, and Python 3.11's fork server does not
+    # take the parent's sys.path: a folder named "closurecheck" in the
+    # current folder (the parent of a clone, say) would then shadow the
+    # package in every worker.  PYTHONSAFEPATH (Python >= 3.11) drops the
+    # current folder, and PYTHONPATH names the folder of the very package
+    # this process runs, so workers import the same code as their parent.
+    old = {k: os.environ.get(k) for k in ("PYTHONSAFEPATH", "PYTHONPATH")}
+    os.environ["PYTHONSAFEPATH"] = "1"
+    os.environ["PYTHONPATH"] = os.pathsep.join([package_root()] + ([old["PYTHONPATH"]] if old["PYTHONPATH"] else []))
+    try:
+        yield
+    finally:
+        for k, v in old.items():
+            if v is None:
+                os.environ.pop(k, None)
+            else:
+                os.environ[k] = v
+
+
 def _pool_context():
     # A fork server (preloaded with this module) starts workers in
     # milliseconds without forking a parent that may hold threads (progress
-    # bars, a Dask client); spawn where there is no fork server.
+    # bars, a Dask client); spawn where there is no fork server (spawn
+    # children take the parent's sys.path before importing anything).
     methods = multiprocessing.get_all_start_methods()
     if "forkserver" in methods:
+        from multiprocessing import forkserver
+
         ctx = multiprocessing.get_context("forkserver")
-        ctx.set_forkserver_preload([__name__])
+        ctx.set_forkserver_preload([f"{__package__}._forkserver_child", __name__])
+        with _child_environment():
+            forkserver.ensure_running()
         return ctx
     return multiprocessing.get_context("spawn")
+
+
+def _stop(pool: ProcessPoolExecutor) -> None:
+    """Kill the pool's workers at once and release the pool (on Ctrl-C or an error).
+
+    Waiting for them instead (``shutdown(wait=True)``) would let every
+    worker finish its batch first: seconds to minutes in which a Ctrl-C
+    seemed ignored.
+    """
+    kill = getattr(pool, "kill_workers", None)  # Python >= 3.14
+    if kill is not None:
+        kill()
+    else:
+        for proc in list((getattr(pool, "_processes", None) or {}).values()):
+            with contextlib.suppress(Exception):
+                proc.kill()
+    pool.shutdown(wait=True, cancel_futures=True)
 
 
 class PoolRunner:
@@ -78,19 +132,21 @@ class PoolRunner:
         slices = batch_slices(len(work), self.workers, batch_pairs)
         parts: list = [None] * len(slices)
         builds: dict = {}
-        with ProcessPoolExecutor(max_workers=min(self.workers, len(slices)), mp_context=_pool_context(),
-                                 initializer=_pool_init, initargs=(table, options, self.cache_scans)) as pool:
+        begin(progress, len(work), min(self.workers, len(slices)))
+        pool = ProcessPoolExecutor(max_workers=min(self.workers, len(slices)), mp_context=_pool_context(),
+                                   initializer=_pool_init, initargs=(table, options, self.cache_scans))
+        try:
             futures = {pool.submit(_pool_batch, work.src[sl], work.dst[sl], work.seeds[sl]): k
                        for k, sl in enumerate(slices)}
-            try:
-                for fut in as_completed(futures):
-                    k = futures[fut]
-                    pid, built, parts[k] = fut.result()
-                    builds[pid] = max(builds.get(pid, 0), built)
-                    advance(progress, slices[k], len(work))
-            except BaseException:
-                pool.shutdown(wait=False, cancel_futures=True)
-                raise
+            for fut in as_completed(futures):
+                k = futures[fut]
+                pid, built, parts[k] = fut.result()
+                builds[pid] = max(builds.get(pid, 0), built)
+                advance(progress, slices[k], len(work))
+        except BaseException:
+            _stop(pool)
+            raise
+        pool.shutdown(wait=True)
         # Scans prepared over all workers (a scan may be prepared in several).
         self.last_builds = sum(builds.values())
         return work.restore([r for part in parts for r in part])

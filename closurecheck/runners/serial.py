@@ -8,6 +8,7 @@ from .work import (
     ScanCache,
     advance,
     as_table,
+    begin,
     batch_slices,
     run_batch,
     single_thread_blas,
@@ -29,6 +30,7 @@ class SerialRunner:
         cache = ScanCache(as_table(points), options, self.cache_scans)
         work = OrderedPairs(src, dst, seeds)
         out = []
+        begin(progress, len(work), 1)
         with single_thread_blas():
             for sl in batch_slices(len(work), 1, batch_pairs):
                 out.extend(run_batch(cache, work.src[sl], work.dst[sl], work.seeds[sl]))

@@ -202,6 +202,12 @@ def batch_slices(n: int, workers: int, batch_pairs: int) -> list[slice]:
     return [slice(i, min(i + size, n)) for i in range(0, n, size)]
 
 
+def begin(progress, total: int, parallel: int) -> None:
+    """Tell the progress display that ``total`` pairs start, ``parallel`` batches at a time."""
+    if progress is not None and hasattr(progress, "begin"):
+        progress.begin("registration", total, parallel)
+
+
 def advance(progress, sl: slice, total: int) -> None:
     if progress is not None:
         progress.advance("registration", sl.stop - sl.start, total)

@@ -631,3 +631,23 @@ def test_cli_run_takes_a_recording_directly(tmp_path, scene, capsys):
     b = json.loads((tmp_path / "from_log" / "graph.json").read_text())
     assert [n["id"] for n in a["nodes"]] == [n["id"] for n in b["nodes"]]
     np.testing.assert_allclose([n["odom"] for n in a["nodes"]], [n["odom"] for n in b["nodes"]], atol=1e-5)
+
+
+def test_info_reads_recordings_as_run_does(tmp_path, scene, capsys):
+    # `info` used to refuse what `run` takes: "not JSON" for an MCAP file,
+    # "is a directory" for a bag folder.
+    cli = _cli()
+    log, ns, odom_ns, odom_poses = scene
+    folder = recording_from_log(tmp_path, "mcap", log, ns, odom_ns, odom_poses)
+    (storage,) = [p for p in folder.iterdir() if p.suffix == ".mcap"]
+    kept, _ = read_recording(folder)
+    for target in (folder, storage):
+        assert cli.main(["info", str(target)]) == 0, capsys.readouterr().err
+        out = capsys.readouterr().out
+        assert out.startswith(f"{target}: {len(kept)} scans") and f"{SENSOR.beams} beams" in out
+        assert "ROS 2" in out and "/scan" in out  # what the conversion read and kept
+    # and refuses what run refuses, with the same line
+    assert cli.main(["info", str(storage), "--scan-topic", "/nope"]) == 2
+    info_err = capsys.readouterr().err
+    assert cli.main(["run", str(storage), "--scan-topic", "/nope", "--out", str(tmp_path / "o"), "-q"]) == 2
+    assert capsys.readouterr().err == info_err and "/nope" in info_err

@@ -173,10 +173,11 @@ class TestBadInput:
         err = capsys.readouterr().err.strip()
         assert err.count("\n") == 0 and f":{line_no}: " in err and "Traceback" not in err
 
-    def test_non_finite_pose_from_nan_literal(self, tmp_path):
+    def test_nan_literal_is_not_json(self, tmp_path):
+        # RFC 8259, section 6: NaN and Infinity are not JSON numbers.
         path = write_lines(tmp_path / "n.jsonl",
                            [json.dumps(HEADER), '{"t": 0.0, "odom": [0, NaN, 0], "ranges": [1,1,1,1,1,1,1,1]}'])
-        with pytest.raises(InputError, match=r"n\.jsonl:2: non-finite pose"):
+        with pytest.raises(InputError, match=r"n\.jsonl:2: not JSON \(NaN is not a JSON number"):
             read_scanlog(path)
 
     def test_truncated_gzip(self, tmp_path):
