@@ -105,3 +105,14 @@ def test_toml_syntax_error_names_the_file(tmp_path):
     path.write_text("[inner\nx = 1\n")
     with pytest.raises(InputError, match="bad.toml: not valid TOML"):
         load_toml(path)
+
+
+def test_an_integer_beyond_float_range_is_refused_not_a_crash(tmp_path):
+    cfg = tmp_path / "huge.toml"
+    cfg.write_text("[verify]\nmin_overlap = " + "9" * 401 + "\n")
+    try:
+        build_config(cfg)
+    except InputError as exc:
+        assert "verify.min_overlap: must be a finite number" in str(exc) and "huge.toml" in str(exc)
+    else:
+        raise AssertionError("accepted a 401-digit min_overlap")

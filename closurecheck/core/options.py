@@ -144,7 +144,11 @@ def _type_problem(value, typ, rule: Rule) -> str | None:
     if typ is float:
         if not _is_real(value):
             return "must be a number"
-        if math.isnan(value) or (math.isinf(value) and not rule.allow_inf):
+        try:
+            v = float(value)
+        except OverflowError:  # an integer of hundreds of digits
+            return "must be a finite number"
+        if math.isnan(v) or (math.isinf(v) and not rule.allow_inf):
             return "must be a finite number"
         return None
     if typ is str:
@@ -218,7 +222,10 @@ def _as_declared(value, typ):
                 return _as_declared(value, a)
         return value
     if typ is float and _is_real(value):
-        return float(value)
+        try:
+            return float(value)
+        except OverflowError:
+            return value  # refused by the check, with the setting named
     if origin in (tuple, list) and isinstance(value, list):
         inner = (typing.get_args(typ) or (float,))[0]
         return tuple(_as_declared(v, inner) for v in value)
