@@ -14,7 +14,7 @@ def test_a_run_whose_odometry_was_not_measured_is_doubtful(e2e_run, tmp_path, ca
     cfg = tmp_path / "off.toml"
     cfg.write_text("[calibration]\nenabled = false\n")
     target = tmp_path / "doubt"
-    code = cli.main(["run", str(log), "--out", str(target), "--config", str(cfg), "--no-report"])
+    code = cli.main(["run", str(log), "--out", str(target), "--config", str(cfg)])
     captured = capsys.readouterr()
     assert code == EXIT_DOUBTFUL == 3
     info = json.loads((target / "summary.json").read_text())
@@ -23,6 +23,14 @@ def test_a_run_whose_odometry_was_not_measured_is_doubtful(e2e_run, tmp_path, ca
     assert "DOUBTFUL" in captured.out and "doubtful map" in captured.err
     # The outputs are complete all the same: a batch job decides what to do with them.
     assert (target / "graph.json").exists() and (target / "candidates.csv").exists()
+    # The report opens with the verdict and its reasons, before anything else.
+    page = (target / "report.html").read_text()
+    banner = page.index('<section id="trust" class="doubtful"><h2>Map: DOUBTFUL</h2>')
+    assert banner < page.index('id="caution"') < page.index('id="glance"')
+    assert "could not be measured against its own scans" in page[banner:page.index('id="caution"')]
+    sound_page = (out / "report.html").read_text()
+    assert '<section id="trust" class="sound"><h2>Map: sound</h2>' in sound_page and "DOUBTFUL" not in sound_page
+    assert 'id="agreement-section"' in sound_page
 
 
 def test_each_reason_for_doubt_is_named():

@@ -223,7 +223,8 @@ def write_outputs(outcome: RunOutcome, out_dir, *, report: bool = True, score: d
                 verdicts=v, summary=_summary_rows(info), timings=outcome.timings, score=score,
                 truth=outcome.log.truth[outcome.keyframes] if outcome.log.has_truth else None,
                 config_text=to_toml(outcome.config), notes=list(outcome.notes),
-                thresholds=check_thresholds(outcome.config.verify))
+                thresholds=check_thresholds(outcome.config.verify), trust=outcome.trust.label,
+                trust_reasons=outcome.trust.reasons, free_space=outcome.verification.free_space)
             build_report(d, data, progress=progress)
             names["report"] = "report.html"
         step(f"putting the outputs in place: {out_dir}")

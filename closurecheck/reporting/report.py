@@ -30,6 +30,7 @@ import numpy as np
 
 from ..core import se2
 from ..io.atomic import write_bytes, write_text
+from ..verification.free_space import FreeSpaceCheck
 from ..verification.margins import CHECKS, Margins, check_bounds, decision_margins
 from ..verification.reasons import GROUPS, Reason
 from ..verification.verdicts import VerdictTable
@@ -115,6 +116,9 @@ class ReportData:
     config_text: str = ""
     notes: list = field(default_factory=list)
     thresholds: dict = field(default_factory=dict)
+    trust: str = ""  # "sound" or "doubtful"; "" when the run did not judge itself
+    trust_reasons: tuple = ()
+    free_space: FreeSpaceCheck | None = None
 
 
 def check_thresholds(verify_options) -> dict:
@@ -163,6 +167,34 @@ def figure_maps(data: ReportData) -> bytes:
     fig, axes = plt.subplots(1, 2, figsize=(13, 6.2))
     _draw_map(axes[0], _anchor(data.odom), data.scan_points, ODOM_COLOUR, "Odometry only")
     _draw_map(axes[1], _anchor(data.poses), data.scan_points, MAP_COLOUR, "With verified loop closures")
+    fig.tight_layout()
+    out = _png(fig)
+    plt.close(fig)
+    return out
+
+
+def figure_agreement(data: ReportData) -> bytes | None:
+    """Where the scans of different visits were compared on the optimised map, and where they disagree."""
+    check = data.free_space
+    if check is None or not len(check.a):
+        return None
+    import matplotlib.pyplot as plt
+
+    poses = _anchor(data.poses)
+    mid = 0.5 * (poses[check.a, :2] + poses[check.b, :2])
+    bad = check.contradicts
+    fig, ax = plt.subplots(figsize=(9, _panel_height(poses, 9)))
+    ax.plot(poses[:, 0], poses[:, 1], "-", color=TRAJECTORY_COLOUR, lw=0.8, label="trajectory (optimised)")
+    ax.plot(mid[~bad, 0], mid[~bad, 1], ".", color=ACCEPT_COLOUR, ms=3,
+            label=f"visits that agree ({int((~bad).sum())} pairs)")
+    if bad.any():
+        ax.scatter(mid[bad, 0], mid[bad, 1], s=12 + 4 * np.minimum(check.length_m[bad], 25.0), color=REJECT_COLOUR,
+                   edgecolor="k", lw=0.4, zorder=3,
+                   label=f"scans that contradict ({int(bad.sum())} pairs; size: metres of wall in free space)")
+    ax.set_aspect("equal", adjustable="datalim")
+    ax.set_xlabel("x (m)")
+    ax.set_ylabel("y (m)")
+    ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.08), ncol=1, fontsize=8, frameon=False)
     fig.tight_layout()
     out = _png(fig)
     plt.close(fig)
@@ -515,6 +547,8 @@ section{background:#fff;border:1px solid #dde2e8;border-radius:6px;padding:14px 
 h2{font-size:17px;margin:0 0 10px} h3{font-size:14px;margin:4px 0 6px}
 p{margin:4px 0 10px;line-height:1.4}
 .caution{border-left:6px solid #d9822b;background:#fff8ef}
+.sound{border-left:6px solid #1a9850;background:#f2fbf5}
+.doubtful{border-left:8px solid #b0302a;background:#fdf0ef}
 .lead{font-size:15px}
 .cards{display:flex;flex-wrap:wrap;gap:10px}
 .card{border:1px solid #dde2e8;border-radius:5px;padding:8px 12px;min-width:130px}
@@ -723,6 +757,25 @@ def _score_cards(score: dict) -> list:
     return cards
 
 
+def _trust_section(data: ReportData) -> str:
+    """The run's verdict on its own map, first on the page."""
+    if not data.trust:
+        return ""
+    if data.trust == "sound":
+        return _section("trust", "Map: sound",
+                        "<p>Every check the run makes of its own result passed: the odometry was measured against "
+                        "its scans, the verified closures agree with that measurement, the consistent set is "
+                        "proven largest, and no two visits of a place contradict each other in the optimised "
+                        "map (section &ldquo;Scan agreement&rdquo;). Sound is a statistical judgement, not a "
+                        "guarantee: see the caution below.</p>", "sound")
+    items = "".join(f"<li>{html.escape(r)}</li>" for r in data.trust_reasons)
+    return _section("trust", "Map: DOUBTFUL",
+                    "<p><b>Do not use this map without review.</b> The run's own checks found:</p>"
+                    f"<ul>{items}</ul><p>The outputs are complete, and the command exited with status 3 so that "
+                    "a batch job can stop on it (docs/cli.md). The close calls, the scan agreement and the "
+                    "overlays below show where to look.</p>", "doubtful")
+
+
 def _section(ident: str, title: str, body: str, klass: str = "") -> str:
     cls = f' class="{klass}"' if klass else ""
     return f'<section id="{ident}"{cls}><h2>{html.escape(title)}</h2>{body}</section>'
@@ -913,6 +966,10 @@ def build_report(out_dir, data: ReportData, *, table_limit: int = 5000, progress
     hist = figure_histograms(data)
     if hist is not None:
         pictures.append(("checks", hist, "Histograms of the check figures"))
+    step("scan agreement")
+    agreement = figure_agreement(data)
+    if agreement is not None:
+        pictures.append(("agreement", agreement, "Where the scans of different visits agree and contradict"))
     if data.score:
         step("ground truth and scores")
         for name, fn, alt in (("truth", lambda: figure_truth(data), "Trajectories against ground truth"),
@@ -943,8 +1000,10 @@ def build_report(out_dir, data: ReportData, *, table_limit: int = 5000, progress
     name = html.escape(data.log_name)
     reference = bool(data.score) and data.score.get("reference") == REFERENCE_VERDICTS
     accepted_calls, rejected_calls = close_calls(v, margins)
-    nav = [("glance", "At a glance"), ("maps", "Maps"), ("loops-section", "Loop closures"),
-           ("close-calls", "Close calls")]
+    nav = ([("trust", "Map: " + data.trust)] if data.trust else []) + [
+        ("glance", "At a glance"), ("maps", "Maps"), ("loops-section", "Loop closures"), ("close-calls", "Close calls")]
+    if "agreement" in pics:
+        nav.append(("agreement-section", "Scan agreement"))
     if "checks" in pics:
         nav.append(("checks-section", "Checks"))
     if data.score:
@@ -971,6 +1030,7 @@ def build_report(out_dir, data: ReportData, *, table_limit: int = 5000, progress
         "<p>closurecheck: verified loop closures and calibrated covariances for 2D LiDAR pose graphs</p>",
         "<nav>" + "".join(f"<a href='#{i}'>{t}</a>" for i, t in nav) + "</nav></header>",
         "<main>",
+        _trust_section(data),
         _section("caution", "Caution", f"<p>{html.escape(SAFETY_TEXT)}</p>", "caution"),
         _section("glance", "At a glance",
                  f"<p class='lead'>{html.escape(lead)}</p><div class='cards'>{card_html}</div>"
@@ -1006,6 +1066,16 @@ def build_report(out_dir, data: ReportData, *, table_limit: int = 5000, progress
                  f"<h3>Rejected, most margin ({len(rejected_calls)})</h3>"
                  f"<div class='calls' id='calls-rejected'>{_close_call_cards(v, margins, rejected_calls)}</div>"),
     ]
+    if "agreement" in pics:
+        fs = data.free_space
+        parts.append(_section("agreement-section", "Scan agreement",
+                              f"<p>A check that needs no ground truth: after optimisation, {len(fs.a)} pairs of "
+                              "overlapping keyframes from different visits were laid over each other. A beam says "
+                              "there is nothing before its return, so a wall of one visit inside the free space of "
+                              "the other means the map misplaces one of them. Red marks the pairs where at least "
+                              "3 m of surface, and a fifth of what the pair could judge, contradicts; a person or "
+                              "cart that moved between the visits is far smaller. "
+                              f"{fs.count} pair(s) contradict.</p>" + pics["agreement"]))
     if "checks" in pics:
         thr_text = (" Dashed lines are the bounds of this run's checks." if data.thresholds else "")
         parts.append(_section("checks-section", "Check figures",

@@ -5,8 +5,8 @@ from __future__ import annotations
 import sys
 import time
 
-from ..verification.reasons import is_accepted
 from ..errors import one_line
+from ..verification.reasons import is_accepted
 
 # Plain progress lines (stderr not a terminal: a file, a pipe, CI) come at
 # most this often; a bar redraws in place instead.
