@@ -35,6 +35,7 @@ class Reason(str, Enum):
     ODOMETRY_GATE = "odometry_gate"
     PAIR_INCONSISTENT = "pair_inconsistent"
     GRAPH_RESIDUAL = "graph_residual"
+    RIVAL_GROUP = "rival_group"
     SCAN_CONTRADICTION = "scan_contradiction"
     DUPLICATE = "duplicate"
     REVIEWER_ACCEPTED = "reviewer_accepted"
@@ -65,6 +66,8 @@ _TEXT = {
     Reason.ODOMETRY_GATE: ("the registered motion is implausible given the odometry", "odometry"),
     Reason.PAIR_INCONSISTENT: ("does not close consistent cycles with the other closures", "consistency"),
     Reason.GRAPH_RESIDUAL: ("failed the chi-square residual test after optimisation", "consistency"),
+    Reason.RIVAL_GROUP: ("one of two consistent groups of closures that contradict each other, neither clearly "
+                         "larger (repeating structure); both were rejected", "consistency"),
     Reason.SCAN_CONTRADICTION: ("its revisit made the scans of two visits contradict each other (a wall inside "
                                 "the other's free space)", "consistency"),
     Reason.DUPLICATE: ("the same pair was already considered", "consistency"),

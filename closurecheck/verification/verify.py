@@ -51,6 +51,7 @@ from ..graph.solver import (
 from ..registration.batch import RegisteredClosures
 from .clique import CliqueOptions, max_clique
 from .consistency import ConsistencyOptions, odometry_gate, pairwise_consistency
+from .rivals import NO_RIVALS, RivalCheck, rival_groups
 from .drift import (
     NO_DRIFT,
     DriftOptions,
@@ -83,6 +84,11 @@ class VerifyOptions:
     pair_probability : chi-square probability of the PCM pair test.
     clique_max_expansions : search budget of the exact maximum clique; past
         it the best clique found is used and the report says so.
+    rival_margin : the consistent set stands against a rival group (a
+        consistent set of closures outside it) only when the closures the
+        rival disputes are at least this many times as many as the rival;
+        otherwise both sides are rejected (:mod:`closurecheck.verification.rivals`).
+        1 turns the rule off.
     min_clique_size : closures are accepted only if the consistent set has
         at least this many members (1 accepts a lone closure that passed
         every other check).
@@ -126,6 +132,7 @@ class VerifyOptions:
     pair_probability: float = setting(0.999, above=0.0, below=1.0)
     clique_max_expansions: int = setting(200_000, at_least=1)
     min_clique_size: int = setting(1, at_least=1)
+    rival_margin: float = setting(2.0, at_least=1.0)
     use_gnc: bool = setting(True)
     gnc_min_weight: float = setting(0.5, at_least=0.0, at_most=1.0)
     kernel: str = setting("cauchy", choices=KERNEL_CHOICES)
@@ -165,6 +172,8 @@ class Verification:
     clique_exact : whether the maximum clique was proven optimal.
     free_space : the contradiction check of the final map (None when off).
     clique_size : size of the consistent set.
+    rivals : the rival groups found against the consistent set, with
+        indices into the K candidates.
     notes : human-readable remarks for the report.
     """
 
@@ -179,6 +188,7 @@ class Verification:
     odometry_poses: np.ndarray | None = None
     heading_drift: HeadingDrift = NO_DRIFT
     free_space: FreeSpaceCheck | None = None
+    rivals: RivalCheck = NO_RIVALS
     notes: tuple = field(default_factory=tuple)
 
 
@@ -298,10 +308,11 @@ def odometry_scale(chi2_values, options: VerifyOptions) -> float:
 
 def _consistency_pass(alive0, src, dst, delta, covariance, odom_poses, step_covariances, options, cons, figures,
                       fixed):
-    """Odometry gate and PCM over the candidates ``alive0``; returns (reason updates, clique result).
+    """Odometry gate and PCM over the candidates ``alive0``; returns (reason updates, clique result, rivals).
 
     ``fixed`` candidates (a reviewer's acceptances) get the gate's figures
-    but are neither rejected by it nor part of PCM.
+    but are neither rejected by it nor part of PCM.  Rival groups are
+    reported with indices into all K candidates.
     """
     k = len(src)
     reason = np.full(k, "", dtype=object)
@@ -314,6 +325,7 @@ def _consistency_pass(alive0, src, dst, delta, covariance, odom_poses, step_cova
         reason[alive[gate.informative & ~gate.passed & ~fixed[alive]]] = Reason.ODOMETRY_GATE
     alive = np.flatnonzero(alive0 & (reason == "") & ~fixed)
     clique = None
+    rivals = NO_RIVALS
     if len(alive):
         pc = pairwise_consistency(src[alive], dst[alive], delta[alive], covariance[alive], odom_poses, prefix, cons)
         figures["pair_support"][alive] = np.asarray(pc.adjacency.sum(axis=1)).ravel()
@@ -323,7 +335,12 @@ def _consistency_pass(alive0, src, dst, delta, covariance, odom_poses, step_cova
         if clique.size < options.min_clique_size:
             out[:] = True
         reason[alive[out]] = Reason.PAIR_INCONSISTENT
-    return reason, clique
+        if not out.all():
+            rivals = rival_groups(pc.adjacency, clique.members, options.rival_margin,
+                                  clique_options=CliqueOptions(max_expansions=options.clique_max_expansions))
+            rivals = rivals.relabelled(alive)
+            reason[rivals.rejected] = Reason.RIVAL_GROUP
+    return reason, clique, rivals
 
 
 def _strict_pass(plausible, src, dst, delta, covariance, odom_poses, step_covariances, options, cons, figures,
@@ -331,22 +348,23 @@ def _strict_pass(plausible, src, dst, delta, covariance, odom_poses, step_covari
     """Odometry gate, PCM and the graph test with the odometry model as given.
 
     Returns (per-candidate verdict of this pass, clique result, indices of the
-    verified core, which includes every ``fixed`` candidate).
+    verified core, which includes every ``fixed`` candidate, rival groups).
     """
-    upd, clique = _consistency_pass(plausible, src, dst, delta, covariance, odom_poses, step_covariances,
+    upd, clique, rivals = _consistency_pass(plausible, src, dst, delta, covariance, odom_poses, step_covariances,
                                     options, cons, figures, fixed)
     first_pass = np.where(upd == "", Reason.ACCEPTED, upd)
     alive = np.flatnonzero(plausible & (first_pass == Reason.ACCEPTED))
     kept, _, _, _ = optimise_closures(alive, src, dst, delta, covariance, odom_poses, step_covariances, options,
                                       fixed)
     first_pass[alive[~kept]] = Reason.GRAPH_RESIDUAL
-    return first_pass, clique, alive[kept]
+    return first_pass, clique, alive[kept], rivals
 
 
 @dataclass(frozen=True, eq=False)
 class _Stage:
     first_pass: np.ndarray
     clique: object
+    rivals: RivalCheck
     scale: float
     members: np.ndarray
     figures: dict
@@ -366,7 +384,7 @@ def _core_and_map(plausible, src, dst, delta, covariance, step_covariances, opti
                               informative_max_std_rad=options.gate_max_chain_std_rad)
 
     # Pass 1, strict: the odometry model as given decides the core set.
-    first_pass, clique, core = _strict_pass(plausible, src, dst, delta, covariance, odom_poses, step_covariances,
+    first_pass, clique, core, rivals = _strict_pass(plausible, src, dst, delta, covariance, odom_poses, step_covariances,
                                             options, cons, figures, fixed)
 
     # The verified core measures how honest the odometry model is.
@@ -403,8 +421,8 @@ def _core_and_map(plausible, src, dst, delta, covariance, step_covariances, opti
     joined = len(np.setdiff1d(members, core))
     if joined:
         notes.append(f"{joined} closure(s) verified against the map of the first {len(core)} (map gate)")
-    return _Stage(first_pass=first_pass, clique=clique, scale=scale, members=members, figures=figures,
-                  notes=tuple(notes))
+    return _Stage(first_pass=first_pass, clique=clique, rivals=rivals, scale=scale, members=members,
+                  figures=figures, notes=tuple(notes))
 
 
 def _free_space_options(options: VerifyOptions) -> FreeSpaceOptions:
@@ -588,6 +606,15 @@ def verify(closures: RegisteredClosures, chain: OdometryChain, options: VerifyOp
         if free.count:
             notes.append(f"the scans of {free.count} of {len(free.a)} overlapping keyframe pairs from different "
                          f"visits still contradict each other")
+    lost = stage.rivals.lost
+    if lost:
+        sizes = ", ".join(f"{len(d.disputed)} against {len(d.rival)}" for d in lost[:5])
+        notes.append(f"{int((reason == Reason.RIVAL_GROUP).sum())} closure(s) rejected on both sides of {len(lost)} "
+                     f"contest(s) between consistent groups that the evidence could not separate ({sizes}"
+                     f"{', ...' if len(lost) > 5 else ''}; the larger side must be {options.rival_margin:g} times "
+                     f"the other)")
+    if stage.rivals.exhausted:
+        notes.append("the search for rival groups stopped after its round limit; smaller rivals were not examined")
     clique_exact = True if clique is None else clique.exact
     if clique is not None and not clique.exact:
         notes.append(f"the maximum-clique search hit its budget of {options.clique_max_expansions} expansions; "
@@ -599,4 +626,4 @@ def verify(closures: RegisteredClosures, chain: OdometryChain, options: VerifyOp
                         closure_covariance=covariance, figures=figures, poses=poses,
                         clique_exact=clique_exact, clique_size=0 if clique is None else clique.size,
                         odometry_scale=scale, odometry_poses=np.array(odom_poses, dtype=float),
-                        heading_drift=drift, free_space=free, notes=tuple(notes))
+                        heading_drift=drift, free_space=free, rivals=stage.rivals, notes=tuple(notes))
