@@ -397,7 +397,15 @@ def _core_and_map(plausible, src, dst, delta, covariance, step_covariances, opti
     members = core
     retry = np.flatnonzero(plausible & ((first_pass == Reason.ODOMETRY_GATE)
                                         | (first_pass == Reason.PAIR_INCONSISTENT)))
-    for _ in range(options.map_rounds if options.extend_with_map else 0):
+    rounds = options.map_rounds if options.extend_with_map else 0
+    if rounds and scale >= options.max_odometry_scale and len(retry):
+        # A factor at its bound says the odometry model is wrong by more than
+        # the bound allows, not by how much: a map built on it cannot vouch
+        # for a candidate the strict pass rejected.
+        rounds = 0
+        notes.append(f"the odometry variance factor sits at its bound ({options.max_odometry_scale:g}); no "
+                     f"candidate was accepted against a map built with it (map gate skipped)")
+    for _ in range(rounds):
         # Candidates the odometry could not vouch for, gated against the map
         # that the closures verified so far pin down.  Only where the map is
         # tight: where it is loose, a look-alike offset would pass unseen.

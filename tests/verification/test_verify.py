@@ -239,3 +239,16 @@ def test_reviewer_decisions_overrule_the_checks(scene):
     joined_wrong = others & ~label & ver.accepted
     assert joined_wrong.any() and not (plain.accepted & ~label).any()
     assert np.all(ver.figures["map_chi2"][joined_wrong] <= chi2.ppf(VerifyOptions().map_probability, 3))
+
+
+def test_a_variance_factor_at_its_bound_accepts_nothing_through_the_map(scene):
+    closures, label = make_closures(scene, 0.5, seed=5)
+    chain = chain_of(scene["odom"], scene["step_cov"])
+    free = verify(closures, chain, VerifyOptions(max_odometry_scale=1e6))
+    assert free.odometry_scale > 1.0  # the data do ask for more than the bound below
+    assert np.isfinite(free.figures["map_chi2"]).any()
+    capped = verify(closures, chain, VerifyOptions(max_odometry_scale=1.0))
+    assert capped.odometry_scale == 1.0
+    assert not np.isfinite(capped.figures["map_chi2"]).any()
+    assert any("sits at its bound" in n for n in capped.notes)
+    assert not (capped.accepted & ~label).any()
