@@ -100,3 +100,35 @@ def test_too_few_sound_steps_leave_the_odometry_as_it_is():
     assert not cal.measured and cal.noise == prior
     np.testing.assert_array_equal(cal.chain.poses, odom)
     assert "not calibrated" in cal.notes[0]
+
+
+def test_a_rate_the_scans_cannot_tell_from_zero_is_not_removed():
+    # Odometry with a heading drift and no turn or distance scale error: the
+    # drift is removed, the two scales are left at zero.
+    rng = np.random.default_rng(11)
+    odom, truth, steps = drive(rng, heading_per_m=math.radians(20) / 100, turn_scale=0.0, distance_scale=0.0)
+    cal = calibrate(odom, np.arange(len(odom)), steps, OdometryNoise())
+    s = cal.systematic
+    assert s.heading_per_m != 0.0 and "heading_per_m" not in s.not_significant
+    for name in s.not_significant:
+        assert getattr(s, name) == 0.0
+        assert np.isfinite(getattr(s, f"{name}_std"))
+    assert set(s.not_significant) == {"turn_scale", "distance_scale"}
+    assert any("could not tell it from zero" in n for n in cal.notes) == bool(s.not_significant)
+    # With the test off (min_significance 0), every rate is fitted, as before.
+    free = calibrate(odom, np.arange(len(odom)), steps, OdometryNoise(), CalibrationOptions(min_significance=0.0))
+    assert free.systematic.not_significant == ()
+    assert free.systematic.turn_scale != 0.0 and free.systematic.distance_scale != 0.0
+
+
+def test_a_drive_without_systematic_errors_keeps_its_odometry():
+    # Chance alone makes a fitted rate non-zero; under the test every rate
+    # of an error-free robot stays at zero in nearly every drive (3 standard
+    # errors: 0.27% per rate by chance).
+    dropped = 0
+    for seed in range(6):
+        rng = np.random.default_rng(100 + seed)
+        odom, truth, steps = drive(rng, heading_per_m=0.0, turn_scale=0.0, distance_scale=0.0)
+        s = calibrate(odom, np.arange(len(odom)), steps, OdometryNoise()).systematic
+        dropped += len(s.not_significant)
+    assert dropped >= 17
