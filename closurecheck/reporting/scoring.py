@@ -540,6 +540,9 @@ def score_run(run_dir, *, log_path=None, candidates=None, choice=None) -> dict:
     from ..io.pairs_csv import read_pairs
 
     run_dir = Path(run_dir)
+    if not run_dir.is_dir():
+        raise InputError("no such run folder" if not run_dir.exists() else "not a run folder (a folder that "
+                         "closurecheck run wrote)", run_dir)
     if log_path is None:
         try:
             log_path = json.loads((run_dir / "summary.json").read_text())["log_path"]

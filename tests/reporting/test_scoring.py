@@ -191,3 +191,14 @@ def test_scores_with_truth_reconcile(e2e_run, tmp_path):
     # None of the retired, confusable keys.
     assert not {"true_pairs_among_candidates", "closure_recall", "true_pairs", "pair_precision"} & set(s)
     assert 0 < s["nees_share_in_central_95pct"] <= 1 and len(s["nees_values"]) == s["nees_closures"]
+
+
+def test_scoring_a_folder_that_is_not_there_says_so(tmp_path, capsys):
+    from closurecheck import cli
+
+    assert cli.main(["score", str(tmp_path / "no_run_here")]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "no such run folder" in err[0]
+    (tmp_path / "file.txt").write_text("x")
+    assert cli.main(["score", str(tmp_path / "file.txt")]) == 2
+    assert "not a run folder" in capsys.readouterr().err
