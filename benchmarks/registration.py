@@ -55,12 +55,8 @@ from scipy.spatial import cKDTree  # noqa: E402
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from closurecheck.core import se2  # noqa: E402
-from closurecheck.registration.icp import (  # noqa: E402
-    RegistrationOptions,
-    correlative,  # noqa: E402
-    prepare_scan,
-    register_prepared,
-)
+from closurecheck.registration import correlative  # noqa: E402
+from closurecheck.registration.icp import RegistrationOptions, prepare_scan, register_prepared  # noqa: E402
 from closurecheck.simulation.raycast import cast  # noqa: E402
 
 RESULTS = Path(__file__).resolve().parent / "results" / "registration.md"
