@@ -447,25 +447,37 @@ def coarse_window(guess_covariance, options: RegistrationOptions, angle_step_rad
 # --------------------------------------------------------------------------- preparation
 
 
-def _pca(nb, used):
-    """Centroid, unit normal and scatter eigenvalues of masked neighbourhoods (N, k, 2)."""
-    wt = used.astype(float)
-    count = np.maximum(wt.sum(axis=1), 1.0)
-    centroid = (nb * wt[..., None]).sum(axis=1) / count[:, None]
-    dev = (nb - centroid[:, None, :]) * wt[..., None]
-    sxx = (dev[..., 0] ** 2).sum(axis=1)
-    syy = (dev[..., 1] ** 2).sum(axis=1)
-    sxy = (dev[..., 0] * dev[..., 1]).sum(axis=1)
-    # Closed-form eigen-decomposition of the 2x2 scatter matrix.
-    half_tr = 0.5 * (sxx + syy)
-    rad = np.hypot(0.5 * (sxx - syy), sxy)
-    phi = 0.5 * np.arctan2(2.0 * sxy, sxx - syy)
-    normal = np.stack([-np.sin(phi), np.cos(phi)], axis=1)
-    return centroid, normal, np.maximum(half_tr - rad, 0.0), half_tr + rad
+def _sum_rows(a):
+    """Sum over axis 0 of a (k, N) array, adding in the order np.sum uses along a contiguous axis of length k.
+
+    numpy adds a contiguous run of 8 to 128 numbers in eight interleaved
+    partial sums (pairwise summation) and fewer one after another; following
+    that order lets the neighbourhoods be laid out (k, N), where every step
+    is one pass over N, and still give the bits of the (N, k) layout.
+    """
+    k = len(a)
+    if k < 8:
+        res = np.zeros(a.shape[1:])
+        for row in a:
+            res = res + row
+        return res
+    r = a[:8].copy()
+    stop = k - k % 8
+    for i in range(8, stop, 8):
+        r += a[i:i + 8]
+    res = ((r[0] + r[1]) + (r[2] + r[3])) + ((r[4] + r[5]) + (r[6] + r[7]))
+    for i in range(stop, k):
+        res = res + a[i]
+    return res
 
 
 def _line_features(points, beams, opt: RegistrationOptions):
-    """Fit a line to each point's neighbourhood; vectorised over all points."""
+    """Fit a line to each point's neighbourhood; vectorised over all points.
+
+    The neighbourhoods are laid out (k, N), neighbour slot first: each step
+    below is then one pass over the N points instead of a strided reduction
+    over (N, k, 2) arrays (about a quarter of this function's time).
+    """
     n = len(points)
     k = min(opt.line_neighbours, n)
     tree = cKDTree(points)
@@ -474,13 +486,33 @@ def _line_features(points, beams, opt: RegistrationOptions):
     used = idx < n
     idx = np.where(used, idx, 0)
     count = used.sum(axis=1)
-    nb = points[idx]                                                        # (N, k, 2)
-    centroid, normal, lam_min, lam_max = _pca(nb, used)
+    idt = idx.T
+    wt = used.T.astype(float)                                              # (k, N)
+    px, py = points[:, 0][idt], points[:, 1][idt]                           # (k, N) neighbour coordinates
+    cnt = np.maximum(_sum_rows(wt), 1.0)
+    # The centroid adds the neighbours one after another, as a reduction over the middle axis of (N, k, 2) did.
+    wx, wy = px * wt, py * wt
+    sx, sy = wx[0].copy(), wy[0].copy()
+    for j in range(1, k):
+        sx += wx[j]
+        sy += wy[j]
+    cx, cy = sx / cnt, sy / cnt
+    dx, dy = (px - cx) * wt, (py - cy) * wt
+    sxx, syy, sxy = _sum_rows(dx * dx), _sum_rows(dy * dy), _sum_rows(dx * dy)
+    # Closed-form eigen-decomposition of the 2x2 scatter matrix.
+    half_tr = 0.5 * (sxx + syy)
+    rad = np.hypot(0.5 * (sxx - syy), sxy)
+    phi = 0.5 * np.arctan2(2.0 * sxy, sxx - syy)
+    nx, ny = -np.sin(phi), np.cos(phi)
+    lam_min, lam_max = np.maximum(half_tr - rad, 0.0), half_tr + rad
     # Normals face the sensor (the frame origin), so that two scans seeing
     # opposite faces of a thin wall have opposite normals.
-    flip = (normal * centroid).sum(axis=1) > 0
-    normal[flip] *= -1.0
-    tangent = np.stack([normal[:, 1], -normal[:, 0]], axis=1)  # fixed handedness: t = rot(-90°) n
+    flip = nx * cx + ny * cy > 0
+    nx[flip] *= -1.0
+    ny[flip] *= -1.0
+    normal = np.column_stack([nx, ny])
+    centroid = np.column_stack([cx, cy])
+    tangent = np.column_stack([ny, -nx])  # fixed handedness: t = rot(-90°) n
     with np.errstate(invalid="ignore", divide="ignore"):
         thickness = np.sqrt(lam_min / lam_max)
     enough = count >= opt.min_line_points
@@ -546,9 +578,13 @@ def _target_side(scan: PreparedScan, nidx, used_l, n_l, t_l, c_l, opt: Registrat
     """kd-tree, line models and reading sensitivities of a scan's line points (its role as a target)."""
     pts, beams = scan.points, scan.beams
     nused = used_l.astype(float)
-    dev = pts[nidx] - c_l[:, None, :]                                    # (M, k, 2)
-    a = (dev * t_l[:, None, :]).sum(axis=-1) * nused                     # along the line (m)
-    h = (dev * n_l[:, None, :]).sum(axis=-1) * nused                     # across it (m)
+    # Offsets of the neighbours from the centroid, one (M, k) array per coordinate: the
+    # products and sums below are those of (M, k, 2) arrays reduced over their last axis
+    # (same bits), at about half the cost.
+    dx = pts[:, 0][nidx] - c_l[:, :1]
+    dy = pts[:, 1][nidx] - c_l[:, 1:]
+    a = (dx * t_l[:, :1] + dy * t_l[:, 1:]) * nused                      # along the line (m)
+    h = (dx * n_l[:, :1] + dy * n_l[:, 1:]) * nused                      # across it (m)
     # Local model h = f(a) fitted by least squares: a straight line
     # [1, a] or, by default, a parabola [1, a, a^2] so that a curved surface
     # (a round column) is not replaced by its chord.  Beyond the readings'
@@ -570,7 +606,7 @@ def _target_side(scan: PreparedScan, nidx, used_l, n_l, t_l, c_l, opt: Registrat
     beta = (h[:, None, :] @ wts)[:, 0, :]
     extent = np.abs(a).max(axis=1)
     if opt.point_noise == "range":
-        nu = np.abs((beams[nidx] * n_l[:, None, :]).sum(axis=-1))
+        nu = np.abs(beams[:, 0][nidx] * n_l[:, :1] + beams[:, 1][nidx] * n_l[:, 1:])
         nu = np.maximum(nu, opt.min_incidence_cos)
     else:
         nu = np.ones_like(a)
