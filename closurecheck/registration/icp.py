@@ -934,8 +934,11 @@ def register_prepared(source: PreparedScan, target: PreparedScan, guess=(0.0, 0.
         raise InputError("register_prepared needs scans built by prepare_scan")
     if source.key != options.preparation_key() or target.key != options.preparation_key():
         raise InputError("scans were prepared with different line or grid settings than these options")
-    seeds = _as_seeds(guess)
-    guess_cov = _as_guess_covariance(guess_covariance)
+    return _register_prepared(source, target, _as_seeds(guess), options, _as_guess_covariance(guess_covariance))
+
+
+def _register_prepared(source: PreparedScan, target: PreparedScan, seeds, options: RegistrationOptions,
+                       guess_cov) -> Registration:
     kernel = kernel_from_name(options.kernel, options.kernel_scale)
     refine = _icp_point if options.method == "point_to_point" else _icp_line
 
@@ -969,6 +972,32 @@ def register_prepared(source: PreparedScan, target: PreparedScan, guess=(0.0, 0.
     return _finish(source, target, sols[best], options, fit_score=fit, second_fit_score=second, score_gap=gap,
                    ambiguity=amb, coarse_ran=bool(options.coarse), coarse_score=coarse_best,
                    coarse_second_score=coarse_second, hypotheses=len(sols))
+
+
+# Options records built from keyword overrides, by (record, overrides with their types): checking
+# every setting costs about 0.2 ms, a few percent of a call of register, and callers repeat the same
+# overrides (coarse=False) call after call.
+_OVERRIDDEN: dict = {}
+
+
+def _with_overrides(opt: RegistrationOptions, overrides: dict) -> RegistrationOptions:
+    try:
+        key = (opt, tuple(sorted((k, type(v), v) for k, v in overrides.items())))
+        hash(key)
+    except TypeError:
+        key = None
+    got = _OVERRIDDEN.get(key) if key is not None else None
+    if got is not None:
+        return got
+    unknown = sorted(set(overrides) - {f.name for f in fields(RegistrationOptions)})
+    if unknown:
+        raise InputError(f"unknown registration option(s): {', '.join(unknown)}")
+    got = replace(opt, **overrides)
+    if key is not None:
+        if len(_OVERRIDDEN) >= 64:
+            _OVERRIDDEN.clear()
+        _OVERRIDDEN[key] = got
+    return got
 
 
 def register(source_xy, target_xy, guess=(0.0, 0.0, 0.0), options: RegistrationOptions | None = None, *,
@@ -1037,14 +1066,10 @@ def register(source_xy, target_xy, guess=(0.0, 0.0, 0.0), options: RegistrationO
     """
     opt = options if options is not None else DEFAULT_OPTIONS
     if overrides:
-        known = {f.name for f in fields(RegistrationOptions)}
-        unknown = sorted(set(overrides) - known)
-        if unknown:
-            raise InputError(f"unknown registration option(s): {', '.join(unknown)}")
-        opt = replace(opt, **overrides)
+        opt = _with_overrides(opt, overrides)
     src = _as_points(source_xy, "source_xy")
     tgt = _as_points(target_xy, "target_xy")
     seeds = _as_seeds(guess)
     guess_cov = _as_guess_covariance(guess_covariance)
-    return register_prepared(_prepare(src, opt, False), _prepare(tgt, opt, opt.coarse), seeds, opt,
-                             guess_covariance=guess_cov)
+    # The target side of the source and the grid of the target are built only if used.
+    return _register_prepared(_prepare(src, opt, False), _prepare(tgt, opt, False), seeds, opt, guess_cov)
