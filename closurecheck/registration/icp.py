@@ -254,7 +254,12 @@ class PreparedScan:
     def _target_side(self):
         got = self._lazy.get("target")
         if got is None:
-            got = _target_side(self, *self._lazy["fit"])
+            fit = self._lazy.get("fit")
+            if fit is None:
+                # Another thread (a Dask worker runs batches in threads) built it and dropped "fit"
+                # in between; it stores "target" before dropping "fit".
+                return self._lazy["target"]
+            got = _target_side(self, *fit)
             self._lazy["target"] = got
             self._lazy.pop("fit", None)
         return got
