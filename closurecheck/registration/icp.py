@@ -49,7 +49,6 @@ from scipy.spatial import cKDTree
 from ..core import se2
 from ..core.kernels import KERNEL_CHOICES, kernel_from_name
 from ..core.options import fail, options, setting
-from ..core.stats import chi2_threshold
 from ..errors import InputError
 from . import correlative as _coarse
 from . import covariance as _cov
@@ -440,6 +439,10 @@ def coarse_window(guess_covariance, options: RegistrationOptions, angle_step_rad
     cap_m, cap_rad = options.coarse_window_m, options.coarse_window_rad
     if guess_covariance is None:
         return cap_m, cap_rad
+    # Imported here: scipy.stats takes about 0.4 s to import and registration otherwise needs
+    # only scipy.spatial, which matters to a caller who registers one pair.
+    from ..core.stats import chi2_threshold
+
     c = chi2_threshold(GUESS_WINDOW_PROBABILITY, dof=3)
     var = np.clip(np.diag(guess_covariance), 0.0, None)
     half_m = float(np.sqrt(c * max(var[0], var[1])))
