@@ -469,6 +469,11 @@ def _sum_rows(a):
         for row in a:
             res = res + row
         return res
+    if k > 128:
+        # Longer runs are split in two halves (the first a multiple of 8 long), each summed so.
+        half = k // 2
+        half -= half % 8
+        return _sum_rows(a[:half]) + _sum_rows(a[half:])
     r = a[:8].copy()
     stop = k - k % 8
     for i in range(8, stop, 8):

@@ -17,6 +17,7 @@ from closurecheck.registration.icp import (
     DEFAULT_OPTIONS,
     RegistrationOptions,
     _line_features,
+    _sum_rows,
     prepare_scan,
     register_prepared,
 )
@@ -72,3 +73,10 @@ def test_target_side_built_on_first_use_with_the_same_values(scans):
     np.testing.assert_array_equal(one.covariance, two.covariance)
     # A scan that was only ever a source never built its target side.
     assert "target" not in lazy_s._lazy
+
+
+@pytest.mark.parametrize("k", [1, 5, 7, 8, 12, 16, 17, 24, 64, 129, 300])
+def test_sum_rows_adds_in_numpys_order(k):
+    # Reference: numpy.sum along a contiguous axis, to the bit (the layout change must not move results).
+    a = np.random.default_rng(k).normal(size=(k, 41)) * 10.0 ** np.random.default_rng(k + 1).integers(-8, 8, (k, 41))
+    np.testing.assert_array_equal(_sum_rows(a), np.ascontiguousarray(a.T).sum(axis=1))
