@@ -50,6 +50,7 @@ import argparse  # noqa: E402
 import platform  # noqa: E402
 import statistics  # noqa: E402
 import subprocess  # noqa: E402
+import tempfile  # noqa: E402
 import sys  # noqa: E402
 import time  # noqa: E402
 from functools import partial  # noqa: E402
@@ -226,8 +227,9 @@ print(t1 - t0, t2 - t1, t3 - t2)
 
 def cold_first_call(pa, pb, guess, runs=3):
     """Seconds (import, first call, second call) in fresh interpreters, median over runs: ours and open3d."""
-    np.savez("/tmp/_registration_cold.npz", pa=pa, pb=pb, guess=guess)
-    load = "import numpy as np; d = np.load('/tmp/_registration_cold.npz'); pa, pb, g = d['pa'], d['pb'], d['guess']"
+    path = Path(tempfile.mkdtemp()) / "pair.npz"
+    np.savez(path, pa=pa, pb=pb, guess=guess)
+    load = f"import numpy as np; d = np.load({str(path)!r}); pa, pb, g = d['pa'], d['pb'], d['guess']"
     ours = COLD.format(imports=f"import closurecheck\n{load}",
                        call="closurecheck.register(pb, pa, g, coarse=False)")
     ref = COLD.format(
