@@ -50,8 +50,8 @@ import argparse  # noqa: E402
 import platform  # noqa: E402
 import statistics  # noqa: E402
 import subprocess  # noqa: E402
-import tempfile  # noqa: E402
 import sys  # noqa: E402
+import tempfile  # noqa: E402
 import time  # noqa: E402
 from functools import partial  # noqa: E402
 from pathlib import Path  # noqa: E402
