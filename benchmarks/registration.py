@@ -6,14 +6,21 @@ corridor, desks, shelves, round columns).  A pair is two poses with a clear
 line of sight, at most 2.5 m apart, whose scans overlap by at least half
 (fraction of source points within 10 cm of a target point at the true pose).
 
-1. ICP stage, side by side in one run with open3d's ``registration_icp``
-   (TransformationEstimationPointToPoint, planar points with z = 0, the same
-   initial guesses, the same maximum correspondence distance and iteration
-   cap; its 4x4 result projected to SE(2)).  Our time is ``register_prepared``
-   on scans prepared once (ICP and covariance); the time to prepare a scan is
-   reported separately.  Each pair is timed several times, interleaved, and
-   the median kept.  OMP_NUM_THREADS is set to 1 before open3d is imported so
-   both run on one thread.
+1. One pair as a user calls it, side by side in one run with open3d's
+   ``registration_icp`` (TransformationEstimationPointToPoint, planar points
+   with z = 0, the same pairs and initial guesses, the same maximum
+   correspondence distance, at most 50 iterations; its 4x4 result projected
+   to SE(2)).  Timed per pair, interleaved, each call repeated and the
+   median kept: ``register(P, Q, guess, coarse=False)`` (all inclusive:
+   preparing both scans from the arrays, ICP, covariance), ``register`` with
+   its default coarse stage (+-3.5 m, +-0.85 rad), ``register`` with a guess
+   covariance that sizes the coarse search, and ``register_prepared`` on
+   scans prepared beforehand (the ICP stage).  open3d is timed on clouds
+   built beforehand (its call alone, which flatters it slightly).
+   OMP_NUM_THREADS is set to 1 before open3d is imported so both run on one
+   thread.  The whole comparison runs ``--rounds`` times; each round's ratio
+   is reported.  A cold first call (a fresh interpreter: import, then one
+   ``register``) is timed in a subprocess against open3d's.
 2. Convergence basin: coarse + ICP from initial errors up to 3 m and 45
    degrees; success is an error below 5 cm and 0.5 degree.  ICP alone (ours
    and open3d's) from the same guesses for contrast.
@@ -42,8 +49,11 @@ os.environ.setdefault("OMP_NUM_THREADS", "1")
 import argparse  # noqa: E402
 import platform  # noqa: E402
 import statistics  # noqa: E402
+import subprocess  # noqa: E402
 import sys  # noqa: E402
+import tempfile  # noqa: E402
 import time  # noqa: E402
+from functools import partial  # noqa: E402
 from pathlib import Path  # noqa: E402
 
 import numpy as np  # noqa: E402
@@ -55,10 +65,12 @@ from scipy.spatial import cKDTree  # noqa: E402
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from closurecheck.core import se2  # noqa: E402
+from closurecheck.registration import correlative  # noqa: E402
 from closurecheck.registration.icp import (  # noqa: E402
     RegistrationOptions,
-    correlative,  # noqa: E402
+    coarse_window,
     prepare_scan,
+    register,
     register_prepared,
 )
 from closurecheck.simulation.raycast import cast  # noqa: E402
@@ -69,6 +81,11 @@ RANGE_NOISE_M = 0.015
 MAX_RANGE_M = 20.0
 MAX_CORRESPONDENCE_M = 0.5
 MAX_ITERATIONS = 30
+OPEN3D_ITERATIONS = 50
+# Guess errors of the user-call comparison: 0.28 m in a random direction and 4 degrees either way
+# (as measured in issue 14); the guess covariance handed to register says 0.2 m and 3 degrees.
+GUESS_ERROR_M, GUESS_ERROR_DEG = 0.28, 4.0
+GUESS_SIGMA_M, GUESS_SIGMA_DEG = 0.2, 3.0
 SUCCESS_M, SUCCESS_DEG = 0.05, 0.5
 
 
@@ -147,7 +164,7 @@ def open3d_icp(source_pc, target_pc, guess):
     reg = o3d.pipelines.registration
     out = reg.registration_icp(source_pc, target_pc, MAX_CORRESPONDENCE_M, init,
                                reg.TransformationEstimationPointToPoint(),
-                               reg.ICPConvergenceCriteria(max_iteration=MAX_ITERATIONS))
+                               reg.ICPConvergenceCriteria(max_iteration=OPEN3D_ITERATIONS))
     t = np.asarray(out.transformation)
     return se2.from_matrix(t[np.ix_([0, 1, 3], [0, 1, 3])])
 
@@ -157,30 +174,78 @@ def errors(est, truth):
     return float(np.hypot(e[0], e[1])), float(np.degrees(abs(se2.wrap(e[2]))))
 
 
-def icp_stage(pairs, rng, repeats):
-    """Accuracy and time of ours vs open3d from moderately perturbed guesses."""
-    opt = RegistrationOptions(coarse=False, max_correspondence_m=MAX_CORRESPONDENCE_M,
-                              max_iterations=MAX_ITERATIONS)
-    rows = []
-    prep_times = []
+CALLS = ("coarse_off", "default", "guess_cov", "prepared", "guess_cov_one")
+
+
+def user_calls(pairs, rng, repeats):
+    """Per pair: median seconds of each call in CALLS and of open3d, and each one's errors.
+
+    Returns (times (P, 6): open3d, then the CALLS; errors (P, 6, 2): metres, degrees).
+    """
+    cov = np.diag([GUESS_SIGMA_M ** 2, GUESS_SIGMA_M ** 2, np.radians(GUESS_SIGMA_DEG) ** 2])
+    prepared_opt = RegistrationOptions(coarse=False)
+    times, errs = [], []
     for ra, rb, truth, _ in pairs:
         pa, pb = to_points(ra, rng), to_points(rb, rng)
-        t0 = time.perf_counter()
-        ta, sb = prepare_scan(pa, opt, grid=False), prepare_scan(pb, opt, grid=False)
-        prep_times.append((time.perf_counter() - t0) / 2)
+        ang = rng.uniform(0.0, 2.0 * np.pi)
+        guess = truth + np.array([GUESS_ERROR_M * np.cos(ang), GUESS_ERROR_M * np.sin(ang),
+                                  np.radians(GUESS_ERROR_DEG) * rng.choice([-1.0, 1.0])])
+        ta, sb = prepare_scan(pa, prepared_opt), prepare_scan(pb, prepared_opt)
         ca, cb = _cloud(pa), _cloud(pb)
-        guess = truth + np.array([*rng.normal(0.0, 0.1, 2), rng.normal(0.0, np.radians(3.0))])
-        ours_t, ref_t = [], []
+        calls = (
+            partial(open3d_icp, cb, ca, guess),
+            partial(register, pb, pa, guess, coarse=False),
+            partial(register, pb, pa, guess),
+            partial(register, pb, pa, guess, guess_covariance=cov),
+            partial(register_prepared, sb, ta, guess, prepared_opt),
+            partial(register, pb, pa, guess, guess_covariance=cov, hypotheses=1),
+        )
+        t = [[] for _ in calls]
+        out = [None] * len(calls)
         for _ in range(repeats):
-            t0 = time.perf_counter()
-            res = register_prepared(sb, ta, guess, opt)
-            ours_t.append(time.perf_counter() - t0)
-            t0 = time.perf_counter()
-            ref = open3d_icp(cb, ca, guess)
-            ref_t.append(time.perf_counter() - t0)
-        rows.append((*errors(res.delta, truth), *errors(ref, truth), statistics.median(ours_t),
-                     statistics.median(ref_t), res.iterations))
-    return np.array(rows), np.array(prep_times)
+            for k, call in enumerate(calls):
+                t0 = time.perf_counter()
+                out[k] = call()
+                t[k].append(time.perf_counter() - t0)
+        times.append([statistics.median(x) for x in t])
+        errs.append([errors(getattr(o, "delta", o), truth) for o in out])
+    return np.array(times), np.array(errs)
+
+
+COLD = """
+import time
+t0 = time.perf_counter()
+{imports}
+t1 = time.perf_counter()
+{call}
+t2 = time.perf_counter()
+{call}
+t3 = time.perf_counter()
+print(t1 - t0, t2 - t1, t3 - t2)
+"""
+
+
+def cold_first_call(pa, pb, guess, runs=3):
+    """Seconds (import, first call, second call) in fresh interpreters, median over runs: ours and open3d."""
+    path = Path(tempfile.mkdtemp()) / "pair.npz"
+    np.savez(path, pa=pa, pb=pb, guess=guess)
+    load = f"import numpy as np; d = np.load({str(path)!r}); pa, pb, g = d['pa'], d['pb'], d['guess']"
+    ours = COLD.format(imports=f"import closurecheck\n{load}",
+                       call="closurecheck.register(pb, pa, g, coarse=False)")
+    ref = COLD.format(
+        imports=f"import os; os.environ['OMP_NUM_THREADS'] = '1'\nimport open3d as o3d\n{load}",
+        call="c = lambda xy: o3d.geometry.PointCloud(o3d.utility.Vector3dVector(np.c_[xy, np.zeros(len(xy))]))\n"
+             "i = np.eye(4); i[:2, :2] = [[np.cos(g[2]), -np.sin(g[2])], [np.sin(g[2]), np.cos(g[2])]]; i[:2, 3] = g[:2]\n"
+             "r = o3d.pipelines.registration\n"
+             f"r.registration_icp(c(pb), c(pa), {MAX_CORRESPONDENCE_M}, i, r.TransformationEstimationPointToPoint(), "
+             f"r.ICPConvergenceCriteria(max_iteration={OPEN3D_ITERATIONS}))")
+    env = dict(os.environ, PYTHONPATH=str(Path(__file__).resolve().parents[1]))
+    out = []
+    for code in (ours, ref):
+        runs_out = [list(map(float, subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                                                    env=env, check=True).stdout.split())) for _ in range(runs)]
+        out.append(np.median(np.array(runs_out), axis=0))
+    return out
 
 
 def basin(pairs, rng):
@@ -238,6 +303,23 @@ def seeds_joint(pairs, rng):
     return np.array(rows, float)
 
 
+def covariance_basin(pairs, rng, sigma_m=0.5, sigma_deg=10.0):
+    """Guesses drawn from a covariance and handed with it: success and time against the default window."""
+    cov = np.diag([sigma_m ** 2, sigma_m ** 2, np.radians(sigma_deg) ** 2])
+    rows = []
+    for ra, rb, truth, _ in pairs:
+        pa, pb = to_points(ra, rng), to_points(rb, rng)
+        guess = truth + rng.multivariate_normal(np.zeros(3), cov)
+        t0 = time.perf_counter()
+        sized = register(pb, pa, guess, guess_covariance=cov)
+        t1 = time.perf_counter()
+        wide = register(pb, pa, guess)
+        t2 = time.perf_counter()
+        ok = [e[0] < SUCCESS_M and e[1] < SUCCESS_DEG for e in (errors(sized.delta, truth), errors(wide.delta, truth))]
+        rows.append((*ok, t1 - t0, t2 - t1))
+    return np.array(rows, float), cov
+
+
 def monte_carlo(ra, rb, truth, runs, rng, **kw):
     """Mean NEES of `runs` re-noisings of one pair under the returned covariance."""
     opt = RegistrationOptions(coarse=False, **kw)
@@ -273,8 +355,10 @@ def degeneracy(n, rng):
 
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--pairs", type=int, default=100, help="pairs for the ICP-stage comparison")
-    ap.add_argument("--repeats", type=int, default=5, help="timings per pair (median kept)")
+    ap.add_argument("--pairs", type=int, default=60, help="pairs for the user-call comparison")
+    ap.add_argument("--repeats", type=int, default=5, help="timings per pair and call (median kept)")
+    ap.add_argument("--rounds", type=int, default=3, help="rounds of the user-call comparison")
+    ap.add_argument("--cov-pairs", type=int, default=100, help="pairs for the guess-covariance basin")
     ap.add_argument("--basin", type=int, default=200, help="pairs for the convergence-basin test")
     ap.add_argument("--mc", type=int, default=200, help="Monte Carlo re-noisings per calibration pair")
     ap.add_argument("--mc-pairs", type=int, default=5, help="pairs for the calibration test")
@@ -288,10 +372,18 @@ def main(argv=None):
     t_start = time.perf_counter()
 
     pairs = make_pairs(args.pairs, rng, segs, circ)
-    icp, prep = icp_stage(pairs, rng, args.repeats)
-    ours_tot, ref_tot = icp[:, 4].sum(), icp[:, 5].sum()
-    ratio = ours_tot / ref_tot
-    ratio_med = float(np.median(icp[:, 4] / icp[:, 5]))
+    rounds = [user_calls(pairs, rng, args.repeats) for _ in range(args.rounds)]
+    times = np.concatenate([t for t, _ in rounds])
+    errs = np.concatenate([e for _, e in rounds])
+    # Ratio of each call to open3d: total time over the pairs, per round.
+    ratios = np.array([[t[:, k + 1].sum() / t[:, 0].sum() for k in range(len(CALLS))] for t, _ in rounds])
+    cold_ours, cold_ref = cold_first_call(to_points(pairs[0][0], rng), to_points(pairs[0][1], rng), pairs[0][2])
+    cpairs = make_pairs(args.cov_pairs, rng, segs, circ)
+    cbas, ccov = covariance_basin(cpairs, rng)
+    # Windows as register sizes them (the angle floor, two steps of about 0.0125 rad, does not bind here).
+    ccov_window = coarse_window(ccov, RegistrationOptions(), 0.0125)
+    guess_window = coarse_window(np.diag([GUESS_SIGMA_M ** 2] * 2 + [np.radians(GUESS_SIGMA_DEG) ** 2]),
+                                 RegistrationOptions(), 0.0125)
 
     bpairs = make_pairs(args.basin, rng, segs, circ)
     bas = basin(bpairs, rng)
@@ -331,26 +423,49 @@ def main(argv=None):
         f"Scans: 721 beams over 270 degrees, {RANGE_NOISE_M * 100:.1f} cm Gaussian range noise, "
         "invented 20 m x 12 m office floor; pairs overlap by at least half.",
         "",
-        f"## ICP stage vs open3d point-to-point ({len(pairs)} pairs)",
+        f"## One pair as a user calls it, against open3d point-to-point ({len(pairs)} pairs, {args.rounds} rounds)",
         "",
-        "Same clouds, same initial guesses (truth perturbed by N(0, 10 cm) per axis and N(0, 3 deg)), "
-        f"max correspondence {MAX_CORRESPONDENCE_M} m, at most {MAX_ITERATIONS} iterations.  "
-        "Ours: `register_prepared` on prepared scans, ICP plus covariance.",
+        f"Same pairs, same guesses (truth off by {GUESS_ERROR_M} m in a random direction and {GUESS_ERROR_DEG:g} deg "
+        f"either way); open3d at most {OPEN3D_ITERATIONS} iterations, max correspondence {MAX_CORRESPONDENCE_M} m, on "
+        f"clouds built beforehand.  Each call {args.repeats} times per pair, interleaved, median kept; ratio = "
+        "total time over the pairs / open3d's, one figure per round.  Guess covariance: "
+        f"{GUESS_SIGMA_M} m and {GUESS_SIGMA_DEG:g} deg (one sigma), a coarse window of "
+        f"+-{guess_window[0]:.2f} m, +-{np.degrees(guess_window[1]):.1f} deg.",
         "",
-        "| | ours (point-to-line) | open3d (point-to-point) |",
+        "| call | ratio to open3d, per round | target | median time | median error | 95th pct error |",
+        "| --- | --- | --- | --- | --- | --- |",
+    ]
+    labels = ("`register(P, Q, guess, coarse=False)`: preparation + ICP + covariance",
+              "`register(P, Q, guess)`: default coarse stage (+-3.5 m, +-0.85 rad)",
+              "`register(P, Q, guess, guess_covariance=C)`: coarse stage sized to C",
+              "`register_prepared` on prepared scans, coarse off: the ICP stage",
+              "`register(P, Q, guess, guess_covariance=C, hypotheses=1)`: sized search, one hypothesis refined")
+    for k, (label, target) in enumerate(zip(labels, (1.0, 2.5, None, 0.4, None))):
+        met = "" if target is None else f"<= {target}: **{'met' if ratios[:, k].max() <= target else 'not met'}**"
+        lines.append(f"| {label} | {', '.join(f'{r:.2f}' for r in ratios[:, k])} | {met} | "
+                     f"{np.median(times[:, k + 1]) * ms:.2f} ms | {np.median(errs[:, k + 1, 0]) * 1000:.1f} mm, "
+                     f"{np.median(errs[:, k + 1, 1]):.3f} deg | {np.percentile(errs[:, k + 1, 0], 95) * 1000:.1f} mm, "
+                     f"{np.percentile(errs[:, k + 1, 1], 95):.3f} deg |")
+    lines += [
+        f"| open3d `registration_icp` point-to-point | 1.00 | | {np.median(times[:, 0]) * ms:.2f} ms | "
+        f"{np.median(errs[:, 0, 0]) * 1000:.1f} mm, {np.median(errs[:, 0, 1]):.3f} deg | "
+        f"{np.percentile(errs[:, 0, 0], 95) * 1000:.1f} mm, {np.percentile(errs[:, 0, 1], 95):.3f} deg |",
+        "",
+        "Cold first call, fresh interpreter, median of 3 (import / first call / second call): ours "
+        f"{cold_ours[0] * ms:.0f} ms / {cold_ours[1] * ms:.1f} ms / {cold_ours[2] * ms:.1f} ms, open3d "
+        f"{cold_ref[0] * ms:.0f} ms / {cold_ref[1] * ms:.1f} ms / {cold_ref[2] * ms:.1f} ms.",
+        "",
+        f"## Guess covariance ({len(cpairs)} pairs)",
+        "",
+        f"Guesses drawn from N(truth, C), C = diag({np.sqrt(ccov[0, 0]):.1f} m, {np.sqrt(ccov[1, 1]):.1f} m, "
+        f"{np.degrees(np.sqrt(ccov[2, 2])):.0f} deg)^2, handed to `register` with C (coarse window "
+        f"+-{ccov_window[0]:.2f} m, +-{np.degrees(ccov_window[1]):.1f} deg) and without (the default window).",
+        "",
+        "| call | success | median time |",
         "| --- | --- | --- |",
-        f"| median translation error | {np.median(icp[:, 0]) * 100:.2f} cm | {np.median(icp[:, 2]) * 100:.2f} cm |",
-        f"| 95th pct translation error | {np.percentile(icp[:, 0], 95) * 100:.2f} cm | "
-        f"{np.percentile(icp[:, 2], 95) * 100:.2f} cm |",
-        f"| median rotation error | {np.median(icp[:, 1]):.3f} deg | {np.median(icp[:, 3]):.3f} deg |",
-        f"| 95th pct rotation error | {np.percentile(icp[:, 1], 95):.3f} deg | {np.percentile(icp[:, 3], 95):.3f} deg |",
-        f"| median time per pair | {np.median(icp[:, 4]) * ms:.2f} ms | {np.median(icp[:, 5]) * ms:.2f} ms |",
-        f"| mean ICP iterations | {icp[:, 6].mean():.1f} | (up to {MAX_ITERATIONS}) |",
-        "",
-        f"Time ratio ours / open3d: **{ratio:.2f}** (total over pairs), {ratio_med:.2f} (median of per-pair "
-        f"ratios).  Preparing one scan (line fits, kd-tree; no grid) takes {np.median(prep) * ms:.2f} ms "
-        "median and is done once per scan, however many pairs it joins; including the preparation of both "
-        f"scans in every pair the ratio would be {(ours_tot + 2 * prep.sum()) / ref_tot:.2f}.",
+        f"| `register(P, Q, guess, guess_covariance=C)` | **{cbas[:, 0].mean() * 100:.1f}%** | "
+        f"{np.median(cbas[:, 2]) * ms:.1f} ms |",
+        f"| `register(P, Q, guess)` | {cbas[:, 1].mean() * 100:.1f}% | {np.median(cbas[:, 3]) * ms:.1f} ms |",
         "",
         f"## Convergence basin ({len(bpairs)} pairs)",
         "",
