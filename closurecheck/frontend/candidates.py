@@ -30,7 +30,13 @@ candidates and scores every one by :func:`rank_score`: the gate statistic
 (relative to the threshold) plus the squared descriptor distance (relative
 to the typical best-match distance); candidates outside the gate get a
 fixed penalty instead of the gate term; candidates scoring above
-``max_score`` are dropped.  In ascending score it keeps at most
+``max_score`` are dropped.  One candidate per keyframe is exempt from the
+descriptor term: its best partner by the gate when the odometry predicts
+the same place (within ``near_distance_m`` and ``near_heading_rad``): in a
+grid of identical columns a place half a metre and 17 degrees away can
+describe worse than a look-alike one pitch away, and the descriptor term
+would otherwise drop the true pair.
+In ascending score it keeps at most
 ``max_per_keyframe``, of which at most ``max_ungated_per_keyframe`` outside
 the gate, skipping any candidate within ``suppress_keyframes``
 chain positions of one already kept: a revisit of a place visited several
@@ -115,6 +121,10 @@ class CandidateOptions:
         (benchmarks/candidates.py: it drops about a third of the proposals
         and no more than 1-2 % of the revisit events); a huge value
         disables it.
+    odometry_revisit_first : each keyframe's best partner by the gate, when
+        the odometry predicts the same place (within ``near_distance_m`` and
+        ``near_heading_rad``), is scored without the descriptor term (module
+        docstring, "Ranking and budget").
     suppress_keyframes : candidates of one keyframe closer than this many
         chain positions to a better one are skipped.
     yaw_hypotheses : yaw hypotheses kept per candidate.
@@ -138,6 +148,7 @@ class CandidateOptions:
     descriptor_weight: float = setting(1.0, at_least=0.0)
     ungated_penalty: float = setting(1.0, at_least=0.0)
     max_score: float = setting(32.0, above=0.0, allow_inf=True)
+    odometry_revisit_first: bool = setting(True)
     suppress_keyframes: int = setting(4, at_least=0)
     yaw_hypotheses: int = setting(3, at_least=1)
     tree: str = setting("kd_tree", choices=("kd_tree", "ball_tree"))
@@ -407,6 +418,22 @@ def rank_score(gate_sq, descriptor_ratio, options: CandidateOptions = CandidateO
     return np.where(gated, gate_sq / options.gate_threshold, options.ungated_penalty) + term
 
 
+def _odometry_revisit_first(score, m2, part, chain: OdometryChain, start: int, options: CandidateOptions):
+    """Drop the descriptor term (in place) of each row's best gated partner where the odometry predicts the same place.
+
+    ``score``, ``m2`` and ``part`` are the (B, L) scores, gate statistics and
+    partner positions of keyframes ``start .. start + B - 1``.
+    """
+    gated = np.isfinite(m2) & (m2 <= options.gate_threshold)
+    rows = np.flatnonzero(gated.any(axis=1))
+    if not len(rows):
+        return
+    col = np.argmin(np.where(gated, m2, np.inf)[rows], axis=1)
+    odo, _ = chain.relative_by_index(start + rows, part[rows, col])
+    sure = (np.hypot(odo[:, 0], odo[:, 1]) <= options.near_distance_m) & (np.abs(odo[:, 2]) <= options.near_heading_rad)
+    score[rows[sure], col[sure]] = m2[rows[sure], col[sure]] / options.gate_threshold
+
+
 def _select(part, score, gated, options: CandidateOptions):
     """Greedy per-keyframe selection.
 
@@ -527,6 +554,8 @@ def propose(t, travel, descriptors: ScanDescriptors, chain: OdometryChain,
         m2[have] = gate_distance_sq(chain, rows[have], part[have], options)
         dd[have] = np.linalg.norm(descriptors.vectors[rows[have]] - descriptors.vectors[part[have]], axis=1)
         score = rank_score(m2, dd / d_ref, options)
+        if options.odometry_revisit_first:
+            _odometry_revisit_first(score, m2, part, chain, start, options)
         chosen[start:stop], chosen_score[start:stop] = _select(part, score, m2 <= options.gate_threshold, options)
     q = np.broadcast_to(np.arange(count)[:, None], chosen.shape)
     keep = chosen >= 0

@@ -320,3 +320,34 @@ def test_tiny_inputs_give_no_candidates():
     desc = cand.describe(np.full((1, 721), np.nan), Sensor(-2.356, 0.00654, 721, 0.05, 20.0))
     c = cand.propose(np.zeros(1), np.zeros(1), desc, chain)
     assert len(c) == 0 and c.yaw.shape == (0, 3)
+
+
+def test_a_revisit_the_odometry_predicts_is_proposed_however_it_describes(loop):
+    # In a grid of identical columns a place half a metre away can describe
+    # worse than a look-alike one pitch away.  Spoil the descriptors of the
+    # second lap: the revisits the odometry predicts must still be proposed.
+    import dataclasses
+
+    log, kf, data = loop
+    opts = CandidateOptions()
+    # Odometry as good as the truth, so that it predicts every revisit.
+    data = dataclasses.replace(data, chain=OdometryChain.from_steps(kf, log.truth[kf], data.chain.steps))
+    odo, _ = data.chain.relative_by_index(np.arange(len(kf))[:, None], np.arange(len(kf))[None, :])
+    near = (np.hypot(odo[..., 0], odo[..., 1]) <= opts.near_distance_m) & (np.abs(odo[..., 2]) <= opts.near_heading_rad)
+    half = len(kf) // 2
+    second = [r for r in range(half + 10, len(kf)) if near[r, :half - 10].any()]
+    assert len(second) >= 10
+    vectors = data.descriptors.vectors.copy()
+    rng = np.random.default_rng(0)
+    vectors[half:] += rng.normal(0, 50 * vectors.std(), vectors[half:].shape)
+    spoiled = dataclasses.replace(data, descriptors=dataclasses.replace(data.descriptors, vectors=vectors))
+
+    def covered(c):
+        a, b = np.searchsorted(kf, c.src), np.searchsorted(kf, c.dst)
+        pairs = set(zip(a.tolist(), b.tolist()))
+        return sum(any((r, q) in pairs for q in np.flatnonzero(near[r, :half - 10])) for r in second)
+
+    with_rule = covered(propose_for(spoiled, opts))
+    without = covered(propose_for(spoiled, CandidateOptions(odometry_revisit_first=False)))
+    assert with_rule >= 0.9 * len(second)
+    assert without < with_rule
