@@ -49,7 +49,7 @@ from ..graph.solver import (
     prune_inconsistent_edges,
 )
 from ..registration.batch import RegisteredClosures
-from .clique import CliqueOptions, max_clique
+from .clique import CliqueOptions, max_clique_of_conflicts
 from .consistency import ConsistencyOptions, odometry_gate, pairwise_consistency
 from .drift import (
     NO_DRIFT,
@@ -81,6 +81,13 @@ class VerifyOptions:
     gate_max_chain_std_m, gate_max_chain_std_rad : the odometry gate is
         applied only where the chain's standard deviation is below these.
     pair_probability : chi-square probability of the PCM pair test.
+    pair_window_m : PCM tests the pairs of closures whose cycle runs
+        through at most this much odometry path on each side (earlier end
+        to earlier end, later end to later end); longer cycles are not
+        tested and count as consistent.  Keeps the number of tested pairs
+        near linear in the number of closures on long logs
+        (``ConsistencyOptions.pair_window_m``); a window longer than the
+        log tests every pair.
     clique_max_expansions : search budget of the exact maximum clique; past
         it the best clique found is used and the report says so.
     min_clique_size : closures are accepted only if the consistent set has
@@ -124,6 +131,7 @@ class VerifyOptions:
     gate_max_chain_std_m: float = setting(1.0, above=0.0)
     gate_max_chain_std_rad: float = setting(0.25, above=0.0)
     pair_probability: float = setting(0.999, above=0.0, below=1.0)
+    pair_window_m: float = setting(300.0, above=0.0)
     clique_max_expansions: int = setting(200_000, at_least=1)
     min_clique_size: int = setting(1, at_least=1)
     use_gnc: bool = setting(True)
@@ -316,8 +324,9 @@ def _consistency_pass(alive0, src, dst, delta, covariance, odom_poses, step_cova
     clique = None
     if len(alive):
         pc = pairwise_consistency(src[alive], dst[alive], delta[alive], covariance[alive], odom_poses, prefix, cons)
-        figures["pair_support"][alive] = np.asarray(pc.adjacency.sum(axis=1)).ravel()
-        clique = max_clique(pc.adjacency, options=CliqueOptions(max_expansions=options.clique_max_expansions))
+        figures["pair_support"][alive] = pc.support
+        clique = max_clique_of_conflicts(pc.conflicts,
+                                         options=CliqueOptions(max_expansions=options.clique_max_expansions))
         out = np.ones(len(alive), dtype=bool)
         out[clique.members] = False
         if clique.size < options.min_clique_size:
@@ -362,6 +371,7 @@ def _core_and_map(plausible, src, dst, delta, covariance, step_covariances, opti
     figures["odometry_informative"] = np.zeros(k, dtype=bool)
     cons = ConsistencyOptions(gate_probability=options.gate_probability,
                               pair_probability=options.pair_probability,
+                              pair_window_m=options.pair_window_m,
                               informative_max_std_m=options.gate_max_chain_std_m,
                               informative_max_std_rad=options.gate_max_chain_std_rad)
 
