@@ -81,13 +81,15 @@ class VerifyOptions:
     gate_max_chain_std_m, gate_max_chain_std_rad : the odometry gate is
         applied only where the chain's standard deviation is below these.
     pair_probability : chi-square probability of the PCM pair test.
-    pair_window_m : PCM tests the pairs of closures whose cycle runs
-        through at most this much odometry path on each side (earlier end
-        to earlier end, later end to later end); longer cycles are not
-        tested and count as consistent.  Keeps the number of tested pairs
-        near linear in the number of closures on long logs
-        (``ConsistencyOptions.pair_window_m``); a window longer than the
-        log tests every pair.
+    pair_window_m : None tests every pair of closures (exact PCM, time
+        quadratic in their number).  A length in metres tests only the pairs
+        whose cycle runs through at most that much odometry path on each
+        side (earlier end to earlier end, later end to later end); longer
+        cycles count as consistent (``ConsistencyOptions.pair_window_m``).
+        The tested pairs then grow about linearly with the closures, but
+        the consistent set can differ from the exact one where long cycles
+        fail (odometry drift beyond its model): docs/performance.md has the
+        measured differences.
     clique_max_expansions : search budget of the exact maximum clique; past
         it the best clique found is used and the report says so.
     min_clique_size : closures are accepted only if the consistent set has
@@ -131,7 +133,7 @@ class VerifyOptions:
     gate_max_chain_std_m: float = setting(1.0, above=0.0)
     gate_max_chain_std_rad: float = setting(0.25, above=0.0)
     pair_probability: float = setting(0.999, above=0.0, below=1.0)
-    pair_window_m: float = setting(300.0, above=0.0)
+    pair_window_m: float | None = setting(None, above=0.0)
     clique_max_expansions: int = setting(200_000, at_least=1)
     min_clique_size: int = setting(1, at_least=1)
     use_gnc: bool = setting(True)

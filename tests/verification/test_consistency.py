@@ -22,9 +22,9 @@ from closurecheck.errors import InputError
 from closurecheck.verification.clique import max_clique
 from closurecheck.verification.consistency import (
     ConsistencyOptions,
+    _pairwise_consistency_dense,
     odometry_gate,
     pair_distances,
-    _pairwise_consistency_dense,
     pairwise_consistency,
 )
 

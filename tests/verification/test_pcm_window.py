@@ -11,10 +11,14 @@ complement of that graph.  These tests hold it against
   consistency graph itself;
 * networkx (reference library): ``max_weight_clique(weight=None)`` of the
   complement of the conflicts gives the clique size;
-* simulated logs of the invented warehouse and yard routes driven several
+* simulated drives of the invented warehouse and yard routes, several
   rounds, with the odometry of the robustness work (heading bias up to
-  30 degrees per 100 m, distance scale error up to 2%): the accepted set
-  must be the exhaustive test's, closure for closure.
+  30 degrees per 100 m, distance scale error up to 3%): the sparse
+  formulation testing every pair must accept the dense reference's set,
+  closure for closure; the windowed one must decide every pair inside its
+  window as the exhaustive test does.  (The windowed one does NOT in
+  general accept the same set: long cycles that fail under drift go
+  untested; docs/performance.md has the measured differences.)
 """
 
 import dataclasses
@@ -38,7 +42,7 @@ from closurecheck.verification.consistency import (
 CLOSURE_SIGMA = np.array([0.02, 0.02, np.deg2rad(0.3)])  # registration noise [m, m, rad] (invented, typical of ICP)
 
 
-def simulated_closures(scenario, laps, bias, scale, seed, outlier_share=0.1, per_keyframe=2):
+def simulated_closures(scenario, laps, bias, scale, seed, outlier_share=0.1, per_keyframe=2, closures=700):
     """Keyframe chain of a simulated drive and loop closures between its visits.
 
     Closures join keyframes of different visits whose true positions are
@@ -64,7 +68,7 @@ def simulated_closures(scenario, laps, bias, scale, seed, outlier_share=0.1, per
             src += [j] * len(pick)
             dst += pick.tolist()
     src, dst = np.array(src), np.array(dst)
-    keep = rng.random(len(src)) < min(1.0, 700 / len(src))
+    keep = rng.random(len(src)) < min(1.0, closures / len(src))
     src, dst = src[keep], dst[keep]
     k = len(src)
     cov = np.tile(np.diag(CLOSURE_SIGMA**2), (k, 1, 1))
@@ -83,25 +87,45 @@ def simulated_closures(scenario, laps, bias, scale, seed, outlier_share=0.1, per
     ("warehouse", 30.0, 0.01, 3),   # stronger heading bias
     ("yard", 10.0, 0.03, 4),
 ])
-@pytest.mark.parametrize("window_m", [150.0, 300.0])
-def test_windowed_test_accepts_what_the_exhaustive_test_accepts(scenario, bias_deg_per_100m, scale, seed, window_m):
-    args = simulated_closures(scenario, 3.2, np.deg2rad(bias_deg_per_100m) / 100.0, scale, seed)
+def test_sparse_formulation_accepts_what_the_dense_reference_accepts(scenario, bias_deg_per_100m, scale, seed):
+    args = simulated_closures(scenario, 3.2, np.deg2rad(bias_deg_per_100m) / 100.0, scale, seed, closures=300)
     k = len(args[0])
-    full = pairwise_consistency(*args, options=ConsistencyOptions(pair_probability=0.999))
-    windowed = pairwise_consistency(*args, options=ConsistencyOptions(pair_probability=0.999, pair_window_m=window_m))
-    assert full.exhaustive and full.pairs_tested == k * (k - 1) // 2
+    options = ConsistencyOptions(pair_probability=0.999)
+    sparse = pairwise_consistency(*args, options=options)
+    assert sparse.exhaustive and sparse.pairs_tested == k * (k - 1) // 2
+    dense = _pairwise_consistency_dense(*args, options=options)
+    budget = CliqueOptions(max_expansions=200_000)
+    reference = max_clique(dense.adjacency, options=budget)
+    ours = max_clique_of_conflicts(sparse.conflicts, options=budget)
+    assert reference.exact
+    assert np.array_equal(ours.members, reference.members)
+    assert (ours.exact, ours.canonical) == (reference.exact, reference.canonical)
+
+
+@pytest.mark.parametrize("window_m", [150.0, 300.0])
+def test_windowed_test_decides_like_the_exhaustive_one_inside_the_window(window_m):
+    # Strong drift: many long cycles fail, which the window leaves untested.
+    args = simulated_closures("warehouse", 3.2, np.deg2rad(17.0) / 100.0, 0.02, seed=2, closures=300)
+    full = pairwise_consistency(*args)
+    windowed = pairwise_consistency(*args, options=ConsistencyOptions(pair_window_m=window_m))
     assert not windowed.exhaustive and windowed.pairs_tested < full.pairs_tested // 2
-    # Within the window the decisions are the exhaustive test's.
-    missing = windowed.conflicts.toarray() & ~full.conflicts.toarray()
-    assert not missing.any()
-    options = CliqueOptions(max_expansions=200_000)
-    dense = _pairwise_consistency_dense(*args, options=ConsistencyOptions(pair_probability=0.999))
-    reference = max_clique(dense.adjacency, options=options)
-    exhaustive = max_clique_of_conflicts(full.conflicts, options=options)
-    fast = max_clique_of_conflicts(windowed.conflicts, options=options)
-    assert reference.exact and exhaustive.exact and fast.exact
-    assert np.array_equal(exhaustive.members, reference.members)
-    assert np.array_equal(fast.members, reference.members)
+    inside = _inside(args, window_m)
+    assert np.array_equal(windowed.conflicts.toarray(), full.conflicts.toarray() & inside)
+    # Fewer conflicts: the windowed clique is a superset-size answer, and no
+    # tested pair inside it conflicts.
+    small = max_clique_of_conflicts(full.conflicts)
+    wide = max_clique_of_conflicts(windowed.conflicts)
+    assert wide.exact and wide.size >= small.size
+    assert not windowed.conflicts.toarray()[np.ix_(wide.members, wide.members)].any()
+
+
+def _inside(args, window):
+    src, dst, _, _, poses, _ = args
+    travel = np.r_[0.0, np.cumsum(np.hypot(*np.diff(poses[:, :2], axis=0).T))]
+    lo, hi = travel[np.minimum(src, dst)], travel[np.maximum(src, dst)]
+    inside = (np.abs(lo[:, None] - lo[None, :]) <= window) & (np.abs(hi[:, None] - hi[None, :]) <= window)
+    np.fill_diagonal(inside, False)
+    return inside
 
 
 def test_sparse_conflicts_are_the_dense_references_failures():
@@ -121,19 +145,16 @@ def test_sparse_conflicts_are_the_dense_references_failures():
 
 def test_window_tests_exactly_the_pairs_within_it():
     args = simulated_closures("yard", 2.2, np.deg2rad(10.0) / 100.0, 0.01, seed=6)
-    src, dst, _, _, poses, _ = args
-    travel = np.r_[0.0, np.cumsum(np.hypot(*np.diff(poses[:, :2], axis=0).T))]
-    lo, hi = travel[np.minimum(src, dst)], travel[np.maximum(src, dst)]
     window = 120.0
-    inside = (np.abs(lo[:, None] - lo[None, :]) <= window) & (np.abs(hi[:, None] - hi[None, :]) <= window)
-    np.fill_diagonal(inside, False)
+    inside = _inside(args, window)
     for block in (100_000, 333):
         res = pairwise_consistency(*args, options=ConsistencyOptions(pair_window_m=window, pairs_per_block=block))
         full = pairwise_consistency(*args)
         assert res.pairs_tested == inside.sum() // 2
         assert np.array_equal(res.conflicts.toarray(), full.conflicts.toarray() & inside)
     # A window longer than the log is the exhaustive test.
-    wide = pairwise_consistency(*args, options=ConsistencyOptions(pair_window_m=travel[-1] + 1.0))
+    length = float(np.sum(np.hypot(*np.diff(args[4][:, :2], axis=0).T)))
+    wide = pairwise_consistency(*args, options=ConsistencyOptions(pair_window_m=length + 1.0))
     assert wide.exhaustive and (wide.conflicts != full.conflicts).nnz == 0
 
 
