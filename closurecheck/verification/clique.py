@@ -776,6 +776,39 @@ def max_clique(adjacency, weights=None, options: CliqueOptions = CliqueOptions()
 
 
 def _peel_conflicts(c):
+    """:func:`_peel` of the complement of the CSR graph ``c`` (same order and core numbers).
+
+    A heap for sparse conflict graphs (O((n + m) log n), but a Python step
+    per conflict), vectorised O(n^2 + m) steps when the conflicts are many
+    (more than 16 per vertex: 1,000 vertices with 440,000 conflicts took
+    1.2 s on the heap, 0.02 s vectorised).
+    """
+    if c.nnz > 16 * c.shape[0]:
+        return _peel_conflicts_dense(c)
+    return _peel_conflicts_heap(c)
+
+
+def _peel_conflicts_dense(c):
+    """:func:`_peel_conflicts` by one argmax over the vertices per step."""
+    n = c.shape[0]
+    left = np.diff(c.indptr).astype(np.int64)
+    removed = -1  # below any live count
+    core = np.zeros(n, dtype=np.int64)
+    order = np.empty(n, dtype=np.intp)
+    k = 0
+    for step in range(n):
+        v = int(np.argmax(left))  # most conflicts left = smallest degree; ties: smallest index
+        k = max(k, n - step - 1 - int(left[v]))
+        core[v] = k
+        order[step] = v
+        left[v] = removed
+        nb = c.indices[c.indptr[v]:c.indptr[v + 1]]
+        live = left[nb] >= 0
+        left[nb[live]] -= 1
+    return core, order
+
+
+def _peel_conflicts_heap(c):
     """:func:`_peel` of the complement of the CSR graph ``c``, in O((n + m) log n).
 
     In the complement the remaining degree of v is ``remaining - 1 -
