@@ -654,12 +654,39 @@ class _PartResult:
     upper: int
 
 
-def _solve_part(a, w, weighted, seed, budget, tie_budget, options):
+def _graph_of_conflicts(c, w, weighted) -> _Graph:
+    """The :class:`_Graph` of the complement of the CSR graph ``c``, never forming the complement.
+
+    Same core numbers, order and bitsets as ``_Graph(complement)``; memory
+    is the n^2 / 8 bytes of the bitsets instead of a dense boolean matrix
+    and a CSR of the (nearly complete) complement.
+    """
+    g = _Graph.__new__(_Graph)
+    n = c.shape[0]
+    g.n = n
+    g.core, peel = _peel_conflicts(c)
+    g.order = peel[::-1].copy()
+    g.pos = np.empty(n, dtype=np.intp)
+    g.pos[g.order] = np.arange(n)
+    g.a = None
+    g.weighted = weighted
+    g.w = w
+    g.wpos = w[g.order].tolist()
+    g.core_pos = g.core[g.order]
+    full = (1 << n) - 1
+    g.nbr = [full ^ _bits(g.pos[c.indices[c.indptr[v]:c.indptr[v + 1]]], n) ^ (1 << int(g.pos[v]))
+             for v in g.order.tolist()]
+    return g
+
+
+def _solve_part(a, w, weighted, seed, budget, tie_budget, options, conflicts=False):
     """Both phases on one complement component (CSR ``a``, local indices).
 
     ``seed`` is a clique (local indices) the answer must not fall below.
+    With ``conflicts`` True, ``a`` is the component's conflict graph (the
+    complement of the graph searched).
     """
-    g = _Graph(a, w, weighted)
+    g = _graph_of_conflicts(a, w, weighted) if conflicts else _Graph(a, w, weighted)
     start = _heuristic(g)
     seed_pos = [int(p) for p in g.pos[seed]]
     seed_w = sum(g.wpos[p] for p in seed_pos)
@@ -898,8 +925,9 @@ def max_clique_of_conflicts(conflicts, weights=None, options: CliqueOptions = Cl
     matter, each component searched exactly), so the result, members and
     flags, is the same as ``max_clique(complement)``; only the components
     of the conflict graph are ever made dense.  Time and memory grow with
-    the vertices and conflicts (and the square of the largest component),
-    not with the square of the vertex count.
+    the vertices and conflicts; a component of the conflict graph with s
+    vertices takes s^2 / 8 bytes of bitsets during its search (not a dense
+    matrix and a CSR of its nearly complete complement).
 
     Parameters
     ----------
@@ -955,10 +983,8 @@ def max_clique_of_conflicts(conflicts, weights=None, options: CliqueOptions = Cl
         part_seed = local[np.intersect1d(seed_orig, idx)]
         comp_local = np.full(len(keep), -1, dtype=np.intp)
         comp_local[comp] = np.arange(len(comp))
-        dense = ~sub[comp][:, comp].toarray()
-        np.fill_diagonal(dense, False)
-        part = _solve_part(scipy.sparse.csr_array(dense), w[idx], weighted, comp_local[part_seed], budget, tie_budget,
-                           options)
+        part = _solve_part(sub[comp][:, comp], w[idx], weighted, comp_local[part_seed], budget, tie_budget,
+                           options, conflicts=True)
         members.extend(idx[part.members].tolist())
         finished &= part.finished
         canonical &= part.canonical
