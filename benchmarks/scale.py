@@ -31,6 +31,19 @@ Writes benchmarks/results/scale.md.  Run from the repository root:
     python benchmarks/scale.py [--sizes 1000 5000 20000] [--jobs 2] [--profile 5000]
 
 The 20,000-scan size takes many minutes; ``--sizes 1000`` is a quick check.
+
+The long log (issue 14, target 3) is behind a flag because it takes many
+minutes: ``--long`` adds the 100,000-scan size (about three hours at 10 Hz,
+the route driven round and round) with the realistic odometry of the
+robustness work (heading bias ``--heading-bias-deg`` per 100 m, default 20
+with ``--long``; distance scale error ``--scale-error``, default 2%).
+``--pair-window M`` runs the verification with ``verify.pair_window_m = M``
+(PCM tests only pairs whose cycle runs through at most M metres of odometry
+on each side; off by default, see docs/performance.md).  ``--only-runs``
+leaves out the registration speed-up and ICP comparisons; ``--results``
+names the output file.  For example:
+
+    python benchmarks/scale.py --sizes 5000 --long --only-runs --results benchmarks/results/scale_long.md
 """
 
 from __future__ import annotations
@@ -54,6 +67,11 @@ TARGET_5K_S = 60.0
 TARGET_RATIO = 1.3
 TARGET_PEAK_MB = 2048.0
 TARGET_SPEEDUP = 1.7
+# Issue 14: 5,000 scans in 20 s; 100,000 scans in 10 min, 4 GB, per scan <= 1.3x that at 5,000.
+TARGET_5K_S_NEXT = 20.0
+TARGET_100K_S = 600.0
+TARGET_100K_PEAK_MB = 4096.0
+LONG_SIZE = 100_000
 
 ICP_MAX_CORRESPONDENCE_M = 0.5
 ICP_MAX_ITERATIONS = 30
@@ -126,6 +144,10 @@ def child_run(args) -> None:
     memory = _MemoryByStage()
     memory.peaks["read"] = _rusage_mb()
     config = RunConfig(jobs=args.jobs)
+    if args.pair_window is not None:
+        import dataclasses
+
+        config = dataclasses.replace(config, verify=dataclasses.replace(config.verify, pair_window_m=args.pair_window))
     runner = make_runner(config.jobs)
     try:
         outcome = run_log(log, config, runner=runner, progress=memory)
@@ -319,12 +341,22 @@ def _wait_for_quiet(limit_s: float) -> float:
     return time.perf_counter() - t0
 
 
-def _make_log(path: Path, scenario: str, seed: int, scans: int) -> float:
-    from closurecheck.io.scanlog import write_scanlog
-    from closurecheck.simulation.simulate import simulate_log
+def _make_log(path: Path, scenario: str, seed: int, scans: int, bias_deg: float | None = None,
+              scale_error: float | None = None) -> float:
+    import dataclasses
 
+    import numpy as np
+
+    from closurecheck.io.scanlog import write_scanlog
+    from closurecheck.simulation.simulate import DEFAULT_OPTIONS, simulate_log
+
+    options = DEFAULT_OPTIONS
+    if bias_deg is not None:
+        options = dataclasses.replace(options, odom_heading_bias_rad_per_m=float(np.deg2rad(bias_deg)) / 100.0)
+    if scale_error is not None:
+        options = dataclasses.replace(options, odom_distance_scale_error=scale_error)
     t0 = time.perf_counter()
-    write_scanlog(path, simulate_log(scenario, seed=seed, scans=scans))
+    write_scanlog(path, simulate_log(scenario, seed=seed, scans=scans, options=options))
     return time.perf_counter() - t0
 
 
@@ -336,7 +368,8 @@ def _fmt(x, nd=1):
     return "n/a" if x is None else f"{x:.{nd}f}"
 
 
-STAGES = ("read", "keyframes", "descriptors", "candidates", "registration", "verification", "score", "write")
+STAGES = ("read", "keyframes", "calibration", "descriptors", "candidates", "registration", "verification", "score",
+          "write")
 
 
 def render(args, runs: dict, speed: dict | None, icp: dict | None, profiles: dict, elapsed: float) -> str:
@@ -350,7 +383,9 @@ def render(args, runs: dict, speed: dict | None, icp: dict | None, profiles: dic
         "",
         f"Machine: {platform.machine()}, {os.cpu_count()} cores shared with other jobs (load averages "
         "1/5/15 min are given beside each measurement), Python {}, numpy {}, scipy {}.  Scenario "
-        f"'{args.scenario}' seed {args.seed}; {args.jobs} worker processes; whole benchmark "
+        f"'{args.scenario}' seed {args.seed}; {args.jobs} worker processes; odometry: "
+        f"{_odometry_text(args)}; PCM window: "
+        f"{'none (every pair)' if args.pair_window is None else f'{args.pair_window:g} m'}; whole benchmark "
         f"{elapsed / 60:.0f} min.".format(platform.python_version(), np.__version__, scipy.__version__),
         "",
         "## End to end per log size",
@@ -403,6 +438,21 @@ def render(args, runs: dict, speed: dict | None, icp: dict | None, profiles: dic
         for s in ("registration", "verification"):
             rs = (b["timings"][s] / b["scans"]) / (a["timings"][s] / a["scans"])
             lines.append(f"| (the same ratio for the {s} stage) | {rs:.2f} | |")
+    if 5000 in runs:
+        t5 = runs[5000]["total"]
+        lines.append(f"| (issue 14) 5,000 scans end to end <= {TARGET_5K_S_NEXT:.0f} s | {t5:.1f} s | "
+                     f"{verdict(t5 <= TARGET_5K_S_NEXT)} |")
+    if LONG_SIZE in runs:
+        r = runs[LONG_SIZE]
+        lines.append(f"| (issue 14) 100,000 scans end to end <= {TARGET_100K_S / 60:.0f} min | {r['total']:.0f} s | "
+                     f"{verdict(r['total'] <= TARGET_100K_S)} |")
+        lines.append(f"| (issue 14) peak memory at 100,000 scans <= {TARGET_100K_PEAK_MB / 1024:.0f} GB | "
+                     f"{_peak(r):.0f} MB | {verdict(_peak(r) <= TARGET_100K_PEAK_MB)} |")
+        if 5000 in runs:
+            a = runs[5000]
+            ratio = (r["total"] / r["scans"]) / (a["total"] / a["scans"])
+            lines.append(f"| (issue 14) time per scan 100,000 / 5,000 <= {TARGET_RATIO} | {ratio:.2f} | "
+                         f"{verdict(ratio <= TARGET_RATIO)} |")
     if 20000 in runs:
         pk = _peak(runs[20000])
         lines.append(f"| peak memory at 20,000 scans <= {TARGET_PEAK_MB / 1024:.0f} GB | {pk:.0f} MB | "
@@ -455,6 +505,13 @@ def render(args, runs: dict, speed: dict | None, icp: dict | None, profiles: dic
     return "\n".join(lines) + "\n"
 
 
+def _odometry_text(args) -> str:
+    bias = "simulator default (2.3 deg / 100 m)" if args.heading_bias_deg is None else \
+        f"heading bias {args.heading_bias_deg:g} deg / 100 m"
+    scale = "scale error 0.2% (default)" if args.scale_error is None else f"scale error {args.scale_error:.1%}"
+    return f"{bias}, {scale}"
+
+
 def _trim_profile(text: str, max_lines: int = 60) -> str:
     body = [ln for ln in text.splitlines() if ln.strip()]
     return "\n".join(body[:max_lines])
@@ -481,6 +538,16 @@ def main(argv=None):
     ap.add_argument("--work", default=None, help="folder for the logs and outputs (kept; logs reused)")
     ap.add_argument("--no-write", action="store_true", help="print only")
     # Children (internal).
+    ap.add_argument("--long", action="store_true",
+                    help=f"add the {LONG_SIZE:,}-scan size with realistic odometry (takes many minutes)")
+    ap.add_argument("--heading-bias-deg", type=float, default=None,
+                    help="odometry heading bias in degrees per 100 m (default: the simulator's; 20 with --long)")
+    ap.add_argument("--scale-error", type=float, default=None,
+                    help="odometry distance scale error (default: the simulator's; 0.02 with --long)")
+    ap.add_argument("--pair-window", type=float, default=None, metavar="M",
+                    help="verify.pair_window_m of the runs (default: every PCM pair)")
+    ap.add_argument("--only-runs", action="store_true", help="end-to-end runs only (no speed-up, ICP)")
+    ap.add_argument("--results", default=None, help="output file (default benchmarks/results/scale.md)")
     ap.add_argument("--child", choices=("run", "speedup", "icp"), help=argparse.SUPPRESS)
     ap.add_argument("--log", help=argparse.SUPPRESS)
     ap.add_argument("--out", help=argparse.SUPPRESS)
@@ -499,12 +566,18 @@ def main(argv=None):
     t_start = time.perf_counter()
     work = Path(args.work) if args.work else Path(tempfile.mkdtemp(prefix="closurecheck-scale-"))
     work.mkdir(parents=True, exist_ok=True)
+    if args.long:
+        args.sizes = list(args.sizes) + [LONG_SIZE]
+        args.heading_bias_deg = 20.0 if args.heading_bias_deg is None else args.heading_bias_deg
+        args.scale_error = 0.02 if args.scale_error is None else args.scale_error
     sizes = sorted(set(args.sizes))
+    odo_tag = "" if args.heading_bias_deg is None and args.scale_error is None else \
+        f"_bias{args.heading_bias_deg}_scale{args.scale_error}"
     logs = {}
     for n in sizes:
-        path = work / f"{args.scenario}_seed{args.seed}_{n}.jsonl.gz"
+        path = work / f"{args.scenario}_seed{args.seed}{odo_tag}_{n}.jsonl.gz"
         if not path.exists():
-            dt = _make_log(path, args.scenario, args.seed, n)
+            dt = _make_log(path, args.scenario, args.seed, n, args.heading_bias_deg, args.scale_error)
             print(f"simulated {n} scans in {dt:.0f} s -> {path}", flush=True)
         logs[n] = path
 
@@ -514,11 +587,22 @@ def main(argv=None):
         argv_c = ["--child", "run", "--log", logs[n], "--jobs", args.jobs, "--out", out]
         if args.no_report:
             argv_c.append("--no-report")
+        if args.pair_window is not None:
+            argv_c += ["--pair-window", args.pair_window]
         runs[n] = _run_child(argv_c)
         r = runs[n]
         print(f"{n} scans: total {r['total']:.1f} s " + ", ".join(f"{k} {v:.1f}" for k, v in r["timings"].items())
               + f"; tree peak {r['tree_peak_mb']:.0f} MB; load {r['load_before']} -> {r['load_after']}", flush=True)
 
+    if args.only_runs:
+        text = render(args, runs, None, None, {}, time.perf_counter() - t_start)
+        print(text)
+        if not args.no_write:
+            out_path = Path(args.results) if args.results else RESULTS
+            out_path.parent.mkdir(parents=True, exist_ok=True)
+            out_path.write_text(text)
+            print(f"wrote {out_path}")
+        return None
     ref_size = args.speedup_size or (5000 if 5000 in logs else sizes[-1])
     if ref_size not in logs:
         raise SystemExit(f"--speedup-size {ref_size} is not among --sizes")
@@ -557,9 +641,10 @@ def main(argv=None):
     text = render(args, runs, speed, icp, profiles, time.perf_counter() - t_start)
     print(text)
     if not args.no_write:
-        RESULTS.parent.mkdir(parents=True, exist_ok=True)
-        RESULTS.write_text(text)
-        print(f"wrote {RESULTS}")
+        out_path = Path(args.results) if args.results else RESULTS
+        out_path.parent.mkdir(parents=True, exist_ok=True)
+        out_path.write_text(text)
+        print(f"wrote {out_path}")
 
 
 if __name__ == "__main__":

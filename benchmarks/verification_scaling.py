@@ -154,7 +154,7 @@ PARTS = {
     "residual pruning": ("closurecheck.verification.verify", "prune_inconsistent_edges"),
     "odometry gate": ("closurecheck.verification.verify", "odometry_gate"),
     "PCM pairs": ("closurecheck.verification.verify", "pairwise_consistency"),
-    "max clique": ("closurecheck.verification.verify", "max_clique"),
+    "max clique": ("closurecheck.verification.verify", "max_clique_of_conflicts"),
 }
 
 

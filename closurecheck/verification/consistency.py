@@ -40,6 +40,7 @@ import scipy.sparse
 import scipy.stats
 
 from ..core import se2
+from ..core.odometry import odometry_travel
 from ..core.options import options, setting
 from ..core.stats import chi2_threshold
 from ..errors import InputError
@@ -79,6 +80,13 @@ class ConsistencyOptions:
     pairs_per_block:
         Pairs evaluated per vectorised block; bounds the working memory
         (roughly 1 kB per pair).
+    pair_window_m:
+        Test only pairs whose two cycle segments (earlier end to earlier
+        end, later end to later end) are each at most this many metres of
+        odometry path long; None tests every pair.  Untested pairs count as
+        consistent.  The number of tested pairs then grows with the number
+        of closures times the closures in a window, not with its square
+        (see :func:`pairwise_consistency`).
     """
 
     gate_probability: float = setting(0.99, above=0.0, below=1.0)
@@ -87,6 +95,7 @@ class ConsistencyOptions:
     informative_max_std_rad: float = setting(0.25, above=0.0)
     pair_shared_odometry: bool = setting(True)
     pairs_per_block: int = setting(100_000, at_least=1)
+    pair_window_m: float | None = setting(None, above=0.0)
 
 
 @dataclass(frozen=True)
@@ -119,12 +128,43 @@ class OdometryGate:
 class PairConsistency:
     """Result of :func:`pairwise_consistency` for K closures.
 
-    adjacency: (K, K) ``scipy.sparse.csr_array`` of bool, symmetric, empty
-        diagonal; True where the two closures pass the pairwise test.
-    distance_sq: (K, K) dense float32 array of the cycle's squared
-        Mahalanobis distance, symmetric (the value computed for i < j is
-        mirrored), zero on the diagonal.  Memory is 4 K^2 bytes (16 MB for
-        K = 2000); the test itself is decided in float64.
+    conflicts: (K, K) ``scipy.sparse.csr_array`` of bool, symmetric, empty
+        diagonal; True where the pair was tested and failed.  Memory grows
+        with the number of failing pairs, never with K^2.
+    support: (K,) int array, the number of other closures each one is
+        consistent with (K - 1 minus its conflicts; untested pairs count as
+        consistent).
+    pairs_tested: number of unordered pairs tested.
+    exhaustive: True when every pair was tested (no window, or a window
+        that held every pair).
+    threshold: chi-square(3) quantile at ``pair_probability``.
+    """
+
+    conflicts: scipy.sparse.csr_array
+    support: np.ndarray
+    pairs_tested: int
+    exhaustive: bool
+    threshold: float
+
+    def adjacency(self) -> scipy.sparse.csr_array:
+        """The consistency graph itself, (K, K) CSR of bool (the complement of ``conflicts``).
+
+        Holds about K^2 entries: for small K (tests, plots); the
+        verification reads ``conflicts``.
+        """
+        k = self.conflicts.shape[0]
+        dense = ~self.conflicts.toarray()
+        np.fill_diagonal(dense, False)
+        return scipy.sparse.csr_array(dense) if k else scipy.sparse.csr_array((0, 0), dtype=bool)
+
+
+@dataclass(frozen=True)
+class _DensePairs:
+    """Result of :func:`_pairwise_consistency_dense`, the exhaustive reference.
+
+    adjacency: (K, K) CSR of bool, True where the pair passes.
+    distance_sq: (K, K) dense float32 squared Mahalanobis distances (value
+        of i < j mirrored), zero on the diagonal.
     threshold: chi-square(3) quantile at ``pair_probability``.
     """
 
@@ -534,10 +574,124 @@ def _upper_pairs(k, start, stop, row_offsets):
     return i.astype(np.intp), j.astype(np.intp)
 
 
-def pairwise_consistency(src, dst, deltas, covariances, poses, prefix, options: ConsistencyOptions = ConsistencyOptions()):
-    """Pairwise (PCM) consistency graph of K loop closures.
+def _window_blocks(lo_m, hi_m, window, block):
+    """Pairs (i, j), i < j, with ``|lo_m[i] - lo_m[j]| <= window`` and ``|hi_m[i] - hi_m[j]| <= window``.
 
-    Arguments as in :func:`odometry_gate`.  Every unordered pair i < j is
+    Yields blocks of about ``block`` candidate pairs.  Closures are sorted by
+    ``lo_m``; each is paired with the ones after it whose ``lo_m`` is within
+    the window (searchsorted), then filtered on ``hi_m``.  The work is the
+    number of closures times the closures within ``window`` of each earlier
+    end, not K^2.
+    """
+    k = len(lo_m)
+    order = np.argsort(lo_m, kind="stable")
+    ls, hs = lo_m[order], hi_m[order]
+    after = np.searchsorted(ls, ls + window, side="right") - np.arange(k) - 1
+    cum = np.zeros(k + 1, dtype=np.int64)
+    np.cumsum(after, out=cum[1:])
+    start = 0
+    while start < k:
+        stop = max(int(np.searchsorted(cum, cum[start] + block, side="right")) - 1, start + 1)
+        n = after[start:stop]
+        p = np.repeat(np.arange(start, stop), n)
+        q = p + 1 + np.arange(len(p)) - np.repeat(cum[start:stop] - cum[start], n)
+        near = np.abs(hs[p] - hs[q]) <= window
+        i, j = order[p[near]], order[q[near]]
+        yield np.minimum(i, j), np.maximum(i, j)
+        start = stop
+
+
+def _all_blocks(k, block):
+    """Every pair (i, j), i < j, in blocks of ``block`` pairs."""
+    rows = np.arange(k, dtype=np.int64)
+    row_offsets = rows * (k - 1) - rows * (rows - 1) // 2  # first flat index of row i
+    total = k * (k - 1) // 2
+    for start in range(0, total, block):
+        yield _upper_pairs(k, start, min(start + block, total), row_offsets)
+
+
+def pairwise_consistency(src, dst, deltas, covariances, poses, prefix, options: ConsistencyOptions = ConsistencyOptions()):
+    """Pairwise (PCM) consistency of K loop closures, as the sparse graph of the pairs that fail.
+
+    Arguments as in :func:`odometry_gate`.  Each tested pair i < j gets
+    :func:`pair_distances` (cycle starting at closure i's src node); it is
+    consistent when the distance is at most the chi-square(3) quantile at
+    ``options.pair_probability``.
+
+    Which pairs are tested: every pair when ``options.pair_window_m`` is
+    None; otherwise the pairs whose cycle segments (between the closures'
+    earlier ends, and between their later ends, closures turned to run from
+    earlier to later node) are each at most ``pair_window_m`` metres of
+    odometry path (path length along ``poses``).  Within the window the
+    distances are the exhaustive test's to the last bit; outside it a pair
+    counts as consistent.
+
+    Memory is the failing pairs plus one block of ``options.pairs_per_block``
+    pairs: no K x K matrix is formed (the exhaustive reference kept 5 K^2
+    bytes, 2 GB at K = 20,000).
+
+    Returns
+    -------
+    PairConsistency
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from closurecheck.core import se2
+    >>> poses = np.column_stack([np.arange(6.0), np.zeros(6), np.zeros(6)])
+    >>> prefix = se2.chain_prefix(poses, np.tile(np.diag([1e-4, 1e-4, 1e-5]), (5, 1, 1)))
+    >>> src, dst = np.array([0, 1, 2]), np.array([4, 5, 5])
+    >>> deltas = se2.between(poses[src], poses[dst])
+    >>> deltas[2, 1] += 1.0  # a closure one metre off
+    >>> cov = np.tile(np.diag([1e-4, 1e-4, 1e-5]), (3, 1, 1))
+    >>> pc = pairwise_consistency(src, dst, deltas, cov, poses, prefix)
+    >>> pc.support.tolist(), pc.pairs_tested, pc.exhaustive
+    ([1, 1, 0], 3, True)
+    """
+    src, dst, deltas, covariances, poses, prefix = _arrays(src, dst, deltas, covariances, poses, prefix)
+    k = len(src)
+    threshold = chi2_threshold(options.pair_probability)
+    block = options.pairs_per_block
+    first, second, tested = [], [], 0
+    exhaustive = True
+    if k >= 2:
+        cols = _columns(_closure_terms(src, dst, deltas, covariances, poses))
+        pc = _prefix_columns(prefix)
+        if options.pair_window_m is None:
+            blocks = _all_blocks(k, block)
+        else:
+            travel = odometry_travel(poses)[0]
+            lo_m, hi_m = travel[cols.src], travel[cols.dst]
+            w = options.pair_window_m
+            # Every pair lies in the window when both spreads fit in it.
+            if np.ptp(lo_m) > w or np.ptp(hi_m) > w:
+                exhaustive = False
+            blocks = _window_blocks(lo_m, hi_m, w, block) if not exhaustive else _all_blocks(k, block)
+        for i, j in blocks:
+            tested += len(i)
+            if not len(i):
+                continue
+            fail = _pair_block(cols, pc, i, j, options.pair_shared_odometry) > threshold
+            first.append(i[fail].astype(np.int32))
+            second.append(j[fail].astype(np.int32))
+    i = np.concatenate(first) if first else np.zeros(0, dtype=np.int32)
+    j = np.concatenate(second) if second else np.zeros(0, dtype=np.int32)
+    conflicts = scipy.sparse.coo_array((np.ones(2 * len(i), dtype=bool), (np.r_[i, j], np.r_[j, i])),
+                                       shape=(k, k)).tocsr()
+    conflicts.sort_indices()
+    degree = np.diff(conflicts.indptr).astype(np.int64)
+    support = np.maximum(k - 1, 0) - degree
+    return PairConsistency(conflicts=conflicts, support=support, pairs_tested=int(tested), exhaustive=exhaustive,
+                           threshold=threshold)
+
+
+def _pairwise_consistency_dense(src, dst, deltas, covariances, poses, prefix,
+                                options: ConsistencyOptions = ConsistencyOptions()):
+    """Exhaustive reference of :func:`pairwise_consistency`: every pair, dense matrices.
+
+    Kept to check the windowed and sparse formulation against (tests,
+    benchmarks/consistency.py); memory is 5 K^2 bytes.  ``pair_window_m``
+    is ignored.  Arguments as in :func:`odometry_gate`.  Every unordered pair i < j is
     tested once with :func:`pair_distances` (cycle starting at closure i's
     src node), in blocks of ``options.pairs_per_block`` pairs.  Two closures
     are consistent when the distance is at most the chi-square(3) quantile at
@@ -545,7 +699,7 @@ def pairwise_consistency(src, dst, deltas, covariances, poses, prefix, options: 
 
     Returns
     -------
-    PairConsistency
+    _DensePairs
     """
     src, dst, deltas, covariances, poses, prefix = _arrays(src, dst, deltas, covariances, poses, prefix)
     k = len(src)
@@ -556,7 +710,7 @@ def pairwise_consistency(src, dst, deltas, covariances, poses, prefix, options: 
     # 144 MB distances, against ~1 GB for float64 plus index arrays).
     dist = np.zeros((k, k), dtype=np.float32)
     if k < 2:
-        return PairConsistency(scipy.sparse.csr_array((k, k), dtype=bool), dist, threshold)
+        return _DensePairs(scipy.sparse.csr_array((k, k), dtype=bool), dist, threshold)
     cols = _columns(_closure_terms(src, dst, deltas, covariances, poses))
     pc = _prefix_columns(prefix)
     rows = np.arange(k, dtype=np.int64)
@@ -573,4 +727,4 @@ def pairwise_consistency(src, dst, deltas, covariances, poses, prefix, options: 
         mask[j[ok], i[ok]] = True
     adjacency = _csr_from_mask(mask)
     del mask
-    return PairConsistency(adjacency=adjacency, distance_sq=dist, threshold=threshold)
+    return _DensePairs(adjacency=adjacency, distance_sq=dist, threshold=threshold)

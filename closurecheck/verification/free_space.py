@@ -257,8 +257,13 @@ def blame(check: FreeSpaceCheck, src, dst, groups, window: int) -> np.ndarray:
         return out
     lo, hi = np.minimum(src, dst), np.maximum(src, dst)
     a, b = check.a[bad], check.b[bad]
-    ends = np.concatenate([a, b])
-    near = (np.abs(lo[:, None] - ends[None, :]) <= window) | (np.abs(hi[:, None] - ends[None, :]) <= window)
-    links = near.any(axis=1)
+    ends = np.sort(np.concatenate([a, b]))
+
+    def near(x):
+        # Some end within [x - window, x + window]: sorted ends and two
+        # searches, O((K + B) log B) instead of a K x B matrix.
+        return np.searchsorted(ends, x + window, side="right") > np.searchsorted(ends, x - window, side="left")
+
+    links = near(lo) | near(hi)
     np.add.at(out, groups[links], 1)
     return out

@@ -35,10 +35,10 @@ two closures against a rival of two, so both sides of the dispute go:
 
 >>> import numpy as np
 >>> from closurecheck.verification.rivals import rival_groups
->>> a = np.zeros((5, 5), dtype=bool)
->>> for i, j in [(0, 1), (0, 2), (1, 2), (3, 4), (0, 3), (0, 4)]:
-...     a[i, j] = a[j, i] = True
->>> check = rival_groups(a, np.array([0, 1, 2]), margin=2.0)
+>>> conflicts = np.zeros((5, 5), dtype=bool)
+>>> for i, j in [(1, 3), (1, 4), (2, 3), (2, 4)]:
+...     conflicts[i, j] = conflicts[j, i] = True
+>>> check = rival_groups(conflicts, np.array([0, 1, 2]), margin=2.0)
 >>> [(d.disputed.tolist(), d.rival.tolist()) for d in check.disputes]
 [([1, 2], [3, 4])]
 >>> check.rejected.tolist()
@@ -52,16 +52,11 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.sparse
 
-from .clique import CliqueOptions, max_clique
+from .clique import CliqueOptions, max_clique_of_conflicts
 
 # A single closure is not a group: one stray look-alike against the one
 # true closure it contradicts would otherwise take that closure with it.
 MIN_RIVAL_SIZE = 2
-
-# Rows of the consistent set compared with the outsiders per block, to
-# bound the dense block of the conflict test (1,024 x K booleans).
-_ROWS_PER_BLOCK = 1024
-
 
 @dataclass(frozen=True)
 class RivalDispute:
@@ -108,28 +103,17 @@ class RivalCheck:
 NO_RIVALS = RivalCheck(disputes=(), rejected=np.zeros(0, dtype=np.intp), exhausted=False)
 
 
-def _conflicts(adjacency, inside: np.ndarray, outside: np.ndarray) -> scipy.sparse.csr_array:
-    """(len(inside), len(outside)) sparse matrix, True where the two closures contradict each other."""
-    blocks = []
-    sub = adjacency[:, outside]
-    for start in range(0, len(inside), _ROWS_PER_BLOCK):
-        rows = inside[start:start + _ROWS_PER_BLOCK]
-        blocks.append(scipy.sparse.csr_array(~sub[rows].toarray().astype(bool)))
-    if not blocks:
-        return scipy.sparse.csr_array((0, len(outside)), dtype=bool)
-    return scipy.sparse.vstack(blocks, format="csr")
-
-
-def rival_groups(adjacency, members, margin: float, max_rounds: int = 64,
+def rival_groups(conflicts, members, margin: float, max_rounds: int = 64,
                  clique_options: CliqueOptions = CliqueOptions()) -> RivalCheck:
     """Test a consistent set against the rival groups outside it (module docstring).
 
     Parameters
     ----------
-    adjacency : (K, K) symmetric boolean matrix or scipy.sparse array
-        Pairwise consistency of K closures (``PairConsistency.adjacency``).
+    conflicts : (K, K) symmetric boolean matrix or scipy.sparse array
+        The pairs of K closures that contradict each other
+        (``PairConsistency.conflicts``); the diagonal is ignored.
     members : (m,) int array
-        The consistent set (a maximum clique of ``adjacency``).
+        The consistent set (a maximum clique of the complement of ``conflicts``).
     margin : float, >= 1
         How many times the size of a rival the disputed part of the set
         must be for the set to stand.
@@ -141,8 +125,8 @@ def rival_groups(adjacency, members, margin: float, max_rounds: int = 64,
     -------
     RivalCheck
     """
-    a = scipy.sparse.csr_array(adjacency, dtype=bool)
-    k = a.shape[0]
+    c = scipy.sparse.csr_array(conflicts, dtype=bool)
+    k = c.shape[0]
     inside = np.zeros(k, dtype=bool)
     inside[np.asarray(members, dtype=np.intp)] = True
     set_idx = np.flatnonzero(inside)
@@ -151,7 +135,9 @@ def rival_groups(adjacency, members, margin: float, max_rounds: int = 64,
     rejected = []
     exhausted = False
     if len(set_idx) and len(others) >= MIN_RIVAL_SIZE and margin > 1.0:
-        conflict = _conflicts(a, set_idx, others)
+        # Sparse: a member of the set and an outsider conflict only where
+        # their cycle test failed.
+        conflict = c[set_idx][:, others]
         standing = np.ones(len(set_idx), dtype=bool)
         left = np.arange(len(others))
         for round_ in range(max_rounds + 1):
@@ -160,7 +146,7 @@ def rival_groups(adjacency, members, margin: float, max_rounds: int = 64,
             if round_ == max_rounds:
                 exhausted = True
                 break
-            best = max_clique(a[others[left]][:, others[left]], options=clique_options)
+            best = max_clique_of_conflicts(c[others[left]][:, others[left]], options=clique_options)
             if best.size < MIN_RIVAL_SIZE:
                 break
             rival = left[best.members]

@@ -49,7 +49,7 @@ from ..graph.solver import (
     prune_inconsistent_edges,
 )
 from ..registration.batch import RegisteredClosures
-from .clique import CliqueOptions, max_clique
+from .clique import CliqueOptions, max_clique_of_conflicts
 from .consistency import ConsistencyOptions, odometry_gate, pairwise_consistency
 from .rivals import NO_RIVALS, RivalCheck, rival_groups
 from .drift import (
@@ -82,6 +82,15 @@ class VerifyOptions:
     gate_max_chain_std_m, gate_max_chain_std_rad : the odometry gate is
         applied only where the chain's standard deviation is below these.
     pair_probability : chi-square probability of the PCM pair test.
+    pair_window_m : None tests every pair of closures (exact PCM, time
+        quadratic in their number).  A length in metres tests only the pairs
+        whose cycle runs through at most that much odometry path on each
+        side (earlier end to earlier end, later end to later end); longer
+        cycles count as consistent (``ConsistencyOptions.pair_window_m``).
+        The tested pairs then grow about linearly with the closures, but
+        the consistent set can differ from the exact one where long cycles
+        fail (odometry drift beyond its model): docs/performance.md has the
+        measured differences.
     clique_max_expansions : search budget of the exact maximum clique; past
         it the best clique found is used and the report says so.
     rival_margin : the consistent set stands against a rival group (a
@@ -130,6 +139,7 @@ class VerifyOptions:
     gate_max_chain_std_m: float = setting(1.0, above=0.0)
     gate_max_chain_std_rad: float = setting(0.25, above=0.0)
     pair_probability: float = setting(0.999, above=0.0, below=1.0)
+    pair_window_m: float | None = setting(None, above=0.0)
     clique_max_expansions: int = setting(200_000, at_least=1)
     min_clique_size: int = setting(1, at_least=1)
     rival_margin: float = setting(2.0, at_least=1.0)
@@ -328,15 +338,16 @@ def _consistency_pass(alive0, src, dst, delta, covariance, odom_poses, step_cova
     rivals = NO_RIVALS
     if len(alive):
         pc = pairwise_consistency(src[alive], dst[alive], delta[alive], covariance[alive], odom_poses, prefix, cons)
-        figures["pair_support"][alive] = np.asarray(pc.adjacency.sum(axis=1)).ravel()
-        clique = max_clique(pc.adjacency, options=CliqueOptions(max_expansions=options.clique_max_expansions))
+        figures["pair_support"][alive] = pc.support
+        clique = max_clique_of_conflicts(pc.conflicts,
+                                         options=CliqueOptions(max_expansions=options.clique_max_expansions))
         out = np.ones(len(alive), dtype=bool)
         out[clique.members] = False
         if clique.size < options.min_clique_size:
             out[:] = True
         reason[alive[out]] = Reason.PAIR_INCONSISTENT
         if not out.all():
-            rivals = rival_groups(pc.adjacency, clique.members, options.rival_margin,
+            rivals = rival_groups(pc.conflicts, clique.members, options.rival_margin,
                                   clique_options=CliqueOptions(max_expansions=options.clique_max_expansions))
             rivals = rivals.relabelled(alive)
             reason[rivals.rejected] = Reason.RIVAL_GROUP
@@ -380,6 +391,7 @@ def _core_and_map(plausible, src, dst, delta, covariance, step_covariances, opti
     figures["odometry_informative"] = np.zeros(k, dtype=bool)
     cons = ConsistencyOptions(gate_probability=options.gate_probability,
                               pair_probability=options.pair_probability,
+                              pair_window_m=options.pair_window_m,
                               informative_max_std_m=options.gate_max_chain_std_m,
                               informative_max_std_rad=options.gate_max_chain_std_rad)
 

@@ -22,6 +22,7 @@ from closurecheck.errors import InputError
 from closurecheck.verification.clique import max_clique
 from closurecheck.verification.consistency import (
     ConsistencyOptions,
+    _pairwise_consistency_dense,
     odometry_gate,
     pair_distances,
     pairwise_consistency,
@@ -266,9 +267,10 @@ def test_reversing_a_closure_changes_distances_only_at_second_order():
 def test_cycle_is_identity_for_exact_closures_on_noise_free_chain():
     rng = np.random.default_rng(31)
     scene = Scene(rng, 40, [(0, 30), (35, 5), (12, 27), (20, 8), (3, 39)], odometry_noise=False, closure_noise=False)
-    res = pairwise_consistency(*scene.args())
+    res = _pairwise_consistency_dense(*scene.args())
     assert np.max(res.distance_sq) < 1e-18
     assert res.adjacency.nnz == 5 * 4
+    assert pairwise_consistency(*scene.args()).conflicts.nnz == 0
     gate = odometry_gate(*scene.args())
     assert np.max(gate.distance_sq) < 1e-18
     assert gate.passed.all()
@@ -349,10 +351,10 @@ def test_wrong_closure_is_inconsistent_with_correct_ones(offset):
     bad = 4
     scene.deltas[bad] = se2.compose(scene.deltas[bad], np.array(offset))
     res = pairwise_consistency(*scene.args())
-    adj = res.adjacency.toarray()
+    adj = res.adjacency().toarray()
     assert not adj[bad].any()
     good = np.arange(len(closures)) != bad
-    clique = max_clique(res.adjacency)
+    clique = max_clique(res.adjacency())
     assert clique.exact
     assert bad not in clique.members
     assert len(clique.members) >= good.sum() - 1
@@ -372,8 +374,8 @@ def test_graph_is_symmetric_thresholded_and_block_size_independent():
     wrong = rng.choice(len(pairs), 8, replace=False)
     scene.deltas[wrong] += rng.normal(0.0, [1.0, 1.0, 0.3], size=(8, 3))
     scene.deltas[:, 2] = se2.wrap(scene.deltas[:, 2])
-    res = pairwise_consistency(*scene.args())
-    small = pairwise_consistency(*scene.args(), options=ConsistencyOptions(pairs_per_block=7))
+    res = _pairwise_consistency_dense(*scene.args())
+    small = _pairwise_consistency_dense(*scene.args(), options=ConsistencyOptions(pairs_per_block=7))
     k = len(pairs)
     dense = res.adjacency.toarray()
     assert res.adjacency.shape == (k, k)
@@ -406,9 +408,12 @@ def test_empty_and_single_closure_sets():
     rng = np.random.default_rng(81)
     scene = Scene(rng, 10, [(1, 5)])
     res = pairwise_consistency(*scene.args())
-    assert res.adjacency.shape == (1, 1) and res.adjacency.nnz == 0
+    assert res.conflicts.shape == (1, 1) and res.conflicts.nnz == 0 and res.support.tolist() == [0]
     empty = pairwise_consistency(np.zeros(0, int), np.zeros(0, int), np.zeros((0, 3)), np.zeros((0, 3, 3)), scene.poses, scene.prefix)
-    assert empty.distance_sq.shape == (0, 0)
+    assert empty.conflicts.shape == (0, 0) and empty.pairs_tested == 0
+    dense_empty = _pairwise_consistency_dense(np.zeros(0, int), np.zeros(0, int), np.zeros((0, 3)), np.zeros((0, 3, 3)),
+                                              scene.poses, scene.prefix)
+    assert dense_empty.distance_sq.shape == (0, 0)
     assert odometry_gate(np.zeros(0, int), np.zeros(0, int), np.zeros((0, 3)), np.zeros((0, 3, 3)), scene.poses, scene.prefix).passed.shape == (0,)
 
 
