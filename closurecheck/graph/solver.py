@@ -272,28 +272,46 @@ class _Layout:
 
     def __init__(self, n_nodes, src, dst, free):
         var = np.full(n_nodes, -1, dtype=np.int64)
-        var[free] = np.arange(np.count_nonzero(free))
+        n_free = int(np.count_nonzero(free))
+        var[free] = np.arange(n_free)
         self.free = free
-        self.size = POSE_DOF * int(np.count_nonzero(free))
+        self.size = POSE_DOF * n_free
         vi, vj = var[src], var[dst]
         k = np.arange(POSE_DOF)
-        # Blocks per edge in the order (ii, ij, ji, jj).
+        # Blocks per edge in the order (ii, ij, ji, jj).  The pattern is found
+        # on 3x3 node blocks, a ninth of the keys to sort (0.4-0.5 s instead
+        # of 2.0-3.9 s at 100,000 nodes and 200,000 edges; 15 instead of
+        # 37-64 ms at 5,000; measured), and expanded: every block is dense,
+        # so scalar column 3j+b holds rows 3i+a of each block row i of block
+        # column j, in order, exactly as sorting the scalar entries would.
         brow = np.stack([vi, vi, vj, vj], axis=1)
         bcol = np.stack([vi, vj, vi, vj], axis=1)
-        rows = POSE_DOF * brow[:, :, None, None] + k[None, None, :, None]
-        cols = POSE_DOF * bcol[:, :, None, None] + k[None, None, None, :]
-        rows, cols = np.broadcast_arrays(rows, cols)
-        valid = np.broadcast_to(((brow >= 0) & (bcol >= 0))[:, :, None, None], rows.shape)
-        self.block_valid = valid.reshape(-1)
-        m = max(self.size, 1)
-        keys = cols.reshape(-1)[self.block_valid] * m + rows.reshape(-1)[self.block_valid]
-        uniq, self.slot = np.unique(keys, return_inverse=True)
-        self.indices = (uniq % m).astype(np.int32)
-        col_of = uniq // m
-        self.indptr = np.zeros(self.size + 1, dtype=np.int32)
-        np.cumsum(np.bincount(col_of, minlength=self.size), out=self.indptr[1:])
-        self.nnz = len(uniq)
+        valid = (brow >= 0) & (bcol >= 0)
+        self.block_valid = np.broadcast_to(valid[:, :, None, None], valid.shape + (POSE_DOF, POSE_DOF)).reshape(-1)
+        mb = max(n_free, 1)
+        ublocks, bslot = np.unique(bcol[valid] * mb + brow[valid], return_inverse=True)
+        ub_row, ub_col = ublocks % mb, ublocks // mb
+        per_col = np.bincount(ub_col, minlength=n_free)  # block rows in each block column
+        block_ptr = np.zeros(n_free + 1, dtype=np.int64)
+        np.cumsum(per_col, out=block_ptr[1:])
+        rank = np.arange(len(ublocks)) - block_ptr[ub_col]
+        # Position of entry (a, b) of unique block u in CSC data: the columns
+        # before 3j hold 9 * block_ptr[j] entries, column 3j+b starts 3 * b *
+        # per_col[j] later, and block u's rows come after 3 * rank[u] others.
+        base = POSE_DOF * POSE_DOF * block_ptr[ub_col] + POSE_DOF * rank
+        stride = POSE_DOF * per_col[ub_col]
+        pos = base[:, None, None] + k[None, :, None] + k[None, None, :] * stride[:, None, None]  # (U, a, b)
+        self.nnz = POSE_DOF * POSE_DOF * len(ublocks)
+        self.slot = pos[bslot].reshape(-1)
+        self.indices = np.empty(self.nnz, dtype=np.int32)
+        self.indices[pos.reshape(-1)] = np.broadcast_to(POSE_DOF * ub_row[:, None, None] + k[None, :, None],
+                                                        pos.shape).reshape(-1)
+        self.indptr = np.empty(self.size + 1, dtype=np.int32)
+        self.indptr[:-1] = (POSE_DOF * POSE_DOF * block_ptr[:-1, None]
+                            + POSE_DOF * k[None, :] * per_col[:, None]).reshape(-1)
+        self.indptr[-1] = self.nnz
         self.orderings = {}  # permc_spec -> (order, source slots, indices, indptr), filled by _splu_solve
+        col_of = np.repeat(np.arange(self.size), np.diff(self.indptr))
         self.diag_slots = np.flatnonzero(self.indices == col_of)
         # Gradient scatter: (E, 2, 3) entries for nodes (src, dst).
         grow = POSE_DOF * np.stack([vi, vj], axis=1)[:, :, None] + k[None, None, :]
