@@ -14,7 +14,7 @@ import scipy.sparse as sp
 from scipy.optimize import least_squares
 
 from closurecheck.core import se2
-from closurecheck.graph.solver import _Layout, normal_matrix, optimize_graph
+from closurecheck.graph.solver import SolverOptions, _Layout, normal_matrix, optimize_graph
 
 
 def random_edges(rng, n_nodes, n_edges):
@@ -134,3 +134,55 @@ def test_same_optimum_as_scipy_least_squares_on_a_graph_with_many_loops():
     d = sol.poses - ref_poses
     d[:, 2] = se2.wrap(d[:, 2])
     assert np.abs(d).max() < 1e-6
+
+
+def _loop_graph(seed=8, n=60):
+    rng = np.random.default_rng(seed)
+    heading = np.cumsum(rng.normal(0.0, 0.4, n))
+    xy = np.cumsum(0.5 * np.c_[np.cos(heading), np.sin(heading)], axis=0)
+    truth = np.c_[xy, se2.wrap(heading)]
+    near = np.argwhere(np.linalg.norm(xy[:, None] - xy[None], axis=2) < 3.0)
+    near = near[near[:, 1] - near[:, 0] >= 4][::4]
+    src = np.concatenate([np.arange(n - 1), near[:, 0]])
+    dst = np.concatenate([np.arange(1, n), near[:, 1]])
+    sigma = np.array([0.05, 0.05, 0.02])
+    delta = se2.between(truth[src], truth[dst]) + rng.normal(size=(len(src), 3)) * sigma
+    delta[:, 2] = se2.wrap(delta[:, 2])
+    info = np.broadcast_to(np.diag(1.0 / sigma**2), (len(src), 3, 3)).copy()
+    steps, _ = se2.chain(delta[: n - 1])
+    return se2.compose(truth[0], steps), src, dst, delta, info
+
+
+def test_preconditioned_cg_reuses_the_old_factor_and_solves_the_new_matrix():
+    # Reference: scipy.sparse.linalg.spsolve on each matrix.  After two factorisations the third solve runs
+    # conjugate gradients preconditioned by the second factor (no new factorisation); when CG may not take
+    # enough iterations it factorises afresh.  Either way the answer is the new matrix's.
+    import scipy.sparse.linalg as spla
+
+    from closurecheck.graph.solver import _Graph, _LinearSolver, _validate
+
+    initial, src, dst, delta, info = _loop_graph()
+    graph = _Graph(*_validate(initial, src, dst, delta, info, None))
+    layout = graph.layout(np.ones(len(src), dtype=bool))
+    e, _ = graph.errors(initial)
+    rng = np.random.default_rng(2)
+    for max_its, factorisations in ((50, 2), (1, 3)):
+        solve = _LinearSolver(layout, SolverOptions(linear_solver="splu_pcg", pcg_max_iterations=max_its))
+        for k in range(3):
+            weights = 1.0 + (0.05 if k < 2 else 0.5) * rng.uniform(-1.0, 1.0, len(src))
+            data, grad = graph.linearise(initial, e, weights, layout)
+            x = solve(data, -grad)
+            expected = spla.spsolve(layout.csc(data), -grad)
+            np.testing.assert_allclose(x, expected, rtol=1e-8, atol=1e-10 * np.abs(expected).max())
+        assert solve.factorisations == factorisations
+
+
+def test_splu_pcg_reaches_the_same_optimum_as_the_direct_solver():
+    initial, src, dst, delta, info = _loop_graph(seed=9)
+    a = optimize_graph(initial, src, dst, delta, info)
+    b = optimize_graph(initial, src, dst, delta, info, options=SolverOptions(linear_solver="splu_pcg"))
+    assert a.converged and b.converged
+    np.testing.assert_allclose(b.cost, a.cost, rtol=1e-10)
+    d = a.poses - b.poses
+    d[:, 2] = se2.wrap(d[:, 2])
+    assert np.abs(d).max() < 1e-8
