@@ -139,6 +139,8 @@ def solver_table(args, truth, initial, src, dst, delta, info, robust):
     """Our LM variants and scipy's least_squares on the clean graph."""
     variants = [
         ("ours: LM, splu MMD_AT_PLUS_A (default)", SolverOptions(), None),
+        ("ours: LM, splu + CG preconditioned by the previous factor (splu_pcg)",
+         SolverOptions(linear_solver="splu_pcg"), None),
         ("ours: LM, splu COLAMD", SolverOptions(permc_spec="COLAMD"), None),
         ("ours: LM, spsolve COLAMD", SolverOptions(linear_solver="spsolve", permc_spec="COLAMD"), None),
         ("ours: LM + Cauchy IRLS on loops (scale 1)", SolverOptions(), Kernel("cauchy", 1.0)),
@@ -212,8 +214,11 @@ def large_table(args):
     t0 = time.perf_counter()
     truth, initial, src, dst, delta, info, robust = wandering_graph(n, e)
     built_s = time.perf_counter() - t0
-    fns = [lambda: optimize_graph(initial, src, dst, delta, info, robust)]
-    labels = ["ours: LM, splu MMD_AT_PLUS_A (default)"]
+    fns = [lambda: optimize_graph(initial, src, dst, delta, info, robust),
+           lambda: optimize_graph(initial, src, dst, delta, info, robust,
+                                  options=SolverOptions(linear_solver="splu_pcg"))]
+    labels = ["ours: LM, splu MMD_AT_PLUS_A (default)",
+              "ours: LM, splu + CG preconditioned by the previous factor (splu_pcg)"]
     reference = not (args.skip_reference or args.large_skip_reference)
     if reference:
         fns.append(lambda: scipy_reference(initial, src, dst, delta, info))
