@@ -22,8 +22,10 @@ from closurecheck.reporting.scoring import registered_correctly
 from closurecheck.simulation.floorplans import HALL_PITCH_M
 from closurecheck.simulation.simulate import SimOptions
 
+SAME_HEADING_RAD = math.radians(3.0)
 
-def period_shifted(truth, src, dst, delta, pitch=HALL_PITCH_M, tol_m=0.5, tol_rad=math.radians(3.0)):
+
+def period_shifted(truth, src, dst, delta, pitch=HALL_PITCH_M, tol_m=0.5, tol_rad=SAME_HEADING_RAD):
     """(C,) bool: the closure puts ``dst`` a nonzero whole number of pitches (in x and y) from its true place."""
     implied = se2.compose(truth[src], delta)
     off = implied[:, :2] - truth[dst, :2]
