@@ -369,6 +369,8 @@ def main(argv=None) -> int:
                           f"{_f(row['ate_perfect_m'])}), {row['trust']}, pairs alone "
                           f"{_pairs_text(row['true_pairs_alone'])}, {row['run_s']:.0f} s", file=sys.stderr, flush=True)
     command = "python benchmarks/robustness.py " + " ".join(argv if argv is not None else sys.argv[1:])
+    if args.report_only:
+        command += f" (the rows of {jsonl.name}, from the runs that wrote them)"
     order = {k: n for n, k in enumerate(SCENES)}
     rows.sort(key=lambda r: (order[r["scene"]], r["level"], r["seed"], list(HEADERS).index(r["header"])))
     text = markdown(rows, command.strip())
