@@ -47,6 +47,7 @@ from __future__ import annotations
 import argparse
 import json
 import math
+import re
 import sys
 import time
 from collections import Counter
@@ -287,7 +288,8 @@ def markdown(rows, command) -> str:
             f"{_f(r['measured_bias_deg_per_100m'], '{:.1f}')} | {_f(r['odometry_scale'], '{:.2f}')} | "
             f"{_pairs_text(r['true_pairs_alone'])} | {'yes' if r['meets_targets'] else 'no: ' + ', '.join(misses)} | "
             f"{r['run_s']:.0f} |")
-    doubts = Counter(reason.split(":")[0].split(" (")[0] for r in rows for reason in r["trust_reasons"])
+    # one line per kind of reason: the figures in it (drift, counts) vary from run to run
+    doubts = Counter(re.sub(r"-?\d+(\.\d+)?", "N", reason.split(" (")[0]) for r in rows for reason in r["trust_reasons"])
     if doubts:
         lines += ["", "## Reasons for doubt (how many runs gave each)", ""]
         lines += [f"- {n}: {reason}" for reason, n in doubts.most_common()]
