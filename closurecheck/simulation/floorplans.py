@@ -9,7 +9,9 @@ frame, x east, y north.
 The plans are built to exercise loop-closure verification: each has places
 that look alike (identical aisles, identical side rooms, identical container
 blocks), a few features that tell them apart, and a route that revisits
-places in both directions.
+places in both directions.  Two plans go further: in ``hall`` nothing tells
+the places apart (a regular grid of identical columns, the walls out of
+range), and in ``lot`` a few small objects are all there is to see.
 """
 
 from __future__ import annotations
@@ -372,4 +374,68 @@ def yard() -> FloorPlan:
     return _plan("yard", _summary(yard), segs, circles, route, movers, 30.0)
 
 
-FLOORPLANS = {"warehouse": warehouse, "ring": ring, "yard": yard}
+# --------------------------------------------------------------------------- hall and lot
+
+
+def _loop_both_ways(x0, y0, x1, y1, step) -> list:
+    """Route round the rectangle (x0, y0)-(x1, y1): twice anticlockwise, then twice clockwise.
+
+    Each change of direction is a small clockwise loop of side ``step``
+    south-west of the corner (x0, y0), where the route starts facing east.
+    """
+    ccw = [(x0, y0), (x1, y0), (x1, y1), (x0, y1)]
+    cw = [(x0, y0), (x0, y1), (x1, y1), (x1, y0)]
+    turn_to_cw = [(x0, y0), (x0, y0 - step), (x0 - step, y0 - step), (x0 - step, y0)]
+    turn_to_ccw = [(x0, y0), (x0 - step, y0), (x0 - step, y0 + step), (x0, y0 + step)]
+    return ccw + ccw + turn_to_cw + cw + cw + turn_to_ccw
+
+
+HALL_PITCH_M = 6.0
+
+
+def hall() -> FloorPlan:
+    """An empty exhibition hall: a regular grid of identical round columns, 6 m apart both ways.
+
+    The hall is 102 m x 78 m and the route keeps 27 m or more from its
+    walls, beyond the sensor's 20 m: within range there are only the columns
+    (0.5 m across), and every place looks like every other one a whole
+    number of column pitches away, and like itself turned by 90 degrees.
+    The route drives the lanes between the columns round a 30 m x 18 m block,
+    twice each way.
+    """
+    segs = _rect(0.0, 0.0, 102.0, 78.0)
+    circles = [(HALL_PITCH_M * i, HALL_PITCH_M * j, 0.25) for i in range(1, 17) for j in range(1, 13)]
+    half = HALL_PITCH_M / 2
+    route = _loop_both_ways(39.0, 33.0, 69.0, 51.0, HALL_PITCH_M)
+    movers = [
+        Mover("visitor walking down a lane", "person", np.array([(57.0 + half, 20.0), (57.0 + half, 60.0)]), 1.1),
+    ]
+    return _plan("hall", _summary(hall), segs, circles, route, movers, 20.0)
+
+
+def lot() -> FloorPlan:
+    """An open car park: a few lamp posts, two containers, a kiosk and bollards, the fence mostly out of range.
+
+    The lot is 110 m x 75 m; the route goes round a 36 m x 24 m loop in its
+    middle, twice each way, 19 m or more from the fence.  Most of the time
+    a handful of small objects, irregularly placed, is all the 20 m sensor
+    sees; the containers (one square to the lanes, one at an angle) and the
+    kiosk are the only large shapes.
+    """
+    segs = _rect(0.0, 0.0, 110.0, 75.0)
+    segs += _rect(50.0, 35.8, 56.1, 38.2)                       # container inside the loop
+    segs += _rotated_rect(81.0, 40.0, 6.1, 2.44, math.radians(20.0))  # container east of the loop, at an angle
+    segs += _rect(42.0, 14.0, 45.0, 16.5)                       # kiosk south of the loop
+    lamps = [(44.0, 29.0), (62.0, 45.0), (76.0, 21.0), (30.0, 40.0), (58.0, 55.0), (40.0, 55.0),
+             (66.0, 31.0), (24.0, 22.0), (51.0, 20.0), (79.0, 53.0)]
+    circles = [(x, y, 0.15) for x, y in lamps] + [(47.0, 18.0, 0.1), (48.5, 18.0, 0.1), (87.0, 30.0, 0.1)]
+    route = _loop_both_ways(35.0, 25.0, 71.0, 49.0, 6.0)
+    movers = [
+        Mover("person walking to the kiosk", "person", np.array([(60.0, 60.0), (46.0, 19.5)]), 1.2),
+        Mover("van crossing the lot", "cart", np.array([(90.0, 10.0), (90.0, 65.0)]), 3.0,
+              length_m=5.0, width_m=2.0),
+    ]
+    return _plan("lot", _summary(lot), segs, circles, route, movers, 20.0)
+
+
+FLOORPLANS = {"warehouse": warehouse, "ring": ring, "yard": yard, "hall": hall, "lot": lot}

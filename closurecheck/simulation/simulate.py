@@ -13,13 +13,21 @@ size is recorded in the header under ``"odometry_noise"`` (positional std
 per axis ``a * sqrt(distance)``, heading std
 ``sqrt(b**2 * distance + c**2 * |rotation|)``) plus systematic errors that
 the header does not describe (a heading bias per metre as from unequal wheel
-diameters, and a small distance scale error), which is what makes the drift
-grow to metres over a few hundred metres.  Odometry starts at ``[0, 0, 0]``;
-``truth`` is in the floor plan's frame.
+diameters, a distance scale error, a turn scale error as from a wrong
+wheelbase), which is what makes the drift grow to metres over a few hundred
+metres, and optionally rare slips (a sudden jump in one step).  These are the
+two kinds of systematic error of differential-drive odometry that Borenstein
+and Feng measure with their square-path test (UMBmark, IEEE Trans. Robotics
+and Automation 12(6), 1996): unequal wheel diameters (a heading bias per
+metre, their "Type B") and an uncertain wheelbase (a turn scale error, their
+"Type A").  The header can also be left out or made to understate the random
+walk (``odom_header_factor``), as users' logs often do.  Odometry starts at
+``[0, 0, 0]``; ``truth`` is in the floor plan's frame.
 
 Every random draw is made in fixed-size blocks of scans from streams split
 off one seed, so a log cut at N scans is exactly the first N scans of a
-longer log with the same seed.
+longer log with the same seed.  Slips draw from a stream of their own, so
+logs without slips are the same as before slips existed.
 """
 
 from __future__ import annotations
@@ -49,6 +57,19 @@ class SimOptions:
     turns, turn rate at most ``max_turn_rate_rad_s``, steering towards a
     point ``lookahead_m`` ahead on the route; the controller runs
     ``control_steps_per_scan`` times per scan period.
+
+    Odometry: random walk ``odom_translation_m_per_sqrt_m``,
+    ``odom_heading_rad_per_sqrt_m``, ``odom_heading_rad_per_sqrt_rad``
+    (the module docstring); systematic errors: a heading bias
+    ``odom_heading_bias_rad_per_m`` per metre driven, the distance driven
+    read ``1 + odom_distance_scale_error`` times too long, each rotation
+    read ``1 + odom_turn_scale_error`` times too large.  Slips happen at
+    ``odom_slip_rate_per_m`` per metre driven; a slip adds to one step a
+    jump of uniform direction and length up to ``odom_slip_max_m`` and a
+    heading jump uniform in ``±odom_slip_max_rad``.  The header states the
+    random walk's coefficients divided by ``odom_header_factor`` (1: the
+    truth; 3: understated three times); ``None`` writes no
+    ``odometry_noise`` header at all.
     """
 
     beams: int = 721
@@ -73,6 +94,11 @@ class SimOptions:
     odom_heading_rad_per_sqrt_rad: float = 0.005
     odom_heading_bias_rad_per_m: float = 0.0004
     odom_distance_scale_error: float = 0.002
+    odom_turn_scale_error: float = 0.0
+    odom_slip_rate_per_m: float = 0.0
+    odom_slip_max_m: float = 0.3
+    odom_slip_max_rad: float = math.radians(5.0)
+    odom_header_factor: float | None = 1.0
     scans_per_block: int = 256
 
     def sensor(self, plan: FloorPlan) -> Sensor:
@@ -82,11 +108,36 @@ class SimOptions:
         return Sensor(first_angle=-fov / 2, angle_step=fov / (self.beams - 1), beams=int(self.beams),
                       min_range=float(self.min_range_m), max_range=float(max_range))
 
-    def odometry_noise_header(self) -> dict:
-        """The random-walk part of the odometry noise, as written to the log header."""
-        return {"translation_m_per_sqrt_m": self.odom_translation_m_per_sqrt_m,
-                "heading_rad_per_sqrt_m": self.odom_heading_rad_per_sqrt_m,
-                "heading_rad_per_sqrt_rad": self.odom_heading_rad_per_sqrt_rad}
+    def odometry_noise_header(self) -> dict | None:
+        """The random-walk part of the odometry noise as written to the log header (None: no header).
+
+        Divided by ``odom_header_factor``: a factor of 1 states the truth.
+        """
+        if self.odom_header_factor is None:
+            return None
+        f = float(self.odom_header_factor)
+        # Dividing by exactly 1.0 keeps the default header's numbers bit for bit.
+        return {"translation_m_per_sqrt_m": self.odom_translation_m_per_sqrt_m / f,
+                "heading_rad_per_sqrt_m": self.odom_heading_rad_per_sqrt_m / f,
+                "heading_rad_per_sqrt_rad": self.odom_heading_rad_per_sqrt_rad / f}
+
+    def odometry_errors_note(self) -> str:
+        """What the header does not say about the odometry, in words ("" for the default settings)."""
+        keys = ("odom_heading_bias_rad_per_m", "odom_distance_scale_error", "odom_turn_scale_error",
+                "odom_slip_rate_per_m", "odom_slip_max_m", "odom_slip_max_rad", "odom_header_factor")
+        if all(getattr(self, k) == getattr(DEFAULT_OPTIONS, k) for k in keys):
+            return ""
+        text = (f"odometry systematic errors: heading bias {math.degrees(self.odom_heading_bias_rad_per_m) * 100:g} "
+                f"deg/100 m, distance scale error {self.odom_distance_scale_error:+g}, turn scale error "
+                f"{self.odom_turn_scale_error:+g}")
+        if self.odom_slip_rate_per_m > 0:
+            text += (f", slips {self.odom_slip_rate_per_m * 1000:g} per km of up to {self.odom_slip_max_m:g} m and "
+                     f"{math.degrees(self.odom_slip_max_rad):g} deg")
+        if self.odom_header_factor is None:
+            text += "; no odometry_noise header"
+        elif self.odom_header_factor != 1.0:
+            text += f"; the odometry_noise header understates the random walk {self.odom_header_factor:g} times"
+        return text
 
 
 DEFAULT_OPTIONS = SimOptions()
@@ -119,6 +170,22 @@ def _check_options(options: SimOptions) -> None:
         raise InputError("dropout probabilities must lie in [0, 1)")
     if options.max_range_m is not None and not options.max_range_m > options.min_range_m:
         raise InputError("simulation max_range_m must exceed min_range_m")
+    at_least_zero = ("odom_translation_m_per_sqrt_m", "odom_heading_rad_per_sqrt_m", "odom_heading_rad_per_sqrt_rad",
+                     "odom_slip_rate_per_m", "odom_slip_max_m", "odom_slip_max_rad")
+    for name in at_least_zero:
+        if not (math.isfinite(getattr(options, name)) and getattr(options, name) >= 0):
+            raise InputError(f"simulation option {name} must be a finite number >= 0")
+    for name in ("odom_heading_bias_rad_per_m", "odom_distance_scale_error", "odom_turn_scale_error"):
+        if not math.isfinite(getattr(options, name)):
+            raise InputError(f"simulation option {name} must be finite")
+    # Beyond these the odometry no longer says which way the robot moved or turned.
+    if not -0.5 < options.odom_distance_scale_error < 0.5 or not -0.5 < options.odom_turn_scale_error < 0.5:
+        raise InputError("simulation odometry scale errors must lie in (-0.5, 0.5)")
+    if options.odom_slip_max_rad > math.pi:
+        raise InputError("simulation option odom_slip_max_rad must be at most pi")
+    f = options.odom_header_factor
+    if f is not None and not (math.isfinite(f) and f > 0):
+        raise InputError("simulation option odom_header_factor must be None (no header) or a positive number")
 
 
 def drive(plan: FloorPlan, scans: int | None = None, options: SimOptions = DEFAULT_OPTIONS) -> Drive:
@@ -188,15 +255,53 @@ def _blocks(n: int, size: int):
         yield start, min(n, start + size)
 
 
+def _slips(n: int, s: np.ndarray, rng: np.random.Generator, options: SimOptions) -> np.ndarray:
+    """Slip jumps (n - 1, 3) added to the increments: mostly zero, a jump where a slip happens."""
+    block = int(options.scans_per_block)
+    u = np.empty(max(0, n - 1))
+    jump = np.empty((max(0, n - 1), 3))
+    for start, stop in _blocks(n, block):
+        draw_u, draw_j = rng.random(block), rng.random((block, 3))
+        lo, hi = max(start, 1), stop
+        if hi > lo:
+            u[lo - 1:hi - 1] = draw_u[lo - start:hi - start]
+            jump[lo - 1:hi - 1] = draw_j[lo - start:hi - start]
+    # a Poisson process in distance: at least one slip in a step of s metres with probability 1 - exp(-rate s)
+    happens = u < -np.expm1(-options.odom_slip_rate_per_m * s)
+    length = options.odom_slip_max_m * jump[:, 0]
+    direction = 2.0 * math.pi * jump[:, 1]
+    out = np.column_stack([length * np.cos(direction), length * np.sin(direction),
+                           options.odom_slip_max_rad * (2.0 * jump[:, 2] - 1.0)])
+    out[~happens] = 0.0
+    return out
+
+
 def odometry(truth: np.ndarray, step_m: np.ndarray, rng: np.random.Generator,
-             options: SimOptions = DEFAULT_OPTIONS) -> np.ndarray:
+             options: SimOptions = DEFAULT_OPTIONS, slip_rng: np.random.Generator | None = None) -> np.ndarray:
     """Odometry poses (N, 3) integrated from noisy increments of the true motion.
 
     The increment from scan i-1 to i is the true relative pose with, for a
     path length s and rotation r in that step: per-axis positional noise of
     std ``a * sqrt(s)``, heading noise of std ``sqrt(b**2 * s + c**2 * |r|)``,
-    a heading bias of ``odom_heading_bias_rad_per_m * s`` and a distance scale
-    error.  The first pose is ``[0, 0, 0]``.
+    a heading bias of ``odom_heading_bias_rad_per_m * s``, a distance scale
+    error (on the forward motion), a turn scale error (on r) and, with
+    ``odom_slip_rate_per_m > 0``, slips drawn from ``slip_rng`` (required
+    then).  The first pose is ``[0, 0, 0]``; ``truth`` (N, 3) is in any
+    world frame, ``step_m`` (N,) the path length of each step (metres).
+
+    Examples
+    --------
+    A 10 m straight with a turn scale error only: turning nothing, it stays exact.
+
+    >>> import numpy as np
+    >>> from closurecheck.simulation.simulate import SimOptions, odometry
+    >>> truth = np.column_stack([np.linspace(0, 10, 101), np.zeros(101), np.zeros(101)])
+    >>> exact = SimOptions(odom_translation_m_per_sqrt_m=0.0, odom_heading_rad_per_sqrt_m=0.0,
+    ...                    odom_heading_rad_per_sqrt_rad=0.0, odom_heading_bias_rad_per_m=0.0,
+    ...                    odom_distance_scale_error=0.0, odom_turn_scale_error=0.05)
+    >>> odom = odometry(truth, np.r_[0.0, np.full(100, 0.1)], np.random.default_rng(0), exact)
+    >>> np.round(odom[-1], 9).tolist()
+    [10.0, 0.0, 0.0]
     """
     n = len(truth)
     delta = se2.between(truth[:-1], truth[1:])
@@ -213,11 +318,17 @@ def odometry(truth: np.ndarray, step_m: np.ndarray, rng: np.random.Generator,
     b = options.odom_heading_rad_per_sqrt_m
     c = options.odom_heading_rad_per_sqrt_rad
     rot = np.abs(delta[:, 2])
+    # Multiplying by exactly 1.0 (no turn scale error) leaves the increments bit for bit as before.
     noisy = np.column_stack([
         delta[:, 0] * (1.0 + options.odom_distance_scale_error) + a * np.sqrt(s) * noise[:, 0],
         delta[:, 1] + a * np.sqrt(s) * noise[:, 1],
-        delta[:, 2] + options.odom_heading_bias_rad_per_m * s + np.sqrt(b * b * s + c * c * rot) * noise[:, 2],
+        delta[:, 2] * (1.0 + options.odom_turn_scale_error) + options.odom_heading_bias_rad_per_m * s
+        + np.sqrt(b * b * s + c * c * rot) * noise[:, 2],
     ])
+    if options.odom_slip_rate_per_m > 0:
+        if slip_rng is None:
+            raise InputError("odometry with slips needs a random stream for them (slip_rng)")
+        noisy += _slips(n, s, slip_rng, options)
     odom = np.zeros((n, 3))
     px = py = pt = 0.0
     for i, (dx, dy, dth) in enumerate(noisy.tolist(), start=1):
@@ -310,7 +421,7 @@ def simulate_log(scenario: str, seed: int = 0, scans: int | None = None,
 
     Parameters
     ----------
-    scenario : a key of :data:`SCENARIOS` ("warehouse", "ring", "yard").
+    scenario : a key of :data:`SCENARIOS` ("warehouse", "ring", "yard", "hall", "lot").
     seed : random seed; the same seed and options give the same log.
     scans : number of scans; None drives one round of the scenario's route.
     options : robot, sensor and noise settings (:class:`SimOptions`).
@@ -332,8 +443,10 @@ def simulate_log(scenario: str, seed: int = 0, scans: int | None = None,
     motion = drive(plan, None if scans is None else int(scans), options)
     n = len(motion.t)
 
-    odom_rng, noise_rng, dropout_rng = (np.random.default_rng(s) for s in np.random.SeedSequence(int(seed)).spawn(3))
-    odom = odometry(motion.truth, motion.step_m, odom_rng, options)
+    # The fourth stream (slips) was added later: spawning it leaves the first three as they were.
+    odom_rng, noise_rng, dropout_rng, slip_rng = (
+        np.random.default_rng(s) for s in np.random.SeedSequence(int(seed)).spawn(4))
+    odom = odometry(motion.truth, motion.step_m, odom_rng, options, slip_rng)
     ranges = np.empty((n, sensor.beams), dtype=np.float32)
     for start, stop in _blocks(n, int(options.scans_per_block)):
         clean = render(plan, motion.truth[start:stop], motion.t[start:stop], sensor, options)
@@ -345,7 +458,13 @@ def simulate_log(scenario: str, seed: int = 0, scans: int | None = None,
              f"{options.speed_m_s:g} m/s; {sensor.beams} beams over "
              f"{math.degrees(options.field_of_view_rad):g} deg, range noise std {options.range_noise_std_m:g} m; "
              "odom starts at [0, 0, 0], truth is in the floor plan frame")
-    header = {"notes": notes, "odometry_noise": options.odometry_noise_header()}
+    errors = options.odometry_errors_note()
+    if errors:
+        notes += f"; {errors}"
+    header = {"notes": notes}
+    noise = options.odometry_noise_header()
+    if noise is not None:
+        header["odometry_noise"] = noise
     return make_scanlog(sensor, motion.t, odom, ranges, truth=motion.truth, header=header,
                         source=f"simulated-{scenario}-seed{int(seed)}")
 
