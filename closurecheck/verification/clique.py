@@ -735,6 +735,37 @@ def heuristic_clique(adjacency, weights=None) -> CliqueResult:
     return _result(g.order[best], w, exact, False, 0, bound)
 
 
+def _solve_components(components, keep, sub, seed_local, w, weighted, budget, tie_budget, options,
+                      conflicts: bool) -> CliqueResult:
+    """Solve each component (positions into ``keep``) alone and join their cliques.
+
+    ``sub`` is the graph (or, with ``conflicts``, the conflict graph) among
+    ``keep``; ``seed_local`` the heuristic's clique as positions into ``keep``.
+    """
+    members, finished, canonical, upper = [], True, True, 0
+    seed_local = np.asarray(seed_local, dtype=np.intp)
+    for comp in components:
+        idx = keep[comp]
+        if len(comp) == 1:
+            members.append(int(idx[0]))
+            upper += 1
+            continue
+        comp_local = np.full(len(keep), -1, dtype=np.intp)
+        comp_local[comp] = np.arange(len(comp))
+        in_comp = comp_local[seed_local]
+        part_seed = in_comp[in_comp >= 0]
+        part = _solve_part(sub[comp][:, comp], w[idx], weighted, part_seed, budget, tie_budget, options,
+                           conflicts=conflicts)
+        members.extend(idx[part.members].tolist())
+        finished &= part.finished
+        canonical &= part.canonical
+        upper += part.upper
+    expansions = budget.used + tie_budget.used
+    if not finished:
+        return _result(members, w, False, False, expansions, max(upper, len(members)))
+    return _result(members, w, True, canonical, expansions, len(members))
+
+
 def max_clique(adjacency, weights=None, options: CliqueOptions = CliqueOptions()) -> CliqueResult:
     """Maximum clique of an undirected graph (exact within a budget).
 
@@ -777,25 +808,8 @@ def max_clique(adjacency, weights=None, options: CliqueOptions = CliqueOptions()
     local[keep] = np.arange(len(keep))
     sub = a if len(keep) == n else a[keep][:, keep]
     sub_bits = [_bits(sub.indices[sub.indptr[v] : sub.indptr[v + 1]], len(keep)) for v in range(len(keep))]
-    members, finished, canonical, upper = [], True, True, 0
-    for comp in _complement_components(sub_bits, len(keep)):
-        idx = keep[comp]
-        if len(comp) == 1:
-            members.append(int(idx[0]))
-            upper += 1
-            continue
-        part_seed = local[np.intersect1d(seed_orig, idx)]
-        comp_local = np.full(len(keep), -1, dtype=np.intp)
-        comp_local[comp] = np.arange(len(comp))
-        part = _solve_part(sub[comp][:, comp], w[idx], weighted, comp_local[part_seed], budget, tie_budget, options)
-        members.extend(idx[part.members].tolist())
-        finished &= part.finished
-        canonical &= part.canonical
-        upper += part.upper
-    expansions = budget.used + tie_budget.used
-    if not finished:
-        return _result(members, w, False, False, expansions, max(upper, len(members)))
-    return _result(members, w, True, canonical, expansions, len(members))
+    return _solve_components(_complement_components(sub_bits, len(keep)), keep, sub, local[seed_orig], w, weighted,
+                             budget, tie_budget, options, conflicts=False)
 
 
 # --------------------------------------------------------------------------
@@ -972,24 +986,6 @@ def max_clique_of_conflicts(conflicts, weights=None, options: CliqueOptions = Cl
     comp_order = np.argsort(first_seen, kind="stable")
     by_label = np.argsort(labels, kind="stable")
     bounds = np.searchsorted(labels[by_label], np.arange(labels.max() + 2))
-    members, finished, canonical, upper = [], True, True, 0
-    for lab in comp_order.tolist():
-        comp = by_label[bounds[lab]:bounds[lab + 1]]
-        idx = keep[comp]
-        if len(comp) == 1:
-            members.append(int(idx[0]))
-            upper += 1
-            continue
-        part_seed = local[np.intersect1d(seed_orig, idx)]
-        comp_local = np.full(len(keep), -1, dtype=np.intp)
-        comp_local[comp] = np.arange(len(comp))
-        part = _solve_part(sub[comp][:, comp], w[idx], weighted, comp_local[part_seed], budget, tie_budget,
-                           options, conflicts=True)
-        members.extend(idx[part.members].tolist())
-        finished &= part.finished
-        canonical &= part.canonical
-        upper += part.upper
-    expansions = budget.used + tie_budget.used
-    if not finished:
-        return _result(members, w, False, False, expansions, max(upper, len(members)))
-    return _result(members, w, True, canonical, expansions, len(members))
+    components = (by_label[bounds[lab]:bounds[lab + 1]] for lab in comp_order.tolist())
+    return _solve_components(components, keep, sub, local[seed_orig], w, weighted, budget, tie_budget, options,
+                             conflicts=True)
