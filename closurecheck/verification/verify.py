@@ -97,7 +97,8 @@ class VerifyOptions:
         consistent set of closures outside it) only when the closures the
         rival disputes are at least this many times as many as the rival;
         otherwise both sides are rejected (:mod:`closurecheck.verification.rivals`).
-        1 turns the rule off.
+        1 (the default) turns the rule off: on a warehouse route it rejected
+        400 right closures against a rival family of 290 wrong ones.
     min_clique_size : closures are accepted only if the consistent set has
         at least this many members (1 accepts a lone closure that passed
         every other check).
@@ -142,7 +143,7 @@ class VerifyOptions:
     pair_window_m: float | None = setting(None, above=0.0)
     clique_max_expansions: int = setting(200_000, at_least=1)
     min_clique_size: int = setting(1, at_least=1)
-    rival_margin: float = setting(2.0, at_least=1.0)
+    rival_margin: float = setting(1.0, at_least=1.0)
     use_gnc: bool = setting(True)
     gnc_min_weight: float = setting(0.5, at_least=0.0, at_most=1.0)
     kernel: str = setting("cauchy", choices=KERNEL_CHOICES)

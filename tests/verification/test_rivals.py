@@ -61,6 +61,22 @@ def test_a_rival_that_disputes_too_little_takes_the_disputed_part_with_it():
     assert rival_groups(_graph(8, edges), np.arange(6), margin=1.5).rejected.size == 0
 
 
+def test_a_rival_that_disputes_nothing_still_standing_is_no_contest():
+    # {0, 1} loses to {2, 3} (2 < 2 * 2); {4, 5} contradicts only what has
+    # already gone, so it is not rejected.
+    a = np.ones((6, 6), dtype=bool)
+    for i in (0, 1):
+        for j in (2, 3, 4, 5):
+            a[i, j] = a[j, i] = False
+    for i in (2, 3):
+        for j in (4, 5):
+            a[i, j] = a[j, i] = False
+    check = rival_groups(_conflicts(a), np.array([0, 1]), margin=2.0)
+    assert [d.rejected for d in check.disputes] == [True, False]
+    assert check.disputes[1].disputed.size == 0
+    assert check.rejected.tolist() == [0, 1, 2, 3]
+
+
 def test_a_single_closure_is_not_a_rival_group():
     edges = [(0, 1), (0, 2), (1, 2)]
     check = rival_groups(_graph(4, edges), np.array([0, 1, 2]), margin=2.0)
@@ -139,14 +155,13 @@ def test_two_equal_families_of_closures_are_both_rejected(hall_chain):
     chain, truth = hall_chain
     src, dst, delta, right, cov = _families(truth, 4, 4, np.random.default_rng(1))
     closures = _closures(chain, src, dst, delta, cov)
-    options = VerifyOptions(calibrate_heading_drift=False, extend_with_map=False)
+    options = VerifyOptions(calibrate_heading_drift=False, extend_with_map=False, rival_margin=2.0)
     out = verify(closures, chain, options)
     assert (out.reason == Reason.RIVAL_GROUP).all(), out.reason
     assert not out.accepted.any()
     assert any("could not separate" in n for n in out.notes)
-    # Without the rule the larger-or-equal side wins, right or wrong: the coin toss the rule removes.
-    plain = verify(closures, chain, VerifyOptions(calibrate_heading_drift=False, extend_with_map=False,
-                                                  rival_margin=1.0))
+    # Without the rule (the default) the larger-or-equal side wins, right or wrong: the coin toss the rule removes.
+    plain = verify(closures, chain, VerifyOptions(calibrate_heading_drift=False, extend_with_map=False))
     assert plain.accepted.sum() == 4 and (plain.reason == Reason.PAIR_INCONSISTENT).sum() == 4
 
 
@@ -154,7 +169,7 @@ def test_a_clear_majority_keeps_its_closures(hall_chain):
     chain, truth = hall_chain
     src, dst, delta, right, cov = _families(truth, 6, 2, np.random.default_rng(2))
     out = verify(_closures(chain, src, dst, delta, cov), chain,
-                 VerifyOptions(calibrate_heading_drift=False, extend_with_map=False))
+                 VerifyOptions(calibrate_heading_drift=False, extend_with_map=False, rival_margin=2.0))
     assert out.accepted[right].all() and not out.accepted[~right].any()
     assert (out.reason[~right] == Reason.PAIR_INCONSISTENT).all()
     assert len(out.rivals.disputes) == 1 and not out.rivals.disputes[0].rejected
