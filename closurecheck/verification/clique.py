@@ -735,6 +735,14 @@ def heuristic_clique(adjacency, weights=None) -> CliqueResult:
     return _result(g.order[best], w, exact, False, 0, bound)
 
 
+def _start(matrix, weights, options: CliqueOptions):
+    """The graph as CSR, its vertex weights, and the two search budgets of one call."""
+    a = _adjacency_csr(matrix)
+    w, weighted = _weights(weights, a.shape[0])
+    deadline = None if options.max_seconds is None else time.perf_counter() + options.max_seconds
+    return a, w, weighted, _Budget(options.max_expansions, deadline), _Budget(options.tie_max_expansions, deadline)
+
+
 def _solve_components(components, keep, sub, seed_local, w, weighted, budget, tie_budget, options,
                       conflicts: bool) -> CliqueResult:
     """Solve each component (positions into ``keep``) alone and join their cliques.
@@ -789,14 +797,10 @@ def max_clique(adjacency, weights=None, options: CliqueOptions = CliqueOptions()
         returned with ``exact=False`` and ``upper_bound`` says how far from
         optimal it can be.
     """
-    a = _adjacency_csr(adjacency)
+    a, w, weighted, budget, tie_budget = _start(adjacency, weights, options)
     n = a.shape[0]
-    w, weighted = _weights(weights, n)
     if n == 0:
         return _result([], w, True, True, 0, 0)
-    deadline = None if options.max_seconds is None else time.perf_counter() + options.max_seconds
-    budget = _Budget(options.max_expansions, deadline)
-    tie_budget = _Budget(options.tie_max_expansions, deadline)
     g = _Graph(a, w, weighted)
     seed, seed_size, _ = _heuristic(g)
     # Every clique at least as large as the heuristic's lies among the
@@ -964,14 +968,10 @@ def max_clique_of_conflicts(conflicts, weights=None, options: CliqueOptions = Cl
     """
     from scipy.sparse.csgraph import connected_components
 
-    c = _adjacency_csr(conflicts)
+    c, w, weighted, budget, tie_budget = _start(conflicts, weights, options)
     n = c.shape[0]
-    w, weighted = _weights(weights, n)
     if n == 0:
         return _result([], w, True, True, 0, 0)
-    deadline = None if options.max_seconds is None else time.perf_counter() + options.max_seconds
-    budget = _Budget(options.max_expansions, deadline)
-    tie_budget = _Budget(options.tie_max_expansions, deadline)
     core, order = _peel_conflicts(c)
     seed_orig, seed_size, _ = _heuristic_conflicts(c, core, order, w, weighted)
     keep = np.flatnonzero(core >= seed_size - 1)
