@@ -158,14 +158,7 @@ def solver_table(args, truth, initial, src, dst, delta, info, robust):
     base_t, base = timings[0]
     lines = ["| solver | time (s) | time / ours | iterations | final cost | converged | position RMS (m) |",
              "| --- | ---: | ---: | ---: | ---: | --- | ---: |"]
-    for label, (t, sol) in zip(labels, timings):
-        if isinstance(sol, tuple):
-            poses, cost, _, iterations = sol
-            converged = True
-        else:
-            poses, cost, iterations, converged = sol.poses, sol.cost, sol.iterations, sol.converged
-        lines.append(f"| {label} | {t:.3f} | {t / base_t:.2f} | {iterations} | {cost:.6g} | {converged} | "
-                     f"{rms_m(poses, truth):.3f} |")
+    lines += solver_rows(labels, timings, base_t, truth, time_fmt=".3f", cost_fmt=".6g")
     if not args.skip_reference:
         t_ref, (x_ref, cost_ref, _, _) = timings[-1]
         diff = np.abs(x_ref - base.poses)
@@ -231,14 +224,7 @@ def large_table(args):
              "",
              "| solver | time (s) | time / ours | iterations | final cost | converged | position RMS (m) |",
              "| --- | ---: | ---: | ---: | ---: | --- | ---: |"]
-    for label, (t, sol) in zip(labels, timings):
-        if isinstance(sol, tuple):
-            poses, cost, _, iterations = sol
-            converged = True
-        else:
-            poses, cost, iterations, converged = sol.poses, sol.cost, sol.iterations, sol.converged
-        lines.append(f"| {label} | {t:.2f} | {t / base_t:.2f} | {iterations} | {cost:.8g} | {converged} | "
-                     f"{rms_m(poses, truth):.3f} |")
+    lines += solver_rows(labels, timings, base_t, truth, time_fmt=".2f", cost_fmt=".8g")
     if reference:
         _, (x_ref, cost_ref, _, _) = timings[-1]
         diff = np.abs(x_ref - base.poses)
@@ -249,6 +235,20 @@ def large_table(args):
     else:
         lines += ["", "scipy's least_squares was not run on this size (--large-skip-reference)."]
     return lines
+
+
+def solver_rows(labels, timings, base_t, truth, time_fmt: str, cost_fmt: str) -> list:
+    """Markdown rows of the solver table: ours (a solution record) or scipy's (a tuple)."""
+    rows = []
+    for label, (t, sol) in zip(labels, timings):
+        if isinstance(sol, tuple):
+            poses, cost, _, iterations = sol
+            converged = True
+        else:
+            poses, cost, iterations, converged = sol.poses, sol.cost, sol.iterations, sol.converged
+        rows.append(f"| {label} | {t:{time_fmt}} | {t / base_t:.2f} | {iterations} | {cost:{cost_fmt}} | {converged} | "
+                    f"{rms_m(poses, truth):.3f} |")
+    return rows
 
 
 def main(argv=None):

@@ -517,6 +517,16 @@ def _trim_profile(text: str, max_lines: int = 60) -> str:
     return "\n".join(body[:max_lines])
 
 
+def _publish(args, text: str) -> None:
+    """Print the results and, unless --no-write, write them to --results (default benchmarks/results/scale.md)."""
+    print(text)
+    if not args.no_write:
+        out_path = Path(args.results) if args.results else RESULTS
+        out_path.parent.mkdir(parents=True, exist_ok=True)
+        out_path.write_text(text)
+        print(f"wrote {out_path}")
+
+
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--sizes", type=int, nargs="+", default=[1000, 5000, 20000], help="log sizes in scans")
@@ -595,13 +605,7 @@ def main(argv=None):
               + f"; tree peak {r['tree_peak_mb']:.0f} MB; load {r['load_before']} -> {r['load_after']}", flush=True)
 
     if args.only_runs:
-        text = render(args, runs, None, None, {}, time.perf_counter() - t_start)
-        print(text)
-        if not args.no_write:
-            out_path = Path(args.results) if args.results else RESULTS
-            out_path.parent.mkdir(parents=True, exist_ok=True)
-            out_path.write_text(text)
-            print(f"wrote {out_path}")
+        _publish(args, render(args, runs, None, None, {}, time.perf_counter() - t_start))
         return None
     ref_size = args.speedup_size or (5000 if 5000 in logs else sizes[-1])
     if ref_size not in logs:
@@ -638,13 +642,7 @@ def main(argv=None):
         profiles[f"serial registration of {min(args.speedup_pairs, 200)} candidate pairs, {args.profile} scans"] = \
             _trim_profile(sfile.read_text())
 
-    text = render(args, runs, speed, icp, profiles, time.perf_counter() - t_start)
-    print(text)
-    if not args.no_write:
-        out_path = Path(args.results) if args.results else RESULTS
-        out_path.parent.mkdir(parents=True, exist_ok=True)
-        out_path.write_text(text)
-        print(f"wrote {out_path}")
+    _publish(args, render(args, runs, speed, icp, profiles, time.perf_counter() - t_start))
 
 
 if __name__ == "__main__":
