@@ -713,12 +713,8 @@ def _pairwise_consistency_dense(src, dst, deltas, covariances, poses, prefix,
         return _DensePairs(scipy.sparse.csr_array((k, k), dtype=bool), dist, threshold)
     cols = _columns(_closure_terms(src, dst, deltas, covariances, poses))
     pc = _prefix_columns(prefix)
-    rows = np.arange(k, dtype=np.int64)
-    row_offsets = rows * (k - 1) - rows * (rows - 1) // 2  # first flat index of row i
-    total = k * (k - 1) // 2
     mask = np.zeros((k, k), dtype=bool)
-    for start in range(0, total, options.pairs_per_block):
-        i, j = _upper_pairs(k, start, min(start + options.pairs_per_block, total), row_offsets)
+    for i, j in _all_blocks(k, options.pairs_per_block):
         d2 = _pair_block(cols, pc, i, j, options.pair_shared_odometry)
         dist[i, j] = d2
         dist[j, i] = d2

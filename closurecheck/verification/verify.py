@@ -347,7 +347,7 @@ def _consistency_pass(alive0, src, dst, delta, covariance, odom_poses, step_cova
         if clique.size < options.min_clique_size:
             out[:] = True
         reason[alive[out]] = Reason.PAIR_INCONSISTENT
-        if not out.all():
+        if options.rival_margin > 1.0 and not out.all():
             rivals = rival_groups(pc.conflicts, clique.members, options.rival_margin,
                                   clique_options=CliqueOptions(max_expansions=options.clique_max_expansions))
             rivals = rivals.relabelled(alive)
@@ -362,8 +362,8 @@ def _strict_pass(plausible, src, dst, delta, covariance, odom_poses, step_covari
     Returns (per-candidate verdict of this pass, clique result, indices of the
     verified core, which includes every ``fixed`` candidate, rival groups).
     """
-    upd, clique, rivals = _consistency_pass(plausible, src, dst, delta, covariance, odom_poses, step_covariances,
-                                    options, cons, figures, fixed)
+    upd, clique, rivals = _consistency_pass(plausible, src, dst, delta, covariance, odom_poses,
+                                            step_covariances, options, cons, figures, fixed)
     first_pass = np.where(upd == "", Reason.ACCEPTED, upd)
     alive = np.flatnonzero(plausible & (first_pass == Reason.ACCEPTED))
     kept, _, _, _ = optimise_closures(alive, src, dst, delta, covariance, odom_poses, step_covariances, options,
@@ -397,8 +397,8 @@ def _core_and_map(plausible, src, dst, delta, covariance, step_covariances, opti
                               informative_max_std_rad=options.gate_max_chain_std_rad)
 
     # Pass 1, strict: the odometry model as given decides the core set.
-    first_pass, clique, core, rivals = _strict_pass(plausible, src, dst, delta, covariance, odom_poses, step_covariances,
-                                            options, cons, figures, fixed)
+    first_pass, clique, core, rivals = _strict_pass(plausible, src, dst, delta, covariance, odom_poses,
+                                                    step_covariances, options, cons, figures, fixed)
 
     # The verified core measures how honest the odometry model is.
     scale = odometry_scale(figures["odometry_chi2"][core], options)
