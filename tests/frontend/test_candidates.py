@@ -351,3 +351,37 @@ def test_a_revisit_the_odometry_predicts_is_proposed_however_it_describes(loop):
     without = covered(propose_for(spoiled, CandidateOptions(odometry_revisit_first=False)))
     assert with_rule >= 0.9 * len(second)
     assert without < with_rule
+
+
+def test_a_revisit_just_outside_the_near_region_is_still_proposed(loop):
+    # Odometry that puts the second lap about 1.15 m off the first (beyond
+    # the 1 m "same place" region, as heading drift does late in a log) with
+    # spoiled descriptors: the gate statistic (below the chi-square median)
+    # still marks each true revisit as the typical one, so it is proposed.
+    import dataclasses
+
+    log, kf, data = loop
+    opts = CandidateOptions()
+    truth = log.truth[kf]
+    d = np.hypot(*(truth[:, None, :2] - truth[None, :, :2]).transpose(2, 0, 1))
+    half = len(kf) // 2
+    second = [r for r in range(half + 10, len(kf)) if (d[r, :half - 10] <= 0.3).any()]
+    assert len(second) >= 10
+    poses = truth.copy()
+    poses[half:, 0] += 1.15
+    data = dataclasses.replace(data, chain=OdometryChain.from_steps(kf, poses, data.chain.steps))
+    odo, _ = data.chain.relative_by_index(np.array(second), np.array([int(np.argmin(d[r, :half - 10])) for r in second]))
+    assert np.all(np.hypot(odo[:, 0], odo[:, 1]) > opts.near_distance_m)
+    vectors = data.descriptors.vectors.copy()
+    vectors[half:] += np.random.default_rng(0).normal(0, 50 * vectors.std(), vectors[half:].shape)
+    spoiled = dataclasses.replace(data, descriptors=dataclasses.replace(data.descriptors, vectors=vectors))
+
+    def covered(c):
+        a, b = np.searchsorted(kf, c.src), np.searchsorted(kf, c.dst)
+        pairs = set(zip(a.tolist(), b.tolist()))
+        return sum(any((r, q) in pairs for q in np.flatnonzero(d[r, :half - 10] <= 1.0)) for r in second)
+
+    with_rule = covered(propose_for(spoiled, opts))
+    without = covered(propose_for(spoiled, CandidateOptions(odometry_revisit_first=False)))
+    assert with_rule >= 0.9 * len(second)
+    assert without < with_rule
