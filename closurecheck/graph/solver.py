@@ -440,7 +440,8 @@ class _Cholesky:
     refactorises numerically into the same storage.  CHOLMOD reads the lower
     triangle in compressed-column order, as the layout stores it.
 
-    A matrix that is not positive definite (a pivot <= 0) raises
+    The factorisation is supernodal ``L L^T`` whatever cvxopt's options say:
+    a matrix that is not positive definite (a pivot <= 0) raises
     ``numpy.linalg.LinAlgError``; it never yields a solution.  The damped
     normal matrix is positive definite in exact arithmetic (node 0 fixes the
     gauge, only nodes connected to it are variables, and Marquardt's damping
@@ -467,7 +468,17 @@ class _Cholesky:
                                  (layout.size, layout.size))
         self.slots = np.asarray(tagged.V, dtype=float).ravel().astype(np.int64) - 1
         self.matrix = tagged
-        self.symbolic = cvxopt.cholmod.symbolic(tagged, uplo="L")
+        # Supernodal is always L L^T, which stops at a pivot <= 0.  CHOLMOD's simplicial form is L D L^T
+        # and accepts an indefinite matrix without a word, so the choice cvxopt makes by default
+        # (supernodal) is pinned here in case a caller changed cvxopt's global options.
+        options = cvxopt.cholmod.options
+        saved = dict(options)
+        options["supernodal"] = 2
+        try:
+            self.symbolic = cvxopt.cholmod.symbolic(tagged, uplo="L")
+        finally:
+            options.clear()
+            options.update(saved)
 
     def solve(self, data, rhs):
         """Factorise the layout's matrix with values ``data`` and solve it for ``rhs`` (1-D)."""
