@@ -18,8 +18,9 @@ keep it:
 
 The last two are not dependencies; rows for them appear when they are
 installed (``pip install cholespy qdldl``).  Candidates run round-robin, one
-BLAS thread; the median of ``--repeats`` is given with the ratio to SuperLU
-and the largest difference of the solution from SuperLU's (relative).
+BLAS thread; the medians of ``--repeats`` wall and CPU (this process)
+times are given with their ratios to SuperLU, and the largest difference
+of the solution from SuperLU's (relative).
 Writes benchmarks/results/linear_solvers.md.
 
 Run from the repository root:  python benchmarks/linear_solvers.py [--nodes 5000 20000]
@@ -101,22 +102,25 @@ def table(n, repeats):
     cands = candidates(layout, data, rhs)
     for _, prepare, _ in cands:
         prepare()
-    times = [[] for _ in cands]
+    walls = [[] for _ in cands]
+    cpus = [[] for _ in cands]
     solutions = [None] * len(cands)
     for _ in range(repeats):
         for k, (_, _, run) in enumerate(cands):
-            t0 = time.perf_counter()
+            t0, c0 = time.perf_counter(), time.process_time()
             solutions[k] = run()
-            times[k].append(time.perf_counter() - t0)
-    base = statistics.median(times[0])
+            cpus[k].append(time.process_time() - c0)
+            walls[k].append(time.perf_counter() - t0)
+    wall0, cpu0 = statistics.median(walls[0]), statistics.median(cpus[0])
     lines = [f"{n} nodes, {2 * n} edges: {layout.size} unknowns, {layout.nnz} stored entries; "
              f"load average {os.getloadavg()[0]:.1f} after the table.", "",
-             "| solver | factorise + solve (s) | ratio to splu | largest relative difference from splu |",
-             "| --- | ---: | ---: | ---: |"]
+             "| solver | wall (s) | wall / splu | CPU (s) | CPU / splu | largest relative difference from splu |",
+             "| --- | ---: | ---: | ---: | ---: | ---: |"]
     ref = solutions[0]
-    for (name, _, _), t, x in zip(cands, times, solutions):
+    for (name, _, _), w, c, x in zip(cands, walls, cpus, solutions):
+        wall, cpu = statistics.median(w), statistics.median(c)
         diff = np.abs(x - ref).max() / np.abs(ref).max()
-        lines.append(f"| {name} | {statistics.median(t):.4f} | {statistics.median(t) / base:.2f} | {diff:.1e} |")
+        lines.append(f"| {name} | {wall:.4f} | {wall / wall0:.2f} | {cpu:.4f} | {cpu / cpu0:.2f} | {diff:.1e} |")
     return lines
 
 
