@@ -65,8 +65,10 @@ class SolverOptions:
     linear_solver : ``"cholmod"`` (sparse Cholesky: CHOLMOD's supernodal
         factorisation through cvxopt, fill-reducing ordering and symbolic
         analysis once per sparsity pattern, a numeric refactorisation per
-        solve; 0.3-0.5 of SuperLU's time per solve at 5,000 nodes and
-        0.15-0.2 at 100,000, measured in benchmarks/optimizer.py),
+        solve; 0.38-0.40 of SuperLU's run time at 5,000 nodes and
+        0.15-0.17 at 100,000, measured side by side in
+        benchmarks/optimizer.py; docs/architecture.md says why this
+        package),
         ``"splu"`` (factorise with SuperLU, ordering ``permc_spec``),
         ``"spsolve"``, or ``"splu_pcg"``: from the third
         solve of a run on, conjugate gradients preconditioned by the latest
