@@ -537,6 +537,16 @@ def _splu_solve(layout, a, rhs, options):
     return solve(rhs), solve
 
 
+def _more_damping(lam, nu):
+    """Marquardt's increase after a rejected or failed step: lambda times nu, nu doubled.
+
+    From lambda = 0 (``initial_damping=0``, pure Gauss-Newton) the product
+    stays 0 and the loop would retry the same step forever; it restarts
+    from the machine epsilon instead and grows as usual from there.
+    """
+    return (lam * nu if lam > 0.0 else np.finfo(float).eps), nu * 2.0
+
+
 def _levenberg_marquardt(graph, poses, weight_fn, cost_fn, active, options):
     """Minimise ``cost_fn(s)`` by IRLS-weighted LM; ``weight_fn(s)`` gives per-edge weights.
 
@@ -572,7 +582,7 @@ def _levenberg_marquardt(graph, poses, weight_fn, cost_fn, active, options):
         try:
             step = solve(damped, -grad)
         except (RuntimeError, np.linalg.LinAlgError):
-            lam, nu = lam * nu, nu * 2.0
+            lam, nu = _more_damping(lam, nu)
             if lam > options.max_damping:
                 break
             continue
@@ -600,7 +610,7 @@ def _levenberg_marquardt(graph, poses, weight_fn, cost_fn, active, options):
                 # No representable improvement left at this point.
                 converged = True
                 break
-            lam, nu = lam * nu, nu * 2.0
+            lam, nu = _more_damping(lam, nu)
             if lam > options.max_damping:
                 break
     return x, iterations, cost, initial_cost, converged
