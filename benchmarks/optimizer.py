@@ -2,13 +2,17 @@
 
 Builds a synthetic graph (default 5,000 nodes, 10,000 edges: an odometry
 chain plus loop edges between revisits of a wandering trajectory), times our
-optimiser (median of several runs) and, in the same run, scipy's
-``least_squares`` (trust-region reflective with lsmr steps, sparse
-``jac_sparsity``, finite differences) on the identical whitened residuals.
-A second table times the robust back-stops with 20% wrong loop edges.
-With ``--large`` a third table times the 100,000-node case (200,000 edges,
-same density of revisits) against scipy's ``least_squares`` on the same
-graph; it takes minutes.  Prints markdown tables and writes them to
+optimiser with its default linear solver (sparse Cholesky, CHOLMOD through
+cvxopt) and with SuperLU (the former default), median of several runs, and,
+in the same run, scipy's ``least_squares`` (trust-region reflective with
+lsmr steps, sparse ``jac_sparsity``, finite differences) on the identical
+whitened residuals.  Wall time and this process's CPU time are both given:
+on a shared machine the wall time grows with the load, the CPU time much
+less.  A second table times the robust back-stops with 20% wrong loop
+edges.  With ``--large`` a third table times the 100,000-node case (200,000
+edges, same density of revisits), the default against SuperLU and,
+unless skipped, scipy's ``least_squares`` on the same graph; it takes
+minutes.  Prints markdown tables and writes them to
 benchmarks/results/optimizer.md.
 
 Run from the repository root:  python benchmarks/optimizer.py [--nodes N] [--edges E] [--large]
@@ -24,6 +28,7 @@ import sys
 import time
 from pathlib import Path
 
+import cvxopt
 import numpy as np
 import scipy
 import scipy.sparse as sp
@@ -118,16 +123,18 @@ def scipy_reference(initial, src, dst, delta, information):
 
 
 def timed_interleaved(fns, repeats):
-    """Median wall time of each callable, running them round-robin so load spikes on a
-    shared machine hit every variant alike.  Returns [(median_s, last_result), ...]."""
-    times = [[] for _ in fns]
+    """Median wall and CPU time of each callable, running them round-robin so load spikes on a
+    shared machine hit every variant alike.  Returns [(median_wall_s, median_cpu_s, last_result), ...]."""
+    walls = [[] for _ in fns]
+    cpus = [[] for _ in fns]
     results = [None] * len(fns)
     for _ in range(repeats):
         for k, fn in enumerate(fns):
-            t0 = time.perf_counter()
+            t0, c0 = time.perf_counter(), time.process_time()
             results[k] = fn()
-            times[k].append(time.perf_counter() - t0)
-    return [(statistics.median(t), r) for t, r in zip(times, results)]
+            cpus[k].append(time.process_time() - c0)
+            walls[k].append(time.perf_counter() - t0)
+    return [(statistics.median(w), statistics.median(c), r) for w, c, r in zip(walls, cpus, results)]
 
 
 def rms_m(poses, truth):
@@ -138,12 +145,11 @@ def rms_m(poses, truth):
 def solver_table(args, truth, initial, src, dst, delta, info, robust):
     """Our LM variants and scipy's least_squares on the clean graph."""
     variants = [
-        ("ours: LM, splu MMD_AT_PLUS_A (default)", SolverOptions(), None),
+        (DEFAULT_LABEL, SolverOptions(), None),
+        (SPLU_LABEL, SolverOptions(linear_solver="splu"), None),
         ("ours: LM, splu + CG preconditioned by the previous factor (splu_pcg)",
          SolverOptions(linear_solver="splu_pcg"), None),
-        ("ours: LM, splu COLAMD", SolverOptions(permc_spec="COLAMD"), None),
-        ("ours: LM, spsolve COLAMD", SolverOptions(linear_solver="spsolve", permc_spec="COLAMD"), None),
-        ("ours: LM + Cauchy IRLS on loops (scale 1)", SolverOptions(), Kernel("cauchy", 1.0)),
+        ("ours: LM + Cauchy IRLS on loops (scale 1), default solver", SolverOptions(), Kernel("cauchy", 1.0)),
     ]
 
     def ours(options, kernel):
@@ -155,19 +161,31 @@ def solver_table(args, truth, initial, src, dst, delta, info, robust):
         fns.append(lambda: scipy_reference(initial, src, dst, delta, info))
         labels.append("scipy least_squares (trf, lsmr, jac_sparsity)")
     timings = timed_interleaved(fns, args.repeats)
-    base_t, base = timings[0]
-    lines = ["| solver | time (s) | time / ours | iterations | final cost | converged | position RMS (m) |",
-             "| --- | ---: | ---: | ---: | ---: | --- | ---: |"]
-    lines += solver_rows(labels, timings, base_t, truth, time_fmt=".3f", cost_fmt=".6g")
+    lines = [TABLE_HEAD, TABLE_RULE]
+    lines += solver_rows(labels, timings, truth, time_fmt=".3f", cost_fmt=".6g")
+    lines += ["", agreement(timings[0][2], timings[1][2], "SuperLU (splu)")]
     if not args.skip_reference:
-        t_ref, (x_ref, cost_ref, _, _) = timings[-1]
-        diff = np.abs(x_ref - base.poses)
-        diff[:, 2] = np.abs(se2.wrap(x_ref[:, 2] - base.poses[:, 2]))
-        lines += ["", f"Ours vs scipy least_squares: relative cost difference "
-                      f"{abs(cost_ref - base.cost) / base.cost:.1e}, largest pose difference "
-                      f"{diff[:, :2].max():.1e} m / {diff[:, 2].max():.1e} rad; scipy took "
-                      f"{t_ref / base_t:.1f}x the time of our default solver."]
+        lines += [agreement(timings[0][2], timings[-1][2], "scipy least_squares")]
     return lines
+
+
+DEFAULT_LABEL = "ours: LM, Cholesky (CHOLMOD via cvxopt; default)"
+SPLU_LABEL = "ours: LM, SuperLU, MMD_AT_PLUS_A ordering reused (splu; the former default)"
+TABLE_HEAD = ("| solver | wall (s) | wall / default | CPU (s) | CPU / default | iterations | final cost | converged "
+              "| position RMS (m) |")
+TABLE_RULE = "| --- | ---: | ---: | ---: | ---: | ---: | ---: | --- | ---: |"
+
+
+def agreement(ours, other, name):
+    """One line: how far another solver's optimum is from our default's (cost and poses)."""
+    if isinstance(other, tuple):
+        poses, cost = other[0], other[1]
+    else:
+        poses, cost = other.poses, other.cost
+    diff = np.abs(poses - ours.poses)
+    diff[:, 2] = np.abs(se2.wrap(poses[:, 2] - ours.poses[:, 2]))
+    return (f"Default vs {name}: relative cost difference {abs(cost - ours.cost) / ours.cost:.1e}, largest pose "
+            f"difference {diff[:, :2].max():.1e} m / {diff[:, 2].max():.1e} rad.")
 
 
 def outlier_table(args, truth, initial, src, dst, delta, info, robust, fraction=0.2, seed=3):
@@ -193,7 +211,7 @@ def outlier_table(args, truth, initial, src, dst, delta, info, robust, fraction=
              "| method | time (s) | iterations | position RMS (m) | wrong loops with weight < 0.1 | "
              "right loops with weight >= 0.1 |",
              "| --- | ---: | ---: | ---: | ---: | ---: |"]
-    for (label, _), (t, sol) in zip(runs, timed_interleaved([fn for _, fn in runs], args.repeats)):
+    for (label, _), (t, _, sol) in zip(runs, timed_interleaved([fn for _, fn in runs], args.repeats)):
         low = sol.weights < 0.1
         lines.append(f"| {label} | {t:.3f} | {sol.iterations} | {rms_m(sol.poses, truth):.3f} | "
                      f"{np.count_nonzero(low & is_wrong)} / {len(wrong)} | "
@@ -202,51 +220,52 @@ def outlier_table(args, truth, initial, src, dst, delta, info, robust, fraction=
 
 
 def large_table(args):
-    """The 100,000-node case: our default solver against scipy's least_squares, side by side."""
+    """The 100,000-node case: our default solver against SuperLU and scipy's least_squares, side by side."""
     n, e = args.large_nodes, 2 * args.large_nodes
     t0 = time.perf_counter()
     truth, initial, src, dst, delta, info, robust = wandering_graph(n, e)
     built_s = time.perf_counter() - t0
-    fns = [lambda: optimize_graph(initial, src, dst, delta, info, robust),
-           lambda: optimize_graph(initial, src, dst, delta, info, robust,
-                                  options=SolverOptions(linear_solver="splu_pcg"))]
-    labels = ["ours: LM, splu MMD_AT_PLUS_A (default)",
-              "ours: LM, splu + CG preconditioned by the previous factor (splu_pcg)"]
+    fns = [lambda: optimize_graph(initial, src, dst, delta, info, robust)]
+    labels = [DEFAULT_LABEL]
+    if not args.large_skip_splu:
+        fns.append(lambda: optimize_graph(initial, src, dst, delta, info, robust,
+                                          options=SolverOptions(linear_solver="splu")))
+        labels.append(SPLU_LABEL)
     reference = not (args.skip_reference or args.large_skip_reference)
     if reference:
         fns.append(lambda: scipy_reference(initial, src, dst, delta, info))
         labels.append("scipy least_squares (trf, lsmr, jac_sparsity)")
+    load = os.getloadavg()[0]
     timings = timed_interleaved(fns, args.large_repeats)
-    base_t, base = timings[0]
     lines = [(f"{n} nodes, {e} edges ({n - 1} odometry, {e - n + 1} loops; graph built in {built_s:.1f} s, "
               f"not timed), started from the odometry chain (position RMS {rms_m(initial, truth):.3f} m); "
-              f"median of {args.large_repeats} run(s)."),
+              f"median of {args.large_repeats} run(s); load average {load:.1f} at the start of this table, "
+              f"{os.getloadavg()[0]:.1f} at its end."),
              "",
-             "| solver | time (s) | time / ours | iterations | final cost | converged | position RMS (m) |",
-             "| --- | ---: | ---: | ---: | ---: | --- | ---: |"]
-    lines += solver_rows(labels, timings, base_t, truth, time_fmt=".2f", cost_fmt=".8g")
+             TABLE_HEAD, TABLE_RULE]
+    lines += solver_rows(labels, timings, truth, time_fmt=".2f", cost_fmt=".8g")
+    lines += [""]
+    if not args.large_skip_splu:
+        lines += [agreement(timings[0][2], timings[1][2], "SuperLU (splu)")]
     if reference:
-        _, (x_ref, cost_ref, _, _) = timings[-1]
-        diff = np.abs(x_ref - base.poses)
-        diff[:, 2] = np.abs(se2.wrap(x_ref[:, 2] - base.poses[:, 2]))
-        lines += ["", (f"Ours vs scipy least_squares at {n} nodes: relative cost difference "
-                       f"{abs(cost_ref - base.cost) / base.cost:.1e}, largest pose difference "
-                       f"{diff[:, :2].max():.1e} m / {diff[:, 2].max():.1e} rad.")]
+        lines += [agreement(timings[0][2], timings[-1][2], "scipy least_squares")]
     else:
-        lines += ["", "scipy's least_squares was not run on this size (--large-skip-reference)."]
+        lines += ["scipy's least_squares was not run on this size (--large-skip-reference)."]
     return lines
 
 
-def solver_rows(labels, timings, base_t, truth, time_fmt: str, cost_fmt: str) -> list:
-    """Markdown rows of the solver table: ours (a solution record) or scipy's (a tuple)."""
+def solver_rows(labels, timings, truth, time_fmt: str, cost_fmt: str) -> list:
+    """Markdown rows of the solver table (ratios to the first row): ours (a solution record) or scipy's (a tuple)."""
+    base_wall, base_cpu, _ = timings[0]
     rows = []
-    for label, (t, sol) in zip(labels, timings):
+    for label, (wall, cpu, sol) in zip(labels, timings):
         if isinstance(sol, tuple):
             poses, cost, _, iterations = sol
             converged = True
         else:
             poses, cost, iterations, converged = sol.poses, sol.cost, sol.iterations, sol.converged
-        rows.append(f"| {label} | {t:{time_fmt}} | {t / base_t:.2f} | {iterations} | {cost:{cost_fmt}} | {converged} | "
+        rows.append(f"| {label} | {wall:{time_fmt}} | {wall / base_wall:.2f} | {cpu:{time_fmt}} | "
+                    f"{cpu / base_cpu:.2f} | {iterations} | {cost:{cost_fmt}} | {converged} | "
                     f"{rms_m(poses, truth):.3f} |")
     return rows
 
@@ -263,6 +282,8 @@ def main(argv=None):
     parser.add_argument("--large-skip-reference", action="store_true",
                         help="in the --large case, do not run scipy's least_squares")
     parser.add_argument("--large-repeats", type=int, default=1, help="runs of each solver in the --large case")
+    parser.add_argument("--large-skip-splu", action="store_true",
+                        help="in the --large case, do not run the SuperLU solver (minutes at 100,000 nodes)")
     parser.add_argument("--no-write", action="store_true", help="print only, do not write results/optimizer.md")
     parser.add_argument("--blas-threads", type=int, default=1,
                         help="BLAS threads during the timings (0: library default). On this shared 2-core "
@@ -286,11 +307,11 @@ def run(args):
         f"{args.edges - args.nodes + 1} loops), node 0 fixed, started from the odometry chain "
         f"(position RMS {rms_m(initial, truth):.3f} m). "
         f"Machine: {platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}, "
-        f"numpy {np.__version__}, scipy {scipy.__version__}. "
+        f"numpy {np.__version__}, scipy {scipy.__version__}, cvxopt {cvxopt.__version__}. "
         f"BLAS threads: {args.blas_threads or 'library default'}. "
         f"Load average at the start: {os.getloadavg()[0]:.1f} (other processes share the cores). "
-        f"Times are the median of {args.repeats} runs, variants run round-robin; "
-        f"iterations = Jacobian evaluations.",
+        f"Times are the median of {args.repeats} runs, variants run round-robin; wall time and this "
+        f"process's CPU time, ratios to the default's; iterations = Jacobian evaluations.",
         "",
     ]
     lines += solver_table(args, *graph)
@@ -298,6 +319,7 @@ def run(args):
               "rho(sqrt(e^T Omega e)) instead."]
     lines += ["", "Robust back-stops on the same graph:", ""]
     lines += outlier_table(args, *graph)
+    lines += ["", f"Load average at the end of the {args.nodes}-node tables: {os.getloadavg()[0]:.1f}."]
     if args.large:
         lines += ["", f"Large graph ({args.large_nodes} nodes):", ""]
         lines += large_table(args)

@@ -330,7 +330,7 @@ def test_reused_ordering_solves_with_the_current_values(small_graph):
     for k in range(3):
         weights = rng.uniform(0.1, 1.0, len(src))
         data, grad = graph.linearise(initial, e, weights, layout)
-        x = _solve(layout, data, -grad, SolverOptions())
+        x = _solve(layout, data, -grad, SolverOptions(linear_solver="splu"))
         expected = spla.spsolve(layout.csc(data), -grad)
         np.testing.assert_allclose(x, expected, rtol=1e-9, atol=1e-12 * np.abs(expected).max())
         assert "MMD_AT_PLUS_A" in layout.orderings
@@ -393,3 +393,32 @@ def test_bad_input_raises_input_error(small_graph):
         SolverOptions(linear_solver="dense")
     with pytest.raises(InputError):
         SolverOptions(panel_size=0)
+
+
+def test_pure_gauss_newton_recovers_from_a_rejected_step(monkeypatch):
+    # With initial_damping=0 a rejected step used to leave lambda at 0 (0 times nu) and the loop retried
+    # the same step forever.  Reference: scipy.optimize.least_squares (MINPACK's LM) from the same start.
+    import closurecheck.graph.solver as solver
+
+    rng = np.random.default_rng(9)
+    truth = square_laps(12, 2)
+    loops = [(i, i + 12) for i in range(12)]
+    initial, src, dst, delta, info, robust = make_graph(truth, loops, rng)
+    # Headings off by 1.5 rad (one sigma): Gauss-Newton overshoots and a step is rejected (found by trying seeds).
+    start = initial + rng.normal(scale=[0.5, 0.5, 1.5], size=initial.shape) * (np.arange(len(initial)) > 0)[:, None]
+    calls = []
+    real = solver._more_damping
+    monkeypatch.setattr(solver, "_more_damping", lambda lam, nu: calls.append(lam) or real(lam, nu))
+
+    # Tight tolerances: this start ends in a flat local minimum where the default stopping rule leaves
+    # a few 1e-9 of relative cost.
+    options = SolverOptions(initial_damping=0.0, relative_cost_tolerance=1e-15, step_tolerance=1e-12)
+    sol = optimize_graph(start, src, dst, delta, info, robust, options=options)
+
+    chol = np.linalg.cholesky(info)
+    ref = least_squares(whitened_residuals, start[1:].ravel(), args=(start[:1], src, dst, delta, chol),
+                        method="lm", xtol=1e-14, ftol=1e-14, gtol=1e-14)
+    assert 0.0 in calls  # a step was rejected while lambda was 0
+    assert sol.converged
+    np.testing.assert_allclose(sol.cost, ref.cost, rtol=1e-12)
+    assert pose_difference(sol.poses, np.vstack([start[:1], ref.x.reshape(-1, 3)])) < 1e-5
