@@ -311,3 +311,75 @@ def nearest(points, origin, cell, columns, start, order, queries, upper):
             idx[p] = bi
             tied[p] = tie
     return dist, idx, tied
+
+
+@njit(cache=True, nogil=True)
+def split_and_bound(parents, split, half, leaf, stack, base, size, hp, bar, row_seed):
+    """Children of coarse-search blocks that can beat the bar, and their bounds (correlative.search).
+
+    ``parents`` (P, 4) rows [angle row, ox, oy, level]; each gets the four
+    children ``parents[p] + split[q]``, in that order, kept where
+    ox, oy <= half (and >= -half for leaves, ``leaf``) and where the bound
+    exceeds ``bar[row_seed[angle row]]``.  A child's bound is the sum over
+    the source points of its level's cell at its offset:
+    ``stack[base[angle row, i] + level * size + ox * hp + oy]``.
+    Returns (children (K, 4) int64, bounds (K,) int64).
+    """
+    n_par = len(parents)
+    n_pts = base.shape[1]
+    kids = np.empty((4 * n_par, 4), np.int64)
+    score = np.empty(4 * n_par, np.int64)
+    m = 0
+    for p in range(n_par):
+        for q in range(4):
+            a = parents[p, 0] + split[q, 0]
+            ox = parents[p, 1] + split[q, 1]
+            oy = parents[p, 2] + split[q, 2]
+            lvl = parents[p, 3] + split[q, 3]
+            if ox > half or oy > half:
+                continue
+            if leaf and (ox < -half or oy < -half):
+                continue
+            off = lvl * size + ox * hp + oy
+            row = base[a]
+            s = 0
+            for i in range(n_pts):
+                s += stack[row[i] + off]
+            if not s > bar[row_seed[a]]:
+                continue
+            kids[m, 0] = a
+            kids[m, 1] = ox
+            kids[m, 2] = oy
+            kids[m, 3] = lvl
+            score[m] = s
+            m += 1
+    return kids[:m], score[:m]
+
+
+@njit(cache=True, nogil=True)
+def distinct(records, k, sep_m, sep_rad):
+    """Greedy non-maximum suppression (correlative.distinct): indices of up to k rows, best first."""
+    n = len(records)
+    alive = np.ones(n, np.bool_)
+    keep = np.empty(k, np.int64)
+    m = 0
+    left = n
+    two_pi = 2.0 * np.pi
+    while m < k and left > 0:
+        i = -1
+        for r in range(n):
+            if alive[r] and (i < 0 or records[r, 0] > records[i, 0]):
+                i = r
+        keep[m] = i
+        m += 1
+        for r in range(n):
+            if not alive[r]:
+                continue
+            dt = abs(np.mod(records[r, 3] - records[i, 3] + np.pi, two_pi) - np.pi)
+            if math.hypot(records[r, 1] - records[i, 1], records[r, 2] - records[i, 2]) < sep_m and dt < sep_rad:
+                alive[r] = False
+                left -= 1
+        if alive[i]:
+            alive[i] = False
+            left -= 1
+    return keep[:m]
