@@ -3,8 +3,9 @@
 References: scipy.spatial.cKDTree's nearest-neighbour queries (with
 ``distance_upper_bound``) for the cell index that replaces it in ICP's
 association and fit score, and for the neighbourhoods of the line fits;
-numpy.linalg.lstsq for the local line models' least-squares coefficients.  Scans are ray cast in the invented workshop of
-test_icp.py; random clouds add clusters, a straight wall and a wide extent.
+numpy.linalg.lstsq for the local line models' least-squares coefficients.
+Scans are ray cast in the invented workshop of test_icp.py; random clouds
+add clusters, a straight wall and a wide extent.
 """
 
 import numpy as np
