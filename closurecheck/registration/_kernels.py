@@ -378,3 +378,18 @@ def distinct(records, k, sep_m, sep_rad):
             alive[i] = False
             left -= 1
     return keep[:m]
+
+
+@njit(cache=True, nogil=True)
+def block_sums(nodes, stack, base, size, hp):
+    """Bounds of coarse-search blocks, rows [angle row, ox, oy, level] (as in :func:`split_and_bound`)."""
+    n_pts = base.shape[1]
+    out = np.empty(len(nodes), np.int64)
+    for r in range(len(nodes)):
+        off = nodes[r, 3] * size + nodes[r, 1] * hp + nodes[r, 2]
+        row = base[nodes[r, 0]]
+        s = 0
+        for i in range(n_pts):
+            s += stack[row[i] + off]
+        out[r] = s
+    return out

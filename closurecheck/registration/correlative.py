@@ -196,13 +196,14 @@ def search(grid: LikelihoodGrid, points, seed, *, window_m: float, window_rad: f
     stack = np.zeros((len(grid.levels), w + 2 * pad, hp), dtype=np.uint8)
     stack[:, pad:pad + w, pad:pad + h] = grid.levels
     stack = stack.ravel()
-    total = np.int32 if len(pts) * _LEVELS < 2 ** 31 else np.int64
 
     def bounds(nodes):
-        """Sum over the points of each node's level at its offset; nodes are rows [angle, ox, oy, level]."""
-        flat = np.take(base, nodes[:, 0], axis=0)
-        flat += (nodes[:, 3] * size + nodes[:, 1] * hp + nodes[:, 2]).astype(index)[:, None]
-        return np.take(stack, flat).sum(axis=1, dtype=total)
+        """Sum over the points of each node's level at its offset; nodes are rows [angle, ox, oy, level].
+
+        Compiled (_kernels.block_sums): a wide window has thousands of top blocks of N gathers
+        each, for which numpy's take built two (blocks, N) temporaries (0.73 -> 0.21 ms per
+        search of the default window)."""
+        return _kernels.block_sums(nodes, stack, base, size, hp)
 
     ta, tx, ty = np.meshgrid(np.arange(len(rows)), starts, starts, indexing="ij")
     tops = np.column_stack([ta.ravel(), tx.ravel(), ty.ravel(), np.full(ta.size, top_level)])
