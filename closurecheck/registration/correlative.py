@@ -25,6 +25,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from . import _kernels
+
 _LEVELS = 255
 # Blocks split per vectorised batch: large enough to amortise numpy call
 # overhead, small enough that the bound check stops the search early.
@@ -119,17 +121,7 @@ def distinct(records, k: int, sep_m: float, sep_rad: float) -> np.ndarray:
     Returns the indices of up to k rows, best first, each farther than
     ``sep_m`` (metres) or ``sep_rad`` (radians) from every better kept row.
     """
-    alive = np.ones(len(records), dtype=bool)
-    score = records[:, 0]
-    keep = []
-    while len(keep) < k and alive.any():
-        i = int(np.flatnonzero(alive)[np.argmax(score[alive])])
-        keep.append(i)
-        dt = np.abs(np.mod(records[:, 3] - records[i, 3] + np.pi, 2 * np.pi) - np.pi)
-        near = (np.hypot(records[:, 1] - records[i, 1], records[:, 2] - records[i, 2]) < sep_m) & (dt < sep_rad)
-        alive &= ~near
-        alive[i] = False
-    return np.asarray(keep, dtype=int)
+    return _kernels.distinct(np.ascontiguousarray(records, dtype=float), k, float(sep_m), float(sep_rad))
 
 
 def search(grid: LikelihoodGrid, points, seed, *, window_m: float, window_rad: float,
@@ -204,13 +196,14 @@ def search(grid: LikelihoodGrid, points, seed, *, window_m: float, window_rad: f
     stack = np.zeros((len(grid.levels), w + 2 * pad, hp), dtype=np.uint8)
     stack[:, pad:pad + w, pad:pad + h] = grid.levels
     stack = stack.ravel()
-    total = np.int32 if len(pts) * _LEVELS < 2 ** 31 else np.int64
 
     def bounds(nodes):
-        """Sum over the points of each node's level at its offset; nodes are rows [angle, ox, oy, level]."""
-        flat = np.take(base, nodes[:, 0], axis=0)
-        flat += (nodes[:, 3] * size + nodes[:, 1] * hp + nodes[:, 2]).astype(index)[:, None]
-        return np.take(stack, flat).sum(axis=1, dtype=total)
+        """Sum over the points of each node's level at its offset; nodes are rows [angle, ox, oy, level].
+
+        Compiled (_kernels.block_sums): a wide window has thousands of top blocks of N gathers
+        each, for which numpy's take built two (blocks, N) temporaries (0.73 -> 0.21 ms per
+        search of the default window)."""
+        return _kernels.block_sums(nodes, stack, base, size, hp)
 
     ta, tx, ty = np.meshgrid(np.arange(len(rows)), starts, starts, indexing="ij")
     tops = np.column_stack([ta.ravel(), tx.ravel(), ty.ravel(), np.full(ta.size, top_level)])
@@ -248,21 +241,17 @@ def search(grid: LikelihoodGrid, points, seed, *, window_m: float, window_rad: f
             parents, open_nodes[lvl], open_score[lvl] = nodes[sel], nodes[rest], score[rest]
         else:
             parents, open_nodes[lvl], open_score[lvl] = nodes, nodes[:0], score[:0]
-        kids = (parents[:, None, :] + split[lvl]).reshape(-1, 4)
+        # Compiled (_kernels.split_and_bound): the gathers over the pyramid are the search's main
+        # cost, and numpy spent as much again on the temporaries of each batch.
+        # Only the children whose bound beats their seed's bar come back: leaves found, or blocks to open.
+        kids, kid_score = _kernels.split_and_bound(parents, split[lvl], half, lvl == 1, stack, base, size, hp,
+                                                   best.bar, row_seed)
         if lvl == 1:
-            ok = (kids[:, 1] <= half) & (kids[:, 2] <= half) & (kids[:, 1] >= -half) & (kids[:, 2] >= -half)
+            if len(kids):
+                best.add(_poses(kid_score, kids, rows, r))
         else:
-            ok = (kids[:, 1] <= half) & (kids[:, 2] <= half)
-        kids = kids[ok]
-        kid_score = bounds(kids)
-        if lvl == 1:
-            found = kid_score > best.bar[row_seed[kids[:, 0]]]
-            if found.any():
-                best.add(_poses(kid_score[found], kids[found], rows, r))
-        else:
-            inner = kid_score > best.bar[row_seed[kids[:, 0]]]
-            open_nodes[lvl - 1] = np.concatenate([open_nodes[lvl - 1], kids[inner]])
-            open_score[lvl - 1] = np.concatenate([open_score[lvl - 1], kid_score[inner]])
+            open_nodes[lvl - 1] = np.concatenate([open_nodes[lvl - 1], kids])
+            open_score[lvl - 1] = np.concatenate([open_score[lvl - 1], kid_score])
     out = best.merged
     poses = out[:, 1:4].copy()
     return poses, out[:, 0] / (_LEVELS * len(pts))

@@ -13,11 +13,11 @@ import pytest
 from scipy.spatial import cKDTree
 from test_icp import PAIRS, scan
 
+from closurecheck.registration._kernels import _sum_slots
 from closurecheck.registration.icp import (
     DEFAULT_OPTIONS,
     RegistrationOptions,
     _line_features,
-    _sum_rows,
     prepare_scan,
     register_prepared,
 )
@@ -33,7 +33,7 @@ def scans():
                                  RegistrationOptions(line_neighbours=21, line_radius_m=0.5)])
 def test_line_features_match_eigh_of_ckdtree_neighbourhoods(scans, opt):
     for pts in scans:
-        idx, used, count, centroid, normal, tangent, thickness, has_line = _line_features(pts, None, opt)
+        idx, used, count, centroid, normal, tangent, thickness, has_line = _line_features(pts, opt)
         k = min(opt.line_neighbours, len(pts))
         _, ref_idx = cKDTree(pts).query(pts, k=k, distance_upper_bound=opt.line_radius_m)
         ref_idx = ref_idx.reshape(len(pts), k)
@@ -76,7 +76,8 @@ def test_target_side_built_on_first_use_with_the_same_values(scans):
 
 
 @pytest.mark.parametrize("k", [1, 5, 7, 8, 12, 16, 17, 24, 64, 129, 300])
-def test_sum_rows_adds_in_numpys_order(k):
-    # Reference: numpy.sum along a contiguous axis, to the bit (the layout change must not move results).
+def test_compiled_sums_add_in_numpys_order(k):
+    # Reference: numpy.sum along a contiguous axis, to the bit (the compiled line fits must not move results).
     a = np.random.default_rng(k).normal(size=(k, 41)) * 10.0 ** np.random.default_rng(k + 1).integers(-8, 8, (k, 41))
-    np.testing.assert_array_equal(_sum_rows(a), np.ascontiguousarray(a.T).sum(axis=1))
+    ref = np.ascontiguousarray(a.T).sum(axis=1)
+    np.testing.assert_array_equal([_sum_slots(np.ascontiguousarray(a[:, j]), k) for j in range(a.shape[1])], ref)

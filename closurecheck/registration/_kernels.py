@@ -1,0 +1,395 @@
+"""Compiled kernels of scan preparation and of the coarse search (numba, cached on disk).
+
+Why compiled code here (docs/architecture.md, "Compiled kernels"): the
+per-scan line fits and the coarse search's bounds work on arrays of a few
+hundred to a few thousand elements, where numpy's per-call overhead and the
+temporaries of (k, N) neighbour arrays, not arithmetic, set the time.  Each
+kernel computes the same quantities as the numpy code it replaced, in the
+same order of additions where that order was chosen on purpose (the line
+fits' sums); values agree to the last few bits (different libm and 3x3
+solves), which moves registered poses by far less than a micrometre.
+
+``cache=True`` keeps the machine code in ``__pycache__`` (or numba's user
+cache when the package folder is read-only), so only the very first call on
+a machine pays for compiling (about 2-3 s for all kernels together).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from numba import njit
+
+
+@njit(cache=True, nogil=True)
+def _pairwise8(v, k):
+    """Sum of v[:k] in the order np.sum uses along a contiguous axis of length k (8 <= k <= 128)."""
+    r0, r1, r2, r3, r4, r5, r6, r7 = v[0], v[1], v[2], v[3], v[4], v[5], v[6], v[7]
+    stop = k - k % 8
+    for i in range(8, stop, 8):
+        r0 += v[i]
+        r1 += v[i + 1]
+        r2 += v[i + 2]
+        r3 += v[i + 3]
+        r4 += v[i + 4]
+        r5 += v[i + 5]
+        r6 += v[i + 6]
+        r7 += v[i + 7]
+    res = ((r0 + r1) + (r2 + r3)) + ((r4 + r5) + (r6 + r7))
+    for i in range(stop, k):
+        res = res + v[i]
+    return res
+
+
+@njit(cache=True, nogil=True)
+def _sum_slots(v, k):
+    """numpy's order of summing k values (icp._sum_rows for one column)."""
+    if k < 8:
+        res = 0.0
+        for i in range(k):
+            res = res + v[i]
+        return res
+    if k > 128:
+        half = k // 2
+        half -= half % 8
+        return _sum_slots(v[:half], half) + _sum_slots(v[half:], k - half)
+    return _pairwise8(v, k)
+
+
+@njit(cache=True, nogil=True)
+def neighbourhoods(points, k, radius):
+    """The k nearest points of each point within ``radius`` (itself first), nearest first.
+
+    Same neighbours as ``cKDTree(points).query(points, k, distance_upper_bound=radius)``
+    where no two candidates lie at exactly the same distance; a hash grid of
+    ``radius`` cells replaces the tree.  Where they do (quantised ranges), the
+    tree's order of equal distances is its own, so such points are flagged
+    for the caller to ask the tree.
+    Returns idx (N, k) int64 with N where a slot is empty, and tied (N,) bool.
+    """
+    n = len(points)
+    # Cells of half the radius: a 5 x 5 block less its far corners covers the radius' disc
+    # more tightly than 3 x 3 cells of the radius (about 40% fewer candidates to sort).
+    origin, cell, nj, start, order = cell_index(points, 0.5 * radius)
+    reach = int(math.ceil(radius / cell))
+    ni = (len(start) - 1) // nj
+    ci = np.empty(n, np.int64)
+    cj = np.empty(n, np.int64)
+    for i in range(n):
+        ci[i] = min(int((points[i, 0] - origin[0]) / cell), ni - 1)
+        cj[i] = min(int((points[i, 1] - origin[1]) / cell), nj - 1)
+    r2 = radius * radius
+    idx = np.full((n, k), n, np.int64)
+    tied = np.zeros(n, np.bool_)
+    best_d = np.empty(k)
+    best_i = np.empty(k, np.int64)
+    for p in range(n):
+        px, py = points[p, 0], points[p, 1]
+        i0, i1 = max(ci[p] - reach, 0), min(ci[p] + reach, ni - 1)
+        j0, j1 = max(cj[p] - reach, 0), min(cj[p] + reach, nj - 1)
+        fi = (px - origin[0]) / cell
+        fj = (py - origin[1]) / cell
+        m = 0
+        out = np.inf      # nearest candidate left out
+        for i in range(i0, i1 + 1):
+            gx = max(i - fi, 0.0, fi - (i + 1)) * cell
+            # The run of cells of row i that reach into the disc.
+            lo = j1 + 1
+            hi = j0 - 1
+            for j in range(j0, j1 + 1):
+                gy = max(j - fj, 0.0, fj - (j + 1)) * cell
+                if gx * gx + gy * gy < r2:
+                    lo = min(lo, j)
+                    hi = max(hi, j)
+            if lo > hi:
+                continue
+            for s in range(start[i * nj + lo], start[i * nj + hi + 1]):
+                q = order[s]
+                ex = points[q, 0] - px
+                ey = points[q, 1] - py
+                d = ex * ex + ey * ey
+                if d >= r2:
+                    continue
+                if m == k and (d > best_d[k - 1] or (d == best_d[k - 1] and q > best_i[k - 1])):
+                    out = min(out, d)
+                    continue
+                if m == k:
+                    out = min(out, best_d[k - 1])          # the farthest kept one drops out
+                # Insert (d, q) in order, dropping the farthest when full.
+                pos = m if m < k else k - 1
+                while pos > 0 and (best_d[pos - 1] > d or (best_d[pos - 1] == d and best_i[pos - 1] > q)):
+                    if pos < k:
+                        best_d[pos] = best_d[pos - 1]
+                        best_i[pos] = best_i[pos - 1]
+                    pos -= 1
+                best_d[pos] = d
+                best_i[pos] = q
+                if m < k:
+                    m += 1
+        for s in range(m):
+            idx[p, s] = best_i[s]
+            if s > 0 and best_d[s] == best_d[s - 1]:
+                tied[p] = True
+        if m == k and out == best_d[k - 1]:
+            tied[p] = True      # a candidate left out at exactly the k-th distance
+    return idx, tied
+
+
+@njit(cache=True, nogil=True)
+def scatter(points, idx):
+    """Neighbour count, centroid and scatter sums (xx, yy, xy) of each point's neighbourhood.
+
+    ``idx`` (N, k) from :func:`neighbourhoods` (N marks an empty slot).  The
+    sums follow the numpy version they replaced (icp._line_features before
+    2026-12): the centroid adds the neighbours one after another, the
+    scatter sums add in numpy's pairwise order, so the bits do not move.
+    Returns count (N,) int64 and cx, cy, sxx, syy, sxy (N,) float64.
+    """
+    n, k = idx.shape
+    count = np.zeros(n, np.int64)
+    cxs = np.empty(n)
+    cys = np.empty(n)
+    sxxs = np.empty(n)
+    syys = np.empty(n)
+    sxys = np.empty(n)
+    vxx = np.empty(k)
+    vyy = np.empty(k)
+    vxy = np.empty(k)
+    for p in range(n):
+        c = 0
+        sx = 0.0
+        sy = 0.0
+        for j in range(k):
+            q = idx[p, j]
+            if q < n:
+                c += 1
+                if j == 0:
+                    sx = points[q, 0]
+                    sy = points[q, 1]
+                else:
+                    sx += points[q, 0]
+                    sy += points[q, 1]
+        count[p] = c
+        cnt = max(float(c), 1.0)
+        cx = sx / cnt
+        cy = sy / cnt
+        for j in range(k):
+            q = idx[p, j]
+            if q < n:
+                dx = points[q, 0] - cx
+                dy = points[q, 1] - cy
+            else:
+                dx = 0.0
+                dy = 0.0
+            vxx[j] = dx * dx
+            vyy[j] = dy * dy
+            vxy[j] = dx * dy
+        cxs[p] = cx
+        cys[p] = cy
+        sxxs[p] = _sum_slots(vxx, k)
+        syys[p] = _sum_slots(vyy, k)
+        sxys[p] = _sum_slots(vxy, k)
+    return count, cxs, cys, sxxs, syys, sxys
+
+
+@njit(cache=True, nogil=True)
+def cell_index(points, cell):
+    """Points bucketed in square cells, for :func:`nearest`.
+
+    Cells are ``cell`` metres wide, or wider where the points' bounding box
+    would otherwise need more than 8 cells per point (memory stays O(N)
+    whatever the scan's extent).  Returns (origin (2,), cell, columns,
+    start (cells + 1,) int32, order (N,) int32): the points of cell (i, j)
+    are ``order[start[c]:start[c + 1]]`` with ``c = i * columns + j``.
+    """
+    n = len(points)
+    x0 = points[0, 0]
+    y0 = points[0, 1]
+    x1 = x0
+    y1 = y0
+    for i in range(n):
+        x0 = min(x0, points[i, 0])
+        y0 = min(y0, points[i, 1])
+        x1 = max(x1, points[i, 0])
+        y1 = max(y1, points[i, 1])
+    cell = max(cell, math.sqrt((x1 - x0 + cell) * (y1 - y0 + cell) / (8.0 * n)))
+    ni = int((x1 - x0) / cell) + 1
+    nj = int((y1 - y0) / cell) + 1
+    key = np.empty(n, np.int64)
+    for i in range(n):
+        key[i] = min(int((points[i, 0] - x0) / cell), ni - 1) * nj + min(int((points[i, 1] - y0) / cell), nj - 1)
+    order = np.argsort(key, kind="mergesort").astype(np.int32)
+    start = np.zeros(ni * nj + 1, np.int32)
+    for i in range(n):
+        start[key[i] + 1] += 1
+    for c in range(ni * nj):
+        start[c + 1] += start[c]
+    origin = np.empty(2)
+    origin[0] = x0
+    origin[1] = y0
+    return origin, cell, nj, start, order
+
+
+@njit(cache=True, nogil=True)
+def nearest(points, origin, cell, columns, start, order, queries, upper):
+    """Nearest of ``points`` to each query closer than ``upper`` metres (an index of :func:`cell_index`).
+
+    Same answer as ``cKDTree(points).query(queries, distance_upper_bound=upper)``
+    where the nearest point is unique: distances (Q,) with inf and indices
+    (Q,) with len(points) where none is closer, and tied (Q,) bool where two
+    points lie at exactly the nearest distance (duplicate points), whose
+    index the caller takes from the tree.
+    """
+    nq = len(queries)
+    n = len(points)
+    dist = np.full(nq, np.inf)
+    idx = np.full(nq, n, np.int64)
+    tied = np.zeros(nq, np.bool_)
+    u2 = upper * upper
+    nj = columns
+    ni = (len(start) - 1) // nj
+    reach = int(math.ceil(upper / cell))
+    for p in range(nq):
+        qx, qy = queries[p, 0], queries[p, 1]
+        fi = (qx - origin[0]) / cell
+        fj = (qy - origin[1]) / cell
+        if fi < -reach - 1.0 or fj < -reach - 1.0 or fi > ni + reach + 1.0 or fj > nj + reach + 1.0:
+            continue
+        # The cells that may hold a point within upper of the query.
+        i0 = max(int(math.floor(fi)) - reach, 0)
+        i1 = min(int(math.floor(fi)) + reach, ni - 1)
+        j0 = max(int(math.floor(fj)) - reach, 0)
+        j1 = min(int(math.floor(fj)) + reach, nj - 1)
+        best = u2
+        bi = n
+        tie = False
+        # The query's own cell first, then the others, skipping a cell that lies farther than the
+        # best point so far (most of them once a wall point next to the query has been found).
+        ci = int(math.floor(fi))
+        cj = int(math.floor(fj))
+        if 0 <= ci < ni and 0 <= cj < nj:
+            c = ci * nj + cj
+            for s in range(start[c], start[c + 1]):
+                q = order[s]
+                ex = qx - points[q, 0]
+                ey = qy - points[q, 1]
+                d = ex * ex + ey * ey
+                if d < best:
+                    best = d
+                    bi = q
+                    tie = False
+                elif d == best and bi < n:
+                    tie = True
+        for i in range(i0, i1 + 1):
+            gx = max(i - fi, 0.0, fi - (i + 1)) * cell
+            for j in range(j0, j1 + 1):
+                if i == ci and j == cj:
+                    continue
+                gy = max(j - fj, 0.0, fj - (j + 1)) * cell
+                if gx * gx + gy * gy > best:
+                    continue
+                c = i * nj + j
+                for s in range(start[c], start[c + 1]):
+                    q = order[s]
+                    ex = qx - points[q, 0]
+                    ey = qy - points[q, 1]
+                    d = ex * ex + ey * ey
+                    if d < best:
+                        best = d
+                        bi = q
+                        tie = False
+                    elif d == best and bi < n:
+                        tie = True
+        if bi < n:
+            dist[p] = math.sqrt(best)
+            idx[p] = bi
+            tied[p] = tie
+    return dist, idx, tied
+
+
+@njit(cache=True, nogil=True)
+def split_and_bound(parents, split, half, leaf, stack, base, size, hp, bar, row_seed):
+    """Children of coarse-search blocks that can beat the bar, and their bounds (correlative.search).
+
+    ``parents`` (P, 4) rows [angle row, ox, oy, level]; each gets the four
+    children ``parents[p] + split[q]``, in that order, kept where
+    ox, oy <= half (and >= -half for leaves, ``leaf``) and where the bound
+    exceeds ``bar[row_seed[angle row]]``.  A child's bound is the sum over
+    the source points of its level's cell at its offset:
+    ``stack[base[angle row, i] + level * size + ox * hp + oy]``.
+    Returns (children (K, 4) int64, bounds (K,) int64).
+    """
+    n_par = len(parents)
+    n_pts = base.shape[1]
+    kids = np.empty((4 * n_par, 4), np.int64)
+    score = np.empty(4 * n_par, np.int64)
+    m = 0
+    for p in range(n_par):
+        for q in range(4):
+            a = parents[p, 0] + split[q, 0]
+            ox = parents[p, 1] + split[q, 1]
+            oy = parents[p, 2] + split[q, 2]
+            lvl = parents[p, 3] + split[q, 3]
+            if ox > half or oy > half:
+                continue
+            if leaf and (ox < -half or oy < -half):
+                continue
+            off = lvl * size + ox * hp + oy
+            row = base[a]
+            s = 0
+            for i in range(n_pts):
+                s += stack[row[i] + off]
+            if not s > bar[row_seed[a]]:
+                continue
+            kids[m, 0] = a
+            kids[m, 1] = ox
+            kids[m, 2] = oy
+            kids[m, 3] = lvl
+            score[m] = s
+            m += 1
+    return kids[:m], score[:m]
+
+
+@njit(cache=True, nogil=True)
+def distinct(records, k, sep_m, sep_rad):
+    """Greedy non-maximum suppression (correlative.distinct): indices of up to k rows, best first."""
+    n = len(records)
+    alive = np.ones(n, np.bool_)
+    keep = np.empty(k, np.int64)
+    m = 0
+    left = n
+    two_pi = 2.0 * np.pi
+    while m < k and left > 0:
+        i = -1
+        for r in range(n):
+            if alive[r] and (i < 0 or records[r, 0] > records[i, 0]):
+                i = r
+        keep[m] = i
+        m += 1
+        for r in range(n):
+            if not alive[r]:
+                continue
+            dt = abs(np.mod(records[r, 3] - records[i, 3] + np.pi, two_pi) - np.pi)
+            if math.hypot(records[r, 1] - records[i, 1], records[r, 2] - records[i, 2]) < sep_m and dt < sep_rad:
+                alive[r] = False
+                left -= 1
+        if alive[i]:
+            alive[i] = False
+            left -= 1
+    return keep[:m]
+
+
+@njit(cache=True, nogil=True)
+def block_sums(nodes, stack, base, size, hp):
+    """Bounds of coarse-search blocks, rows [angle row, ox, oy, level] (as in :func:`split_and_bound`)."""
+    n_pts = base.shape[1]
+    out = np.empty(len(nodes), np.int64)
+    for r in range(len(nodes)):
+        off = nodes[r, 3] * size + nodes[r, 1] * hp + nodes[r, 2]
+        row = base[nodes[r, 0]]
+        s = 0
+        for i in range(n_pts):
+            s += stack[row[i] + off]
+        out[r] = s
+    return out
