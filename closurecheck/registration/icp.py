@@ -44,6 +44,8 @@ from __future__ import annotations
 from dataclasses import dataclass, field, fields, replace
 
 import numpy as np
+from scipy.sparse import coo_matrix
+from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
 
 from ..core import se2
@@ -105,6 +107,11 @@ class RegistrationOptions:
         inlier_sigmas: a correspondence is an inlier when its normalised
             residual is within this many robust standard deviations.
         fit_sigma_m: distance scale of the fit score used to rank hypotheses.
+        point_features: points of small isolated objects (a post, a bollard:
+            no point of their neighbourhood lies on a line) are matched
+            point-to-point to the nearest such target point, beside the
+            point-to-line matches (:func:`_point_rows`); without them a
+            scene of posts has almost nothing to register on.
 
     Covariance
         covariance: ``"censi"`` (Censi 2007 closed form, accounts for shared
@@ -147,6 +154,7 @@ class RegistrationOptions:
     kernel: str = setting("huber", choices=KERNEL_CHOICES)
     kernel_scale: float = setting(1.345, above=0.0)
     min_noise_m: float = setting(0.001, above=0.0)
+    point_features: bool = setting(True)
     max_iterations: int = setting(30, at_least=1)
     tolerance_m: float = setting(1e-4, above=0.0)
     tolerance_rad: float = setting(2e-5, above=0.0)
@@ -180,7 +188,7 @@ class RegistrationOptions:
         return (self.line_neighbours, self.line_radius_m, self.min_line_points, self.max_line_thickness,
                 self.line_model,
                 self.point_noise, self.min_incidence_cos, self.coarse_resolution_m, self.coarse_sigma_m,
-                self.coarse_block_cells, self.coarse_max_points)
+                self.coarse_block_cells, self.coarse_max_points, self.point_features)
 
 
 DEFAULT_OPTIONS = RegistrationOptions()
@@ -207,6 +215,11 @@ class PreparedScan:
         straight, 1 = no direction); NaN where too few neighbours.
     has_line : (N,) bool, the point lies on locally straight structure.
     line_index : (M,) indices of the points with a line.
+    point_index : (P,) indices of the points of small isolated objects, matched
+        point-to-point (:func:`_point_like`; empty when ``point_features`` is off).
+    point_spacing : (P,) distance (m) from each of them to the nearest other
+        point of the scan: the sampling step on that object.
+    point_object : (P,) label of the object (connected neighbours) each belongs to.
     coarse_points : (K, 2) downsampled points for the coarse search.
     length_m : root-mean-square range of the points (metres).
     radius_m : largest range of the points (metres).
@@ -229,6 +242,8 @@ class PreparedScan:
         these, the largest arrays of a prepared scan, at no cost to the
         covariance's precision.
     grid : the likelihood grid (closurecheck.registration.correlative.LikelihoodGrid).
+    point_tree : cKDTree over ``points[point_index]`` (None when there are none).
+    fit_tree : cKDTree over the points with a line or of a small object (the fit score's targets).
     """
 
     points: np.ndarray
@@ -237,6 +252,9 @@ class PreparedScan:
     thickness: np.ndarray
     has_line: np.ndarray
     line_index: np.ndarray
+    point_index: np.ndarray
+    point_spacing: np.ndarray
+    point_object: np.ndarray
     coarse_points: np.ndarray
     length_m: float
     radius_m: float
@@ -278,6 +296,21 @@ class PreparedScan:
     @property
     def nbr_coef(self) -> np.ndarray:
         return self._target_side()[3]
+
+    @property
+    def point_tree(self) -> cKDTree | None:
+        if "point_tree" not in self._lazy:
+            self._lazy["point_tree"] = cKDTree(self.points[self.point_index]) if len(self.point_index) else None
+        return self._lazy["point_tree"]
+
+    @property
+    def fit_tree(self) -> cKDTree:
+        got = self._lazy.get("fit_tree")
+        if got is None:
+            got = self.tree if not len(self.point_index) else cKDTree(
+                self.points[np.union1d(self.line_index, self.point_index)])
+            self._lazy["fit_tree"] = got
+        return got
 
     @property
     def grid(self) -> _coarse.LikelihoodGrid:
@@ -534,6 +567,38 @@ def _line_features(points, beams, opt: RegistrationOptions):
     return idx, used, count, centroid, normal, tangent, thickness, has_line
 
 
+def _point_like(points, idx, used, has_line, opt: RegistrationOptions):
+    """Points of small isolated objects: (indices, distance to the nearest other point in metres, object label).
+
+    A point qualifies when it has no line, at least two neighbours within
+    ``line_radius_m`` and none of its neighbours has a line either: the
+    whole neighbourhood is a compact object with no straight part (a lamp
+    post, a bollard, a column), not the corner of a wall, whose neighbours
+    lie on the walls' lines.  The round cross-section of a post gives a
+    neighbourhood too thick for a line (spread ratio 0.33-0.37 on the
+    0.3 m posts of the ``lot`` scene, against a limit of 0.3), so before
+    these points were matched a scene of posts registered on the few
+    straight faces in range alone and most of its true pairs came out
+    degenerate or unconverged (docs/performance.md, robustness section).
+    """
+    if not opt.point_features:
+        return np.zeros(0, np.int64), np.zeros(0), np.zeros(0, np.int64)
+    count = used.sum(axis=1)
+    lined = (has_line[idx] & used).any(axis=1)
+    pick = np.flatnonzero(~has_line & (count >= 3) & ~lined)
+    # The neighbours come sorted by distance, the point itself first.
+    nearest = idx[pick, 1]
+    spacing = np.hypot(*(points[nearest] - points[pick]).T)
+    # Objects: connected groups of neighbours; one object's sampling offsets move together (_point_middle).
+    n = len(points)
+    rows = np.repeat(pick, idx.shape[1])
+    cols = idx[pick].ravel()
+    keep = used[pick].ravel()
+    graph = coo_matrix((np.ones(int(keep.sum())), (rows[keep], cols[keep])), shape=(n, n))
+    _, label = connected_components(graph, directed=False)
+    return pick, spacing, label[pick]
+
+
 def prepare_scan(points_xy, options: RegistrationOptions = DEFAULT_OPTIONS, *, grid: bool = True) -> PreparedScan:
     """Build the per-scan data that registration reuses across pairs.
 
@@ -568,15 +633,17 @@ def _prepare(pts, opt: RegistrationOptions, with_grid: bool) -> PreparedScan:
     beams = pts / np.maximum(rng, 1e-12)[:, None]
     idx, used, _count, centroid, normal, tangent, thickness, has_line = _line_features(pts, beams, opt)
     line_index = np.flatnonzero(has_line)
-    if len(line_index) < 3:
-        raise InputError("scan has fewer than 3 points on straight structure; cannot register it")
+    point_index, point_spacing, point_object = _point_like(pts, idx, used, has_line, opt)
+    if len(line_index) < 3 and len(point_index) < 3:
+        raise InputError("scan has fewer than 3 points on straight structure or small objects; cannot register it")
     li = line_index
     fit = (idx[li], used[li], normal[li], tangent[li], centroid[li], opt)
     normals = np.where(has_line[:, None], normal, 0.0)
     coarse_pts = _coarse.downsample(pts, 2.0 * opt.coarse_resolution_m, opt.coarse_max_points)
     scan = PreparedScan(
         points=pts, beams=beams, normals=normals, thickness=thickness, has_line=has_line,
-        line_index=line_index, coarse_points=coarse_pts,
+        line_index=line_index, point_index=point_index, point_spacing=point_spacing,
+        point_object=point_object, coarse_points=coarse_pts,
         length_m=float(np.sqrt(np.mean(rng * rng))), radius_m=float(rng.max()), point_noise=opt.point_noise,
         key=opt.preparation_key(),
         _lazy={"fit": fit, "grid_settings": (opt.coarse_resolution_m, opt.coarse_sigma_m, opt.coarse_block_cells)},
@@ -649,6 +716,128 @@ class _Solution:
     s_along: np.ndarray   # (n, 2) along-line offsets s (m) and the basis phi_2(s) (m^2)
     src_coef: np.ndarray  # (n,) source-noise sensitivity
     scale: float          # robust residual scale (m)
+    points: _PointRows | None = None   # point-to-point rows of small objects (_point_rows), if any
+
+
+@dataclass(frozen=True, eq=False)
+class _PointRows:
+    """Point-to-point residuals of small-object points, two rows per match (along the target beam, across it)."""
+
+    src: np.ndarray       # (m,) source point indices
+    tgt: np.ndarray       # (m,) target point indices (into target.points)
+    r: np.ndarray         # (2m,) residuals (m), rows 2k and 2k+1 belong to match k
+    v: np.ndarray         # (2m,) residual variance units (sigma^2)
+    w: np.ndarray         # (2m,) robust weights
+    jac: np.ndarray       # (2m, 3)
+    src_coef: np.ndarray  # (2m,) sensitivity to the source reading's noise
+    tgt_coef: np.ndarray  # (2m,) sensitivity to the target reading's noise
+    sampling: np.ndarray  # (2m,) variance units of the target's sampling step (sigma^2)
+    # (2m,) index of the independent noise behind src_coef / tgt_coef: the reading (range noise, one
+    # number per reading) or the reading's coordinate along the row (isotropic noise, two per reading)
+    src_noise: np.ndarray
+    tgt_noise: np.ndarray
+    obj_noise: np.ndarray  # (2m,) index of the sampling offset: the target object and the row's direction
+
+
+def _associate_points(src: PreparedScan, tgt: PreparedScan, x, opt):
+    """Nearest small-object target point of each small-object source point under pose x: (src idx, tgt idx)."""
+    if not len(src.point_index) or tgt.point_tree is None:
+        return None
+    c, s = np.cos(x[2]), np.sin(x[2])
+    pw = src.points[src.point_index] @ np.array([[c, s], [-s, c]]) + x[:2]
+    _, j = tgt.point_tree.query(pw, distance_upper_bound=opt.max_correspondence_m)
+    hit = j < len(tgt.point_index)
+    if not hit.any():
+        return None
+    return src.point_index[hit], tgt.point_index[j[hit]], tgt.point_spacing[j[hit]], tgt.point_object[j[hit]]
+
+
+def _point_rows(src: PreparedScan, tgt: PreparedScan, matches, x, range_noise: bool, sigma_m: float):
+    """Residual rows of point-to-point matches at pose x (weights not yet set).
+
+    The offset ``e = R p + t - q`` of the transformed source point p from
+    its target point q is split along q's beam and across it (two
+    independent rows; the range noise of q acts on the first only).  As in
+    Generalized-ICP (Segal, Haehnel and Thrun, RSS 2009), a neighbourhood
+    that is not flat is treated as a point with isotropic uncertainty; here
+    that is the target's sampling step h (the nearest reading to p can be
+    anywhere within h/2 of p's true partner, variance h^2/12 in each
+    direction), expressed in units of the current noise estimate sigma_m.
+    """
+    i, q, spacing, obj = matches
+    c, s = np.cos(x[2]), np.sin(x[2])
+    rot_t = np.array([[c, s], [-s, c]])
+    rp = src.points[i] @ rot_t
+    e = rp + x[:2] - tgt.points[q]
+    u = tgt.beams[q]
+    n = np.stack([u, np.column_stack([-u[:, 1], u[:, 0]])], axis=1).reshape(-1, 2)     # (2m, 2)
+    rp2 = np.repeat(rp, 2, axis=0)
+    r = (n * np.repeat(e, 2, axis=0)).sum(axis=1)
+    jac = np.column_stack([n[:, 0], n[:, 1], n[:, 1] * rp2[:, 0] - n[:, 0] * rp2[:, 1]])
+    if range_noise:
+        src_coef = (n * np.repeat(src.beams[i] @ rot_t, 2, axis=0)).sum(axis=1)
+        tgt_coef = -np.tile([1.0, 0.0], len(i))
+        src_noise, tgt_noise = i.repeat(2), q.repeat(2)
+    else:
+        src_coef = np.ones(len(r))
+        tgt_coef = -np.ones(len(r))
+        src_noise, tgt_noise = 2 * i.repeat(2) + np.tile([0, 1], len(i)), 2 * q.repeat(2) + np.tile([0, 1], len(i))
+    # Along the target beam the readings are range-noisy only; the sampling step lies across it.
+    sampling = np.ravel(np.column_stack([np.zeros(len(i)), spacing * spacing / 12.0])) / (sigma_m * sigma_m)
+    v = src_coef * src_coef + tgt_coef * tgt_coef + sampling
+    obj_noise = 2 * obj.repeat(2) + np.tile([0, 1], len(i))
+    return _PointRows(i, q, r, v, np.ones(len(r)), jac, src_coef, tgt_coef, sampling, src_noise, tgt_noise,
+                      obj_noise)
+
+
+def _weigh_with_points(src: PreparedScan, tgt: PreparedScan, matches, x, range_noise: bool, r, v, opt, kernel):
+    """Point rows of ``matches`` and robust weights of line and point rows under one scale: (w, rows, scale).
+
+    The point rows' sampling variance is stated in units of the noise
+    estimate of the line rows when there are at least 6 of them (common
+    practice for a median absolute deviation), else of the point rows'
+    own, found by a few fixed-point steps of ``sigma = MAD(r / sqrt(v(sigma)))``.
+    """
+    if len(r) >= 6:
+        sigma = max(_MAD_TO_SIGMA * _median(np.abs(r / np.sqrt(v))), opt.min_noise_m)
+        rows = _point_rows(src, tgt, matches, x, range_noise, sigma)
+    else:
+        rows = None
+        sigma = None
+        for _ in range(3):
+            if sigma is None:
+                rows = _point_rows(src, tgt, matches, x, range_noise, 1.0)
+                sigma = max(_MAD_TO_SIGMA * _median(np.abs(rows.r)), opt.min_noise_m)
+            rows = _point_rows(src, tgt, matches, x, range_noise, sigma)
+            sigma = max(_MAD_TO_SIGMA * _median(np.abs(rows.r / np.sqrt(rows.v))), opt.min_noise_m)
+        rows = _point_rows(src, tgt, matches, x, range_noise, sigma)
+    z = np.concatenate([r / np.sqrt(v), rows.r / np.sqrt(rows.v)])
+    scale = max(_MAD_TO_SIGMA * _median(np.abs(z)), opt.min_noise_m)
+    w = kernel.weight(z / scale)
+    rows = replace(rows, w=w[len(r):])
+    return w[:len(r)], rows, scale
+
+
+def _point_middle(rows: _PointRows, om, n_source: int, n_target: int):
+    """Censi's middle term (closurecheck.registration.covariance.censi_middle) of the point rows.
+
+    The two rows of a match share its source reading and its target reading
+    (their noise is summed per reading before the outer product); the
+    sampling offsets of the rows matched to one target object are one noise, per row direction.
+    """
+    wj = rows.jac * om[:, None]
+    middle = np.zeros((3, 3))
+    for idx, coef, size in ((rows.src_noise, rows.src_coef, 2 * n_source),
+                            (rows.tgt_noise, rows.tgt_coef, 2 * n_target)):
+        m = np.column_stack([np.bincount(idx, weights=coef * wj[:, d], minlength=size) for d in range(3)])
+        middle += m.T @ m
+    # The readings of one target object are spaced evenly, so the nearest of them lies off each source
+    # point's partner by about the same fraction of a step: the offsets of one object are taken as one
+    # shared noise (an upper bound; independent offsets gave an ANEES of 12.5 instead of 3 on the lot).
+    size = 2 * (int(rows.obj_noise.max()) // 2 + 1)
+    m = np.column_stack([np.bincount(rows.obj_noise, weights=np.sqrt(rows.sampling) * wj[:, d], minlength=size)
+                         for d in range(3)])
+    return middle + m.T @ m
 
 
 def _failed(x, it) -> _Solution:
@@ -757,20 +946,29 @@ def _icp_line(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions
     pairs = None
     moved = np.inf     # bound on any source point's motion since the last association (m)
     cands = _candidates(src, cos_max)
+    matches = prow = None
     for it in range(1, opt.max_iterations + 1):
         # Re-associating costs a kd-tree query; once the pose moves by less
         # than reassociate_m the nearest lines cannot change enough to matter.
         if moved >= opt.reassociate_m:
             pairs = _associate(src, tgt, x, opt, cos_max, cands)
+            matches = _associate_points(src, tgt, x, opt)
             moved = 0.0
-        if len(pairs[0]) < 3:
+        if len(pairs[0]) + (0 if matches is None else len(matches[0])) < 3:
             pairs = None
             break
         r, v, jac, s_al, sc = _linearise(pairs, x, opt, range_noise)
-        w, scale = _robust(r, v, opt, kernel)
-        jw = jac * (w / v)[:, None]
-        h = jw.T @ jac
-        g = jw.T @ r
+        if matches is None:
+            w, scale = _robust(r, v, opt, kernel)
+            jw = jac * (w / v)[:, None]
+            h = jw.T @ jac
+            g = jw.T @ r
+        else:
+            w, prow, scale = _weigh_with_points(src, tgt, matches, x, range_noise, r, v, opt, kernel)
+            jw = np.concatenate([jac * (w / v)[:, None], prow.jac * (prow.w / prow.v)[:, None]])
+            jall = np.concatenate([jac, prow.jac])
+            h = jw.T @ jall
+            g = jw.T @ np.concatenate([r, prow.r])
         mu = opt.damping * float(np.trace(h / lscale)) / 3.0
         step = -np.linalg.solve(h + mu * lscale_diag, g)
         x = x + step
@@ -781,7 +979,11 @@ def _icp_line(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions
     x[2] = np.pi - np.mod(np.pi - x[2], 2 * np.pi)
     if pairs is None:
         return _failed(x, it)
-    return _Solution(x, converged, it, pairs[0], pairs[1], r, v, w, jac, np.stack(s_al, axis=1), sc, scale)
+    if matches is not None:
+        # The rows at the final pose (the loop's last rows are from before its last step).
+        r, v, jac, s_al, sc = _linearise(pairs, x, opt, range_noise)
+        w, prow, scale = _weigh_with_points(src, tgt, matches, x, range_noise, r, v, opt, kernel)
+    return _Solution(x, converged, it, pairs[0], pairs[1], r, v, w, jac, np.stack(s_al, axis=1), sc, scale, prow)
 
 
 def _icp_point(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions, kernel) -> _Solution:
@@ -831,7 +1033,8 @@ def _icp_point(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOption
 def _fit_score(src: PreparedScan, tgt: PreparedScan, x, opt: RegistrationOptions) -> float:
     """Mean over the evenly spread source points of ``exp(-d^2 / (2 fit_sigma_m^2))`` at pose x.
 
-    ``d`` is the distance to the nearest target point on straight structure;
+    ``d`` is the distance to the nearest target point on straight structure
+    or of a small object (:func:`_point_like`);
     the source points are the coarse stage's (one per cell), so that densely
     sampled walls near the sensor do not outweigh the rest of the scan.
     Point-to-point distances, unlike the point-to-line residuals, penalise a
@@ -841,7 +1044,7 @@ def _fit_score(src: PreparedScan, tgt: PreparedScan, x, opt: RegistrationOptions
     c, s = np.cos(x[2]), np.sin(x[2])
     pts = src.coarse_points
     pw = pts @ np.array([[c, s], [-s, c]]) + x[:2]
-    d, _ = tgt.tree.query(pw, distance_upper_bound=4.0 * opt.fit_sigma_m)
+    d, _ = tgt.fit_tree.query(pw, distance_upper_bound=4.0 * opt.fit_sigma_m)
     d = d[np.isfinite(d)]
     return float(np.exp(-0.5 * (d / opt.fit_sigma_m) ** 2).sum() / len(pts))
 
@@ -852,26 +1055,34 @@ def _same(a, b, opt) -> bool:
 
 
 def _finish(src: PreparedScan, tgt: PreparedScan, sol: _Solution, opt: RegistrationOptions, **extra) -> Registration:
-    n = len(sol.r)
+    pr = sol.points
+    n = len(sol.r) if pr is None else len(sol.r) + len(pr.src)        # matches
     if n < 3:
         return _no_overlap(src, sol, opt, **extra)
     om = sol.w / sol.v
-    h = _cov.hessian(sol.jac, om)
+    r_all, om_all, jac_all, v_all = sol.r, om, sol.jac, sol.v
+    if pr is not None:
+        r_all, v_all = np.concatenate([sol.r, pr.r]), np.concatenate([sol.v, pr.v])
+        om_all = np.concatenate([om, pr.w / pr.v])
+        jac_all = np.concatenate([sol.jac, pr.jac])
+    h = _cov.hessian(jac_all, om_all)
     e_wu2, kappa = _cov.kernel_moments(kernel_from_name(opt.kernel, opt.kernel_scale))
-    sigma2 = _cov.noise_variance(sol.r, om, e_wu2)
+    sigma2 = _cov.noise_variance(r_all, om_all, e_wu2)
     middle = None
     if opt.covariance == "censi":
         w = tgt.nbr_coef[sol.tgt]
         basis = sol.s_along                               # (n, 2): s and the third basis function
         coef_t = -(w[..., 0] + basis[:, :1] * w[..., 1] + basis[:, 1:] * w[..., 2])
         middle = _cov.censi_middle(sol.jac, om, sol.src_coef, tgt.nbr_index[sol.tgt], coef_t, len(tgt.points))
-    est = _cov.analyse(h, middle, sigma2, n, src.length_m, method=opt.covariance,
+        if pr is not None:
+            middle = middle + _point_middle(pr, om_all[len(sol.r):], len(src.points), len(tgt.points))
+    est = _cov.analyse(h, middle, sigma2, len(r_all), src.length_m, method=opt.covariance,
                        degeneracy_threshold=opt.degeneracy_threshold,
                        unobservable_sigma_m=opt.unobservable_sigma_m, kappa=kappa,
                        points_per_normal=float(opt.line_neighbours))
-    z = np.abs(sol.r / np.sqrt(sol.v))
+    z = np.abs(r_all / np.sqrt(v_all))
     inl = z <= opt.inlier_sigmas * sol.scale
-    rmse = float(np.sqrt(np.mean(sol.r[inl] ** 2))) if inl.any() else float("nan")
+    rmse = float(np.sqrt(np.mean(r_all[inl] ** 2))) if inl.any() else float("nan")
     delta = sol.x.copy()
     cov = est.covariance
     evals = est.eigenvalues.copy()
