@@ -571,10 +571,11 @@ def _point_like(points, idx, used, has_line, opt: RegistrationOptions):
     """Points of small isolated objects: (indices, distance to the nearest other point in metres, object label).
 
     A point qualifies when it has no line, at least two neighbours within
-    ``line_radius_m`` and none of its neighbours has a line either: the
-    whole neighbourhood is a compact object with no straight part (a lamp
-    post, a bollard, a column), not the corner of a wall, whose neighbours
-    lie on the walls' lines.  The round cross-section of a post gives a
+    ``line_radius_m``, none of its neighbours has a line either, and the
+    object its neighbours chain into spans at most ``2 line_radius_m``:
+    a compact object with no straight part (a lamp post, a bollard, a
+    column), not the corner of a wall, whose neighbours lie on the walls'
+    lines, nor a wall far off at a grazing angle.  The round cross-section of a post gives a
     neighbourhood too thick for a line (spread ratio 0.33-0.37 on the
     0.3 m posts of the ``lot`` scene, against a limit of 0.3), so before
     these points were matched a scene of posts registered on the few
@@ -589,14 +590,22 @@ def _point_like(points, idx, used, has_line, opt: RegistrationOptions):
     # The neighbours come sorted by distance, the point itself first.
     nearest = idx[pick, 1]
     spacing = np.hypot(*(points[nearest] - points[pick]).T)
-    # Objects: connected groups of neighbours; one object's sampling offsets move together (_point_middle).
+    # Objects: connected groups of neighbours among all the scan's points; one object's sampling offsets
+    # move together (_point_middle).  Only small objects: a long group is a wall (near the sensor its
+    # dense noisy readings are too thick for lines at places, far off too sparse), whose readings
+    # slide along it with the viewpoint; matched point-to-point they would pin a bare corridor along
+    # its axis (tests/registration/test_covariance.py).
     n = len(points)
-    rows = np.repeat(pick, idx.shape[1])
-    cols = idx[pick].ravel()
-    keep = used[pick].ravel()
-    graph = coo_matrix((np.ones(int(keep.sum())), (rows[keep], cols[keep])), shape=(n, n))
+    rows = np.repeat(np.arange(n), idx.shape[1])[used.ravel()]
+    graph = coo_matrix((np.ones(len(rows)), (rows, idx.ravel()[used.ravel()])), shape=(n, n))
     _, label = connected_components(graph, directed=False)
-    return pick, spacing, label[pick]
+    lo = np.full((n, 2), np.inf)
+    hi = np.full((n, 2), -np.inf)
+    np.minimum.at(lo, label, points)
+    np.maximum.at(hi, label, points)
+    lab = label[pick]
+    small = np.hypot(*(hi - lo)[lab].T) <= 2.0 * opt.line_radius_m
+    return pick[small], spacing[small], lab[small]
 
 
 def prepare_scan(points_xy, options: RegistrationOptions = DEFAULT_OPTIONS, *, grid: bool = True) -> PreparedScan:
