@@ -107,11 +107,13 @@ class RegistrationOptions:
         inlier_sigmas: a correspondence is an inlier when its normalised
             residual is within this many robust standard deviations.
         fit_sigma_m: distance scale of the fit score used to rank hypotheses.
-        point_features: points of small isolated objects (a post, a bollard:
-            no point of their neighbourhood lies on a line) are matched
-            point-to-point to the nearest such target point, beside the
-            point-to-line matches (:func:`_point_rows`); without them a
-            scene of posts has almost nothing to register on.
+        point_features: small isolated objects (a post, a bollard: no point
+            of their neighbourhood lies on a line, :func:`_point_like`) are
+            registered too: seen by at least ``min_line_points`` readings
+            they take the local model of a line (its quadratic term follows
+            their round outline), seen by fewer they are matched point to
+            segment (:func:`_point_rows`).  Without them a scene of posts
+            has almost nothing to register on.
 
     Covariance
         covariance: ``"censi"`` (Censi 2007 closed form, accounts for shared
@@ -213,12 +215,12 @@ class PreparedScan:
         where there is no line.
     thickness : (N,) spread across / along the local line (0 = perfectly
         straight, 1 = no direction); NaN where too few neighbours.
-    has_line : (N,) bool, the point lies on locally straight structure.
+    has_line : (N,) bool, the point lies on locally straight structure or on
+        the outline of a small object seen by ``min_line_points`` readings or more.
     line_index : (M,) indices of the points with a line.
-    point_index : (P,) indices of the points of small isolated objects, matched
-        point-to-point (:func:`_point_like`; empty when ``point_features`` is off).
-    point_spacing : (P,) distance (m) from each of them to the nearest other
-        point of the scan: the sampling step on that object.
+    point_index : (P,) indices of the points of small isolated objects seen by fewer
+        than ``min_line_points`` readings, matched point to segment
+        (:func:`_point_like`; empty when ``point_features`` is off).
     point_object : (P,) label of the object (connected neighbours) each belongs to.
     coarse_points : (K, 2) downsampled points for the coarse search.
     length_m : root-mean-square range of the points (metres).
@@ -253,7 +255,6 @@ class PreparedScan:
     has_line: np.ndarray
     line_index: np.ndarray
     point_index: np.ndarray
-    point_spacing: np.ndarray
     point_object: np.ndarray
     coarse_points: np.ndarray
     length_m: float
@@ -568,7 +569,7 @@ def _line_features(points, beams, opt: RegistrationOptions):
 
 
 def _point_like(points, idx, used, has_line, opt: RegistrationOptions):
-    """Points of small isolated objects: (indices, distance to the nearest other point in metres, object label).
+    """Points of small isolated objects: (indices, object label of each).
 
     A point qualifies when it has no line, at least two neighbours within
     ``line_radius_m``, none of its neighbours has a line either, and the
@@ -583,15 +584,12 @@ def _point_like(points, idx, used, has_line, opt: RegistrationOptions):
     degenerate or unconverged (docs/performance.md, robustness section).
     """
     if not opt.point_features:
-        return np.zeros(0, np.int64), np.zeros(0), np.zeros(0, np.int64)
+        return np.zeros(0, np.int64), np.zeros(0, np.int64)
     count = used.sum(axis=1)
     lined = (has_line[idx] & used).any(axis=1)
     pick = np.flatnonzero(~has_line & (count >= 3) & ~lined)
-    # The neighbours come sorted by distance, the point itself first.
-    nearest = idx[pick, 1]
-    spacing = np.hypot(*(points[nearest] - points[pick]).T)
-    # Objects: connected groups of neighbours among all the scan's points; one object's sampling offsets
-    # move together (_point_middle).  Only small objects: a long group is a wall (near the sensor its
+    # Objects: connected groups of neighbours among all the scan's points; a segment of
+    # _associate_points never joins two of them.  Only small objects: a long group is a wall (near the sensor its
     # dense noisy readings are too thick for lines at places, far off too sparse), whose readings
     # slide along it with the viewpoint; matched point-to-point they would pin a bare corridor along
     # its axis (tests/registration/test_covariance.py).
@@ -605,7 +603,7 @@ def _point_like(points, idx, used, has_line, opt: RegistrationOptions):
     np.maximum.at(hi, label, points)
     lab = label[pick]
     small = np.hypot(*(hi - lo)[lab].T) <= 2.0 * opt.line_radius_m
-    return pick[small], spacing[small], lab[small]
+    return pick[small], lab[small]
 
 
 def prepare_scan(points_xy, options: RegistrationOptions = DEFAULT_OPTIONS, *, grid: bool = True) -> PreparedScan:
@@ -641,8 +639,15 @@ def _prepare(pts, opt: RegistrationOptions, with_grid: bool) -> PreparedScan:
     rng = np.hypot(pts[:, 0], pts[:, 1])
     beams = pts / np.maximum(rng, 1e-12)[:, None]
     idx, used, _count, centroid, normal, tangent, thickness, has_line = _line_features(pts, beams, opt)
+    point_index, point_object = _point_like(pts, idx, used, has_line, opt)
+    if len(point_index):
+        # A small object seen by enough readings for a line takes the local model of a line: the
+        # quadratic model follows its outline (point-to-curve); the rest are matched to segments.
+        curve = _count[point_index] >= opt.min_line_points
+        has_line = has_line.copy()
+        has_line[point_index[curve]] = True
+        point_index, point_object = point_index[~curve], point_object[~curve]
     line_index = np.flatnonzero(has_line)
-    point_index, point_spacing, point_object = _point_like(pts, idx, used, has_line, opt)
     if len(line_index) < 3 and len(point_index) < 3:
         raise InputError("scan has fewer than 3 points on straight structure or small objects; cannot register it")
     li = line_index
@@ -651,8 +656,7 @@ def _prepare(pts, opt: RegistrationOptions, with_grid: bool) -> PreparedScan:
     coarse_pts = _coarse.downsample(pts, 2.0 * opt.coarse_resolution_m, opt.coarse_max_points)
     scan = PreparedScan(
         points=pts, beams=beams, normals=normals, thickness=thickness, has_line=has_line,
-        line_index=line_index, point_index=point_index, point_spacing=point_spacing,
-        point_object=point_object, coarse_points=coarse_pts,
+        line_index=line_index, point_index=point_index, point_object=point_object, coarse_points=coarse_pts,
         length_m=float(np.sqrt(np.mean(rng * rng))), radius_m=float(rng.max()), point_noise=opt.point_noise,
         key=opt.preparation_key(),
         _lazy={"fit": fit, "grid_settings": (opt.coarse_resolution_m, opt.coarse_sigma_m, opt.coarse_block_cells)},
@@ -730,121 +734,108 @@ class _Solution:
 
 @dataclass(frozen=True, eq=False)
 class _PointRows:
-    """Point-to-point residuals of small-object points, two rows per match (along the target beam, across it)."""
+    """Point-to-segment residuals of small-object points: one row per source point matched."""
 
     src: np.ndarray       # (m,) source point indices
-    tgt: np.ndarray       # (m,) target point indices (into target.points)
-    r: np.ndarray         # (2m,) residuals (m), rows 2k and 2k+1 belong to match k
-    v: np.ndarray         # (2m,) residual variance units (sigma^2)
-    w: np.ndarray         # (2m,) robust weights
-    jac: np.ndarray       # (2m, 3)
-    src_coef: np.ndarray  # (2m,) sensitivity to the source reading's noise
-    tgt_coef: np.ndarray  # (2m,) sensitivity to the target reading's noise
-    sampling: np.ndarray  # (2m,) variance units of the target's sampling step (sigma^2)
-    # (2m,) index of the independent noise behind src_coef / tgt_coef: the reading (range noise, one
-    # number per reading) or the reading's coordinate along the row (isotropic noise, two per reading)
-    src_noise: np.ndarray
-    tgt_noise: np.ndarray
-    obj_noise: np.ndarray  # (2m,) index of the sampling offset: the target object and the row's direction
+    tgt: np.ndarray       # (m, 2) the two target readings spanning the segment (indices into target.points)
+    r: np.ndarray         # (m,) residuals (m)
+    v: np.ndarray         # (m,) residual variance units (sigma^2)
+    w: np.ndarray         # (m,) robust weights
+    jac: np.ndarray       # (m, 3)
+    src_coef: np.ndarray  # (m,) sensitivity to the source reading's noise
+    tgt_coef: np.ndarray  # (m, 2) sensitivity to the two target readings' noise
 
 
 def _associate_points(src: PreparedScan, tgt: PreparedScan, x, opt):
-    """Nearest small-object target point of each small-object source point under pose x: (src idx, tgt idx)."""
-    if not len(src.point_index) or tgt.point_tree is None:
+    """Small-object matches under pose x: (source indices, (m, 2) target segment ends, transformed points).
+
+    Each source point is matched to the segment between its nearest
+    small-object target reading and the next nearest of the same object,
+    and kept only where it projects onto that segment: a point beyond the
+    ends of what the target saw of the object has no partner.
+    """
+    if not len(src.point_index) or tgt.point_tree is None or len(tgt.point_index) < 2:
         return None
     c, s = np.cos(x[2]), np.sin(x[2])
     pw = src.points[src.point_index] @ np.array([[c, s], [-s, c]]) + x[:2]
-    _, j = tgt.point_tree.query(pw, distance_upper_bound=opt.max_correspondence_m)
-    hit = j < len(tgt.point_index)
-    if not hit.any():
+    k = min(3, len(tgt.point_index))
+    _, j = tgt.point_tree.query(pw, k=k, distance_upper_bound=opt.max_correspondence_m)
+    m = len(tgt.point_index)
+    first = j[:, 0]
+    ok = first < m
+    label = np.append(tgt.point_object, -1)
+    # The nearer of the next candidates that lies on the same object.
+    second = np.full(len(first), m)
+    for col in range(k - 1, 0, -1):
+        same = (j[:, col] < m) & (label[j[:, col]] == label[np.minimum(first, m)]) & ok
+        second = np.where(same, j[:, col], second)
+    ok &= second < m
+    if not ok.any():
         return None
-    return src.point_index[hit], tgt.point_index[j[hit]], tgt.point_spacing[j[hit]], tgt.point_object[j[hit]]
+    q0 = tgt.points[tgt.point_index[first[ok]]]
+    q1 = tgt.points[tgt.point_index[second[ok]]]
+    seg = q1 - q0
+    lam = ((pw[ok] - q0) * seg).sum(axis=1) / np.maximum((seg * seg).sum(axis=1), 1e-18)
+    inside = (lam >= 0.0) & (lam <= 1.0)
+    if inside.sum() == 0:
+        return None
+    idx = np.flatnonzero(ok)[inside]
+    ends = np.column_stack([tgt.point_index[first[idx]], tgt.point_index[second[idx]]])
+    return src.point_index[idx], ends
 
 
-def _point_rows(src: PreparedScan, tgt: PreparedScan, matches, x, range_noise: bool, sigma_m: float):
-    """Residual rows of point-to-point matches at pose x (weights not yet set).
+def _point_rows(src: PreparedScan, tgt: PreparedScan, matches, x, range_noise: bool) -> _PointRows:
+    """Residual rows of point-to-segment matches at pose x (unit weights).
 
-    The offset ``e = R p + t - q`` of the transformed source point p from
-    its target point q is split along q's beam and across it (two
-    independent rows; the range noise of q acts on the first only).  As in
-    Generalized-ICP (Segal, Haehnel and Thrun, RSS 2009), a neighbourhood
-    that is not flat is treated as a point with isotropic uncertainty; here
-    that is the target's sampling step h (the nearest reading to p can be
-    anywhere within h/2 of p's true partner, variance h^2/12 in each
-    direction), expressed in units of the current noise estimate sigma_m.
+    The segment between two neighbouring target readings stands for the
+    surface between them, as in Censi's point-to-line ICP (ICRA 2008),
+    which takes its lines from the two nearest readings in the same way:
+    the residual is the offset of the transformed source point across the
+    segment.  Unlike a point-to-point offset, it carries no error from
+    where the two scans happened to sample a curved outline (a post's),
+    only the chord's sagitta (about 2 mm for readings 5 cm apart on a
+    0.15 m radius).
     """
-    i, q, spacing, obj = matches
+    i, ends = matches
     c, s = np.cos(x[2]), np.sin(x[2])
     rot_t = np.array([[c, s], [-s, c]])
     rp = src.points[i] @ rot_t
-    e = rp + x[:2] - tgt.points[q]
-    u = tgt.beams[q]
-    n = np.stack([u, np.column_stack([-u[:, 1], u[:, 0]])], axis=1).reshape(-1, 2)     # (2m, 2)
-    rp2 = np.repeat(rp, 2, axis=0)
-    r = (n * np.repeat(e, 2, axis=0)).sum(axis=1)
-    jac = np.column_stack([n[:, 0], n[:, 1], n[:, 1] * rp2[:, 0] - n[:, 0] * rp2[:, 1]])
+    q0, q1 = tgt.points[ends[:, 0]], tgt.points[ends[:, 1]]
+    seg = q1 - q0
+    length2 = np.maximum((seg * seg).sum(axis=1), 1e-18)
+    n = np.column_stack([-seg[:, 1], seg[:, 0]]) / np.sqrt(length2)[:, None]
+    d = rp + x[:2] - q0
+    lam = np.clip((d * seg).sum(axis=1) / length2, 0.0, 1.0)
+    r = (n * d).sum(axis=1)
+    jac = np.column_stack([n[:, 0], n[:, 1], n[:, 1] * rp[:, 0] - n[:, 0] * rp[:, 1]])
     if range_noise:
-        src_coef = (n * np.repeat(src.beams[i] @ rot_t, 2, axis=0)).sum(axis=1)
-        tgt_coef = -np.tile([1.0, 0.0], len(i))
-        src_noise, tgt_noise = i.repeat(2), q.repeat(2)
+        src_coef = (n * (src.beams[i] @ rot_t)).sum(axis=1)
+        u0, u1 = tgt.beams[ends[:, 0]], tgt.beams[ends[:, 1]]
+        tgt_coef = -np.column_stack([(1.0 - lam) * (n * u0).sum(axis=1), lam * (n * u1).sum(axis=1)])
     else:
         src_coef = np.ones(len(r))
-        tgt_coef = -np.ones(len(r))
-        src_noise, tgt_noise = 2 * i.repeat(2) + np.tile([0, 1], len(i)), 2 * q.repeat(2) + np.tile([0, 1], len(i))
-    # Along the target beam the readings are range-noisy only; the sampling step lies across it.
-    sampling = np.ravel(np.column_stack([np.zeros(len(i)), spacing * spacing / 12.0])) / (sigma_m * sigma_m)
-    v = src_coef * src_coef + tgt_coef * tgt_coef + sampling
-    obj_noise = 2 * obj.repeat(2) + np.tile([0, 1], len(i))
-    return _PointRows(i, q, r, v, np.ones(len(r)), jac, src_coef, tgt_coef, sampling, src_noise, tgt_noise,
-                      obj_noise)
+        tgt_coef = -np.column_stack([1.0 - lam, lam])
+    v = src_coef * src_coef + (tgt_coef * tgt_coef).sum(axis=1)
+    return _PointRows(i, ends, r, v, np.ones(len(r)), jac, src_coef, tgt_coef)
 
 
-def _weigh_with_points(src: PreparedScan, tgt: PreparedScan, matches, x, range_noise: bool, r, v, opt, kernel):
-    """Point rows of ``matches`` and robust weights of line and point rows under one scale: (w, rows, scale).
-
-    The point rows' sampling variance is stated in units of the noise
-    estimate of the line rows when there are at least 6 of them (common
-    practice for a median absolute deviation), else of the point rows'
-    own, found by a few fixed-point steps of ``sigma = MAD(r / sqrt(v(sigma)))``.
-    """
-    if len(r) >= 6:
-        sigma = max(_MAD_TO_SIGMA * _median(np.abs(r / np.sqrt(v))), opt.min_noise_m)
-        rows = _point_rows(src, tgt, matches, x, range_noise, sigma)
-    else:
-        rows = None
-        sigma = None
-        for _ in range(3):
-            if sigma is None:
-                rows = _point_rows(src, tgt, matches, x, range_noise, 1.0)
-                sigma = max(_MAD_TO_SIGMA * _median(np.abs(rows.r)), opt.min_noise_m)
-            rows = _point_rows(src, tgt, matches, x, range_noise, sigma)
-            sigma = max(_MAD_TO_SIGMA * _median(np.abs(rows.r / np.sqrt(rows.v))), opt.min_noise_m)
-        rows = _point_rows(src, tgt, matches, x, range_noise, sigma)
-    z = np.concatenate([r / np.sqrt(v), rows.r / np.sqrt(rows.v)])
-    scale = max(_MAD_TO_SIGMA * _median(np.abs(z)), opt.min_noise_m)
-    w = kernel.weight(z / scale)
-    rows = replace(rows, w=w[len(r):])
-    return w[:len(r)], rows, scale
+def _weigh_with_points(rows: _PointRows, r, v, opt, kernel):
+    """Robust weights of the line rows and the point rows under one scale: (w of the lines, rows, scale)."""
+    w, scale = _robust(np.concatenate([r, rows.r]), np.concatenate([v, rows.v]), opt, kernel)
+    return w[:len(r)], replace(rows, w=w[len(r):]), scale
 
 
 def _point_middle(rows: _PointRows, om, n_source: int, n_target: int):
     """Censi's middle term (closurecheck.registration.covariance.censi_middle) of the point rows.
 
-    The two rows of a match share its source reading and its target reading
-    (their noise is summed per reading before the outer product); the
-    sampling offsets of the rows matched to one target object are one noise, per row direction.
+    A target reading takes part in the segments of up to two neighbours, so
+    its noise is summed over its rows before the outer product, as for the
+    readings that fit a target line.
     """
     wj = rows.jac * om[:, None]
-    middle = np.zeros((3, 3))
-    for idx, coef, size in ((rows.src_noise, rows.src_coef, 2 * n_source),
-                            (rows.tgt_noise, rows.tgt_coef, 2 * n_target)):
-        m = np.column_stack([np.bincount(idx, weights=coef * wj[:, d], minlength=size) for d in range(3)])
-        middle += m.T @ m
-    # The readings of one target object are spaced evenly, so the nearest of them lies off each source
-    # point's partner by about the same fraction of a step: the offsets of one object are taken as one
-    # shared noise (an upper bound; independent offsets gave an ANEES of 12.5 instead of 3 on the lot).
-    size = 2 * (int(rows.obj_noise.max()) // 2 + 1)
-    m = np.column_stack([np.bincount(rows.obj_noise, weights=np.sqrt(rows.sampling) * wj[:, d], minlength=size)
+    middle = (wj * rows.src_coef[:, None]).T @ (wj * rows.src_coef[:, None])
+    idx = rows.tgt.ravel()
+    m = np.column_stack([np.bincount(idx, weights=(rows.tgt_coef * wj[:, d:d + 1]).ravel(), minlength=n_target)
                          for d in range(3)])
     return middle + m.T @ m
 
@@ -956,12 +947,14 @@ def _icp_line(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions
     moved = np.inf     # bound on any source point's motion since the last association (m)
     cands = _candidates(src, cos_max)
     matches = prow = None
+    has_points = len(src.point_index) > 0 and tgt.point_tree is not None
     for it in range(1, opt.max_iterations + 1):
         # Re-associating costs a kd-tree query; once the pose moves by less
         # than reassociate_m the nearest lines cannot change enough to matter.
         if moved >= opt.reassociate_m:
             pairs = _associate(src, tgt, x, opt, cos_max, cands)
-            matches = _associate_points(src, tgt, x, opt)
+            if has_points:
+                matches = _associate_points(src, tgt, x, opt)
             moved = 0.0
         if len(pairs[0]) + (0 if matches is None else len(matches[0])) < 3:
             pairs = None
@@ -973,7 +966,7 @@ def _icp_line(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions
             h = jw.T @ jac
             g = jw.T @ r
         else:
-            w, prow, scale = _weigh_with_points(src, tgt, matches, x, range_noise, r, v, opt, kernel)
+            w, prow, scale = _weigh_with_points(_point_rows(src, tgt, matches, x, range_noise), r, v, opt, kernel)
             jw = np.concatenate([jac * (w / v)[:, None], prow.jac * (prow.w / prow.v)[:, None]])
             jall = np.concatenate([jac, prow.jac])
             h = jw.T @ jall
@@ -991,7 +984,7 @@ def _icp_line(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions
     if matches is not None:
         # The rows at the final pose (the loop's last rows are from before its last step).
         r, v, jac, s_al, sc = _linearise(pairs, x, opt, range_noise)
-        w, prow, scale = _weigh_with_points(src, tgt, matches, x, range_noise, r, v, opt, kernel)
+        w, prow, scale = _weigh_with_points(_point_rows(src, tgt, matches, x, range_noise), r, v, opt, kernel)
     return _Solution(x, converged, it, pairs[0], pairs[1], r, v, w, jac, np.stack(s_al, axis=1), sc, scale, prow)
 
 

@@ -1,4 +1,4 @@
-"""Small isolated objects (posts) matched point-to-point: a scene of posts alone registers.
+"""Small isolated objects (posts): a scene of posts alone registers, to the truth and with an honest covariance.
 
 Before, a scan whose only returns are round posts had no straight structure
 and could not be registered at all; the sparse ``lot`` scene of
@@ -44,15 +44,17 @@ def trials():
     return truth, out
 
 
-def test_posts_only_scan_has_point_features_and_no_lines():
+def test_posts_only_scan_is_all_small_objects():
     pts = scan(TARGET_POSE, np.random.default_rng(1))
-    prepared = prepare_scan(pts)
-    assert prepared.has_line.sum() == 0
-    assert len(prepared.point_index) == len(pts)
-    # One object label per post in view.
-    assert len(np.unique(prepared.point_object)) == len(POSTS)
+    # Without small objects there is no straight structure at all.
     with pytest.raises(InputError, match="straight structure"):
         register(pts, pts, point_features=False)
+    prepared = prepare_scan(pts)
+    # Every reading belongs to a post: an outline model (posts seen by 5 readings or more) or a
+    # point matched to segments (fewer), and one object label per post seen by fewer.
+    assert prepared.has_line.sum() + len(prepared.point_index) == len(pts)
+    assert prepared.has_line.sum() > 0
+    assert len(np.unique(prepared.point_object)) <= len(POSTS)
 
 
 def test_posts_only_pair_recovers_the_true_transform(trials):
@@ -60,10 +62,9 @@ def test_posts_only_pair_recovers_the_true_transform(trials):
     for _, _, _, res in runs:
         assert res.converged and not res.degenerate
         d = res.delta - truth
-        # A few millimetres of noise and a viewpoint bias of about 7 mm / 0.2 degree (measured: the two
-        # poses see different arcs of each post); a wrong Jacobian or frame would be off by decimetres.
-        assert np.hypot(d[0], d[1]) < 0.04
-        assert abs(se2.wrap(d[2])) < np.radians(0.5)
+        # Measured: at most 1.2 cm and 0.1 degree; a wrong Jacobian or frame would be off by decimetres.
+        assert np.hypot(d[0], d[1]) < 0.03
+        assert abs(se2.wrap(d[2])) < np.radians(0.3)
 
 
 def _open3d_point_to_point(source, target, guess, max_corr):
@@ -85,11 +86,10 @@ def _open3d_point_to_point(source, target, guess, max_corr):
 
 def test_posts_only_pair_agrees_with_open3d_point_to_point(trials):
     # Reference library: open3d (open3d-cpu 0.20) registration_icp, point-to-point, on the same
-    # clouds and guesses. Both match each point to its nearest neighbour; ours weighs the offset
-    # across the target beam by the sampling step (open3d weighs every offset alike), so they
-    # agree to the 3 cm / 1 degree of tests/registration/test_icp.py. Measured mean errors from the
-    # truth: ours 10 mm, open3d 8 mm (ours trusts the range noise along the beam more than the
-    # viewpoint bias of a post's visible arc deserves, docs/performance.md).
+    # clouds and guesses. Ours follows each post's outline (a curve, or segments between readings)
+    # instead of snapping to the nearest reading, so the two agree to the 3 cm / 1 degree of
+    # tests/registration/test_icp.py and ours is the closer to the truth (measured: 6.4 mm
+    # against 8.0 mm on average).
     truth, runs = trials
     ours_err, ref_err = [], []
     for target, source, guess, res in runs[:10]:
@@ -98,18 +98,17 @@ def test_posts_only_pair_agrees_with_open3d_point_to_point(trials):
         assert abs(se2.wrap(res.delta[2] - ref[2])) < np.radians(1.0)
         ours_err.append(np.hypot(*(res.delta[:2] - truth[:2])))
         ref_err.append(np.hypot(*(ref[:2] - truth[:2])))
-    assert np.mean(ours_err) < 0.02 and np.mean(ref_err) < 0.02
+    assert np.mean(ours_err) < np.mean(ref_err)
 
 
 def test_predicted_spread_matches_the_monte_carlo_spread(trials):
-    # The covariance (Censi 2007 closed form with the sampling step as a noise shared by the points of
-    # one post) against the spread of the 40 estimates about their mean: the per-axis standard
-    # deviations agree within a factor 2 (the sample standard deviation of 40 draws is within +-25%
-    # of the truth at about 95%, chi-square(39)). Measured: 1.03, 0.95 and 0.62 of the spread in x,
-    # y and heading; the heading is underestimated (a known shortfall, docs/performance.md).
+    # The covariance (Censi 2007 closed form, the small objects' rows included) against the spread
+    # of the 40 estimates: the per-axis standard deviations agree within a factor 1.5 (the sample
+    # standard deviation of 40 draws is within +-25% of the truth at about 95%, chi-square(39)).
+    # Measured: 0.92, 0.98 and 1.05 in x, y and heading.
     truth, runs = trials
     deltas = np.array([res.delta for *_, res in runs])
     measured = deltas.std(axis=0, ddof=1)
     predicted = np.sqrt(np.mean([np.diag(res.covariance) for *_, res in runs], axis=0))
     ratio = predicted / measured
-    assert np.all(ratio > 1 / 2) and np.all(ratio < 2), ratio
+    assert np.all(ratio > 1 / 1.5) and np.all(ratio < 1.5), ratio
