@@ -593,16 +593,23 @@ def _point_like(points, idx, used, has_line, opt: RegistrationOptions):
     # dense noisy readings are too thick for lines at places, far off too sparse), whose readings
     # slide along it with the viewpoint; matched point-to-point they would pin a bare corridor along
     # its axis (tests/registration/test_covariance.py).
+    if not len(pick):
+        return pick, pick
     n = len(points)
-    rows = np.repeat(np.arange(n), idx.shape[1])[used.ravel()]
-    graph = coo_matrix((np.ones(len(rows)), (rows, idx.ravel()[used.ravel()])), shape=(n, n))
-    _, label = connected_components(graph, directed=False)
-    lo = np.full((n, 2), np.inf)
-    hi = np.full((n, 2), -np.inf)
-    np.minimum.at(lo, label, points)
-    np.maximum.at(hi, label, points)
+    flat = used.ravel()
+    rows = np.repeat(np.arange(n), idx.shape[1])[flat]
+    graph = coo_matrix((np.ones(len(rows)), (rows, idx.ravel()[flat])), shape=(n, n)).tocsr()
+    count_objects, label = connected_components(graph, directed=False)
+    # Extent of each object: its points sorted by label, reduced per run.
+    order = np.argsort(label, kind="stable")
+    sorted_label = label[order]
+    starts = np.flatnonzero(np.r_[True, sorted_label[1:] != sorted_label[:-1]])
+    span = np.zeros(count_objects)
+    lo = np.minimum.reduceat(points[order], starts, axis=0)
+    hi = np.maximum.reduceat(points[order], starts, axis=0)
+    span[sorted_label[starts]] = np.hypot(*(hi - lo).T)
     lab = label[pick]
-    small = np.hypot(*(hi - lo)[lab].T) <= 2.0 * opt.line_radius_m
+    small = span[lab] <= 2.0 * opt.line_radius_m
     return pick[small], lab[small]
 
 
