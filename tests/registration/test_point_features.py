@@ -11,7 +11,7 @@ import pytest
 
 from closurecheck.core import se2
 from closurecheck.errors import InputError
-from closurecheck.registration.icp import prepare_scan, register
+from closurecheck.registration.icp import RegistrationOptions, prepare_scan, register
 from closurecheck.simulation.raycast import cast
 
 # Invented open lot: lamp posts (0.3 m across) and one bollard (0.2 m), nothing else in range.
@@ -40,16 +40,16 @@ def trials():
     for _ in range(40):
         target, source = scan(TARGET_POSE, rng), scan(SOURCE_POSE, rng)
         guess = truth + np.array([0.05, -0.04, 0.02])
-        out.append((target, source, guess, register(source, target, guess, coarse=False)))
+        out.append((target, source, guess, register(source, target, guess, coarse=False, point_features=True)))
     return truth, out
 
 
 def test_posts_only_scan_is_all_small_objects():
     pts = scan(TARGET_POSE, np.random.default_rng(1))
-    # Without small objects there is no straight structure at all.
+    # Without small objects (the default) there is no straight structure at all.
     with pytest.raises(InputError, match="straight structure"):
-        register(pts, pts, point_features=False)
-    prepared = prepare_scan(pts)
+        register(pts, pts)
+    prepared = prepare_scan(pts, RegistrationOptions(point_features=True))
     # Every reading belongs to a post: an outline model (posts seen by 5 readings or more) or a
     # point matched to segments (fewer), and one object label per post seen by fewer.
     assert prepared.has_line.sum() + len(prepared.point_index) == len(pts)
