@@ -67,6 +67,7 @@ BAD = [
     ("[calibration]\nmin_significance = -1.0", "calibration.min_significance: must be >= 0"),
     ("[candidates]\nodometry_revisit_first = \"yes\"", "candidates.odometry_revisit_first: must be true or false"),
     ("[registration]\nmin_line_points = 40", "min_line_points: must not exceed line_neighbours"),
+    ("[registration]\npoint_features = 2", "registration.point_features: must be true or false"),
     ("verify = 3", "verify: must be a table"),
     ("[review]\ndecisions = [[1, 2, \"maybe\"]]",
      "review.decisions: row 1: column \"decision\": must be accept or reject"),

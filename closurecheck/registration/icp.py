@@ -44,6 +44,8 @@ from __future__ import annotations
 from dataclasses import dataclass, field, fields, replace
 
 import numpy as np
+from scipy.sparse import coo_matrix
+from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
 
 from ..core import se2
@@ -106,6 +108,16 @@ class RegistrationOptions:
         inlier_sigmas: a correspondence is an inlier when its normalised
             residual is within this many robust standard deviations.
         fit_sigma_m: distance scale of the fit score used to rank hypotheses.
+        point_features: small isolated objects (a post, a bollard: no point
+            of their neighbourhood lies on a line, :func:`_point_like`) are
+            registered too: seen by at least ``min_line_points`` readings
+            they take the local model of a line (its quadratic term follows
+            their round outline), seen by fewer they are matched point to
+            segment (:func:`_point_rows`).  Without them a scene of posts
+            has almost nothing to register on.  Off by default: on the
+            warehouse route at 50 deg/100 m of heading drift it tipped
+            verification into a family of look-alike closures (391 false
+            of 611 accepted, docs/performance.md, robustness section).
 
     Covariance
         covariance: ``"censi"`` (Censi 2007 closed form, accounts for shared
@@ -148,6 +160,7 @@ class RegistrationOptions:
     kernel: str = setting("huber", choices=KERNEL_CHOICES)
     kernel_scale: float = setting(1.345, above=0.0)
     min_noise_m: float = setting(0.001, above=0.0)
+    point_features: bool = setting(False)
     max_iterations: int = setting(30, at_least=1)
     tolerance_m: float = setting(1e-4, above=0.0)
     tolerance_rad: float = setting(2e-5, above=0.0)
@@ -181,7 +194,7 @@ class RegistrationOptions:
         return (self.line_neighbours, self.line_radius_m, self.min_line_points, self.max_line_thickness,
                 self.line_model,
                 self.point_noise, self.min_incidence_cos, self.coarse_resolution_m, self.coarse_sigma_m,
-                self.coarse_block_cells, self.coarse_max_points)
+                self.coarse_block_cells, self.coarse_max_points, self.point_features)
 
 
 DEFAULT_OPTIONS = RegistrationOptions()
@@ -206,8 +219,13 @@ class PreparedScan:
         where there is no line.
     thickness : (N,) spread across / along the local line (0 = perfectly
         straight, 1 = no direction); NaN where too few neighbours.
-    has_line : (N,) bool, the point lies on locally straight structure.
+    has_line : (N,) bool, the point lies on locally straight structure or on
+        the outline of a small object seen by ``min_line_points`` readings or more.
     line_index : (M,) indices of the points with a line.
+    point_index : (P,) indices of the points of small isolated objects seen by fewer
+        than ``min_line_points`` readings, matched point to segment
+        (:func:`_point_like`; empty when ``point_features`` is off).
+    point_object : (P,) label of the object (connected neighbours) each belongs to.
     coarse_points : (K, 2) downsampled points for the coarse search.
     length_m : root-mean-square range of the points (metres).
     radius_m : largest range of the points (metres).
@@ -230,6 +248,8 @@ class PreparedScan:
         these, the largest arrays of a prepared scan, at no cost to the
         covariance's precision.
     grid : the likelihood grid (closurecheck.registration.correlative.LikelihoodGrid).
+    point_tree : cKDTree over ``points[point_index]`` (None when there are none).
+    fit_tree : cKDTree over the points with a line or of a small object (the fit score's targets).
     """
 
     points: np.ndarray
@@ -238,6 +258,8 @@ class PreparedScan:
     thickness: np.ndarray
     has_line: np.ndarray
     line_index: np.ndarray
+    point_index: np.ndarray
+    point_object: np.ndarray
     coarse_points: np.ndarray
     length_m: float
     radius_m: float
@@ -279,6 +301,21 @@ class PreparedScan:
     @property
     def nbr_coef(self) -> np.ndarray:
         return self._target_side()[3]
+
+    @property
+    def point_tree(self) -> cKDTree | None:
+        if "point_tree" not in self._lazy:
+            self._lazy["point_tree"] = cKDTree(self.points[self.point_index]) if len(self.point_index) else None
+        return self._lazy["point_tree"]
+
+    @property
+    def fit_tree(self) -> cKDTree:
+        got = self._lazy.get("fit_tree")
+        if got is None:
+            got = self.tree if not len(self.point_index) else cKDTree(
+                self.points[np.union1d(self.line_index, self.point_index)])
+            self._lazy["fit_tree"] = got
+        return got
 
     @property
     def grid(self) -> _coarse.LikelihoodGrid:
@@ -496,6 +533,51 @@ def _line_features(points, opt: RegistrationOptions):
     return idx, used, count, centroid, normal, tangent, thickness, has_line
 
 
+def _point_like(points, idx, used, has_line, opt: RegistrationOptions):
+    """Points of small isolated objects: (indices, object label of each).
+
+    A point qualifies when it has no line, at least two neighbours within
+    ``line_radius_m``, none of its neighbours has a line either, and the
+    object its neighbours chain into spans at most ``2 line_radius_m``:
+    a compact object with no straight part (a lamp post, a bollard, a
+    column), not the corner of a wall, whose neighbours lie on the walls'
+    lines, nor a wall far off at a grazing angle.  The round cross-section of a post gives a
+    neighbourhood too thick for a line (spread ratio 0.33-0.37 on the
+    0.3 m posts of the ``lot`` scene, against a limit of 0.3), so before
+    these points were matched a scene of posts registered on the few
+    straight faces in range alone and most of its true pairs came out
+    degenerate or unconverged (docs/performance.md, robustness section).
+    """
+    if not opt.point_features:
+        return np.zeros(0, np.int64), np.zeros(0, np.int64)
+    count = used.sum(axis=1)
+    lined = (has_line[idx] & used).any(axis=1)
+    pick = np.flatnonzero(~has_line & (count >= 3) & ~lined)
+    # Objects: connected groups of neighbours among all the scan's points; a segment of
+    # _associate_points never joins two of them.  Only small objects: a long group is a wall (near the sensor its
+    # dense noisy readings are too thick for lines at places, far off too sparse), whose readings
+    # slide along it with the viewpoint; matched point-to-point they would pin a bare corridor along
+    # its axis (tests/registration/test_covariance.py).
+    if not len(pick):
+        return pick, pick
+    n = len(points)
+    flat = used.ravel()
+    rows = np.repeat(np.arange(n), idx.shape[1])[flat]
+    graph = coo_matrix((np.ones(len(rows)), (rows, idx.ravel()[flat])), shape=(n, n)).tocsr()
+    count_objects, label = connected_components(graph, directed=False)
+    # Extent of each object: its points sorted by label, reduced per run.
+    order = np.argsort(label, kind="stable")
+    sorted_label = label[order]
+    starts = np.flatnonzero(np.r_[True, sorted_label[1:] != sorted_label[:-1]])
+    span = np.zeros(count_objects)
+    lo = np.minimum.reduceat(points[order], starts, axis=0)
+    hi = np.maximum.reduceat(points[order], starts, axis=0)
+    span[sorted_label[starts]] = np.hypot(*(hi - lo).T)
+    lab = label[pick]
+    small = span[lab] <= 2.0 * opt.line_radius_m
+    return pick[small], lab[small]
+
+
 def prepare_scan(points_xy, options: RegistrationOptions = DEFAULT_OPTIONS, *, grid: bool = True) -> PreparedScan:
     """Build the per-scan data that registration reuses across pairs.
 
@@ -529,16 +611,24 @@ def _prepare(pts, opt: RegistrationOptions, with_grid: bool) -> PreparedScan:
     rng = np.hypot(pts[:, 0], pts[:, 1])
     beams = pts / np.maximum(rng, 1e-12)[:, None]
     idx, used, _count, centroid, normal, tangent, thickness, has_line = _line_features(pts, opt)
+    point_index, point_object = _point_like(pts, idx, used, has_line, opt)
+    if len(point_index):
+        # A small object seen by enough readings for a line takes the local model of a line: the
+        # quadratic model follows its outline (point-to-curve); the rest are matched to segments.
+        curve = _count[point_index] >= opt.min_line_points
+        has_line = has_line.copy()
+        has_line[point_index[curve]] = True
+        point_index, point_object = point_index[~curve], point_object[~curve]
     line_index = np.flatnonzero(has_line)
-    if len(line_index) < 3:
-        raise InputError("scan has fewer than 3 points on straight structure; cannot register it")
+    if len(line_index) < 3 and len(point_index) < 3:
+        raise InputError("scan has fewer than 3 points on straight structure or small objects; cannot register it")
     li = line_index
     fit = (idx[li], used[li], normal[li], tangent[li], centroid[li], opt)
     normals = np.where(has_line[:, None], normal, 0.0)
     coarse_pts = _coarse.downsample(pts, 2.0 * opt.coarse_resolution_m, opt.coarse_max_points)
     scan = PreparedScan(
         points=pts, beams=beams, normals=normals, thickness=thickness, has_line=has_line,
-        line_index=line_index, coarse_points=coarse_pts,
+        line_index=line_index, point_index=point_index, point_object=point_object, coarse_points=coarse_pts,
         length_m=float(np.sqrt(np.mean(rng * rng))), radius_m=float(rng.max()), point_noise=opt.point_noise,
         key=opt.preparation_key(),
         _lazy={"fit": fit, "grid_settings": (opt.coarse_resolution_m, opt.coarse_sigma_m, opt.coarse_block_cells)},
@@ -636,6 +726,115 @@ class _Solution:
     s_along: np.ndarray   # (n, 2) along-line offsets s (m) and the basis phi_2(s) (m^2)
     src_coef: np.ndarray  # (n,) source-noise sensitivity
     scale: float          # robust residual scale (m)
+    points: _PointRows | None = None   # point-to-point rows of small objects (_point_rows), if any
+
+
+@dataclass(frozen=True, eq=False)
+class _PointRows:
+    """Point-to-segment residuals of small-object points: one row per source point matched."""
+
+    src: np.ndarray       # (m,) source point indices
+    tgt: np.ndarray       # (m, 2) the two target readings spanning the segment (indices into target.points)
+    r: np.ndarray         # (m,) residuals (m)
+    v: np.ndarray         # (m,) residual variance units (sigma^2)
+    w: np.ndarray         # (m,) robust weights
+    jac: np.ndarray       # (m, 3)
+    src_coef: np.ndarray  # (m,) sensitivity to the source reading's noise
+    tgt_coef: np.ndarray  # (m, 2) sensitivity to the two target readings' noise
+
+
+def _associate_points(src: PreparedScan, tgt: PreparedScan, x, opt):
+    """Small-object matches under pose x: (source indices, (m, 2) target segment ends, transformed points).
+
+    Each source point is matched to the segment between its nearest
+    small-object target reading and the next nearest of the same object,
+    and kept only where it projects onto that segment: a point beyond the
+    ends of what the target saw of the object has no partner.
+    """
+    if not len(src.point_index) or tgt.point_tree is None or len(tgt.point_index) < 2:
+        return None
+    c, s = np.cos(x[2]), np.sin(x[2])
+    pw = src.points[src.point_index] @ np.array([[c, s], [-s, c]]) + x[:2]
+    k = min(3, len(tgt.point_index))
+    _, j = tgt.point_tree.query(pw, k=k, distance_upper_bound=opt.max_correspondence_m)
+    m = len(tgt.point_index)
+    first = j[:, 0]
+    ok = first < m
+    label = np.append(tgt.point_object, -1)
+    # The nearer of the next candidates that lies on the same object.
+    second = np.full(len(first), m)
+    for col in range(k - 1, 0, -1):
+        same = (j[:, col] < m) & (label[j[:, col]] == label[np.minimum(first, m)]) & ok
+        second = np.where(same, j[:, col], second)
+    ok &= second < m
+    if not ok.any():
+        return None
+    q0 = tgt.points[tgt.point_index[first[ok]]]
+    q1 = tgt.points[tgt.point_index[second[ok]]]
+    seg = q1 - q0
+    lam = ((pw[ok] - q0) * seg).sum(axis=1) / np.maximum((seg * seg).sum(axis=1), 1e-18)
+    inside = (lam >= 0.0) & (lam <= 1.0)
+    if inside.sum() == 0:
+        return None
+    idx = np.flatnonzero(ok)[inside]
+    ends = np.column_stack([tgt.point_index[first[idx]], tgt.point_index[second[idx]]])
+    return src.point_index[idx], ends
+
+
+def _point_rows(src: PreparedScan, tgt: PreparedScan, matches, x, range_noise: bool) -> _PointRows:
+    """Residual rows of point-to-segment matches at pose x (unit weights).
+
+    The segment between two neighbouring target readings stands for the
+    surface between them, as in Censi's point-to-line ICP (ICRA 2008),
+    which takes its lines from the two nearest readings in the same way:
+    the residual is the offset of the transformed source point across the
+    segment.  Unlike a point-to-point offset, it carries no error from
+    where the two scans happened to sample a curved outline (a post's),
+    only the chord's sagitta (about 2 mm for readings 5 cm apart on a
+    0.15 m radius).
+    """
+    i, ends = matches
+    c, s = np.cos(x[2]), np.sin(x[2])
+    rot_t = np.array([[c, s], [-s, c]])
+    rp = src.points[i] @ rot_t
+    q0, q1 = tgt.points[ends[:, 0]], tgt.points[ends[:, 1]]
+    seg = q1 - q0
+    length2 = np.maximum((seg * seg).sum(axis=1), 1e-18)
+    n = np.column_stack([-seg[:, 1], seg[:, 0]]) / np.sqrt(length2)[:, None]
+    d = rp + x[:2] - q0
+    lam = np.clip((d * seg).sum(axis=1) / length2, 0.0, 1.0)
+    r = (n * d).sum(axis=1)
+    jac = np.column_stack([n[:, 0], n[:, 1], n[:, 1] * rp[:, 0] - n[:, 0] * rp[:, 1]])
+    if range_noise:
+        src_coef = (n * (src.beams[i] @ rot_t)).sum(axis=1)
+        u0, u1 = tgt.beams[ends[:, 0]], tgt.beams[ends[:, 1]]
+        tgt_coef = -np.column_stack([(1.0 - lam) * (n * u0).sum(axis=1), lam * (n * u1).sum(axis=1)])
+    else:
+        src_coef = np.ones(len(r))
+        tgt_coef = -np.column_stack([1.0 - lam, lam])
+    v = src_coef * src_coef + (tgt_coef * tgt_coef).sum(axis=1)
+    return _PointRows(i, ends, r, v, np.ones(len(r)), jac, src_coef, tgt_coef)
+
+
+def _weigh_with_points(rows: _PointRows, r, v, opt, kernel):
+    """Robust weights of the line rows and the point rows under one scale: (w of the lines, rows, scale)."""
+    w, scale = _robust(np.concatenate([r, rows.r]), np.concatenate([v, rows.v]), opt, kernel)
+    return w[:len(r)], replace(rows, w=w[len(r):]), scale
+
+
+def _point_middle(rows: _PointRows, om, n_source: int, n_target: int):
+    """Censi's middle term (closurecheck.registration.covariance.censi_middle) of the point rows.
+
+    A target reading takes part in the segments of up to two neighbours, so
+    its noise is summed over its rows before the outer product, as for the
+    readings that fit a target line.
+    """
+    wj = rows.jac * om[:, None]
+    middle = (wj * rows.src_coef[:, None]).T @ (wj * rows.src_coef[:, None])
+    idx = rows.tgt.ravel()
+    m = np.column_stack([np.bincount(idx, weights=(rows.tgt_coef * wj[:, d:d + 1]).ravel(), minlength=n_target)
+                         for d in range(3)])
+    return middle + m.T @ m
 
 
 def _failed(x, it) -> _Solution:
@@ -744,20 +943,31 @@ def _icp_line(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions
     pairs = None
     moved = np.inf     # bound on any source point's motion since the last association (m)
     cands = _candidates(src, cos_max)
+    matches = prow = None
+    has_points = len(src.point_index) > 0 and tgt.point_tree is not None
     for it in range(1, opt.max_iterations + 1):
         # Re-associating costs a kd-tree query; once the pose moves by less
         # than reassociate_m the nearest lines cannot change enough to matter.
         if moved >= opt.reassociate_m:
             pairs = _associate(src, tgt, x, opt, cos_max, cands)
+            if has_points:
+                matches = _associate_points(src, tgt, x, opt)
             moved = 0.0
-        if len(pairs[0]) < 3:
+        if len(pairs[0]) + (0 if matches is None else len(matches[0])) < 3:
             pairs = None
             break
         r, v, jac, s_al, sc = _linearise(pairs, x, opt, range_noise)
-        w, scale = _robust(r, v, opt, kernel)
-        jw = jac * (w / v)[:, None]
-        h = jw.T @ jac
-        g = jw.T @ r
+        if matches is None:
+            w, scale = _robust(r, v, opt, kernel)
+            jw = jac * (w / v)[:, None]
+            h = jw.T @ jac
+            g = jw.T @ r
+        else:
+            w, prow, scale = _weigh_with_points(_point_rows(src, tgt, matches, x, range_noise), r, v, opt, kernel)
+            jw = np.concatenate([jac * (w / v)[:, None], prow.jac * (prow.w / prow.v)[:, None]])
+            jall = np.concatenate([jac, prow.jac])
+            h = jw.T @ jall
+            g = jw.T @ np.concatenate([r, prow.r])
         mu = opt.damping * float(np.trace(h / lscale)) / 3.0
         step = -np.linalg.solve(h + mu * lscale_diag, g)
         x = x + step
@@ -768,7 +978,11 @@ def _icp_line(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions
     x[2] = np.pi - np.mod(np.pi - x[2], 2 * np.pi)
     if pairs is None:
         return _failed(x, it)
-    return _Solution(x, converged, it, pairs[0], pairs[1], r, v, w, jac, np.stack(s_al, axis=1), sc, scale)
+    if matches is not None:
+        # The rows at the final pose (the loop's last rows are from before its last step).
+        r, v, jac, s_al, sc = _linearise(pairs, x, opt, range_noise)
+        w, prow, scale = _weigh_with_points(_point_rows(src, tgt, matches, x, range_noise), r, v, opt, kernel)
+    return _Solution(x, converged, it, pairs[0], pairs[1], r, v, w, jac, np.stack(s_al, axis=1), sc, scale, prow)
 
 
 def _icp_point(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions, kernel) -> _Solution:
@@ -818,7 +1032,8 @@ def _icp_point(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOption
 def _fit_score(src: PreparedScan, tgt: PreparedScan, x, opt: RegistrationOptions) -> float:
     """Mean over the evenly spread source points of ``exp(-d^2 / (2 fit_sigma_m^2))`` at pose x.
 
-    ``d`` is the distance to the nearest target point on straight structure;
+    ``d`` is the distance to the nearest target point on straight structure
+    or of a small object (:func:`_point_like`);
     the source points are the coarse stage's (one per cell), so that densely
     sampled walls near the sensor do not outweigh the rest of the scan.
     Point-to-point distances, unlike the point-to-line residuals, penalise a
@@ -828,7 +1043,10 @@ def _fit_score(src: PreparedScan, tgt: PreparedScan, x, opt: RegistrationOptions
     c, s = np.cos(x[2]), np.sin(x[2])
     pts = src.coarse_points
     pw = pts @ np.array([[c, s], [-s, c]]) + x[:2]
-    d, _ = _nearest_line(tgt, pw, 4.0 * opt.fit_sigma_m)
+    if len(tgt.point_index):
+        d, _ = tgt.fit_tree.query(pw, distance_upper_bound=4.0 * opt.fit_sigma_m)
+    else:   # fit_tree is the line tree: the compiled lookup gives its answers
+        d, _ = _nearest_line(tgt, pw, 4.0 * opt.fit_sigma_m)
     d = d[np.isfinite(d)]
     return float(np.exp(-0.5 * (d / opt.fit_sigma_m) ** 2).sum() / len(pts))
 
@@ -839,26 +1057,34 @@ def _same(a, b, opt) -> bool:
 
 
 def _finish(src: PreparedScan, tgt: PreparedScan, sol: _Solution, opt: RegistrationOptions, **extra) -> Registration:
-    n = len(sol.r)
+    pr = sol.points
+    n = len(sol.r) if pr is None else len(sol.r) + len(pr.src)        # matches
     if n < 3:
         return _no_overlap(src, sol, opt, **extra)
     om = sol.w / sol.v
-    h = _cov.hessian(sol.jac, om)
+    r_all, om_all, jac_all, v_all = sol.r, om, sol.jac, sol.v
+    if pr is not None:
+        r_all, v_all = np.concatenate([sol.r, pr.r]), np.concatenate([sol.v, pr.v])
+        om_all = np.concatenate([om, pr.w / pr.v])
+        jac_all = np.concatenate([sol.jac, pr.jac])
+    h = _cov.hessian(jac_all, om_all)
     e_wu2, kappa = _cov.kernel_moments(kernel_from_name(opt.kernel, opt.kernel_scale))
-    sigma2 = _cov.noise_variance(sol.r, om, e_wu2)
+    sigma2 = _cov.noise_variance(r_all, om_all, e_wu2)
     middle = None
     if opt.covariance == "censi":
         w = tgt.nbr_coef[sol.tgt]
         basis = sol.s_along                               # (n, 2): s and the third basis function
         coef_t = -(w[..., 0] + basis[:, :1] * w[..., 1] + basis[:, 1:] * w[..., 2])
         middle = _cov.censi_middle(sol.jac, om, sol.src_coef, tgt.nbr_index[sol.tgt], coef_t, len(tgt.points))
-    est = _cov.analyse(h, middle, sigma2, n, src.length_m, method=opt.covariance,
+        if pr is not None:
+            middle = middle + _point_middle(pr, om_all[len(sol.r):], len(src.points), len(tgt.points))
+    est = _cov.analyse(h, middle, sigma2, len(r_all), src.length_m, method=opt.covariance,
                        degeneracy_threshold=opt.degeneracy_threshold,
                        unobservable_sigma_m=opt.unobservable_sigma_m, kappa=kappa,
                        points_per_normal=float(opt.line_neighbours))
-    z = np.abs(sol.r / np.sqrt(sol.v))
+    z = np.abs(r_all / np.sqrt(v_all))
     inl = z <= opt.inlier_sigmas * sol.scale
-    rmse = float(np.sqrt(np.mean(sol.r[inl] ** 2))) if inl.any() else float("nan")
+    rmse = float(np.sqrt(np.mean(r_all[inl] ** 2))) if inl.any() else float("nan")
     delta = sol.x.copy()
     cov = est.covariance
     evals = est.eigenvalues.copy()
