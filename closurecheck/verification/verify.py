@@ -641,6 +641,9 @@ def verify(closures: RegisteredClosures, chain: OdometryChain, options: VerifyOp
         notes.append(f"the maximum-clique search hit its budget of {options.clique_max_expansions} expansions; "
                      f"the consistent set of {clique.size} closures is the best found, at most "
                      f"{clique.upper_bound} is possible")
+    elif clique is not None and not clique.canonical:
+        notes.append(f"the consistent set of {clique.size} closures is a proven maximum, but other sets of that size "
+                     "may exist and the tie rule (smallest indices) was not applied to completion")
     reason = np.array([str(r) for r in reason], dtype=str)
     accepted = np.array([is_accepted(r) for r in reason], dtype=bool)
     return Verification(reason=reason, accepted=accepted,
