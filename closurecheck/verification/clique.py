@@ -798,7 +798,15 @@ def _solve_part(a, w, weighted, seed, budget, tie_budget, options, conflicts=Fal
 
 def _solve_graph(g, a, weighted, seed, budget, tie_budget, options, conflicts):
     """:func:`_solve_part` once the component's bitset graph ``g`` is built."""
-    start = _heuristic(g)
+    if conflicts:
+        # The same greedy cliques from the conflict lists: O(n + m) per start
+        # instead of bitset operations over n bits per step (which grow with
+        # the square of the width).  Equal cost at 15,623 closures (3.2 s
+        # against 2.9 s for the whole call, same members); cheaper beyond.
+        verts, size, weight = _heuristic_conflicts(a, g.core, g.order[::-1], g.w, weighted)
+        start = ([int(p) for p in g.pos[verts]], size, weight)
+    else:
+        start = _heuristic(g)
     seed_pos = [int(p) for p in g.pos[seed]]
     seed_w = sum(g.wpos[p] for p in seed_pos)
     if _better(len(seed_pos), seed_w, start[1], start[2], weighted):
