@@ -92,7 +92,9 @@ class VerifyOptions:
         fail (odometry drift beyond its model): docs/performance.md has the
         measured differences.
     clique_max_expansions : search budget of the exact maximum clique; past
-        it the best clique found is used and the report says so.
+        it the best clique found is used and the report says so.  An
+        expansion on a conflict component wider than 512 closures counts
+        (width / 512)^2 (its work grows with the square of the width).
     rival_margin : the consistent set stands against a rival group (a
         consistent set of closures outside it) only when the closures the
         rival disputes are at least this many times as many as the rival;
