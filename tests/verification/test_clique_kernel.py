@@ -109,3 +109,18 @@ def test_wide_components_skip_the_tie_phase_and_say_so():
     assert capped.exact and not capped.canonical
     assert capped.size == full.size
     assert not c[np.ix_(capped.members, capped.members)].any()
+
+
+def test_budget_counts_work_on_wide_components_and_never_overshoots():
+    # A 600-vertex component (wider than 512) that the split cannot settle:
+    # each expansion there costs (600 / 512 rounded up)^2 = 4 units.
+    rng = np.random.default_rng(1)
+    c = pcm_like_conflicts(rng, 600, 30, 0.002, 0.4)
+    conflicts = scipy.sparse.csr_array(c)
+    generous = max_clique_of_conflicts(conflicts, options=CliqueOptions(max_expansions=200_000, canonical=False))
+    assert generous.exact
+    for budget in (0, 3, 41, 400):
+        cut = max_clique_of_conflicts(conflicts, options=CliqueOptions(max_expansions=budget, canonical=False))
+        assert cut.expansions <= budget
+        assert not c[np.ix_(cut.members, cut.members)].any()
+        assert cut.size <= generous.size <= cut.upper_bound
