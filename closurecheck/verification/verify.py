@@ -92,7 +92,9 @@ class VerifyOptions:
         fail (odometry drift beyond its model): docs/performance.md has the
         measured differences.
     clique_max_expansions : search budget of the exact maximum clique; past
-        it the best clique found is used and the report says so.
+        it the best clique found is used and the report says so.  An
+        expansion on a conflict component wider than 512 closures counts
+        (width / 512)^2 (its work grows with the square of the width).
     rival_margin : the consistent set stands against a rival group (a
         consistent set of closures outside it) only when the closures the
         rival disputes are at least this many times as many as the rival;
@@ -641,6 +643,9 @@ def verify(closures: RegisteredClosures, chain: OdometryChain, options: VerifyOp
         notes.append(f"the maximum-clique search hit its budget of {options.clique_max_expansions} expansions; "
                      f"the consistent set of {clique.size} closures is the best found, at most "
                      f"{clique.upper_bound} is possible")
+    elif clique is not None and not clique.canonical:
+        notes.append(f"the consistent set of {clique.size} closures is a proven maximum, but other sets of that size "
+                     "may exist and the tie rule (smallest indices) was not applied to completion")
     reason = np.array([str(r) for r in reason], dtype=str)
     accepted = np.array([is_accepted(r) for r in reason], dtype=bool)
     return Verification(reason=reason, accepted=accepted,
