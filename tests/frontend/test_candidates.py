@@ -370,7 +370,8 @@ def test_a_revisit_just_outside_the_near_region_is_still_proposed(loop):
     poses = truth.copy()
     poses[half:, 0] += 1.15
     data = dataclasses.replace(data, chain=OdometryChain.from_steps(kf, poses, data.chain.steps))
-    odo, _ = data.chain.relative_by_index(np.array(second), np.array([int(np.argmin(d[r, :half - 10])) for r in second]))
+    nearest = np.array([int(np.argmin(d[r, :half - 10])) for r in second])
+    odo, _ = data.chain.relative_by_index(np.array(second), nearest)
     assert np.all(np.hypot(odo[:, 0], odo[:, 1]) > opts.near_distance_m)
     vectors = data.descriptors.vectors.copy()
     vectors[half:] += np.random.default_rng(0).normal(0, 50 * vectors.std(), vectors[half:].shape)
