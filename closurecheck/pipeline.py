@@ -109,8 +109,13 @@ def _calibrate(log: ScanLog, keyframes, config: RunConfig, runner, progress) -> 
         # Settings the user gave explicitly win over the fitted noise.
         noise = updated(cal.noise, overrides)
         travel, rotation = odometry_travel(log.odom)
-        keep = np.diag(noise.step_covariance(np.diff(travel[keyframes]), np.diff(rotation[keyframes])).T).T
-        chain = OdometryChain.from_steps(keyframes, cal.chain.poses, np.maximum(cal.chain.steps, keep))
+        # Raise each step's variances to the user's model where they are
+        # smaller; adding to the diagonal keeps every step positive definite.
+        wanted = noise.step_covariance(np.diff(travel[keyframes]), np.diff(rotation[keyframes]))
+        steps = cal.chain.steps.copy()
+        d = np.arange(3)
+        steps[:, d, d] = np.maximum(steps[:, d, d], wanted[:, d, d])
+        chain = OdometryChain.from_steps(keyframes, cal.chain.poses, steps)
         cal = dataclasses.replace(cal, noise=noise, chain=chain)
     return cal
 

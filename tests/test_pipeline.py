@@ -92,3 +92,29 @@ def test_score_of_an_external_candidate_list(run, tmp_path, capsys):
     out = capsys.readouterr().out
     assert "Scored against: the ground truth" in out
     assert "precision (right / registered)" in out and "revisit-event recall" in out
+
+
+def test_odometry_noise_options_raise_the_calibrated_steps(run, tmp_path):
+    # A user's noise model given as options wins where the calibration fitted
+    # less: each keyframe step's variances are at least the model's (the
+    # chain must stay positive definite, so only the diagonal is raised).
+    import numpy as np
+
+    from closurecheck.config import OdometryOverrides, RunConfig
+    from closurecheck.core.odometry import odometry_travel
+    from closurecheck.io.scanlog import read_scanlog
+    from closurecheck.pipeline import run_log
+
+    log_path = run["log"]
+    out = tmp_path / "noisy"
+    assert cli.main(["run", str(log_path), "--out", str(out), "-q", "--odom-translation-noise", "0.05"]) in (0, 3)
+    assert (out / "graph.json").exists()
+    log = read_scanlog(log_path)
+    cfg = RunConfig(jobs=1, odometry=OdometryOverrides(translation_m_per_sqrt_m=0.05))
+    got = run_log(log, cfg)
+    kf = got.keyframes
+    travel, _ = odometry_travel(log.odom)
+    want = 0.05 ** 2 * np.diff(travel[kf])
+    steps = got.calibration.chain.steps
+    assert np.all(steps[:, 0, 0] >= want - 1e-15) and np.all(steps[:, 1, 1] >= want - 1e-15)
+    assert np.all(np.linalg.eigvalsh(steps) > 0)
