@@ -204,6 +204,10 @@ def cell_index(points, cell):
     are ``order[start[c]:start[c + 1]]`` with ``c = i * columns + j``.
     """
     n = len(points)
+    if n == 0:
+        # A scan registered on small objects alone has no line points: one empty cell, so that
+        # every query finds nothing (as a kd-tree of no points answers).
+        return np.zeros(2), cell, 1, np.zeros(2, np.int32), np.zeros(0, np.int32)
     x0 = points[0, 0]
     y0 = points[0, 1]
     x1 = x0

@@ -88,3 +88,28 @@ def test_equal_distances_follow_the_kdtree():
     ref_d, ref_j = target.tree.query(queries, distance_upper_bound=0.5)
     np.testing.assert_array_equal(j, ref_j)
     np.testing.assert_array_equal(d, ref_d)
+
+
+def test_an_empty_index_answers_like_an_empty_kdtree():
+    # A scan registered on small objects alone has no line points.
+    pts = np.zeros((0, 2))
+    queries = np.random.default_rng(3).uniform(-5.0, 5.0, (20, 2))
+    d, i, tied = _kernels.nearest(pts, *_kernels.cell_index(pts, _CELL_M), queries, 0.5)
+    ref_d, ref_i = cKDTree(pts).query(queries, distance_upper_bound=0.5)
+    np.testing.assert_array_equal(i, ref_i)
+    np.testing.assert_array_equal(d, ref_d)
+    assert not tied.any()
+
+
+def test_a_scan_of_small_posts_alone_prepares_and_registers():
+    # Posts seen by 3 readings each: matched to segments, no line points at
+    # all, so ICP's nearest-line index is empty (it divided by zero).
+    from closurecheck.registration.icp import register
+
+    posts = np.array([[3.0, 1.0], [4.0, -2.0], [6.0, 2.5], [2.0, -3.5], [7.0, -1.0], [5.0, 4.0], [8.0, 1.5]])
+    offsets = np.array([[-0.06, -0.05], [0.0, 0.0], [0.06, -0.05]])
+    pts = (posts[:, None, :] + offsets[None]).reshape(-1, 2)
+    prepared = prepare_scan(pts, RegistrationOptions(point_features=True))
+    assert len(prepared.line_index) == 0 and len(prepared.point_index) > 0
+    r = register(pts, pts + [0.05, 0.0], np.zeros(3), coarse=False, point_features=True)
+    assert np.all(np.isfinite(r.delta))
