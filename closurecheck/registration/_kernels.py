@@ -236,6 +236,23 @@ def cell_index(points, cell):
 
 
 @njit(cache=True, nogil=True)
+def _scan_cell(points, order, lo, hi, qx, qy, n, best, bi, tie):
+    """The nearest point so far after the points ``order[lo:hi]`` of one cell: (best squared distance, index, tied)."""
+    for s in range(lo, hi):
+        q = order[s]
+        ex = qx - points[q, 0]
+        ey = qy - points[q, 1]
+        d = ex * ex + ey * ey
+        if d < best:
+            best = d
+            bi = q
+            tie = False
+        elif d == best and bi < n:
+            tie = True
+    return best, bi, tie
+
+
+@njit(cache=True, nogil=True)
 def nearest(points, origin, cell, columns, start, order, queries, upper):
     """Nearest of ``points`` to each query closer than ``upper`` metres (an index of :func:`cell_index`).
 
@@ -274,17 +291,7 @@ def nearest(points, origin, cell, columns, start, order, queries, upper):
         cj = int(math.floor(fj))
         if 0 <= ci < ni and 0 <= cj < nj:
             c = ci * nj + cj
-            for s in range(start[c], start[c + 1]):
-                q = order[s]
-                ex = qx - points[q, 0]
-                ey = qy - points[q, 1]
-                d = ex * ex + ey * ey
-                if d < best:
-                    best = d
-                    bi = q
-                    tie = False
-                elif d == best and bi < n:
-                    tie = True
+            best, bi, tie = _scan_cell(points, order, start[c], start[c + 1], qx, qy, n, best, bi, tie)
         for i in range(i0, i1 + 1):
             gx = max(i - fi, 0.0, fi - (i + 1)) * cell
             for j in range(j0, j1 + 1):
@@ -294,17 +301,7 @@ def nearest(points, origin, cell, columns, start, order, queries, upper):
                 if gx * gx + gy * gy > best:
                     continue
                 c = i * nj + j
-                for s in range(start[c], start[c + 1]):
-                    q = order[s]
-                    ex = qx - points[q, 0]
-                    ey = qy - points[q, 1]
-                    d = ex * ex + ey * ey
-                    if d < best:
-                        best = d
-                        bi = q
-                        tie = False
-                    elif d == best and bi < n:
-                        tie = True
+                best, bi, tie = _scan_cell(points, order, start[c], start[c + 1], qx, qy, n, best, bi, tie)
         if bi < n:
             dist[p] = math.sqrt(best)
             idx[p] = bi

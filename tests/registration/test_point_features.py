@@ -6,13 +6,13 @@ benchmarks/robustness.py lost most of its true pairs that way.
 """
 
 import numpy as np
-import open3d as o3d
 import pytest
 
 from closurecheck.core import se2
 from closurecheck.errors import InputError
 from closurecheck.registration.icp import RegistrationOptions, prepare_scan, register
 from closurecheck.simulation.raycast import cast
+from test_icp import _open3d_point_to_point
 
 # Invented open lot: lamp posts (0.3 m across) and one bollard (0.2 m), nothing else in range.
 POSTS = np.array([[3.0, 2.0, 0.15], [7.5, -3.0, 0.15], [12.0, 4.0, 0.15], [5.0, 6.5, 0.1], [-4.0, 5.0, 0.15],
@@ -67,23 +67,6 @@ def test_posts_only_pair_recovers_the_true_transform(trials):
         assert abs(se2.wrap(d[2])) < np.radians(0.3)
 
 
-def _open3d_point_to_point(source, target, guess, max_corr):
-    """Reference: open3d.pipelines.registration.registration_icp, point-to-point, planar z = 0."""
-    def cloud(xy):
-        pc = o3d.geometry.PointCloud()
-        pc.points = o3d.utility.Vector3dVector(np.column_stack([xy, np.zeros(len(xy))]))
-        return pc
-    init = np.eye(4)
-    init[:2, :2] = se2.rotation(guess[2])
-    init[:2, 3] = guess[:2]
-    reg = o3d.pipelines.registration
-    out = reg.registration_icp(cloud(source), cloud(target), max_corr, init,
-                               reg.TransformationEstimationPointToPoint(),
-                               reg.ICPConvergenceCriteria(max_iteration=60))
-    t = np.asarray(out.transformation)
-    return se2.from_matrix(t[np.ix_([0, 1, 3], [0, 1, 3])])
-
-
 def test_posts_only_pair_agrees_with_open3d_point_to_point(trials):
     # Reference library: open3d (open3d-cpu 0.20) registration_icp, point-to-point, on the same
     # clouds and guesses. Ours follows each post's outline (a curve, or segments between readings)
@@ -93,7 +76,7 @@ def test_posts_only_pair_agrees_with_open3d_point_to_point(trials):
     truth, runs = trials
     ours_err, ref_err = [], []
     for target, source, guess, res in runs[:10]:
-        ref = _open3d_point_to_point(source, target, guess, 0.5)
+        ref, _ = _open3d_point_to_point(source, target, guess, 0.5)
         assert np.hypot(*(res.delta[:2] - ref[:2])) < 0.03
         assert abs(se2.wrap(res.delta[2] - ref[2])) < np.radians(1.0)
         ours_err.append(np.hypot(*(res.delta[:2] - truth[:2])))
