@@ -204,12 +204,11 @@ def cell_index(points, cell):
     are ``order[start[c]:start[c + 1]]`` with ``c = i * columns + j``.
     """
     n = len(points)
-    if n == 0:
-        # A scan registered on small objects alone has no line points: one empty cell, so that
-        # every query finds nothing (as a kd-tree of no points answers).
-        return np.zeros(2), cell, 1, np.zeros(2, np.int32), np.zeros(0, np.int32)
-    x0 = points[0, 0]
-    y0 = points[0, 1]
+    # A scan registered on small objects alone has no line points: one empty cell at the origin,
+    # so that every query finds nothing, as a kd-tree of no points answers.  (One return path:
+    # numba's on-disk cache failed to load a second one that built its arrays differently.)
+    x0 = points[0, 0] if n else 0.0
+    y0 = points[0, 1] if n else 0.0
     x1 = x0
     y1 = y0
     for i in range(n):
@@ -217,7 +216,7 @@ def cell_index(points, cell):
         y0 = min(y0, points[i, 1])
         x1 = max(x1, points[i, 0])
         y1 = max(y1, points[i, 1])
-    cell = max(cell, math.sqrt((x1 - x0 + cell) * (y1 - y0 + cell) / (8.0 * n)))
+    cell = max(cell, math.sqrt((x1 - x0 + cell) * (y1 - y0 + cell) / (8.0 * max(n, 1))))
     ni = int((x1 - x0) / cell) + 1
     nj = int((y1 - y0) / cell) + 1
     key = np.empty(n, np.int64)
