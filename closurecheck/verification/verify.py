@@ -509,8 +509,13 @@ def _core_and_map(plausible, src, dst, delta, covariance, step_covariances, opti
                      f"{len(core)} verified closures)")
 
     members = core
+    # A set-aside clique can hold right closures that agree with both
+    # families (with the warehouse route's step covariances x2, 161 of the
+    # 419 right ones sat in the set-aside clique of 560); the map pinned by
+    # the kept clique sorts them out.
     retry = np.flatnonzero(plausible & ((first_pass == Reason.ODOMETRY_GATE)
-                                        | (first_pass == Reason.PAIR_INCONSISTENT)))
+                                        | (first_pass == Reason.PAIR_INCONSISTENT)
+                                        | (first_pass == Reason.UNSUPPORTED_GROUP)))
     rounds = options.map_rounds if options.extend_with_map else 0
     if rounds and scale >= options.max_odometry_scale and len(retry):
         # A factor at its bound says the odometry model is wrong by more than

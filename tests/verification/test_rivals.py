@@ -219,6 +219,10 @@ def test_a_larger_family_the_odometry_does_not_support_loses_to_a_smaller_one_it
     assert len(note) == 1
     assert f"({(~right).sum()} closures)" in note[0] and f"variance factor {wrong_factor:.1f}" in note[0]
     assert f"a set of {right.sum()} closures at factor {right_factor:.2f}" in note[0]
+    # The map gate retries the set-aside closures against the map the kept clique pins down: a 6 m shift fails it.
+    mapped = verify(closures, chain, VerifyOptions(calibrate_heading_drift=False))
+    assert mapped.accepted[right].all() and not mapped.accepted[~right].any()
+    assert np.isfinite(mapped.figures["map_chi2"][~right]).all()
     # The set-aside family is no rival group of the kept one: it lost on support, not on size.
     contest = verify(closures, chain, VerifyOptions(rival_margin=2.0, **base))
     assert contest.accepted[right].all() and not contest.accepted[~right].any()
