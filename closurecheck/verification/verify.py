@@ -499,7 +499,8 @@ def _core_and_map(plausible, src, dst, delta, covariance, step_covariances, opti
         notes.append(f"the largest consistent set ({set_aside.size} closures) was set aside: the odometry does not "
                      f"support it (variance factor {set_aside.factor:.1f}, at most "
                      f"{options.clique_max_odometry_factor:g} is plausible); a set of {set_aside.kept_size} "
-                     f"closures at factor {set_aside.kept_factor:.2f} was kept (unsupported_group)")
+                     f"closures at factor {set_aside.kept_factor:.2f} was kept instead; the set-aside ones are "
+                     f"unsupported_group unless the map gate takes them back")
 
     # The verified core measures how honest the odometry model is.
     scale = odometry_scale(figures["odometry_chi2"][core], options)
