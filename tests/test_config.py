@@ -63,6 +63,7 @@ BAD = [
     ("[verify]\nclique_max_expansions = 2.5", "verify.clique_max_expansions: must be an integer"),
     ("[verify]\nnope = 1", "verify.nope: unknown setting"),
     ("[verify]\nrival_margin = 0.5", "verify.rival_margin: must be >= 1"),
+    ("[verify]\nclique_max_odometry_factor = 0.5", "verify.clique_max_odometry_factor: must be >= 1"),
     ("[verify]\npair_window_m = -5.0", "verify.pair_window_m: must be > 0"),
     ("[calibration]\nmin_significance = -1.0", "calibration.min_significance: must be >= 0"),
     ("[candidates]\nodometry_revisit_first = \"yes\"", "candidates.odometry_revisit_first: must be true or false"),

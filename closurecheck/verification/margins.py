@@ -161,7 +161,8 @@ def decision_margins(reason, figures: dict, bounds: dict) -> Margins:
     take(reason == Reason.HIGH_RMSE, "rmse")
     take(reason == Reason.AMBIGUOUS, "ambiguity")
     take((reason == Reason.ODOMETRY_GATE) & ~tried, "odometry_gate")
-    take(((reason == Reason.ODOMETRY_GATE) | (reason == Reason.PAIR_INCONSISTENT)) & tried, "map_gate")
+    take(((reason == Reason.ODOMETRY_GATE) | (reason == Reason.PAIR_INCONSISTENT)
+          | (reason == Reason.UNSUPPORTED_GROUP)) & tried, "map_gate")
     residual = reason == Reason.GRAPH_RESIDUAL
     if "graph_residual" in per:
         take(residual & np.isfinite(per["graph_residual"]), "graph_residual")

@@ -36,6 +36,7 @@ class Reason(str, Enum):
     PAIR_INCONSISTENT = "pair_inconsistent"
     GRAPH_RESIDUAL = "graph_residual"
     RIVAL_GROUP = "rival_group"
+    UNSUPPORTED_GROUP = "unsupported_group"
     SCAN_CONTRADICTION = "scan_contradiction"
     DUPLICATE = "duplicate"
     REVIEWER_ACCEPTED = "reviewer_accepted"
@@ -68,6 +69,9 @@ _TEXT = {
     Reason.GRAPH_RESIDUAL: ("failed the chi-square residual test after optimisation", "consistency"),
     Reason.RIVAL_GROUP: ("one of two consistent groups of closures that contradict each other, neither clearly "
                          "larger (repeating structure); both were rejected", "consistency"),
+    Reason.UNSUPPORTED_GROUP: ("one of the largest consistent group of closures, set aside because the odometry "
+                               "does not support it as a whole; a smaller group the odometry supports was kept",
+                               "consistency"),
     Reason.SCAN_CONTRADICTION: ("its revisit made the scans of two visits contradict each other (a wall inside "
                                 "the other's free space)", "consistency"),
     Reason.DUPLICATE: ("the same pair was already considered", "consistency"),

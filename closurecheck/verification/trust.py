@@ -28,6 +28,13 @@ import numpy as np
 
 from ..core.options import options, setting
 
+# The largest odometry variance factor (median odometry chi-square of the
+# verified closures over the chi-square(3) median) that we still call
+# plausible: a rule of our own, not a published bound.  One home for the
+# trust verdict and for the clique choice of the verification stage
+# (``VerifyOptions.clique_max_odometry_factor``).
+PLAUSIBLE_ODOMETRY_FACTOR = 4.0
+
 
 @options
 class TrustOptions:
@@ -42,7 +49,7 @@ class TrustOptions:
         each other after optimisation.
     """
 
-    max_odometry_scale: float = setting(4.0, at_least=1.0)
+    max_odometry_scale: float = setting(PLAUSIBLE_ODOMETRY_FACTOR, at_least=1.0)
     max_drift_sigmas: float = setting(4.0, above=0.0)
     max_contradictions: int = setting(0, at_least=0)
 

@@ -54,6 +54,15 @@ def test_each_rejection_is_measured_against_its_own_check():
                                 "gnc_weight", "", "map_gate", "", ""]
 
 
+def test_a_set_aside_clique_member_is_measured_against_the_map_gate_when_retried():
+    # unsupported_group, like pair_inconsistent: a set decision (no margin) unless the map gate retried it.
+    reason = np.array(["unsupported_group", "unsupported_group"])
+    f = _figures(odometry_chi2=[30.0, 30.0], map_chi2=[math.nan, 64.0], map_std_m=[math.nan, 0.1])
+    m = decision_margins(reason, f, BOUNDS)
+    np.testing.assert_allclose(m.value, [math.nan, min((4 - 8) / 4, (0.25 - 0.1) / 0.25)], rtol=1e-12)
+    assert m.check.tolist() == ["", "map_gate"]
+
+
 def test_an_accepted_closure_takes_its_tightest_passed_check():
     reason = np.array(["accepted", "accepted", "accepted"])
     f = _figures(overlap=[0.33, 0.9, 0.9], rmse_m=[0.01, 0.01, 0.01], ambiguity=[0.5, 0.5, np.nan],

@@ -12,6 +12,7 @@ is never smaller than the rival.
 import networkx as nx
 import numpy as np
 import pytest
+import scipy.stats
 
 from closurecheck.core import se2
 from closurecheck.core.odometry import OdometryChain, keyframe_step_covariances, noise_from_header
@@ -173,3 +174,98 @@ def test_a_clear_majority_keeps_its_closures(hall_chain):
     assert out.accepted[right].all() and not out.accepted[~right].any()
     assert (out.reason[~right] == Reason.PAIR_INCONSISTENT).all()
     assert len(out.rivals.disputes) == 1 and not out.rivals.disputes[0].rejected
+
+
+# --- odometry support of the consistent set (VerifyOptions.clique_max_odometry_factor) -----------------------------
+
+
+@pytest.fixture(scope="module")
+def aisle_chain():
+    """The same route with odometry loose enough for a 6 m family to pass the gate, tight enough to show it.
+
+    With the step covariances x100 the chains between the families' ends
+    leave a 6 m shift a squared Mahalanobis distance of about 30 (variance
+    factor about 13), the right closures about 0.03: like the warehouse
+    family of docs/performance.md (26.6 against 1.8).
+    """
+    log = simulate_log("warehouse", seed=4, scans=900)
+    kf = select_keyframes(log.odom)
+    steps = keyframe_step_covariances(noise_from_header(log.header), log.odom, kf) * 100.0
+    chain = OdometryChain.from_steps(np.asarray(kf), log.odom[kf], steps)
+    return chain, log.truth[kf]
+
+
+def _factor(chi2_values):
+    """Median over the chi-square(3) median, the reference from scipy (scipy.stats.chi2.median)."""
+    return float(np.median(chi2_values) / scipy.stats.chi2.median(3))
+
+
+def test_a_larger_family_the_odometry_does_not_support_loses_to_a_smaller_one_it_does(aisle_chain):
+    chain, truth = aisle_chain
+    src, dst, delta, right, cov = _families(truth, 12, 20, np.random.default_rng(1))
+    closures = _closures(chain, src, dst, delta, cov)
+    base = dict(calibrate_heading_drift=False, extend_with_map=False)
+    # Without the rule (a bound no factor reaches) the larger, shifted family wins.
+    plain = verify(closures, chain, VerifyOptions(clique_max_odometry_factor=1e9, **base))
+    assert plain.accepted[~right].all() and not plain.accepted[right].any()
+    wrong_factor = _factor(plain.figures["odometry_chi2"][~right])
+    right_factor = _factor(plain.figures["odometry_chi2"][right])
+    assert wrong_factor > 4.0 and 4.0 * right_factor <= wrong_factor
+    out = verify(closures, chain, VerifyOptions(**base))
+    assert out.accepted[right].all() and not out.accepted[~right].any()
+    assert (out.reason[~right] == Reason.UNSUPPORTED_GROUP).all()
+    assert out.clique_size == right.sum()
+    note = [n for n in out.notes if "set aside" in n]
+    assert len(note) == 1
+    assert f"({(~right).sum()} closures)" in note[0] and f"variance factor {wrong_factor:.1f}" in note[0]
+    assert f"a set of {right.sum()} closures at factor {right_factor:.2f}" in note[0]
+    # The map gate retries the set-aside closures against the map the kept clique pins down: a 6 m shift fails it.
+    mapped = verify(closures, chain, VerifyOptions(calibrate_heading_drift=False))
+    assert mapped.accepted[right].all() and not mapped.accepted[~right].any()
+    assert np.isfinite(mapped.figures["map_chi2"][~right]).all()
+    # The set-aside family is no rival group of the kept one: it lost on support, not on size.
+    contest = verify(closures, chain, VerifyOptions(rival_margin=2.0, **base))
+    assert contest.accepted[right].all() and not contest.accepted[~right].any()
+    assert (contest.reason[~right] == Reason.UNSUPPORTED_GROUP).all()
+
+
+def test_a_maximum_clique_the_odometry_supports_is_kept(aisle_chain):
+    chain, truth = aisle_chain
+    src, dst, delta, right, cov = _families(truth, 20, 12, np.random.default_rng(3))
+    out = verify(_closures(chain, src, dst, delta, cov), chain,
+                 VerifyOptions(calibrate_heading_drift=False, extend_with_map=False))
+    assert _factor(out.figures["odometry_chi2"][right]) <= 4.0
+    assert out.accepted[right].all() and not out.accepted[~right].any()
+    assert (out.reason[~right] == Reason.PAIR_INCONSISTENT).all()
+    assert not any("set aside" in n for n in out.notes)
+
+
+def test_a_factor_within_the_bound_keeps_the_larger_family(hall_chain):
+    # On the loosest odometry the shifted family's factor is about 3.3: the
+    # odometry cannot tell it (a chain that loose cannot tell a pitch; the x4
+    # row of docs/performance.md), and the rule leaves the maximum clique alone.
+    chain, truth = hall_chain
+    src, dst, delta, right, cov = _families(truth, 12, 20, np.random.default_rng(1))
+    closures = _closures(chain, src, dst, delta, cov)
+    base = dict(calibrate_heading_drift=False, extend_with_map=False)
+    out = verify(closures, chain, VerifyOptions(**base))
+    wrong_factor = _factor(out.figures["odometry_chi2"][~right])
+    assert 1.0 < wrong_factor <= 4.0
+    assert out.accepted[~right].all() and (out.reason[right] == Reason.PAIR_INCONSISTENT).all()
+    # A stricter bound, under that factor, hands the decision to the family the odometry supports.
+    strict = verify(closures, chain, VerifyOptions(clique_max_odometry_factor=wrong_factor / 2, **base))
+    assert strict.accepted[right].all() and not strict.accepted[~right].any()
+
+
+def test_a_supported_group_too_small_to_measure_leaves_the_largest(aisle_chain):
+    # 8 right closures cannot measure a variance factor (verify.min_closures_for_scale = 10), so
+    # the unsupported family of 20 stays; its factor is left for the trust verdict to judge.
+    chain, truth = aisle_chain
+    src, dst, delta, right, cov = _families(truth, 8, 20, np.random.default_rng(1))
+    out = verify(_closures(chain, src, dst, delta, cov), chain,
+                 VerifyOptions(calibrate_heading_drift=False, extend_with_map=False))
+    assert _factor(out.figures["odometry_chi2"][~right]) > 4.0
+    assert out.accepted.sum() >= 12 and not out.accepted[right].any()
+    assert (out.reason[right] == Reason.PAIR_INCONSISTENT).all()
+    assert not (out.reason == Reason.UNSUPPORTED_GROUP).any()
+    assert not any("set aside" in n for n in out.notes)
