@@ -45,6 +45,7 @@ to ``benchmarks/results/robustness.md`` from all rows.
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import json
 import math
 import re
@@ -177,11 +178,11 @@ def pairs_ok(p) -> bool:
     return p["kept"] == p["pairs"] or p["trust"] == "doubtful" or set(p["rejected"]) <= SCANS_CANNOT_DECIDE
 
 
-def one_run(scene, level, seed, header_name, scans) -> dict:
+def one_run(scene, level, seed, header_name, scans, config: RunConfig = RunConfig(jobs=1)) -> dict:
     opts = sim_options(level, seed, HEADERS[header_name])
     t0 = time.perf_counter()
     log = simulate_log(scene, seed=seed, scans=scans, options=opts)
-    out = run_log(log, RunConfig(jobs=1))
+    out = run_log(log, config)
     run_s = time.perf_counter() - t0
     v = out.verdicts
     s = score_closures(log, out.keyframes, v.src, v.dst, v.accepted, v.delta, v.covariance, out.poses)
@@ -345,7 +346,13 @@ def main(argv=None) -> int:
     ap.add_argument("--resume", action="store_true", help="keep the .jsonl's rows and skip the runs it has")
     ap.add_argument("--report-only", action="store_true", help="write the markdown from the .jsonl, run nothing")
     ap.add_argument("--results", type=Path, default=ROOT / "benchmarks" / "results" / "robustness.md")
+    ap.add_argument("--point-features", choices=("on", "off"), default=None,
+                    help="registration.point_features for every run (default: the tool's default)")
     args = ap.parse_args(argv)
+    config = RunConfig(jobs=1)
+    if args.point_features is not None:
+        config = dataclasses.replace(config, registration=dataclasses.replace(
+            config.registration, point_features=args.point_features == "on"))
     seeds = args.seeds if args.seeds is not None else ([0] if args.quick else [0, 1, 2])
     jsonl = args.results.with_suffix(".jsonl")
     jsonl.parent.mkdir(parents=True, exist_ok=True)
@@ -361,7 +368,7 @@ def main(argv=None) -> int:
                 for header in args.headers:
                     if (scene, level, seed, header) in done:
                         continue
-                    row = one_run(scene, level, seed, header, scans)
+                    row = one_run(scene, level, seed, header, scans, config)
                     rows.append(row)
                     with jsonl.open("a") as fh:
                         fh.write(json.dumps(row) + "\n")

@@ -114,10 +114,13 @@ class RegistrationOptions:
             they take the local model of a line (its quadratic term follows
             their round outline), seen by fewer they are matched point to
             segment (:func:`_point_rows`).  Without them a scene of posts
-            has almost nothing to register on.  Off by default: on the
-            warehouse route at 50 deg/100 m of heading drift it tipped
-            verification into a family of look-alike closures (391 false
-            of 611 accepted, docs/performance.md, robustness section).
+            has almost nothing to register on.  On by default since
+            verification sets aside a consistent set the odometry does not
+            support (``verify.clique_max_odometry_factor``): before that
+            rule, on the warehouse route at 50 deg/100 m of heading drift,
+            it tipped verification into a family of look-alike closures
+            (391 false of 611 accepted, docs/performance.md, robustness
+            section).
 
     Covariance
         covariance: ``"censi"`` (Censi 2007 closed form, accounts for shared
@@ -160,7 +163,7 @@ class RegistrationOptions:
     kernel: str = setting("huber", choices=KERNEL_CHOICES)
     kernel_scale: float = setting(1.345, above=0.0)
     min_noise_m: float = setting(0.001, above=0.0)
-    point_features: bool = setting(False)
+    point_features: bool = setting(True)
     max_iterations: int = setting(30, at_least=1)
     tolerance_m: float = setting(1e-4, above=0.0)
     tolerance_rad: float = setting(2e-5, above=0.0)

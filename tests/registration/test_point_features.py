@@ -46,9 +46,9 @@ def trials():
 
 def test_posts_only_scan_is_all_small_objects():
     pts = scan(TARGET_POSE, np.random.default_rng(1))
-    # Without small objects (the default) there is no straight structure at all.
+    # Without small objects there is no straight structure at all.
     with pytest.raises(InputError, match="straight structure"):
-        register(pts, pts)
+        register(pts, pts, point_features=False)
     prepared = prepare_scan(pts, RegistrationOptions(point_features=True))
     # Every reading belongs to a post: an outline model (posts seen by 5 readings or more) or a
     # point matched to segments (fewer), and one object label per post seen by fewer.

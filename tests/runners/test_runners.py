@@ -12,6 +12,7 @@ external pairs list); the subset still holds accepted closures and every
 kind of rejection the small log produces.
 """
 
+import dataclasses
 import sys
 from dataclasses import astuple
 
@@ -188,15 +189,18 @@ def test_points_table_round_trip():
 
 def test_a_scan_without_straight_structure_is_skipped_not_fatal(case):
     rng = np.random.default_rng(1)
-    # Scattered clutter: no point has collinear neighbours, so preparation refuses it.
+    # Scattered clutter: no point has collinear neighbours, so preparation on
+    # straight structure alone refuses it (with small objects on, isolated
+    # readings count as objects and it prepares).
     clutter = rng.uniform(-8.0, 8.0, size=(300, 2))
+    options = dataclasses.replace(CONFIG.registration, point_features=False)
     with pytest.raises(InputError):
-        prepare_scan(clutter, CONFIG.registration)
+        prepare_scan(clutter, options)
     room = case["log"].points(0)
-    cache = ScanCache(PointsTable.from_dict({0: clutter, 1: room, 2: room[:5]}), CONFIG.registration)
+    cache = ScanCache(PointsTable.from_dict({0: clutter, 1: room, 2: room[:5]}), options)
     got = cache.get([0, 1, 2])
     assert set(got) == {1}
-    out = register_batch(got, np.array([0, 1]), np.array([1, 2]), [np.zeros((1, 3))] * 2, CONFIG.registration)
+    out = register_batch(got, np.array([0, 1]), np.array([1, 2]), [np.zeros((1, 3))] * 2, options)
     assert out == [None, None]
 
 
