@@ -75,7 +75,7 @@ from sklearn.neighbors import NearestNeighbors
 from ..core import se2
 from ..core.odometry import OdometryChain, OdometryNoise, noise_from_header
 from ..core.options import options, setting
-from ..core.stats import chi2_threshold
+from ..core.stats import chi2_median, chi2_threshold
 from ..errors import InputError
 from ..io.pairs_csv import ExternalPairs
 from .descriptors import (
@@ -421,10 +421,6 @@ def rank_score(gate_sq, descriptor_ratio, options: CandidateOptions = CandidateO
     return np.where(gated, gate_sq / options.gate_threshold, options.ungated_penalty) + term
 
 
-# The chi-square(3) median, 2.366 (scipy.stats.chi2.median(3)).
-_SAME_PLACE_MEDIAN = chi2_threshold(0.5)
-
-
 def _odometry_revisit_first(score, m2, part, chain: OdometryChain, start: int, options: CandidateOptions):
     """Drop the descriptor term (in place) of each row's best gated partner where the odometry predicts the same place.
 
@@ -443,7 +439,7 @@ def _odometry_revisit_first(score, m2, part, chain: OdometryChain, start: int, o
     # keyframe 1.12 m from the first (truly 0.82 m) with a gate statistic of
     # 0.37, and the pair was never proposed.  Below the chi-square median
     # the pair fits "same place" better than half of all true revisits do.
-    sure = near | (m2[rows, col] <= _SAME_PLACE_MEDIAN)
+    sure = near | (m2[rows, col] <= chi2_median())
     score[rows[sure], col[sure]] = m2[rows[sure], col[sure]] / options.gate_threshold
 
 
