@@ -167,7 +167,10 @@ def true_pairs_alone(log, out, rng) -> dict:
 
 # Rejections that say the pair's own scans do not allow a decision (registration quality,
 # docs/verification.md), as opposed to a disagreement with the odometry model or other closures.
-SCANS_CANNOT_DECIDE = {"no_points", "not_converged", "low_overlap", "high_rmse", "ambiguous", "degenerate"}
+# unchecked_odometry: the odometry gate failed, but the chain runs through steps whose scans could not check the
+# odometry, where a slip would explain the difference (docs/verification.md, "Slips the scans could not see").
+SCANS_CANNOT_DECIDE = {"no_points", "not_converged", "low_overlap", "high_rmse", "ambiguous", "degenerate",
+                       "unchecked_odometry"}
 
 
 def pairs_ok(p) -> bool:

@@ -264,9 +264,9 @@ def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPai
         # same decision without the reviewer (verification is a second or
         # so of a 5,000-scan run, docs/performance.md).
         verifier_reason = st.run("verification", verify, regs, chain, config.verify, None,
-                                 KeyframeScans(log.ranges[keyframes], log.sensor)).reason
+                                 KeyframeScans(log.ranges[keyframes], log.sensor), cal.unchecked).reason
     ver = st.run("verification", verify, regs, chain, config.verify, review,
-                 KeyframeScans(log.ranges[keyframes], log.sensor))
+                 KeyframeScans(log.ranges[keyframes], log.sensor), cal.unchecked)
     trust = judge(calibrated=cal.measured, odometry_scale=ver.odometry_scale,
                   drift_rate=ver.heading_drift.rate_rad_per_m, drift_std=ver.heading_drift.std_rad_per_m,
                   drift_closures=ver.heading_drift.closures, clique_exact=ver.clique_exact,
@@ -293,7 +293,8 @@ def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPai
                      f"alone give are in candidates.csv's verifier_reason column")
     if len(cands) == 0:
         notes.append(_no_candidates_note(log, external, also_propose))
-    return RunOutcome(log=log, config=config, keyframes=keyframes, odom=log.odom[keyframes], step_covariances=chain.steps,
+    return RunOutcome(log=log, config=config, keyframes=keyframes, odom=log.odom[keyframes],
+                      step_covariances=chain.steps if ver.odometry_steps is None else ver.odometry_steps,
                       candidates=cands, registrations=regs, verification=ver, verdicts=verdicts, graph=graph,
                       calibration=cal, trust=trust,
                       timings=st.timings, notes=tuple(notes))
@@ -312,7 +313,8 @@ def _graph(log, chain: OdometryChain, ver: Verification, v: VerdictTable) -> Pos
     # drift removed and the covariance calibrated, so that a downstream
     # solver reaches the same optimum.  Nodes keep the input odometry.
     used = chain.poses if ver.odometry_poses is None else ver.odometry_poses
-    o_src, o_dst, o_delta, o_info = odometry_edges(used, chain.steps * ver.odometry_scale)
+    steps = chain.steps if ver.odometry_steps is None else ver.odometry_steps
+    o_src, o_dst, o_delta, o_info = odometry_edges(used, steps * ver.odometry_scale)
     odom = log.odom[chain.ids]
     acc = np.flatnonzero(v.accepted)
     l_info = np.linalg.inv(v.covariance[acc]) if len(acc) else np.zeros((0, 3, 3))

@@ -40,7 +40,7 @@ every later stage; the input odometry itself is kept in graph.json's nodes.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 import scipy.optimize
@@ -128,6 +128,10 @@ class OdometryCalibration:
     steps, steps_sound : keyframe steps, and those registered soundly.
     slips : (S,) indices of the steps found to be slips.
     notes : remarks for the report.
+    unchecked : (U,) indices of the steps whose registration was not sound
+        (empty when no calibration was made): a slip there is invisible to
+        the calibration, and the verification may look for one
+        (docs/verification.md, "Slips the scans could not see").
     """
 
     chain: OdometryChain
@@ -138,6 +142,7 @@ class OdometryCalibration:
     steps_sound: int
     slips: np.ndarray
     notes: tuple = ()
+    unchecked: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
 
 
 @dataclass(frozen=True, eq=False)
@@ -405,4 +410,5 @@ def calibrate(odom, ids, registered: RegisteredClosures, prior: OdometryNoise,
         notes.append(f"{len(slip)} odometry step(s) far outside the fitted model (slips, or moving objects in "
                      f"the scans); their uncertainty was widened to cover it")
     return OdometryCalibration(chain=chain, systematic=sys, noise=noise, measured=True, steps=len(s.length),
-                               steps_sound=n_sound, slips=slip.astype(np.int64), notes=tuple(notes))
+                               steps_sound=n_sound, slips=slip.astype(np.int64), notes=tuple(notes),
+                               unchecked=np.flatnonzero(~s.sound).astype(np.int64))

@@ -160,8 +160,9 @@ def decision_margins(reason, figures: dict, bounds: dict) -> Margins:
     take(reason == Reason.LOW_OVERLAP, "overlap")
     take(reason == Reason.HIGH_RMSE, "rmse")
     take(reason == Reason.AMBIGUOUS, "ambiguity")
-    take((reason == Reason.ODOMETRY_GATE) & ~tried, "odometry_gate")
-    take(((reason == Reason.ODOMETRY_GATE) | (reason == Reason.PAIR_INCONSISTENT)
+    gate = (reason == Reason.ODOMETRY_GATE) | (reason == Reason.UNCHECKED_ODOMETRY)
+    take(gate & ~tried, "odometry_gate")
+    take((gate | (reason == Reason.PAIR_INCONSISTENT)
           | (reason == Reason.UNSUPPORTED_GROUP)) & tried, "map_gate")
     residual = reason == Reason.GRAPH_RESIDUAL
     if "graph_residual" in per:

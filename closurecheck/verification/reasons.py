@@ -33,6 +33,7 @@ class Reason(str, Enum):
     AMBIGUOUS = "ambiguous"
     DEGENERATE = "degenerate"
     ODOMETRY_GATE = "odometry_gate"
+    UNCHECKED_ODOMETRY = "unchecked_odometry"
     PAIR_INCONSISTENT = "pair_inconsistent"
     GRAPH_RESIDUAL = "graph_residual"
     RIVAL_GROUP = "rival_group"
@@ -65,6 +66,9 @@ _TEXT = {
     Reason.AMBIGUOUS: ("a distinct second alignment fits almost as well (look-alike place)", "registration"),
     Reason.DEGENERATE: ("the geometry leaves a direction unobservable (e.g. a bare corridor)", "registration"),
     Reason.ODOMETRY_GATE: ("the registered motion is implausible given the odometry", "odometry"),
+    Reason.UNCHECKED_ODOMETRY: ("the registered motion disagrees with the odometry, but the odometry between the "
+                                "two scans runs through steps their scans could not check, where a slip would "
+                                "explain it: the checks cannot decide", "odometry"),
     Reason.PAIR_INCONSISTENT: ("does not close consistent cycles with the other closures", "consistency"),
     Reason.GRAPH_RESIDUAL: ("failed the chi-square residual test after optimisation", "consistency"),
     Reason.RIVAL_GROUP: ("one of two consistent groups of closures that contradict each other, neither clearly "

@@ -65,6 +65,7 @@ from .drift import (
 from .free_space import FreeSpaceCheck, FreeSpaceOptions, KeyframeScans, blame, check_free_space, closure_groups
 from .map_gate import map_gate_distance, relative_posterior
 from .reasons import Reason, is_accepted
+from .slips import explained_by_unseen_slip, search_unseen_slips
 from .trust import PLAUSIBLE_ODOMETRY_FACTOR
 
 
@@ -145,6 +146,14 @@ class VerifyOptions:
         and, when it is at least this many standard errors from zero, remove
         it from the odometry and run the strict pass again
         (:mod:`closurecheck.verification.drift`).
+    unseen_slip_rounds, unseen_slip_max_m, unseen_slip_max_rad : when the
+        final map still has contradicting scans, look for a slip at odometry
+        steps the calibration could not check (its scans did not register):
+        such a stretch, one at a time, gets the uncertainty of a slip of up
+        to these sizes (two standard deviations) and the whole decision is
+        taken again; the stretch that leaves the fewest contradictions, if
+        fewer than before, is kept, up to ``unseen_slip_rounds`` times
+        (:mod:`closurecheck.verification.slips`).
     """
 
     min_overlap: float = setting(0.3, at_least=0.0, at_most=1.0)
@@ -179,6 +188,9 @@ class VerifyOptions:
     contradiction_share: float = setting(0.2, above=0.0, below=1.0)
     contradiction_min_m: float = setting(3.0, above=0.0)
     contradiction_rounds: int = setting(5, at_least=0)
+    unseen_slip_rounds: int = setting(3, at_least=0)
+    unseen_slip_max_m: float = setting(0.3, above=0.0)
+    unseen_slip_max_rad: float = setting(0.0873, above=0.0)
 
 
 @dataclass(frozen=True, eq=False)
@@ -202,6 +214,13 @@ class Verification:
     rivals : the rival groups found against the consistent set, with
         indices into the K candidates.
     notes : human-readable remarks for the report.
+    odometry_steps : (N - 1, 3, 3) the step covariances the graph was
+        optimised with, before ``odometry_scale``: the chain's, or with the
+        unseen slips' stretches widened; None means the chain's.
+    unseen_slips : the :class:`~closurecheck.verification.slips.UnseenSlip`
+        stretches whose widening was kept.
+    set_aside : the largest consistent set when it was set aside for lack
+        of odometry support (:class:`SetAside`), else None.
     """
 
     reason: np.ndarray
@@ -217,6 +236,9 @@ class Verification:
     free_space: FreeSpaceCheck | None = None
     rivals: RivalCheck = NO_RIVALS
     notes: tuple = field(default_factory=tuple)
+    odometry_steps: np.ndarray | None = None
+    unseen_slips: tuple = ()
+    set_aside: "SetAside | None" = None
 
 
 @dataclass(frozen=True, eq=False)
@@ -477,6 +499,15 @@ class _Stage:
     members: np.ndarray
     figures: dict
     notes: tuple
+    set_aside: SetAside | None = None
+
+
+def _consistency_options(options: VerifyOptions) -> ConsistencyOptions:
+    return ConsistencyOptions(gate_probability=options.gate_probability,
+                              pair_probability=options.pair_probability,
+                              pair_window_m=options.pair_window_m,
+                              informative_max_std_m=options.gate_max_chain_std_m,
+                              informative_max_std_rad=options.gate_max_chain_std_rad)
 
 
 def _core_and_map(plausible, src, dst, delta, covariance, step_covariances, options, fixed, odom_poses) -> _Stage:
@@ -486,11 +517,7 @@ def _core_and_map(plausible, src, dst, delta, covariance, step_covariances, opti
     figures = {name: np.full(k, np.nan) for name in
                ("odometry_chi2", "pair_support", "map_chi2", "map_std_m", "gnc_weight", "graph_chi2")}
     figures["odometry_informative"] = np.zeros(k, dtype=bool)
-    cons = ConsistencyOptions(gate_probability=options.gate_probability,
-                              pair_probability=options.pair_probability,
-                              pair_window_m=options.pair_window_m,
-                              informative_max_std_m=options.gate_max_chain_std_m,
-                              informative_max_std_rad=options.gate_max_chain_std_rad)
+    cons = _consistency_options(options)
 
     # Pass 1, strict: the odometry model as given decides the core set.
     first_pass, clique, core, rivals, set_aside = _strict_pass(plausible, src, dst, delta, covariance, odom_poses,
@@ -550,6 +577,7 @@ def _core_and_map(plausible, src, dst, delta, covariance, step_covariances, opti
     if joined:
         notes.append(f"{joined} closure(s) verified against the map of the first {len(core)} (map gate)")
     return _Stage(first_pass=first_pass, clique=clique, rivals=rivals, scale=scale, members=members,
+                  set_aside=set_aside,
                   figures=figures, notes=tuple(notes))
 
 
@@ -608,7 +636,8 @@ def _resolve_contradictions(reason, poses, src, dst, delta, covariance, odom_pos
 
 
 def verify(closures: RegisteredClosures, chain: OdometryChain, options: VerifyOptions = VerifyOptions(),
-           review: ReviewerVerdicts | None = None, scans: KeyframeScans | None = None) -> Verification:
+           review: ReviewerVerdicts | None = None, scans: KeyframeScans | None = None,
+           unchecked_steps=None) -> Verification:
     """Decide which registered candidates are loop closures, and optimise the graph.
 
     Parameters
@@ -622,6 +651,12 @@ def verify(closures: RegisteredClosures, chain: OdometryChain, options: VerifyOp
         Every accepted one needs a finite delta and covariance.
     scans : the keyframes' scans (in chain order) for the free-space check
         of the final map; None skips it.
+    unchecked_steps : (U,) indices of the chain's steps (keyframe k to
+        k + 1) that the scans could not check
+        (:attr:`~closurecheck.calibration.odometry.OdometryCalibration.unchecked`);
+        where the final map's scans contradict each other, a slip is looked
+        for there (:mod:`closurecheck.verification.slips`).  None or empty:
+        no search.
 
     Returns
     -------
@@ -629,6 +664,38 @@ def verify(closures: RegisteredClosures, chain: OdometryChain, options: VerifyOp
     per candidate, the optimised keyframe poses (odometry frame, node 0 fixed)
     and the figures behind each decision.
     """
+    result = _decide(closures, chain, options, review, scans)
+    unchecked = np.zeros(0, np.intp) if unchecked_steps is None else np.asarray(unchecked_steps, dtype=np.intp)
+    if not len(unchecked):
+        return result
+    src, dst = chain.index_of(closures.src), chain.index_of(closures.dst)
+    if scans is not None and options.unseen_slip_rounds:
+        def decide(steps):
+            return _decide(closures, OdometryChain.from_steps(chain.ids, chain.poses, steps), options, review,
+                           scans)
+
+        result = search_unseen_slips(result, decide, chain, unchecked, options, src, dst)
+    # A gate rejection that one slip at an unchecked stretch would undo is
+    # a decision the checks cannot take (issue 12: a short candidates list
+    # must never be rejected as inconsistent with odometry nobody checked).
+    gated = np.flatnonzero(result.reason == str(Reason.ODOMETRY_GATE))
+    if not len(gated):
+        return result
+    steps = (chain.steps if result.odometry_steps is None else result.odometry_steps) * result.odometry_scale
+    odom = chain.poses if result.odometry_poses is None else result.odometry_poses
+    explained = explained_by_unseen_slip(src[gated], dst[gated], closures.delta[gated],
+                                         result.closure_covariance[gated], odom, steps, unchecked, options,
+                                         _consistency_options(options))
+    if not explained.any():
+        return result
+    mask = np.zeros(len(result.reason), dtype=bool)
+    mask[gated[explained]] = True
+    return dataclasses.replace(result, reason=np.where(mask, str(Reason.UNCHECKED_ODOMETRY), result.reason))
+
+
+def _decide(closures: RegisteredClosures, chain: OdometryChain, options: VerifyOptions,
+            review: ReviewerVerdicts | None, scans: KeyframeScans | None) -> Verification:
+    """:func:`verify` on one odometry model: every check once, no slip search."""
     src = chain.index_of(closures.src).astype(np.intp)
     dst = chain.index_of(closures.dst).astype(np.intp)
     delta = closures.delta
@@ -756,5 +823,6 @@ def verify(closures: RegisteredClosures, chain: OdometryChain, options: VerifyOp
     return Verification(reason=reason, accepted=accepted,
                         closure_covariance=covariance, figures=figures, poses=poses,
                         clique_exact=clique_exact, clique_size=0 if clique is None else clique.size,
+                        set_aside=stage.set_aside,
                         odometry_scale=scale, odometry_poses=np.array(odom_poses, dtype=float),
                         heading_drift=drift, free_space=free, rivals=stage.rivals, notes=tuple(notes))
