@@ -91,7 +91,23 @@ def _calibration_summary(cal: OdometryCalibration) -> dict:
             "heading_drift_std_deg_per_100m": finite(sys.heading_per_m_std * deg100),
             "turn_scale": sys.turn_scale, "turn_scale_std": finite(sys.turn_scale_std),
             "distance_scale": sys.distance_scale, "distance_scale_std": finite(sys.distance_scale_std),
-            "noise": cal.noise.to_header(), "slips": [int(k) for k in cal.slips]}
+            "noise": cal.noise.to_header(), "slips": [int(k) for k in cal.slips],
+            "steps_unchecked": int(len(cal.unchecked))}
+
+
+def _unseen_slips_summary(outcome: RunOutcome) -> list:
+    ids = outcome.keyframes
+    return [{"first_scan": int(ids[s.first_step]), "last_scan": int(ids[s.last_step + 1]),
+             "pairs_contradicting_before": s.contradictions_before, "pairs_contradicting_after": s.contradictions_after,
+             "accepted_before": s.accepted_before, "accepted_after": s.accepted_after}
+            for s in outcome.verification.unseen_slips]
+
+
+def _set_aside_summary(aside) -> dict | None:
+    if aside is None:
+        return None
+    return {"size": int(aside.size), "variance_factor": float(aside.factor), "kept_size": int(aside.kept_size),
+            "kept_variance_factor": float(aside.kept_factor)}
 
 
 def _free_space_summary(check) -> dict | None:
@@ -117,6 +133,8 @@ def summary(outcome: RunOutcome) -> dict:
         "trust": {"verdict": outcome.trust.label, "reasons": list(outcome.trust.reasons)},
         "consistent_set_exact": bool(outcome.verification.clique_exact),
         "odometry_calibration": _calibration_summary(outcome.calibration),
+        "consistent_set_set_aside": _set_aside_summary(outcome.verification.set_aside),
+        "unseen_slips": _unseen_slips_summary(outcome),
         "free_space": _free_space_summary(outcome.verification.free_space),
         "odometry_scale": float(outcome.verification.odometry_scale),
         "odometry_heading_drift": _drift_summary(outcome.verification.heading_drift),
