@@ -219,6 +219,9 @@ def test_a_larger_family_the_odometry_does_not_support_loses_to_a_smaller_one_it
     assert len(note) == 1
     assert f"({(~right).sum()} closures)" in note[0] and f"variance factor {wrong_factor:.1f}" in note[0]
     assert f"a set of {right.sum()} closures at factor {right_factor:.2f}" in note[0]
+    # the same record reaches summary.json (closurecheck.reporting.outputs)
+    assert out.set_aside.size == (~right).sum() and out.set_aside.kept_size == right.sum()
+    assert out.set_aside.factor == pytest.approx(wrong_factor) and plain.set_aside is None
     # The map gate retries the set-aside closures against the map the kept clique pins down: a 6 m shift fails it.
     mapped = verify(closures, chain, VerifyOptions(calibrate_heading_drift=False))
     assert mapped.accepted[right].all() and not mapped.accepted[~right].any()

@@ -17,6 +17,7 @@ from closurecheck import simulate_log
 from closurecheck.config import RunConfig
 from closurecheck.core import se2
 from closurecheck.pipeline import run_log
+from closurecheck.reporting.outputs import summary
 from closurecheck.reporting.scoring import registered_correctly
 from closurecheck.verification.consistency import ConsistencyOptions
 from closurecheck.verification.free_space import FreeSpaceCheck
@@ -176,6 +177,9 @@ def test_a_slip_the_scans_could_not_see_is_found_where_it_happened(slipped_ring)
     right = registered_correctly(log.truth, v.src, v.dst, v.delta)
     assert v.accepted.sum() >= 20 and not (v.accepted & ~right).any()
     assert out.trust.sound
+    listed = summary(out)["unseen_slips"][0]
+    assert listed["first_scan"] <= 351 <= listed["last_scan"]
+    assert listed["pairs_contradicting_before"] == first.contradictions_before
     # graph.json carries the widening: that step's odometry edge is less informative than before
     info = out.graph.information[:len(out.keyframes) - 1]
     before = np.linalg.inv(out.calibration.chain.steps[slipped] * ver.odometry_scale)
