@@ -152,7 +152,21 @@ def _better(trial, current, options, shown: bool) -> bool:
     return c <= c0 and more >= options.min_closures_for_scale and trial.odometry_scale <= current.odometry_scale
 
 
-def search_unseen_slips(result, decide, chain: OdometryChain, unchecked, options, src=None, dst=None):
+def _explained_counts(result, runs, chain, steps, src, dst, delta, options, cons) -> np.ndarray:
+    """(R,) gate rejections of ``result`` that one slip in each stretch would let pass."""
+    counts = np.zeros(len(runs), dtype=np.intp)
+    gated = np.flatnonzero(result.reason == str(Reason.ODOMETRY_GATE))
+    if not len(gated):
+        return counts
+    odom = chain.poses if result.odometry_poses is None else result.odometry_poses
+    for r, rows in _passing_per_stretch(src[gated], dst[gated], delta[gated], result.closure_covariance[gated], odom,
+                                        steps * result.odometry_scale, runs, options, cons):
+        counts[r] = len(rows)
+    return counts
+
+
+def search_unseen_slips(result, decide, chain: OdometryChain, unchecked, options, cons: ConsistencyOptions,
+                        src, dst, delta):
     """Look for slips at unchecked odometry steps where the final map contradicts itself (module docstring).
 
     Parameters
@@ -164,7 +178,10 @@ def search_unseen_slips(result, decide, chain: OdometryChain, unchecked, options
     chain : the calibrated keyframe chain (N keyframes).
     unchecked : (U,) step indices the calibration could not check.
     options : VerifyOptions (``unseen_slip_*``).
+    cons : the odometry gate's ConsistencyOptions.
     src, dst : (K,) chain positions of the candidates' two keyframes.
+    delta : (K, 3) their registered deltas ``src^-1 ∘ dst`` (m, m, rad),
+        src frame.
 
     Returns
     -------
@@ -183,9 +200,13 @@ def search_unseen_slips(result, decide, chain: OdometryChain, unchecked, options
         before = _count(best_result)
         if (not before and not kept) or tried.all():
             break
-        score = _scores(runs, _trouble(best_result, src, dst))
-        score[tried] = -1
-        order = [r for r in np.argsort(-score, kind="stable")[:_SUSPECTS] if score[r] > 0]
+        # First the stretches that would explain the most gate rejections (a
+        # slip lies inside the chains of the closures it bends), then those
+        # with the most trouble near them.
+        explained = _explained_counts(best_result, runs, chain, steps, src, dst, delta, options, cons)
+        near = _scores(runs, _trouble(best_result, src, dst))
+        ranked = np.lexsort((-near, -explained))
+        order = [r for r in ranked if not tried[r] and (explained[r] or near[r])][:_SUSPECTS]
         best = None
         for r in order:
             tried[r] = True
@@ -266,22 +287,34 @@ def explained_by_unseen_slip(src, dst, delta, covariance, odom_poses, steps, unc
     >>> bool(explained_by_unseen_slip(*args, [], VerifyOptions(), ConsistencyOptions())[0])
     False
     """
+    out = np.zeros(len(src), dtype=bool)
+    for _, rows in _passing_per_stretch(src, dst, delta, covariance, odom_poses, steps, stretches(unchecked),
+                                        options, cons, skip=out):
+        out[rows] = True
+    return out
+
+
+def _passing_per_stretch(src, dst, delta, covariance, odom_poses, steps, runs, options, cons, skip=None):
+    """For each stretch r of ``runs``: (r, closures that pass the gate with a slip there).
+
+    Only closures whose chain holds the stretch are tried, and none marked
+    in ``skip`` (read at each stretch, so a caller may fill it as it goes).
+    """
     src = np.asarray(src, dtype=np.intp)
     dst = np.asarray(dst, dtype=np.intp)
-    out = np.zeros(len(src), dtype=bool)
-    runs = stretches(unchecked)
-    if not len(src) or not len(runs):
-        return out
     lo, hi = np.minimum(src, dst), np.maximum(src, dst)
     widen = slip_covariance(options.unseen_slip_max_m, options.unseen_slip_max_rad)
-    for first, last in runs:
+    for r, (first, last) in enumerate(runs):
         # The stretch lies inside the chain from lo to hi (steps lo .. hi - 1).
-        inside = np.flatnonzero(~out & (lo <= first) & (last < hi))
+        inside = (lo <= first) & (last < hi)
+        if skip is not None:
+            inside &= ~skip
+        inside = np.flatnonzero(inside)
         if not len(inside):
+            yield r, inside
             continue
         trial = np.array(steps, dtype=float)
         trial[first:last + 1] += widen / (last - first + 1)
         gate = odometry_gate(src[inside], dst[inside], delta[inside], covariance[inside], odom_poses,
                              se2.chain_prefix(odom_poses, trial), cons)
-        out[inside[gate.passed]] = True
-    return out
+        yield r, inside[gate.passed]

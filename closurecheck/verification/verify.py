@@ -674,7 +674,8 @@ def verify(closures: RegisteredClosures, chain: OdometryChain, options: VerifyOp
             return _decide(closures, OdometryChain.from_steps(chain.ids, chain.poses, steps), options, review,
                            scans)
 
-        result = search_unseen_slips(result, decide, chain, unchecked, options, src, dst)
+        result = search_unseen_slips(result, decide, chain, unchecked, options, _consistency_options(options), src,
+                                     dst, closures.delta)
     # A gate rejection that one slip at an unchecked stretch would undo is
     # a decision the checks cannot take (issue 12: a short candidates list
     # must never be rejected as inconsistent with odometry nobody checked).

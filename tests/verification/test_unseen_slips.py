@@ -75,7 +75,8 @@ def _search(initial, outcomes, unchecked, chain=None):
     kept_steps: set = set()
     k = len(initial.reason)
     src, dst = np.zeros(k, np.intp), np.full(k, len(chain) - 1, np.intp)
-    out = search_unseen_slips(initial, decide, chain, np.asarray(unchecked), VerifyOptions(), src, dst)
+    out = search_unseen_slips(initial, decide, chain, np.asarray(unchecked), VerifyOptions(), ConsistencyOptions(),
+                              src, dst, np.zeros((k, 3)))
     return out, tried
 
 
