@@ -30,8 +30,9 @@ even when uncalibrated).  Against these measured steps:
 3. **Slips**: a step whose residual is many standard deviations out (a
    wheel slipping on a wet floor, a bump) keeps its odometry, with a
    covariance widened to cover the jump, so that loop closures decide.
-   A slip where registration failed cannot be seen here; the verification's
-   consistency checks still can.
+   A slip where registration failed cannot be seen here: those steps are
+   listed (``unchecked``) and the verification looks for one there when
+   the final map contradicts itself (:mod:`closurecheck.verification.slips`).
 
 The result is a calibrated keyframe chain (poses and step covariances) for
 every later stage; the input odometry itself is kept in graph.json's nodes.
