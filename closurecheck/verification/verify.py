@@ -16,7 +16,12 @@ the check that decided it (reason codes in :mod:`closurecheck.verification.verdi
 4. the graph: optimise odometry + surviving closures with graduated
    non-convexity on the closures, drop what GNC down-weights, then the
    chi-square test of each closure's residual after optimisation, removing
-   the worst failing closure and re-optimising until all pass.
+   the worst failing closure and re-optimising until all pass;
+5. the scans of the final map must not contradict each other (free-space
+   check, ``scan_contradiction``); where they still do, a slip is looked
+   for at odometry steps the calibration could not check, and a gate
+   rejection that such a slip would undo becomes ``unchecked_odometry``
+   (:mod:`closurecheck.verification.slips`).
 
 A reviewer's decisions (:class:`ReviewerVerdicts`) overrule the checks for
 the pairs they name: a rejected pair is taken out before the odometry gate
