@@ -324,7 +324,20 @@ class _Layout:
         stride = POSE_DOF * per_col[ub_col]
         pos = base[:, None, None] + k[None, :, None] + k[None, None, :] * stride[:, None, None]  # (U, a, b)
         self.nnz = POSE_DOF * POSE_DOF * len(ublocks)
-        self.slot = pos[bslot].reshape(-1)
+        slot = pos[bslot].reshape(-1)
+        # The scatter as a 0/1 matrix: row = CSC slot, columns = the entries of the flat (E, 4, 3, 3) block
+        # array that land there, ascending.  Its product with the flat blocks adds each slot's entries in
+        # the order np.bincount(slot, weights=...) adds them (starting from 0, 1.0 * x exact), so the sums
+        # are identical to the bit, without the masked copy of every block entry that bincount needed:
+        # 0.030 instead of 0.054 s per assembly at 100,000 nodes, 0.3 s more for the layout, made once
+        # (measured on the benchmarks/optimizer.py graph, idle machine).
+        entries = np.flatnonzero(self.block_valid)
+        by_slot = np.argsort(slot, kind="stable")
+        scatter_ptr = np.zeros(self.nnz + 1, dtype=np.int64)
+        np.cumsum(np.bincount(slot, minlength=self.nnz), out=scatter_ptr[1:])
+        index_type = np.int32 if self.block_valid.size < 2**31 else np.int64
+        self.scatter = sp.csr_matrix((np.ones(len(slot)), entries[by_slot].astype(index_type),
+                                      scatter_ptr.astype(index_type)), shape=(self.nnz, self.block_valid.size))
         self.indices = np.empty(self.nnz, dtype=np.int32)
         self.indices[pos.reshape(-1)] = np.broadcast_to(POSE_DOF * ub_row[:, None, None] + k[None, :, None],
                                                         pos.shape).reshape(-1)
@@ -343,7 +356,7 @@ class _Layout:
 
     def assemble(self, blocks):
         """CSC data array of the normal matrix from (E, 4, 3, 3) edge blocks."""
-        return np.bincount(self.slot, weights=blocks.reshape(-1)[self.block_valid], minlength=self.nnz)
+        return self.scatter @ blocks.reshape(-1)
 
     def csc(self, data):
         return sp.csc_matrix((data, self.indices, self.indptr), shape=(self.size, self.size))
@@ -389,8 +402,12 @@ class _Graph:
         wa = w_info @ ja
         wb = w_info @ jb
         ja_t = np.swapaxes(ja, 1, 2)
-        hij = ja_t @ wb
-        blocks = np.stack([ja_t @ wa, hij, np.swapaxes(hij, 1, 2), np.swapaxes(jb, 1, 2) @ wb], axis=1)
+        # Written in place rather than stacked: one pass over the (E, 4, 3, 3) array instead of two.
+        blocks = np.empty((len(ja), 4, POSE_DOF, POSE_DOF))
+        np.matmul(ja_t, wa, out=blocks[:, 0])
+        np.matmul(ja_t, wb, out=blocks[:, 1])
+        blocks[:, 2] = np.swapaxes(blocks[:, 1], 1, 2)
+        np.matmul(np.swapaxes(jb, 1, 2), wb, out=blocks[:, 3])
         # W symmetric: J^T W e = (W J)^T e.
         gblocks = np.stack([np.einsum("eki,ek->ei", wa, e), np.einsum("eki,ek->ei", wb, e)], axis=1)
         return layout.assemble(blocks), layout.gradient(gblocks)
