@@ -331,13 +331,9 @@ class _Layout:
         # are identical to the bit, without the masked copy of every block entry that bincount needed:
         # 0.030 instead of 0.054 s per assembly at 100,000 nodes, 0.3 s more for the layout, made once
         # (measured on the benchmarks/optimizer.py graph, idle machine).
-        entries = np.flatnonzero(self.block_valid)
-        by_slot = np.argsort(slot, kind="stable")
-        scatter_ptr = np.zeros(self.nnz + 1, dtype=np.int64)
-        np.cumsum(np.bincount(slot, minlength=self.nnz), out=scatter_ptr[1:])
-        index_type = np.int32 if self.block_valid.size < 2**31 else np.int64
-        self.scatter = sp.csr_matrix((np.ones(len(slot)), entries[by_slot].astype(index_type),
-                                      scatter_ptr.astype(index_type)), shape=(self.nnz, self.block_valid.size))
+        # scipy's COO to CSR conversion is a counting sort that keeps the input order within a row.
+        self.scatter = sp.coo_matrix((np.ones(len(slot)), (slot, np.flatnonzero(self.block_valid))),
+                                     shape=(self.nnz, self.block_valid.size)).tocsr()
         self.indices = np.empty(self.nnz, dtype=np.int32)
         self.indices[pos.reshape(-1)] = np.broadcast_to(POSE_DOF * ub_row[:, None, None] + k[None, :, None],
                                                         pos.shape).reshape(-1)
