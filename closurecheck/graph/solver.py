@@ -60,6 +60,17 @@ class SolverOptions:
         (metres for x, y; radians for theta).
     initial_damping : starting lambda, relative to the diagonal of J^T W J
         (Marquardt's scaling); small values start close to Gauss-Newton.
+        On large graphs the default 1e-5 costs iterations: lambda times
+        the diagonal holds back the long, flat deformations of the graph
+        (the smallest eigenvalues of J^T W J are far below its diagonal),
+        and falling by at most a third per accepted step it does so for
+        many steps.  1e-10 reaches the same optimum (closer, in fact,
+        under the same stopping rule) in 7 instead of 21 iterations at
+        100,000 nodes from the odometry chain, 3 instead of 8 from
+        :func:`closurecheck.graph.initial.heading_first_poses`, 4 instead
+        of 6 at 5,000 nodes (benchmarks/optimizer.py).  The default stays
+        1e-5 because the demo record was made with it (1e-10 moves the
+        demo's poses by up to 9 nm).
     max_damping : give up (not converged) when rejected steps push lambda
         above this.
     linear_solver : ``"cholmod"`` (sparse Cholesky: CHOLMOD's supernodal
@@ -329,8 +340,8 @@ class _Layout:
         # array that land there, ascending.  Its product with the flat blocks adds each slot's entries in
         # the order np.bincount(slot, weights=...) adds them (starting from 0, 1.0 * x exact), so the sums
         # are identical to the bit, without the masked copy of every block entry that bincount needed:
-        # 0.030 instead of 0.054 s per assembly at 100,000 nodes, 0.3 s more for the layout, made once
-        # (measured on the benchmarks/optimizer.py graph, idle machine).
+        # 0.033 instead of 0.058 s per assembly at 100,000 nodes, the layout no slower (0.56 s, made
+        # once; measured on the benchmarks/optimizer.py graph, load 4).
         # scipy's COO to CSR conversion is a counting sort that keeps the input order within a row.
         self.scatter = sp.coo_matrix((np.ones(len(slot)), (slot, np.flatnonzero(self.block_valid))),
                                      shape=(self.nnz, self.block_valid.size)).tocsr()
