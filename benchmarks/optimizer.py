@@ -322,6 +322,21 @@ def large_table(args):
     lines += [""] + agreements(labels, timings)
     if not reference:
         lines += ["scipy's least_squares was not run on this size (--large-skip-reference)."]
+    if args.large_tight:
+        lines += [""] + tight_agreement(labels, timings, initial, src, dst, delta, info, robust)
+    return lines
+
+
+def tight_agreement(labels, timings, initial, src, dst, delta, info, robust):
+    """Each row's optimum against our LM run to far tighter tolerances (where least_squares would take minutes)."""
+    tight = SolverOptions(initial_damping=FAST_DAMPING, relative_cost_tolerance=1e-15, step_tolerance=1e-11)
+    c0 = time.process_time()
+    ref = optimize_graph(heading_first_poses(initial, src, dst, delta, info), src, dst, delta, info, robust,
+                         options=tight)
+    lines = [f"Tight reference: heading-first start, LM with initial_damping {FAST_DAMPING:g}, relative cost "
+             f"tolerance 1e-15, step tolerance 1e-11: {ref.iterations} iterations, {time.process_time() - c0:.1f} s "
+             f"CPU, cost {ref.cost!r}, converged {ref.converged}."]
+    lines += [agreement(ref, t[2], label, ours_name="Tight reference") for label, t in zip(labels, timings)]
     return lines
 
 
@@ -353,6 +368,8 @@ def main(argv=None):
     parser.add_argument("--large-skip-reference", action="store_true",
                         help="in the --large case, do not run scipy's least_squares")
     parser.add_argument("--large-repeats", type=int, default=1, help="runs of each solver in the --large case")
+    parser.add_argument("--large-tight", action="store_true",
+                        help="in the --large case, also compare every optimum with an LM run to tolerances 1e-15")
     parser.add_argument("--large-skip-splu", action="store_true",
                         help="in the --large case, do not run the SuperLU solver (minutes at 100,000 nodes)")
     parser.add_argument("--before", metavar="COMMIT",
