@@ -12,10 +12,14 @@ less.  A second table times the robust back-stops with 20% wrong loop
 edges.  With ``--large`` a third table times the 100,000-node case (200,000
 edges, same density of revisits), the default against SuperLU and,
 unless skipped, scipy's ``least_squares`` on the same graph; it takes
-minutes.  Prints markdown tables and writes them to
-benchmarks/results/optimizer.md.
+minutes.  Every table also times the two fast choices a caller can make
+(``initial_damping=1e-10``, and that from
+``closurecheck.graph.initial.heading_first_poses``); ``--before COMMIT``
+adds solver.py as it was at that commit, in the same process, and
+``--large-tight`` compares the large case's optima with a run to 1e-15.
+Prints markdown tables and writes them to benchmarks/results/optimizer.md.
 
-Run from the repository root:  python benchmarks/optimizer.py [--nodes N] [--edges E] [--large]
+Run from the repository root:  python benchmarks/optimizer.py [--nodes N] [--edges E] [--large] [--before COMMIT]
 """
 
 from __future__ import annotations
