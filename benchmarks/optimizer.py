@@ -12,20 +12,28 @@ less.  A second table times the robust back-stops with 20% wrong loop
 edges.  With ``--large`` a third table times the 100,000-node case (200,000
 edges, same density of revisits), the default against SuperLU and,
 unless skipped, scipy's ``least_squares`` on the same graph; it takes
-minutes.  Prints markdown tables and writes them to
-benchmarks/results/optimizer.md.
+minutes.  Every table also times the two fast choices a caller can make
+(``initial_damping=1e-10``, and that from
+``closurecheck.graph.initial.heading_first_poses``); ``--before COMMIT``
+adds solver.py as it was at that commit, in the same process, and
+``--large-tight`` compares the large case's optima with a run to 1e-15.
+Prints markdown tables and writes them to benchmarks/results/optimizer.md.
 
-Run from the repository root:  python benchmarks/optimizer.py [--nodes N] [--edges E] [--large]
+Run from the repository root:  python benchmarks/optimizer.py [--nodes N] [--edges E] [--large] [--before COMMIT]
 """
 
 from __future__ import annotations
 
 import argparse
+import importlib.util
 import os
 import platform
 import statistics
+import subprocess
 import sys
+import tempfile
 import time
+from dataclasses import replace
 from pathlib import Path
 
 import cvxopt
@@ -40,6 +48,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from closurecheck.core import se2  # noqa: E402
 from closurecheck.core.kernels import Kernel  # noqa: E402
+from closurecheck.graph.initial import heading_first_poses  # noqa: E402
 from closurecheck.graph.solver import (  # noqa: E402
     GncOptions,
     SolverOptions,
@@ -48,6 +57,46 @@ from closurecheck.graph.solver import (  # noqa: E402
 )
 
 RESULTS = Path(__file__).resolve().parent / "results" / "optimizer.md"
+REPO = Path(__file__).resolve().parents[1]
+
+# The damping with which the fast variants start.  Marquardt's damping lambda * diag(J^T W J) holds back
+# the long, flat deformations of a large graph (the smallest eigenvalues of J^T W J are far below its
+# diagonal), so with the default 1e-5 the steps after the first few crawl (2-20 mm each at 100,000 nodes)
+# until the cost tolerance stops them; LM still raises lambda after any rejected step.
+FAST_DAMPING = 1e-10
+
+
+def solver_at(commit):
+    """closurecheck/graph/solver.py as it was at ``commit`` (git), loaded beside the current one.
+
+    Its relative imports (closurecheck.core) resolve to the current package, so this times an earlier
+    optimiser on the same helpers: the "before" of a change to solver.py, in the same process.
+    """
+    text = subprocess.run(["git", "show", f"{commit}:closurecheck/graph/solver.py"], cwd=REPO, check=True,
+                          capture_output=True, text=True).stdout
+    path = Path(tempfile.mkdtemp()) / "solver.py"
+    path.write_text(text, encoding="utf-8")
+    name = f"closurecheck.graph._solver_at_{commit}"
+    spec = importlib.util.spec_from_file_location(name, path)
+    module = importlib.util.module_from_spec(spec)
+    sys.modules[name] = module
+    spec.loader.exec_module(module)
+    return module
+
+
+def fast_variants(initial, src, dst, delta, info, robust):
+    """The two fast variants: small initial damping from the odometry chain, and from the heading-first start.
+
+    The second's time includes building its start (closurecheck.graph.initial.heading_first_poses).
+    """
+    fast = SolverOptions(initial_damping=FAST_DAMPING)
+    return [
+        (f"ours: LM from the odometry chain, initial_damping {FAST_DAMPING:g}",
+         lambda: optimize_graph(initial, src, dst, delta, info, robust, options=fast)),
+        (f"ours: heading-first start (graph.initial, timed) + LM, initial_damping {FAST_DAMPING:g}",
+         lambda: optimize_graph(heading_first_poses(initial, src, dst, delta, info), src, dst, delta, info, robust,
+                                options=fast)),
+    ]
 
 
 def wandering_graph(n_nodes, n_edges, seed=7, step_m=0.5, area_m=None, loop_radius_m=1.5, min_gap=30,
@@ -157,15 +206,31 @@ def solver_table(args, truth, initial, src, dst, delta, info, robust):
 
     fns = [ours(options, kernel) for _, options, kernel in variants]
     labels = [label for label, _, _ in variants]
+    for label, fn in fast_variants(initial, src, dst, delta, info, robust):
+        labels.append(label)
+        fns.append(fn)
+    if args.before:
+        before = solver_at(args.before)
+        labels.append(f"ours at commit {args.before} (before), default options")
+        fns.append(lambda: before.optimize_graph(initial, src, dst, delta, info, robust))
     if not args.skip_reference:
         fns.append(lambda: scipy_reference(initial, src, dst, delta, info))
         labels.append("scipy least_squares (trf, lsmr, jac_sparsity)")
     timings = timed_interleaved(fns, args.repeats)
     lines = [TABLE_HEAD, TABLE_RULE]
     lines += solver_rows(labels, timings, truth, time_fmt=".3f", cost_fmt=".6g")
-    lines += ["", agreement(timings[0][2], timings[1][2], "SuperLU (splu)")]
-    if not args.skip_reference:
-        lines += [agreement(timings[0][2], timings[-1][2], "scipy least_squares")]
+    lines += [""] + agreements(labels, timings)
+    return lines
+
+
+def agreements(labels, timings):
+    """One line per other row solving the same (non-robust) problem: its optimum against the default's,
+    and, when scipy's least_squares ran (last row), each of ours against scipy's."""
+    same = [k for k, label in enumerate(labels) if k > 0 and "Cauchy" not in label]
+    lines = [agreement(timings[0][2], timings[k][2], labels[k]) for k in same]
+    if labels[-1].startswith("scipy"):
+        lines += [agreement(timings[k][2], timings[-1][2], "scipy least_squares", ours_name=labels[k])
+                  for k in same[:-1] if "SuperLU" not in labels[k] and "splu" not in labels[k]]
     return lines
 
 
@@ -176,15 +241,16 @@ TABLE_HEAD = ("| solver | wall (s) | wall / default | CPU (s) | CPU / default | 
 TABLE_RULE = "| --- | ---: | ---: | ---: | ---: | ---: | ---: | --- | ---: |"
 
 
-def agreement(ours, other, name):
-    """One line: how far another solver's optimum is from our default's (cost and poses)."""
-    if isinstance(other, tuple):
-        poses, cost = other[0], other[1]
-    else:
-        poses, cost = other.poses, other.cost
-    diff = np.abs(poses - ours.poses)
-    diff[:, 2] = np.abs(se2.wrap(poses[:, 2] - ours.poses[:, 2]))
-    return (f"Default vs {name}: relative cost difference {abs(cost - ours.cost) / ours.cost:.1e}, largest pose "
+def _poses_cost(result):
+    return (result[0], result[1]) if isinstance(result, tuple) else (result.poses, result.cost)
+
+
+def agreement(ours, other, name, ours_name="Default"):
+    """One line: how far another solver's optimum is from one of ours (cost and poses)."""
+    (poses, cost), (base, base_cost) = _poses_cost(other), _poses_cost(ours)
+    diff = np.abs(poses - base)
+    diff[:, 2] = np.abs(se2.wrap(poses[:, 2] - base[:, 2]))
+    return (f"{ours_name} vs {name}: relative cost difference {abs(cost - base_cost) / base_cost:.1e}, largest pose "
             f"difference {diff[:, :2].max():.1e} m / {diff[:, 2].max():.1e} rad.")
 
 
@@ -204,6 +270,12 @@ def outlier_table(args, truth, initial, src, dst, delta, info, robust, fraction=
         ("GNC Geman-McClure", lambda: optimize_gnc(initial, src, dst, bad, info, robust)),
         ("GNC truncated least squares", lambda: optimize_gnc(
             initial, src, dst, bad, info, robust, GncOptions(surrogate="truncated_least_squares"))),
+        (f"Cauchy IRLS (scale 1), initial_damping {FAST_DAMPING:g}", lambda: optimize_graph(
+            initial, src, dst, bad, info, robust, kernel=Kernel("cauchy", 1.0),
+            options=SolverOptions(initial_damping=FAST_DAMPING))),
+        (f"GNC Geman-McClure, initial_damping {FAST_DAMPING:g}", lambda: optimize_gnc(
+            initial, src, dst, bad, info, robust,
+            GncOptions(solver=replace(SolverOptions(), initial_damping=FAST_DAMPING)))),
     ]
     lines = [f"{len(wrong)} of {len(loops)} loop edges ({fraction:.0%}) replaced by random relative poses "
              f"(uniform in 10 m x 10 m x 2 pi).",
@@ -227,6 +299,13 @@ def large_table(args):
     built_s = time.perf_counter() - t0
     fns = [lambda: optimize_graph(initial, src, dst, delta, info, robust)]
     labels = [DEFAULT_LABEL]
+    if args.before:
+        before = solver_at(args.before)
+        labels.append(f"ours at commit {args.before} (before), default options")
+        fns.append(lambda: before.optimize_graph(initial, src, dst, delta, info, robust))
+    for label, fn in fast_variants(initial, src, dst, delta, info, robust):
+        labels.append(label)
+        fns.append(fn)
     if not args.large_skip_splu:
         fns.append(lambda: optimize_graph(initial, src, dst, delta, info, robust,
                                           options=SolverOptions(linear_solver="splu")))
@@ -244,13 +323,24 @@ def large_table(args):
              "",
              TABLE_HEAD, TABLE_RULE]
     lines += solver_rows(labels, timings, truth, time_fmt=".2f", cost_fmt=".8g")
-    lines += [""]
-    if not args.large_skip_splu:
-        lines += [agreement(timings[0][2], timings[1][2], "SuperLU (splu)")]
-    if reference:
-        lines += [agreement(timings[0][2], timings[-1][2], "scipy least_squares")]
-    else:
+    lines += [""] + agreements(labels, timings)
+    if not reference:
         lines += ["scipy's least_squares was not run on this size (--large-skip-reference)."]
+    if args.large_tight:
+        lines += [""] + tight_agreement(labels, timings, initial, src, dst, delta, info, robust)
+    return lines
+
+
+def tight_agreement(labels, timings, initial, src, dst, delta, info, robust):
+    """Each row's optimum against our LM run to far tighter tolerances (where least_squares would take minutes)."""
+    tight = SolverOptions(initial_damping=FAST_DAMPING, relative_cost_tolerance=1e-15, step_tolerance=1e-11)
+    c0 = time.process_time()
+    ref = optimize_graph(heading_first_poses(initial, src, dst, delta, info), src, dst, delta, info, robust,
+                         options=tight)
+    lines = [f"Tight reference: heading-first start, LM with initial_damping {FAST_DAMPING:g}, relative cost "
+             f"tolerance 1e-15, step tolerance 1e-11: {ref.iterations} iterations, {time.process_time() - c0:.1f} s "
+             f"CPU, cost {ref.cost!r}, converged {ref.converged}."]
+    lines += [agreement(ref, t[2], label, ours_name="Tight reference") for label, t in zip(labels, timings)]
     return lines
 
 
@@ -282,8 +372,12 @@ def main(argv=None):
     parser.add_argument("--large-skip-reference", action="store_true",
                         help="in the --large case, do not run scipy's least_squares")
     parser.add_argument("--large-repeats", type=int, default=1, help="runs of each solver in the --large case")
+    parser.add_argument("--large-tight", action="store_true",
+                        help="in the --large case, also compare every optimum with an LM run to tolerances 1e-15")
     parser.add_argument("--large-skip-splu", action="store_true",
                         help="in the --large case, do not run the SuperLU solver (minutes at 100,000 nodes)")
+    parser.add_argument("--before", metavar="COMMIT",
+                        help="also time closurecheck/graph/solver.py as it was at this git commit, same process")
     parser.add_argument("--no-write", action="store_true", help="print only, do not write results/optimizer.md")
     parser.add_argument("--blas-threads", type=int, default=1,
                         help="BLAS threads during the timings (0: library default). On this shared 2-core "

@@ -1,7 +1,9 @@
 """Experiment: does a linear heading-first start save the optimiser's iterations on the benchmark graphs?
 
-Not part of the package.  The optimiser starts from the poses it is given
-(the odometry chain in benchmarks/optimizer.py), which at 100,000 nodes are
+The start is now in the package (closurecheck.graph.initial.heading_first_poses);
+this script compares it with the odometry chain under the default damping.
+The optimiser starts from the poses it is given (the odometry chain in
+benchmarks/optimizer.py), which at 100,000 nodes are
 56 m (RMS) from the truth and cost 21 iterations.  Here the start is built
 in two linear stages, as in Carlone, Aragues, Castellanos and Bona, "A fast
 and accurate approximation for planar pose graph optimization", IJRR 2014:
@@ -31,10 +33,7 @@ import sys
 import time
 from pathlib import Path
 
-import cvxopt
-import cvxopt.cholmod
 import numpy as np
-import scipy.sparse as sp
 from threadpoolctl import threadpool_limits
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
@@ -43,52 +42,16 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 from optimizer import rms_m, wandering_graph  # noqa: E402
 
 from closurecheck.core import se2  # noqa: E402
+from closurecheck.graph.initial import heading_first_poses  # noqa: E402
 from closurecheck.graph.solver import optimize_graph  # noqa: E402
 
 RESULTS = Path(__file__).resolve().parent / "results" / "optimizer_start.md"
 
 
-def spd_solve(a, b):
-    """Solve the SPD system a x = b (a scipy sparse, b 1-D) with CHOLMOD."""
-    low = sp.tril(a.tocsc(), format="coo")
-    k = cvxopt.spmatrix(cvxopt.matrix(low.data), cvxopt.matrix(low.row.astype(np.int64)),
-                        cvxopt.matrix(low.col.astype(np.int64)), low.shape)
-    x = cvxopt.matrix(np.asarray(b, dtype=float))
-    cvxopt.cholmod.linsolve(k, x)
-    return np.asarray(x).ravel()
-
-
-def heading_first_start(initial, src, dst, delta, info):
-    """Start poses from the two linear stages of the module docstring; node 0 keeps its initial pose."""
-    n, m = len(initial), len(src)
-    cov = np.linalg.inv(info)
-    theta0 = initial[:, 2]
-    turns = np.round((theta0[dst] - theta0[src] - delta[:, 2]) / (2.0 * np.pi))
-    measured = delta[:, 2] + 2.0 * np.pi * turns
-    rows = np.r_[np.arange(m), np.arange(m)]
-    cols = np.r_[dst, src]
-    signs = np.r_[np.ones(m), -np.ones(m)]
-    keep = cols > 0
-    incidence = sp.csr_matrix((signs[keep], (rows[keep], cols[keep] - 1)), shape=(m, n - 1))
-    rhs = measured - np.where(dst == 0, theta0[0], 0.0) + np.where(src == 0, theta0[0], 0.0)
-    w = 1.0 / cov[:, 2, 2]
-    theta = np.r_[theta0[0], spd_solve(incidence.T @ sp.diags(w) @ incidence, incidence.T @ (w * rhs))]
-    c, s = np.cos(theta[src]), np.sin(theta[src])
-    rot = np.stack([np.c_[c, -s], np.c_[s, c]], axis=1)
-    step = np.einsum("eij,ej->ei", rot, delta[:, :2])
-    w2 = np.linalg.inv(rot @ cov[:, :2, :2] @ np.swapaxes(rot, 1, 2))
-    weights = sp.bsr_matrix((w2, np.arange(m), np.arange(m + 1)), shape=(2 * m, 2 * m)).tocsr()
-    incidence2 = sp.kron(incidence, sp.eye(2), format="csr")
-    step[dst == 0] -= initial[0, :2]
-    step[src == 0] += initial[0, :2]
-    xy = spd_solve(incidence2.T @ weights @ incidence2, incidence2.T @ (weights @ step.ravel()))
-    return np.c_[np.vstack([initial[0, :2], xy.reshape(-1, 2)]), se2.wrap(theta)]
-
-
 def row(n):
     truth, initial, src, dst, delta, info, robust = wandering_graph(n, 2 * n)
     c0 = time.process_time()
-    start = heading_first_start(initial, src, dst, delta, info)
+    start = heading_first_poses(initial, src, dst, delta, info)
     start_cpu = time.process_time() - c0
     runs = {}
     for name, x0 in (("odometry", initial), ("heading-first", start)):

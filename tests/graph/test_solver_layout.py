@@ -172,3 +172,21 @@ def test_splu_pcg_reaches_the_same_optimum_as_the_direct_solver():
     d = a.poses - b.poses
     d[:, 2] = se2.wrap(d[:, 2])
     assert np.abs(d).max() < 1e-8
+
+
+@pytest.mark.parametrize("seed, n_nodes, n_edges, drop", [(3, 30, 90, 0.0), (4, 25, 60, 0.3)])
+def test_assembly_adds_in_the_order_bincount_does(seed, n_nodes, n_edges, drop):
+    # The scatter is a sparse product; results must stay bit-identical to the former
+    # np.bincount(slot, weights=...) assembly (numpy's documented sequential sum over the input order),
+    # which the demo record was made with.  Repeated node pairs give slots with several addends.
+    rng = np.random.default_rng(seed)
+    src, dst = random_edges(rng, n_nodes, n_edges)
+    src, dst = np.r_[src, dst[:10]], np.r_[dst, src[:10]]  # the same pairs again, reversed
+    free = rng.random(n_nodes) >= drop
+    free[0] = False
+    layout = _Layout(n_nodes, src, dst, free)
+    blocks = rng.normal(size=(len(src), 4, 3, 3)) * 10.0 ** rng.integers(-8, 8, size=(len(src), 4, 3, 3))
+    slot_of_entry = np.asarray(layout.scatter.T.tocsr().argmax(axis=1)).ravel()
+    valid = np.asarray(layout.scatter.sum(axis=0)).ravel() > 0
+    reference = np.bincount(slot_of_entry[valid], weights=blocks.reshape(-1)[valid], minlength=layout.nnz)
+    np.testing.assert_array_equal(layout.assemble(blocks), reference)
