@@ -181,15 +181,16 @@ def test_default_solver_same_optimum_as_superlu_and_least_squares(n, seed):
 
 
 def test_small_initial_damping_reaches_the_least_squares_optimum_under_the_default_stopping_rule():
-    # Reference: scipy.optimize.least_squares with tight tolerances.  Marquardt's damping at the default 1e-5
-    # of the diagonal slows the flat, long-wavelength directions, so the default rule stops it a few
-    # micrometres short on this graph; starting at 1e-10 (LM still raises it after a rejected step) stops
-    # within a micrometre, in no more iterations.
+    # Reference: scipy.optimize.least_squares with tight tolerances.  Marquardt's damping at 1e-5 of the
+    # diagonal (the former default) slows the flat, long-wavelength directions, so the default stopping rule
+    # stops it a few micrometres short on this graph; starting at 1e-10, now the default (LM still raises it
+    # after a rejected step), stops within a micrometre, in no more iterations.
     initial, src, dst, delta, info = wandering_graph(400, seed=2)
     ref_poses, ref_cost = least_squares_reference(initial, src, dst, delta, info)
-    small = optimize_graph(initial, src, dst, delta, info, options=SolverOptions(initial_damping=1e-10))
-    default = optimize_graph(initial, src, dst, delta, info)
-    assert small.converged and small.iterations <= default.iterations
+    small = optimize_graph(initial, src, dst, delta, info)
+    assert SolverOptions().initial_damping == 1e-10
+    former = optimize_graph(initial, src, dst, delta, info, options=SolverOptions(initial_damping=1e-5))
+    assert small.converged and small.iterations <= former.iterations
     np.testing.assert_allclose(small.cost, ref_cost, rtol=1e-12)
     d = small.poses - ref_poses
     d[:, 2] = se2.wrap(d[:, 2])
