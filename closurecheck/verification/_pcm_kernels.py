@@ -177,3 +177,38 @@ def failing_pairs(q, src, dst, pc, shared, threshold, rows):
                 fj[n] = j
                 n += 1
     return fi[:n].copy(), fj[:n].copy()
+
+
+@njit(cache=True, nogil=True)
+def symmetric_csr(k, fi, fj, indptr, indices):
+    """Fill the CSR of the symmetric graph whose upper-triangle edges are (fi[p], fj[p]).
+
+    ``fi``, ``fj`` as :func:`failing_pairs` gives them (i < j, sorted by i
+    then j); ``indptr`` (k + 1,) and ``indices`` (2 P,) are filled in place.
+    Row r lists its lower neighbours (the i of pairs (i, r), which arrive
+    in ascending i) and then its upper ones (ascending j), so every row's
+    indices come out sorted, as scipy's canonical CSR has them, without the
+    coordinate arrays and sort that building through COO needs (2 s and
+    0.5 GB for 23 million pairs).
+    """
+    lower = np.zeros(k, np.int64)
+    upper = np.zeros(k, np.int64)
+    for p in range(len(fi)):
+        upper[fi[p]] += 1
+        lower[fj[p]] += 1
+    indptr[0] = 0
+    for r in range(k):
+        indptr[r + 1] = indptr[r] + lower[r] + upper[r]
+    low_at = np.empty(k, np.int64)
+    up_at = np.empty(k, np.int64)
+    for r in range(k):
+        low_at[r] = indptr[r]
+        up_at[r] = indptr[r] + lower[r]
+    for p in range(len(fi)):
+        i = fi[p]
+        j = fj[p]
+        indices[up_at[i]] = j
+        up_at[i] += 1
+        indices[low_at[j]] = i
+        low_at[j] += 1
+    return indptr[k]

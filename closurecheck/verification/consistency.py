@@ -626,6 +626,17 @@ def _all_blocks(k, block):
         yield _upper_pairs(k, start, min(start + block, total), row_offsets)
 
 
+def _symmetric_conflicts(k, i, j):
+    """(K, K) symmetric CSR of bool with sorted indices from upper-triangle pairs (i < j) sorted by (i, j)."""
+    index_type = np.int32 if 2 * len(i) < np.iinfo(np.int32).max else np.int64
+    indptr = np.empty(k + 1, dtype=index_type)
+    indices = np.empty(2 * len(i), dtype=index_type)
+    _pcm_kernels.symmetric_csr(k, i.astype(np.int32, copy=False), j.astype(np.int32, copy=False), indptr, indices)
+    conflicts = scipy.sparse.csr_array((np.ones(len(indices), dtype=bool), indices, indptr), shape=(k, k))
+    conflicts.has_sorted_indices = True
+    return conflicts
+
+
 def pairwise_consistency(src, dst, deltas, covariances, poses, prefix,
                          options: ConsistencyOptions = ConsistencyOptions()):
     """Pairwise (PCM) consistency of K loop closures, as the sparse graph of the pairs that fail.
@@ -707,11 +718,14 @@ def pairwise_consistency(src, dst, deltas, covariances, poses, prefix,
                                                    shared) > threshold
                 first.append(i[fail].astype(np.int32))
                 second.append(j[fail].astype(np.int32))
-    i = np.concatenate(first) if first else np.zeros(0, dtype=np.int32)
-    j = np.concatenate(second) if second else np.zeros(0, dtype=np.int32)
-    conflicts = scipy.sparse.coo_array((np.ones(2 * len(i), dtype=bool), (np.r_[i, j], np.r_[j, i])),
-                                       shape=(k, k)).tocsr()
-    conflicts.sort_indices()
+    i = np.concatenate(first) if len(first) > 1 else first[0] if first else np.zeros(0, dtype=np.int32)
+    j = np.concatenate(second) if len(second) > 1 else second[0] if second else np.zeros(0, dtype=np.int32)
+    if not exhaustive:
+        # Window blocks come in the order of the closures' earlier ends; the
+        # CSR fill needs the pairs sorted by (i, j), as failing_pairs gives them.
+        order = np.lexsort((j, i))
+        i, j = i[order], j[order]
+    conflicts = _symmetric_conflicts(k, i, j)
     degree = np.diff(conflicts.indptr).astype(np.int64)
     support = np.maximum(k - 1, 0) - degree
     return PairConsistency(conflicts=conflicts, support=support, pairs_tested=int(tested), exhaustive=exhaustive,

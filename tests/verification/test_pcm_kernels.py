@@ -9,7 +9,8 @@ the last bit, hence the same conflict graph and support counts.  References:
   covariance of the PCM cycle, Mangelson et al., ICRA 2018);
 * ``_pairwise_consistency_dense``, the exhaustive reference that still runs
   on ``_pair_block``;
-* ``numpy.remainder`` (reference library) for the angle wrap.
+* ``numpy.remainder`` (reference library) for the angle wrap;
+* scipy.sparse (reference library) for the conflict graph's CSR.
 
 Inputs: simulated drives of the invented warehouse and yard routes (the
 helper of test_pcm_window.py), heading bias from none to 30 degrees per
@@ -18,6 +19,7 @@ helper of test_pcm_window.py), heading bias from none to 30 degrees per
 
 import numpy as np
 import pytest
+import scipy.sparse
 from numba import njit
 from test_pcm_window import simulated_closures
 
@@ -31,6 +33,7 @@ from closurecheck.verification.consistency import (
     _pair_block,
     _pairwise_consistency_dense,
     _prefix_columns,
+    _symmetric_conflicts,
     pairwise_consistency,
 )
 
@@ -94,3 +97,18 @@ def test_compiled_wrap_is_numpys_remainder_bit_for_bit():
     x = np.r_[rng.uniform(-20.0, 20.0, 200_000), special]
     ref = np.pi - np.remainder(np.pi - x, 2.0 * np.pi)  # se2.wrap's formula
     assert np.array_equal(_wrap_all(x).view(np.int64), ref.view(np.int64))
+
+
+@pytest.mark.parametrize("k, p", [(1, 0.0), (7, 0.0), (50, 0.05), (200, 0.4), (120, 1.0)])
+def test_conflict_graph_is_scipys_canonical_csr(k, p):
+    # scipy.sparse (reference library): COO to CSR with sorted indices.
+    rng = np.random.default_rng(k)
+    i, j = np.triu_indices(k, 1)
+    keep = rng.random(len(i)) < p
+    i, j = i[keep].astype(np.int32), j[keep].astype(np.int32)
+    ref = scipy.sparse.coo_array((np.ones(2 * len(i), dtype=bool), (np.r_[i, j], np.r_[j, i])), shape=(k, k)).tocsr()
+    ref.sort_indices()
+    got = _symmetric_conflicts(k, i, j)
+    assert got.has_canonical_format
+    assert np.array_equal(got.indptr, ref.indptr) and np.array_equal(got.indices, ref.indices)
+    assert (got != ref).nnz == 0 and got.shape == (k, k)
