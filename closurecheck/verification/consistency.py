@@ -44,6 +44,7 @@ from ..core.odometry import odometry_travel
 from ..core.options import options, setting
 from ..core.stats import chi2_threshold
 from ..errors import InputError
+from . import _pcm_kernels
 
 __all__ = [
     "ConsistencyOptions",
@@ -78,8 +79,10 @@ class ConsistencyOptions:
         orientation used here (see pair_distances) overlapping segments run in
         opposite directions, so this overstates the cycle covariance.
     pairs_per_block:
-        Pairs evaluated per vectorised block; bounds the working memory
-        (roughly 1 kB per pair).
+        Pairs evaluated per vectorised block where pairs are listed (the
+        window's candidate pairs, the dense reference); bounds the working
+        memory (roughly 1 kB per pair).  The exhaustive test runs in one
+        compiled loop that needs no block.
     pair_window_m:
         Test only pairs whose two cycle segments (earlier end to earlier
         end, later end to later end) are each at most this many metres of
@@ -396,6 +399,19 @@ def _prefix_columns(prefix) -> tuple:
     return tuple(np.ascontiguousarray(prefix[:, r, c]) for r, c in _SYM)
 
 
+def _kernel_rows(t: _ClosureColumns) -> np.ndarray:
+    """The columns as the compiled kernels' (K, 20) array, one row per closure (see _pcm_kernels)."""
+    k = _pcm_kernels
+    q = np.empty((len(t.src), k.N_COLUMNS))
+    for col, v in ((k.XAX, t.xax), (k.XAY, t.xay), (k.CA, t.ca), (k.SA, t.sa), (k.MX, t.mx), (k.MY, t.my),
+                   (k.MT, t.mt), (k.MC, t.mc), (k.MS, t.ms), (k.NX, t.nx), (k.NY, t.ny), (k.NT, t.nt),
+                   (k.NC, t.nc), (k.NS, t.ns)):
+        q[:, col] = v
+    for m in range(6):
+        q[:, k.W0 + m] = t.w[m]
+    return q
+
+
 def _times_symmetric(c, s, px, py, d):
     """Rows of ``Y D`` for ``Y = [[c, -s, px], [s, c, py], [0, 0, 1]]`` and D symmetric (six entries)."""
     d00, d01, d02, d11, d12, d22 = d
@@ -610,7 +626,19 @@ def _all_blocks(k, block):
         yield _upper_pairs(k, start, min(start + block, total), row_offsets)
 
 
-def pairwise_consistency(src, dst, deltas, covariances, poses, prefix, options: ConsistencyOptions = ConsistencyOptions()):
+def _symmetric_conflicts(k, i, j):
+    """(K, K) symmetric CSR of bool with sorted indices from upper-triangle pairs (i < j) sorted by (i, j)."""
+    index_type = np.int32 if 2 * len(i) < np.iinfo(np.int32).max else np.int64
+    indptr = np.empty(k + 1, dtype=index_type)
+    indices = np.empty(2 * len(i), dtype=index_type)
+    _pcm_kernels.symmetric_csr(k, i.astype(np.int32, copy=False), j.astype(np.int32, copy=False), indptr, indices)
+    conflicts = scipy.sparse.csr_array((np.ones(len(indices), dtype=bool), indices, indptr), shape=(k, k))
+    conflicts.has_sorted_indices = True
+    return conflicts
+
+
+def pairwise_consistency(src, dst, deltas, covariances, poses, prefix,
+                         options: ConsistencyOptions = ConsistencyOptions()):
     """Pairwise (PCM) consistency of K loop closures, as the sparse graph of the pairs that fail.
 
     Arguments as in :func:`odometry_gate`.  Each tested pair i < j gets
@@ -626,9 +654,12 @@ def pairwise_consistency(src, dst, deltas, covariances, poses, prefix, options: 
     distances are the exhaustive test's to the last bit; outside it a pair
     counts as consistent.
 
-    Memory is the failing pairs plus one block of ``options.pairs_per_block``
-    pairs: no K x K matrix is formed (the exhaustive reference kept 5 K^2
-    bytes, 2 GB at K = 20,000).
+    The distances are computed by a compiled loop (``_pcm_kernels``) that
+    gives :func:`pair_distances`' values to the last bit.  Memory is the
+    failing pairs (plus, with a window, one block of
+    ``options.pairs_per_block`` candidate pairs): no K x K matrix is formed
+    (the exhaustive reference kept 5 K^2 bytes, 2 GB at K = 20,000).  Time
+    is still K^2 / 2 pair tests without a window.
 
     Returns
     -------
@@ -656,29 +687,46 @@ def pairwise_consistency(src, dst, deltas, covariances, poses, prefix, options: 
     exhaustive = True
     if k >= 2:
         cols = _columns(_closure_terms(src, dst, deltas, covariances, poses))
-        pc = _prefix_columns(prefix)
-        if options.pair_window_m is None:
-            blocks = _all_blocks(k, block)
-        else:
+        # The compiled pair test (_pcm_kernels): the same bits as _pair_block,
+        # 56-71 against 330-410 ns per pair with everything around it
+        # (37.7 M pairs, docs/performance.md, "The pair test compiled").
+        q = _kernel_rows(cols)
+        pc = np.ascontiguousarray(np.column_stack(_prefix_columns(prefix)))
+        a, b = cols.src.astype(np.int64), cols.dst.astype(np.int64)
+        shared = bool(options.pair_shared_odometry)
+        blocks = None
+        if options.pair_window_m is not None:
             travel = odometry_travel(poses)[0]
             lo_m, hi_m = travel[cols.src], travel[cols.dst]
             w = options.pair_window_m
             # Every pair lies in the window when both spreads fit in it.
             if np.ptp(lo_m) > w or np.ptp(hi_m) > w:
                 exhaustive = False
-            blocks = _window_blocks(lo_m, hi_m, w, block) if not exhaustive else _all_blocks(k, block)
-        for i, j in blocks:
-            tested += len(i)
-            if not len(i):
-                continue
-            fail = _pair_block(cols, pc, i, j, options.pair_shared_odometry) > threshold
-            first.append(i[fail].astype(np.int32))
-            second.append(j[fail].astype(np.int32))
-    i = np.concatenate(first) if first else np.zeros(0, dtype=np.int32)
-    j = np.concatenate(second) if second else np.zeros(0, dtype=np.int32)
-    conflicts = scipy.sparse.coo_array((np.ones(2 * len(i), dtype=bool), (np.r_[i, j], np.r_[j, i])),
-                                       shape=(k, k)).tocsr()
-    conflicts.sort_indices()
+                blocks = _window_blocks(lo_m, hi_m, w, block)
+        if blocks is None:
+            # Every pair in one compiled loop: it stores only the failing
+            # pairs, so no block of pairs is needed to bound the memory.
+            tested = k * (k - 1) // 2
+            fi, fj = _pcm_kernels.failing_pairs(q, a, b, pc, shared, threshold, np.arange(k - 1, dtype=np.int64))
+            first.append(fi)
+            second.append(fj)
+        else:
+            for i, j in blocks:
+                tested += len(i)
+                if not len(i):
+                    continue
+                fail = _pcm_kernels.pair_distances(q, a, b, pc, i.astype(np.int64), j.astype(np.int64),
+                                                   shared) > threshold
+                first.append(i[fail].astype(np.int32))
+                second.append(j[fail].astype(np.int32))
+    i = np.concatenate(first) if len(first) > 1 else first[0] if first else np.zeros(0, dtype=np.int32)
+    j = np.concatenate(second) if len(second) > 1 else second[0] if second else np.zeros(0, dtype=np.int32)
+    if not exhaustive:
+        # Window blocks come in the order of the closures' earlier ends; the
+        # CSR fill needs the pairs sorted by (i, j), as failing_pairs gives them.
+        order = np.lexsort((j, i))
+        i, j = i[order], j[order]
+    conflicts = _symmetric_conflicts(k, i, j)
     degree = np.diff(conflicts.indptr).astype(np.int64)
     support = np.maximum(k - 1, 0) - degree
     return PairConsistency(conflicts=conflicts, support=support, pairs_tested=int(tested), exhaustive=exhaustive,

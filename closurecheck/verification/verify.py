@@ -99,7 +99,8 @@ class VerifyOptions:
         The tested pairs then grow about linearly with the closures, but
         the consistent set can differ from the exact one where long cycles
         fail (odometry drift beyond its model): docs/performance.md has the
-        measured differences.
+        measured differences (on a simulated 20,000-scan log, 150 m accepted
+        192 wrong closures, 300 m changed 97 verdicts, 600 m 14).
     clique_max_expansions : search budget of the exact maximum clique; past
         it the best clique found is used and the report says so.  An
         expansion on a conflict component wider than 512 closures counts
