@@ -393,3 +393,65 @@ def block_sums(nodes, stack, base, size, hp):
             s += stack[row[i] + off]
         out[r] = s
     return out
+
+
+@njit(cache=True, nogil=True)
+def components(points, idx, used):
+    """Connected groups of neighbours (icp._point_like) and the bounding box of each.
+
+    The graph joins each point p to every ``idx[p, j]`` with ``used[p, j]``,
+    undirected.  Labels are numbered in the order of each group's smallest
+    point index, as ``scipy.sparse.csgraph.connected_components`` numbers
+    them (it starts a new group at the first point not yet reached), so the
+    labels are the same, not only the groups.  Union-find with path halving
+    replaces building a sparse matrix (0.4 ms of a 721-point scan's 1 ms of
+    preparation went into scipy.sparse's conversions).
+    Returns label (N,) int64, lo (C, 2) and hi (C, 2): each group's smallest
+    and largest x and y.
+    """
+    n, k = idx.shape
+    parent = np.arange(n)
+    for p in range(n):
+        for j in range(k):
+            if not used[p, j]:
+                continue
+            a = p
+            while parent[a] != a:
+                parent[a] = parent[parent[a]]
+                a = parent[a]
+            b = idx[p, j]
+            while parent[b] != b:
+                parent[b] = parent[parent[b]]
+                b = parent[b]
+            if a < b:
+                parent[b] = a
+            elif b < a:
+                parent[a] = b
+    label = np.empty(n, np.int64)
+    lab_of_root = np.full(n, -1, np.int64)
+    m = 0
+    for p in range(n):
+        a = p
+        while parent[a] != a:
+            a = parent[a]
+        if lab_of_root[a] < 0:
+            lab_of_root[a] = m
+            m += 1
+        label[p] = lab_of_root[a]
+    lo = np.empty((m, 2))
+    hi = np.empty((m, 2))
+    seen = np.zeros(m, np.bool_)
+    for p in range(n):
+        c = label[p]
+        if not seen[c]:
+            seen[c] = True
+            lo[c, 0] = points[p, 0]
+            lo[c, 1] = points[p, 1]
+            hi[c, 0] = points[p, 0]
+            hi[c, 1] = points[p, 1]
+        else:
+            lo[c, 0] = min(lo[c, 0], points[p, 0])
+            lo[c, 1] = min(lo[c, 1], points[p, 1])
+            hi[c, 0] = max(hi[c, 0], points[p, 0])
+            hi[c, 1] = max(hi[c, 1], points[p, 1])
+    return label, lo, hi

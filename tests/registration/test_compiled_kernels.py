@@ -5,7 +5,8 @@ References: scipy.spatial.cKDTree's nearest-neighbour queries (with
 association and fit score, and for the neighbourhoods of the line fits;
 numpy.linalg.lstsq for the local line models' least-squares coefficients.
 Scans are ray cast in the invented workshop of test_icp.py; random clouds
-add clusters, a straight wall and a wide extent.
+add clusters, a straight wall and a wide extent.  scipy.sparse.csgraph.connected_components
+for the groups of neighbours that small objects are found by.
 """
 
 import numpy as np
@@ -113,3 +114,31 @@ def test_a_scan_of_small_posts_alone_prepares_and_registers():
     assert len(prepared.line_index) == 0 and len(prepared.point_index) > 0
     r = register(pts, pts + [0.05, 0.0], np.zeros(3), coarse=False, point_features=True)
     assert np.all(np.isfinite(r.delta))
+
+
+@pytest.mark.parametrize("k, radius", [(16, 0.3), (5, 0.3), (16, 0.05)])
+def test_components_match_scipy_connected_components(k, radius):
+    # Reference: scipy.sparse.csgraph.connected_components on the undirected neighbour graph; the
+    # labels themselves must agree (both number the groups by their smallest point), and each
+    # group's bounding box must be numpy's min / max over its points.
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import connected_components
+
+    rng = np.random.default_rng(k)
+    posts = rng.uniform(-8.0, 8.0, (30, 2))
+    clouds = (np.ascontiguousarray(scan(PAIRS[1][0], rng)),
+              (posts[:, None, :] + rng.normal(0.0, 0.05, (30, 6, 2))).reshape(-1, 2),
+              rng.uniform(-3.0, 3.0, (500, 2)))
+    for pts in clouds:
+        idx, _ = _kernels.neighbourhoods(pts, k, radius)
+        used = idx < len(pts)
+        idx[~used] = 0
+        label, lo, hi = _kernels.components(pts, idx, used)
+        rows = np.repeat(np.arange(len(pts)), k)[used.ravel()]
+        graph = coo_matrix((np.ones(len(rows)), (rows, idx.ravel()[used.ravel()])), shape=(len(pts),) * 2)
+        count, ref = connected_components(graph.tocsr(), directed=False)
+        np.testing.assert_array_equal(label, ref)
+        assert len(lo) == count > 1
+        for c in rng.choice(count, min(count, 25), replace=False):
+            np.testing.assert_array_equal(lo[c], pts[ref == c].min(axis=0))
+            np.testing.assert_array_equal(hi[c], pts[ref == c].max(axis=0))
