@@ -455,3 +455,127 @@ def components(points, idx, used):
             hi[c, 0] = max(hi[c, 0], points[p, 0])
             hi[c, 1] = max(hi[c, 1], points[p, 1])
     return label, lo, hi
+
+
+@njit(cache=True, nogil=True)
+def associate(points, origin, cell, columns, start, order, pw, nr, line, upper, max_extra, cos_max, check_normals):
+    """Point-to-line correspondences of ICP (icp._associate) from the transformed candidates.
+
+    ``pw`` (C, 2) the candidate source points under the pose and ``nr`` (C, 2)
+    their rotated normals (both numpy products: they go through BLAS, whose
+    fused multiply-adds a compiled loop would not reproduce); ``points`` and
+    the cell index (:func:`cell_index`) the target's line points, ``line``
+    (M, 14) their line models.  A candidate is kept when its nearest line
+    point lies within ``upper``, it falls within that line's support plus
+    ``max_extra`` along the line and, with ``check_normals``, the normals
+    agree to ``cos_max``: the tests of the numpy version, in its order of
+    operations, so the same pairs come out.
+    Returns (keep (K,) candidate positions, ascending; j (K,) line indices;
+    lt (14, K) the kept lines' rows, transposed; tied: some nearest point was
+    a tie, for which the caller asks the kd-tree instead).
+    """
+    d, j, tied = nearest(points, origin, cell, columns, start, order, pw, upper)
+    n = len(pw)
+    m_lines = len(points)
+    keep = np.empty(n, np.int64)
+    k = 0
+    for p in range(n):
+        q = j[p]
+        if q >= m_lines:
+            continue
+        along = abs(line[q, 3] * (pw[p, 0] - line[q, 0]) - line[q, 2] * (pw[p, 1] - line[q, 1]))
+        if not along <= line[q, 13] + max_extra:
+            continue
+        if check_normals and not nr[p, 0] * line[q, 2] + nr[p, 1] * line[q, 3] >= cos_max:
+            continue
+        keep[k] = p
+        k += 1
+    jj = np.empty(k, np.int64)
+    lt = np.empty((line.shape[1], k))
+    for t in range(k):
+        q = j[keep[t]]
+        jj[t] = q
+        for c in range(line.shape[1]):
+            lt[c, t] = line[q, c]
+    return keep[:k], jj, lt, tied.any()
+
+
+@njit(cache=True, nogil=True)
+def linearise(rp, ub, lt, x0, x1, min_incidence_cos, range_noise):
+    """Residuals of point-to-line ICP and their derivatives (icp._linearise, whose docstring has the model).
+
+    ``rp`` (n, 2) the rotated source points and ``ub`` (n, 2) their rotated
+    beams (numpy products, see :func:`associate`), ``lt`` (14, n) the target
+    line rows, ``x0, x1`` the translation.  Every quantity is the numpy
+    version's expression, element by element, in the same order of
+    operations, so the bits agree (no sums over rows here).
+    Returns r, v, jac (n, 3), s (along-line offsets), phi2, sc, z = r / sqrt(v).
+    """
+    n = len(rp)
+    r = np.empty(n)
+    v = np.empty(n)
+    jac = np.empty((n, 3))
+    s_al = np.empty(n)
+    phi2 = np.empty(n)
+    sc = np.empty(n)
+    z = np.empty(n)
+    for i in range(n):
+        nx = lt[2, i]
+        ny = lt[3, i]
+        dx = rp[i, 0] + (x0 - lt[0, i])
+        dy = rp[i, 1] + (x1 - lt[1, i])
+        s = ny * dx - nx * dy
+        e = lt[13, i]
+        m = s if s >= -e else -e
+        m = m if m <= e else e
+        p2 = (2.0 * s - m) * m
+        ri = nx * dx + ny * dy - (lt[4, i] + s * lt[5, i] + p2 * lt[6, i])
+        fp = lt[5, i] + 2.0 * lt[6, i] * m
+        gx = nx - fp * ny
+        gy = ny + fp * nx
+        if range_noise:
+            c = abs(gx * ub[i, 0] + gy * ub[i, 1])
+            c = c if c >= min_incidence_cos else min_incidence_cos
+        else:
+            c = math.hypot(gx, gy)
+        vi = c * c + (lt[7, i] + s * (2.0 * lt[8, i] + s * lt[10, i])
+                      + p2 * (2.0 * lt[9, i] + 2.0 * s * lt[11, i] + p2 * lt[12, i]))
+        r[i] = ri
+        v[i] = vi
+        jac[i, 0] = gx
+        jac[i, 1] = gy
+        jac[i, 2] = gy * rp[i, 0] - gx * rp[i, 1]
+        s_al[i] = s
+        phi2[i] = p2
+        sc[i] = c
+        z[i] = ri / math.sqrt(vi)
+    return r, v, jac, s_al, phi2, sc, z
+
+
+@njit(cache=True, nogil=True)
+def target_sums(wj, rows, nbr_index, nbr_coef, basis, n_target):
+    """Per target reading, the sum over residuals of ``wj_i * d r_i / d eps`` (covariance.censi_middle_lines).
+
+    Residual i lies on line ``rows[i]``, fitted by the readings
+    ``nbr_index[rows[i]]`` whose influence on the line's coefficients is
+    ``nbr_coef[rows[i]]`` (k, 3, float32); its sensitivity to reading l is
+    ``-(c0 + s c1 + phi2 c2)`` with ``basis[i] = (s, phi2)``.  Sums are
+    built in the order numpy's bincount adds them (residuals, then
+    readings, one after another), so the bits agree with the numpy version.
+    Returns (n_target, 3).
+    """
+    n, k = len(rows), nbr_index.shape[1]
+    mt = np.zeros((n_target, 3))
+    for i in range(n):
+        line = rows[i]
+        b0 = basis[i, 0]
+        b1 = basis[i, 1]
+        for q in range(k):
+            c = -(np.float64(nbr_coef[line, q, 0]) + b0 * np.float64(nbr_coef[line, q, 1])
+                  + b1 * np.float64(nbr_coef[line, q, 2]))
+            t = nbr_index[line, q]
+            mt[t, 0] += c * wj[i, 0]
+            mt[t, 1] += c * wj[i, 1]
+            mt[t, 2] += c * wj[i, 2]
+    return mt
+

@@ -865,24 +865,31 @@ def _associate(src: PreparedScan, tgt: PreparedScan, x, opt, cos_max, cands=None
     c, s = np.cos(x[2]), np.sin(x[2])
     rot_t = np.array([[c, s], [-s, c]])
     pw = cand_pts @ rot_t + x[:2]
-    _, j = _nearest_line(tgt, pw, opt.max_correspondence_m)
-    hit = np.flatnonzero(j < len(tgt.line_index))
-    j, pw = j[hit], pw[hit]
-    ln = tgt.line[j]
-    # Only points that fall along the target line's own support (plus a
-    # margin): beyond it the target never saw the surface, and a fit that
-    # caught a corner would be extrapolated.
-    along = np.abs(ln[:, 3] * (pw[:, 0] - ln[:, 0]) - ln[:, 2] * (pw[:, 1] - ln[:, 1]))
-    ok = along <= ln[:, 13] + opt.max_extrapolation_m
-    if cos_max is not None:
-        agree = ((cand_normals[hit] @ rot_t) * ln[:, 2:4]).sum(axis=1)
-        ok &= agree >= cos_max
-    i = cand[hit[ok]]
-    return i, j[ok], src.points[i], src.beams[i], np.ascontiguousarray(ln[ok].T)
+    # The nearest line, the support and the normal tests in one compiled call (_kernels.associate:
+    # a dozen numpy calls on a few hundred rows cost more than the arithmetic); the rotations stay
+    # numpy products (BLAS), as before.
+    nr = cand_normals @ rot_t if cos_max is not None else pw
+    keep, j, lt, tied = _kernels.associate(*tgt._target_side()[4], pw, nr, tgt.line, opt.max_correspondence_m,
+                                           opt.max_extrapolation_m, -np.inf if cos_max is None else cos_max,
+                                           cos_max is not None)
+    if tied:
+        # Two line points at exactly the nearest distance (duplicates): the kd-tree's pick, as before.
+        _, j = _nearest_line(tgt, pw, opt.max_correspondence_m)
+        hit = np.flatnonzero(j < len(tgt.line_index))
+        j, pw = j[hit], pw[hit]
+        ln = tgt.line[j]
+        along = np.abs(ln[:, 3] * (pw[:, 0] - ln[:, 0]) - ln[:, 2] * (pw[:, 1] - ln[:, 1]))
+        ok = along <= ln[:, 13] + opt.max_extrapolation_m
+        if cos_max is not None:
+            agree = (nr[hit] * ln[:, 2:4]).sum(axis=1)
+            ok &= agree >= cos_max
+        keep, j, lt = hit[ok], j[ok], np.ascontiguousarray(ln[ok].T)
+    i = cand[keep]
+    return i, j, src.points[i], src.beams[i], lt
 
 
 def _linearise(pairs, x, opt, range_noise: bool):
-    """Residuals, variance units, Jacobians, along-line offsets and source sensitivities at pose x.
+    """Residuals, variance units, Jacobians, along-line offsets, source sensitivities and r / sqrt(v) at pose x.
 
     The residual is the source point's offset across the target's local
     line minus the local model's offset there, ``r = n.(p - c) - f(s)``
@@ -893,28 +900,12 @@ def _linearise(pairs, x, opt, range_noise: bool):
     c, s = np.cos(x[2]), np.sin(x[2])
     rot_t = np.array([[c, s], [-s, c]])
     rp = p @ rot_t
-    nx, ny = lt[2], lt[3]
-    dx = rp[:, 0] + (x[0] - lt[0])
-    dy = rp[:, 1] + (x[1] - lt[1])
-    s_al = ny * dx - nx * dy            # t = (n_y, -n_x), as in _line_features
-    m = np.minimum(np.maximum(s_al, -lt[13]), lt[13])
-    phi2 = (2.0 * s_al - m) * m
-    r = nx * dx + ny * dy - (lt[4] + s_al * lt[5] + phi2 * lt[6])
-    fp = lt[5] + 2.0 * lt[6] * m
-    gx = nx - fp * ny
-    gy = ny + fp * nx
-    if range_noise:
-        ub = u @ rot_t
-        sc = np.maximum(np.abs(gx * ub[:, 0] + gy * ub[:, 1]), opt.min_incidence_cos)
-    else:
-        sc = np.hypot(gx, gy)
-    v = sc * sc + (lt[7] + s_al * (2.0 * lt[8] + s_al * lt[10])
-                   + phi2 * (2.0 * lt[9] + 2.0 * s_al * lt[11] + phi2 * lt[12]))
-    jac = np.empty((len(r), 3))
-    jac[:, 0] = gx
-    jac[:, 1] = gy
-    jac[:, 2] = gy * rp[:, 0] - gx * rp[:, 1]
-    return r, v, jac, (s_al, phi2), sc
+    ub = u @ rot_t if range_noise else rp
+    # Element by element in one compiled call (_kernels.linearise), the numpy expressions' order of
+    # operations kept: about 25 numpy calls on a few hundred rows per ICP iteration before.
+    r, v, jac, s_al, phi2, sc, z = _kernels.linearise(rp, ub, lt, float(x[0]), float(x[1]), opt.min_incidence_cos,
+                                                      range_noise)
+    return r, v, jac, (s_al, phi2), sc, z
 
 
 def _median(a) -> float:
@@ -926,8 +917,10 @@ def _median(a) -> float:
     return float((part[k - 1] + part[k]) / 2)
 
 
-def _robust(r, v, opt, kernel):
-    z = r / np.sqrt(v)
+def _robust(r, v, opt, kernel, z=None):
+    """Robust weights and scale of residuals r with variance units v (``z = r / sqrt(v)`` if given)."""
+    if z is None:
+        z = r / np.sqrt(v)
     scale = max(_MAD_TO_SIGMA * _median(np.abs(z)), opt.min_noise_m)
     w = kernel.weight(z / scale)
     return w, scale
@@ -957,9 +950,9 @@ def _icp_line(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions
         if len(pairs[0]) + (0 if matches is None else len(matches[0])) < 3:
             pairs = None
             break
-        r, v, jac, s_al, sc = _linearise(pairs, x, opt, range_noise)
+        r, v, jac, s_al, sc, z = _linearise(pairs, x, opt, range_noise)
         if matches is None:
-            w, scale = _robust(r, v, opt, kernel)
+            w, scale = _robust(r, v, opt, kernel, z)
             jw = jac * (w / v)[:, None]
             h = jw.T @ jac
             g = jw.T @ r
@@ -981,7 +974,7 @@ def _icp_line(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions
         return _failed(x, it)
     if matches is not None:
         # The rows at the final pose (the loop's last rows are from before its last step).
-        r, v, jac, s_al, sc = _linearise(pairs, x, opt, range_noise)
+        r, v, jac, s_al, sc, _ = _linearise(pairs, x, opt, range_noise)
         w, prow, scale = _weigh_with_points(_point_rows(src, tgt, matches, x, range_noise), r, v, opt, kernel)
     return _Solution(x, converged, it, pairs[0], pairs[1], r, v, w, jac, np.stack(s_al, axis=1), sc, scale, prow)
 
@@ -1025,8 +1018,8 @@ def _icp_point(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOption
     pairs = _associate(src, tgt, x, opt, cos_max)
     if len(pairs[0]) < 3:
         return _failed(x, it)
-    r, v, jac, s_al, sc = _linearise(pairs, x, opt, src.point_noise == "range")
-    w, scale = _robust(r, v, opt, kernel)
+    r, v, jac, s_al, sc, z = _linearise(pairs, x, opt, src.point_noise == "range")
+    w, scale = _robust(r, v, opt, kernel, z)
     return _Solution(x, converged, it, pairs[0], pairs[1], r, v, w, jac, np.stack(s_al, axis=1), sc, scale)
 
 
@@ -1073,10 +1066,9 @@ def _finish(src: PreparedScan, tgt: PreparedScan, sol: _Solution, opt: Registrat
     sigma2 = _cov.noise_variance(r_all, om_all, e_wu2)
     middle = None
     if opt.covariance == "censi":
-        w = tgt.nbr_coef[sol.tgt]
-        basis = sol.s_along                               # (n, 2): s and the third basis function
-        coef_t = -(w[..., 0] + basis[:, :1] * w[..., 1] + basis[:, 1:] * w[..., 2])
-        middle = _cov.censi_middle(sol.jac, om, sol.src_coef, tgt.nbr_index[sol.tgt], coef_t, len(tgt.points))
+        # sol.s_along (n, 2): s and the third basis function of each residual's line model.
+        middle = _cov.censi_middle_lines(sol.jac, om, sol.src_coef, sol.tgt, tgt.nbr_index, tgt.nbr_coef,
+                                         sol.s_along, len(tgt.points))
         if pr is not None:
             middle = middle + _point_middle(pr, om_all[len(sol.r):], len(src.points), len(tgt.points))
     est = _cov.analyse(h, middle, sigma2, len(r_all), src.length_m, method=opt.covariance,

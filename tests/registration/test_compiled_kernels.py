@@ -14,6 +14,7 @@ import pytest
 from scipy.spatial import cKDTree
 from test_icp import PAIRS, scan
 
+from closurecheck.core import se2
 from closurecheck.registration import _kernels
 from closurecheck.registration.icp import _CELL_M, RegistrationOptions, prepare_scan
 
@@ -142,3 +143,101 @@ def test_components_match_scipy_connected_components(k, radius):
         for c in rng.choice(count, min(count, 25), replace=False):
             np.testing.assert_array_equal(lo[c], pts[ref == c].min(axis=0))
             np.testing.assert_array_equal(hi[c], pts[ref == c].max(axis=0))
+
+
+def _pair_at(k, noise="range"):
+    """A prepared source and target of the workshop and the true pose, plus a pose 0.2 m and 4 deg off."""
+    rng = np.random.default_rng(20 + k)
+    pa, pb = PAIRS[k]
+    truth = se2.between(np.asarray(pa, float), np.asarray(pb, float))
+    opt = RegistrationOptions(coarse=False, point_noise=noise)
+    tgt = prepare_scan(scan(pa, rng), opt, grid=False)
+    src = prepare_scan(scan(pb, rng), opt, grid=False)
+    return src, tgt, opt, [truth, truth + [0.2, -0.1, np.radians(4.0)]]
+
+
+@pytest.mark.parametrize("k", range(3))
+@pytest.mark.parametrize("normals", [True, False])
+def test_association_matches_kdtree_and_numpy(k, normals):
+    # Reference: scipy's cKDTree for the nearest line point, then the support and normal tests
+    # written in numpy (the code the compiled association replaced); the same pairs and rows, to the bit.
+    from closurecheck.registration.icp import _associate
+
+    src, tgt, opt, poses = _pair_at(k)
+    if not normals:
+        opt = RegistrationOptions(coarse=False, max_normal_angle_rad=4.0)
+    cos_max = np.cos(opt.max_normal_angle_rad) if normals else None
+    for x in poses:
+        i, j, p, u, lt = _associate(src, tgt, x, opt, cos_max)
+        cand = src.line_index if normals else np.arange(len(src.points))
+        c, s = np.cos(x[2]), np.sin(x[2])
+        rot_t = np.array([[c, s], [-s, c]])
+        pw = src.points[cand] @ rot_t + x[:2]
+        _, ref_j = cKDTree(tgt.points[tgt.line_index]).query(pw, distance_upper_bound=opt.max_correspondence_m)
+        hit = np.flatnonzero(ref_j < len(tgt.line_index))
+        ln = tgt.line[ref_j[hit]]
+        along = np.abs(ln[:, 3] * (pw[hit, 0] - ln[:, 0]) - ln[:, 2] * (pw[hit, 1] - ln[:, 1]))
+        ok = along <= ln[:, 13] + opt.max_extrapolation_m
+        if normals:
+            ok &= ((src.normals[cand[hit]] @ rot_t) * ln[:, 2:4]).sum(axis=1) >= cos_max
+        assert ok.sum() > 100
+        np.testing.assert_array_equal(i, cand[hit[ok]])
+        np.testing.assert_array_equal(j, ref_j[hit[ok]])
+        np.testing.assert_array_equal(lt, ln[ok].T)
+        np.testing.assert_array_equal(p, src.points[i])
+        np.testing.assert_array_equal(u, src.beams[i])
+
+
+@pytest.mark.parametrize("noise", ["range", "isotropic"])
+def test_linearised_rows_match_the_numpy_expressions(noise):
+    # Reference: the residual model of icp._linearise evaluated with numpy arrays, expression by
+    # expression (the numpy version the compiled loop replaced); equal to the bit.
+    from closurecheck.registration.icp import _associate, _linearise
+
+    src, tgt, opt, poses = _pair_at(1, noise)
+    for x in poses:
+        pairs = _associate(src, tgt, x, opt, np.cos(opt.max_normal_angle_rad))
+        r, v, jac, (s_al, phi2), sc, z = _linearise(pairs, x, opt, noise == "range")
+        _, _, p, u, lt = pairs
+        c, s = np.cos(x[2]), np.sin(x[2])
+        rot_t = np.array([[c, s], [-s, c]])
+        rp = p @ rot_t
+        nx, ny = lt[2], lt[3]
+        dx = rp[:, 0] + (x[0] - lt[0])
+        dy = rp[:, 1] + (x[1] - lt[1])
+        ref_s = ny * dx - nx * dy
+        m = np.minimum(np.maximum(ref_s, -lt[13]), lt[13])
+        ref_phi2 = (2.0 * ref_s - m) * m
+        ref_r = nx * dx + ny * dy - (lt[4] + ref_s * lt[5] + ref_phi2 * lt[6])
+        fp = lt[5] + 2.0 * lt[6] * m
+        gx, gy = nx - fp * ny, ny + fp * nx
+        if noise == "range":
+            ub = u @ rot_t
+            ref_sc = np.maximum(np.abs(gx * ub[:, 0] + gy * ub[:, 1]), opt.min_incidence_cos)
+        else:
+            ref_sc = np.hypot(gx, gy)
+        ref_v = ref_sc * ref_sc + (lt[7] + ref_s * (2.0 * lt[8] + ref_s * lt[10])
+                                   + ref_phi2 * (2.0 * lt[9] + 2.0 * ref_s * lt[11] + ref_phi2 * lt[12]))
+        assert np.abs(ref_phi2).max() > 0          # the quadratic term takes part
+        for got, ref in ((r, ref_r), (v, ref_v), (s_al, ref_s), (phi2, ref_phi2), (sc, ref_sc),
+                         (jac, np.column_stack([gx, gy, gy * rp[:, 0] - gx * rp[:, 1]])), (z, ref_r / np.sqrt(ref_v))):
+            np.testing.assert_array_equal(got, ref)
+
+
+def test_censi_middle_of_line_rows_matches_bincount_version():
+    # Reference: covariance.censi_middle, numpy bincounts over the gathered (n, k) sensitivities.
+    from closurecheck.registration.covariance import censi_middle, censi_middle_lines
+    from closurecheck.registration.icp import _associate, _linearise
+
+    src, tgt, opt, poses = _pair_at(2)
+    pairs = _associate(src, tgt, poses[0], opt, np.cos(opt.max_normal_angle_rad))
+    r, v, jac, (s_al, phi2), sc, _ = _linearise(pairs, poses[0], opt, True)
+    om = np.random.default_rng(1).uniform(0.2, 1.0, len(r)) / v
+    rows = pairs[1]
+    got = censi_middle_lines(jac, om, sc, rows, tgt.nbr_index, tgt.nbr_coef, np.column_stack([s_al, phi2]),
+                             len(tgt.points))
+    w = tgt.nbr_coef[rows]
+    coef_t = -(w[..., 0] + s_al[:, None] * w[..., 1] + phi2[:, None] * w[..., 2])
+    ref = censi_middle(jac, om, sc, tgt.nbr_index[rows], coef_t, len(tgt.points))
+    np.testing.assert_array_equal(got, ref)
+    assert np.linalg.eigvalsh(ref).min() > 0
