@@ -579,3 +579,59 @@ def target_sums(wj, rows, nbr_index, nbr_coef, basis, n_target):
             mt[t, 2] += c * wj[i, 2]
     return mt
 
+
+@njit(cache=True, nogil=True)
+def live_blocks(nodes, score, bar, row_seed):
+    """The blocks (rows [angle row, ox, oy, level]) whose bound beats their seed's bar, in their order.
+
+    ``nodes[live], score[live]`` with ``live = score > bar[row_seed[nodes[:, 0]]]``
+    (correlative.search), in one call instead of four numpy calls per batch.
+    """
+    n = len(score)
+    keep = np.empty(n, np.int64)
+    m = 0
+    for i in range(n):
+        if score[i] > bar[row_seed[nodes[i, 0]]]:
+            keep[m] = i
+            m += 1
+    out = np.empty((m, nodes.shape[1]), nodes.dtype)
+    out_score = np.empty(m, score.dtype)
+    for t in range(m):
+        out[t] = nodes[keep[t]]
+        out_score[t] = score[keep[t]]
+    return out, out_score
+
+
+@njit(cache=True, nogil=True)
+def take_rest(nodes, score, sel):
+    """``nodes[sel]`` and the other rows in their order with their scores (correlative.search's batch split)."""
+    n = len(score)
+    taken = np.zeros(n, np.bool_)
+    for t in range(len(sel)):
+        taken[sel[t]] = True
+    parents = np.empty((len(sel), nodes.shape[1]), nodes.dtype)
+    for t in range(len(sel)):
+        parents[t] = nodes[sel[t]]
+    m = n - taken.sum()
+    rest = np.empty((m, nodes.shape[1]), nodes.dtype)
+    rest_score = np.empty(m, score.dtype)
+    k = 0
+    for i in range(n):
+        if not taken[i]:
+            rest[k] = nodes[i]
+            rest_score[k] = score[i]
+            k += 1
+    return parents, rest, rest_score
+
+
+@njit(cache=True, nogil=True)
+def append_blocks(nodes, score, more, more_score):
+    """``np.concatenate`` of two block lists and of their scores, in one call."""
+    n, m = len(score), len(more_score)
+    out = np.empty((n + m, nodes.shape[1]), nodes.dtype)
+    out_score = np.empty(n + m, score.dtype)
+    out[:n] = nodes
+    out[n:] = more
+    out_score[:n] = score
+    out_score[n:] = more_score
+    return out, out_score

@@ -224,21 +224,22 @@ def search(grid: LikelihoodGrid, points, seed, *, window_m: float, window_rad: f
     # A block's four children (quadrants): node rows to add to the block's [angle, ox, oy, level].
     quad = np.array([[0, 0, 0, 0], [0, 0, 1, 0], [0, 1, 0, 0], [0, 1, 1, 0]])
     split = [None] + [quad * (1 << (lvl - 1)) - np.array([0, 0, 0, 1]) for lvl in range(1, top_level + 1)]
+    # The bookkeeping of each batch is compiled too (_kernels.live_blocks, take_rest, append_blocks):
+    # a search runs about 80 batches of a few dozen blocks, where a dozen numpy calls each cost more
+    # than the bounds.  The selection of the best blocks stays numpy's argpartition, whose choice
+    # among equal bounds decides which blocks open first, so the results stay those of before.
     while True:
         for lvl in range(1, top_level + 1):
             # A block whose bound cannot beat the k-th best distinct leaf holds nothing to find.
-            live = open_score[lvl] > best.bar[row_seed[open_nodes[lvl][:, 0]]]
-            if live.any():
+            nodes, score = _kernels.live_blocks(open_nodes[lvl], open_score[lvl], best.bar, row_seed)
+            if len(score):
                 break
-            open_nodes[lvl], open_score[lvl] = open_nodes[lvl][:0], open_score[lvl][:0]
+            open_nodes[lvl], open_score[lvl] = nodes, score
         else:
             break
-        nodes, score = open_nodes[lvl][live], open_score[lvl][live]
         if len(nodes) > _BATCH_NODES:
             sel = np.argpartition(-score, _BATCH_NODES - 1)[:_BATCH_NODES]
-            rest = np.ones(len(nodes), dtype=bool)
-            rest[sel] = False
-            parents, open_nodes[lvl], open_score[lvl] = nodes[sel], nodes[rest], score[rest]
+            parents, open_nodes[lvl], open_score[lvl] = _kernels.take_rest(nodes, score, sel)
         else:
             parents, open_nodes[lvl], open_score[lvl] = nodes, nodes[:0], score[:0]
         # Compiled (_kernels.split_and_bound): the gathers over the pyramid are the search's main
@@ -250,8 +251,8 @@ def search(grid: LikelihoodGrid, points, seed, *, window_m: float, window_rad: f
             if len(kids):
                 best.add(_poses(kid_score, kids, rows, r))
         else:
-            open_nodes[lvl - 1] = np.concatenate([open_nodes[lvl - 1], kids])
-            open_score[lvl - 1] = np.concatenate([open_score[lvl - 1], kid_score])
+            open_nodes[lvl - 1], open_score[lvl - 1] = _kernels.append_blocks(open_nodes[lvl - 1],
+                                                                              open_score[lvl - 1], kids, kid_score)
     out = best.merged
     poses = out[:, 1:4].copy()
     return poses, out[:, 0] / (_LEVELS * len(pts))

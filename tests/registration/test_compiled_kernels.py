@@ -241,3 +241,30 @@ def test_censi_middle_of_line_rows_matches_bincount_version():
     ref = censi_middle(jac, om, sc, tgt.nbr_index[rows], coef_t, len(tgt.points))
     np.testing.assert_array_equal(got, ref)
     assert np.linalg.eigvalsh(ref).min() > 0
+
+
+def test_block_bookkeeping_matches_numpy_indexing():
+    # Reference: numpy boolean and fancy indexing and np.concatenate, which the coarse search's
+    # batch bookkeeping used before (correlative.search).
+    rng = np.random.default_rng(4)
+    nodes = np.column_stack([rng.integers(0, 30, 500), rng.integers(-40, 40, (500, 2)), rng.integers(0, 5, 500)])
+    score = rng.integers(0, 5000, 500)
+    row_seed = rng.integers(0, 3, 30)
+    bar = np.array([1200.0, -1.0, 3999.5])
+    live = score > bar[row_seed[nodes[:, 0]]]
+    got_nodes, got_score = _kernels.live_blocks(nodes, score, bar, row_seed)
+    np.testing.assert_array_equal(got_nodes, nodes[live])
+    np.testing.assert_array_equal(got_score, score[live])
+    assert 0 < live.sum() < len(live)
+    sel = np.argpartition(-score, 63)[:64]
+    rest = np.ones(len(score), bool)
+    rest[sel] = False
+    parents, rest_nodes, rest_score = _kernels.take_rest(nodes, score, sel)
+    np.testing.assert_array_equal(parents, nodes[sel])
+    np.testing.assert_array_equal(rest_nodes, nodes[rest])
+    np.testing.assert_array_equal(rest_score, score[rest])
+    both, both_score = _kernels.append_blocks(nodes[:7], score[:7], nodes[100:], score[100:])
+    np.testing.assert_array_equal(both, np.concatenate([nodes[:7], nodes[100:]]))
+    np.testing.assert_array_equal(both_score, np.concatenate([score[:7], score[100:]]))
+    empty, empty_score = _kernels.live_blocks(nodes[:0], score[:0], bar, row_seed)
+    assert empty.shape == (0, 4) and empty_score.shape == (0,)
