@@ -58,6 +58,35 @@ def _sum_slots(v, k):
 
 
 @njit(cache=True, nogil=True)
+def _offer(points, order, lo, hi, px, py, r2, k, best_d, best_i, m, out):
+    """Offer the points ``order[lo:hi]`` to the k nearest so far (:func:`neighbourhoods`): (count, nearest left out)."""
+    for s in range(lo, hi):
+        q = order[s]
+        ex = points[q, 0] - px
+        ey = points[q, 1] - py
+        d = ex * ex + ey * ey
+        if d >= r2:
+            continue
+        if m == k and (d > best_d[k - 1] or (d == best_d[k - 1] and q > best_i[k - 1])):
+            out = min(out, d)
+            continue
+        if m == k:
+            out = min(out, best_d[k - 1])          # the farthest kept one drops out
+        # Insert (d, q) in order, dropping the farthest when full.
+        pos = m if m < k else k - 1
+        while pos > 0 and (best_d[pos - 1] > d or (best_d[pos - 1] == d and best_i[pos - 1] > q)):
+            if pos < k:
+                best_d[pos] = best_d[pos - 1]
+                best_i[pos] = best_i[pos - 1]
+            pos -= 1
+        best_d[pos] = d
+        best_i[pos] = q
+        if m < k:
+            m += 1
+    return m, out
+
+
+@njit(cache=True, nogil=True)
 def neighbourhoods(points, k, radius):
     """The k nearest points of each point within ``radius`` (itself first), nearest first.
 
@@ -92,41 +121,39 @@ def neighbourhoods(points, k, radius):
         fj = (py - origin[1]) / cell
         m = 0
         out = np.inf      # nearest candidate left out
-        for i in range(i0, i1 + 1):
-            gx = max(i - fi, 0.0, fi - (i + 1)) * cell
-            # The run of cells of row i that reach into the disc.
-            lo = j1 + 1
-            hi = j0 - 1
-            for j in range(j0, j1 + 1):
-                gy = max(j - fj, 0.0, fj - (j + 1)) * cell
-                if gx * gx + gy * gy < r2:
-                    lo = min(lo, j)
-                    hi = max(hi, j)
-            if lo > hi:
-                continue
-            for s in range(start[i * nj + lo], start[i * nj + hi + 1]):
-                q = order[s]
-                ex = points[q, 0] - px
-                ey = points[q, 1] - py
-                d = ex * ex + ey * ey
-                if d >= r2:
+        # First the 3 x 3 cells around the point: near the sensor they already hold k neighbours
+        # closer than anything outside them, and the outer ring (16 more cells) is skipped
+        # (0.44 -> 0.3 ms per 721-point scan).  The same neighbours either way.
+        c0, c1 = ci[p], cj[p]
+        for i in range(max(c0 - 1, 0), min(c0 + 1, ni - 1) + 1):
+            m, out = _offer(points, order, start[i * nj + max(c1 - 1, 0)], start[i * nj + min(c1 + 1, nj - 1) + 1],
+                            px, py, r2, k, best_d, best_i, m, out)
+        # Distance from the point to the edge of those cells, with a margin for rounding.
+        gap = min(fi - (c0 - 1), (c0 + 2) - fi, fj - (c1 - 1), (c1 + 2) - fj) * cell
+        if m < k or not best_d[k - 1] < 0.99 * gap * gap:
+            for i in range(i0, i1 + 1):
+                gx = max(i - fi, 0.0, fi - (i + 1)) * cell
+                # The run of cells of row i that reach into the disc.
+                lo = j1 + 1
+                hi = j0 - 1
+                for j in range(j0, j1 + 1):
+                    gy = max(j - fj, 0.0, fj - (j + 1)) * cell
+                    if gx * gx + gy * gy < r2:
+                        lo = min(lo, j)
+                        hi = max(hi, j)
+                if lo > hi:
                     continue
-                if m == k and (d > best_d[k - 1] or (d == best_d[k - 1] and q > best_i[k - 1])):
-                    out = min(out, d)
-                    continue
-                if m == k:
-                    out = min(out, best_d[k - 1])          # the farthest kept one drops out
-                # Insert (d, q) in order, dropping the farthest when full.
-                pos = m if m < k else k - 1
-                while pos > 0 and (best_d[pos - 1] > d or (best_d[pos - 1] == d and best_i[pos - 1] > q)):
-                    if pos < k:
-                        best_d[pos] = best_d[pos - 1]
-                        best_i[pos] = best_i[pos - 1]
-                    pos -= 1
-                best_d[pos] = d
-                best_i[pos] = q
-                if m < k:
-                    m += 1
+                if abs(i - c0) <= 1:
+                    # The run less the cells already seen (they lie inside the disc, so within it).
+                    if lo <= c1 - 2:
+                        m, out = _offer(points, order, start[i * nj + lo], start[i * nj + min(hi, c1 - 2) + 1],
+                                        px, py, r2, k, best_d, best_i, m, out)
+                    if hi >= c1 + 2:
+                        m, out = _offer(points, order, start[i * nj + max(lo, c1 + 2)], start[i * nj + hi + 1],
+                                        px, py, r2, k, best_d, best_i, m, out)
+                else:
+                    m, out = _offer(points, order, start[i * nj + lo], start[i * nj + hi + 1],
+                                    px, py, r2, k, best_d, best_i, m, out)
         for s in range(m):
             idx[p, s] = best_i[s]
             if s > 0 and best_d[s] == best_d[s - 1]:
