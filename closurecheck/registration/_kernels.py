@@ -662,3 +662,40 @@ def append_blocks(nodes, score, more, more_score):
     out_score[:n] = score
     out_score[n:] = more_score
     return out, out_score
+
+
+@njit(cache=True, nogil=True)
+def huber_rows(z, v, jac, c, mad_to_sigma, min_noise):
+    """Huber weights of ICP's rows under the robust scale, and the weighted Jacobian rows.
+
+    As icp._robust with the Huber kernel (closurecheck.core.kernels) followed
+    by ``jac * (w / v)[:, None]``: ``scale = max(mad_to_sigma * median|z|,
+    min_noise)``, ``w = min(1, c / max(|z / scale|, c))``, element by element
+    as numpy computes them (the median is a value of the data, or the mean
+    of two, whatever the selection algorithm).  Returns w, scale, jw (n, 3).
+    """
+    n = len(z)
+    a = np.abs(z)
+    k = n // 2
+    part = np.partition(a, k)
+    if n % 2:
+        med = part[k]
+    else:
+        lower = part[0]
+        for i in range(1, k):
+            lower = max(lower, part[i])
+        med = (lower + part[k]) / 2
+    scale = max(mad_to_sigma * med, min_noise)
+    w = np.empty(n)
+    jw = np.empty((n, 3))
+    for i in range(n):
+        x = abs(z[i] / scale)
+        x = x if x >= c else c
+        wi = c / x
+        wi = wi if wi <= 1.0 else 1.0
+        w[i] = wi
+        om = wi / v[i]
+        jw[i, 0] = jac[i, 0] * om
+        jw[i, 1] = jac[i, 1] * om
+        jw[i, 2] = jac[i, 2] * om
+    return w, scale, jw

@@ -952,8 +952,12 @@ def _icp_line(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions
             break
         r, v, jac, s_al, sc, z = _linearise(pairs, x, opt, range_noise)
         if matches is None:
-            w, scale = _robust(r, v, opt, kernel, z)
-            jw = jac * (w / v)[:, None]
+            if kernel.name == "huber":
+                # One compiled call for the default kernel (_kernels.huber_rows, the same values).
+                w, scale, jw = _kernels.huber_rows(z, v, jac, kernel.scale, _MAD_TO_SIGMA, opt.min_noise_m)
+            else:
+                w, scale = _robust(r, v, opt, kernel, z)
+                jw = jac * (w / v)[:, None]
             h = jw.T @ jac
             g = jw.T @ r
         else:

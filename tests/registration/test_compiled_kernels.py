@@ -268,3 +268,24 @@ def test_block_bookkeeping_matches_numpy_indexing():
     np.testing.assert_array_equal(both_score, np.concatenate([score[:7], score[100:]]))
     empty, empty_score = _kernels.live_blocks(nodes[:0], score[:0], bar, row_seed)
     assert empty.shape == (0, 4) and empty_score.shape == (0,)
+
+
+@pytest.mark.parametrize("n", [1, 2, 7, 600, 601])
+def test_huber_rows_match_the_numpy_weights(n):
+    # Reference: numpy's median and the Huber weight of closurecheck.core.kernels (the numpy path
+    # icp._robust still takes for the other kernels), then the weighted Jacobian rows.
+    from closurecheck.core.kernels import kernel_from_name
+    from closurecheck.registration.icp import _MAD_TO_SIGMA, _robust
+
+    rng = np.random.default_rng(n)
+    z = rng.standard_t(3, n) * 0.01
+    v = rng.uniform(0.5, 2.0, n)
+    jac = rng.normal(size=(n, 3))
+    opt = RegistrationOptions()
+    kernel = kernel_from_name("huber", opt.kernel_scale)
+    w, scale, jw = _kernels.huber_rows(z, v, jac, kernel.scale, _MAD_TO_SIGMA, opt.min_noise_m)
+    ref_w, ref_scale = _robust(z * np.sqrt(v), v, opt, kernel, z)
+    assert scale == ref_scale == max(_MAD_TO_SIGMA * float(np.median(np.abs(z))), opt.min_noise_m)
+    np.testing.assert_array_equal(w, ref_w)
+    np.testing.assert_array_equal(jw, jac * (ref_w / v)[:, None])
+    assert n < 7 or 0 < (w < 1).sum() < n       # both sides of the threshold
