@@ -699,3 +699,44 @@ def huber_rows(z, v, jac, c, mad_to_sigma, min_noise):
         jw[i, 1] = jac[i, 1] * om
         jw[i, 2] = jac[i, 2] * om
     return w, scale, jw
+
+
+@njit(cache=True, nogil=True)
+def line_offsets(points, beams, nidx, used, c_l, n_l, t_l, quadratic, range_noise, min_incidence_cos):
+    """The element-by-element part of the local line models' fits (icp._target_side).
+
+    For each line m and neighbour slot l (``used[m, l]``, reading
+    ``nidx[m, l]``): the offset a along the line and h across it from the
+    centroid ``c_l[m]``, the design row x = [1, a, a^2] (or [1, a, 0]), the
+    extent max |a| and the noise factor nu (|cos| of the beam against the
+    normal, floored; 1 for isotropic noise), each multiplied by 0 or 1 for
+    unused slots, in the numpy version's order of operations, so the bits
+    agree.  The least-squares products that follow stay numpy's (BLAS).
+    Returns x (M, k, 3), h (M, k), extent (M,), nu (M, k).
+    """
+    nl, k = nidx.shape
+    x = np.empty((nl, k, 3))
+    h = np.empty((nl, k))
+    extent = np.empty(nl)
+    nu = np.empty((nl, k))
+    for m in range(nl):
+        e = 0.0
+        for q in range(k):
+            u = 1.0 if used[m, q] else 0.0
+            p = nidx[m, q]
+            dx = points[p, 0] - c_l[m, 0]
+            dy = points[p, 1] - c_l[m, 1]
+            a = (dx * t_l[m, 0] + dy * t_l[m, 1]) * u
+            h[m, q] = (dx * n_l[m, 0] + dy * n_l[m, 1]) * u
+            x[m, q, 0] = u
+            x[m, q, 1] = a
+            x[m, q, 2] = a * a if quadratic else 0.0
+            e = max(e, abs(a)) if q else abs(a)
+            if range_noise:
+                c = abs(beams[p, 0] * n_l[m, 0] + beams[p, 1] * n_l[m, 1])
+                c = c if c >= min_incidence_cos else min_incidence_cos
+            else:
+                c = 1.0
+            nu[m, q] = c * u
+        extent[m] = e
+    return x, h, extent, nu

@@ -289,3 +289,42 @@ def test_huber_rows_match_the_numpy_weights(n):
     np.testing.assert_array_equal(w, ref_w)
     np.testing.assert_array_equal(jw, jac * (ref_w / v)[:, None])
     assert n < 7 or 0 < (w < 1).sum() < n       # both sides of the threshold
+
+
+@pytest.mark.parametrize("model", ["quadratic", "line"])
+@pytest.mark.parametrize("noise", ["range", "isotropic"])
+def test_line_models_match_the_numpy_expressions(model, noise):
+    # Reference: the local line models computed with numpy arrays throughout (the expressions the
+    # compiled offsets replaced, then the same numpy products); equal to the bit.
+    from closurecheck.registration.icp import _prepare, _target_side
+
+    opt = RegistrationOptions(line_model=model, point_noise=noise)
+    pts = scan(PAIRS[3][0], np.random.default_rng(9))
+    prepared = _prepare(pts, opt, False)
+    nidx, used_l, n_l, t_l, c_l, _ = prepared._lazy["fit"]
+    _, line, _, coef, _ = _target_side(prepared, nidx, used_l, n_l, t_l, c_l, opt)
+    nused = used_l.astype(float)
+    dx = pts[:, 0][nidx] - c_l[:, :1]
+    dy = pts[:, 1][nidx] - c_l[:, 1:]
+    a = (dx * t_l[:, :1] + dy * t_l[:, 1:]) * nused
+    h = (dx * n_l[:, :1] + dy * n_l[:, 1:]) * nused
+    x = np.stack([nused, a, a * a if model == "quadratic" else np.zeros_like(a)], axis=-1)
+    xtx = x.transpose(0, 2, 1) @ x
+    if model == "line":
+        xtx[:, 2, 2] = 1.0
+    xtx += (1e-12 * np.trace(xtx, axis1=1, axis2=2))[:, None, None] * np.eye(3)
+    wts = x @ np.linalg.inv(xtx)
+    beta = (h[:, None, :] @ wts)[:, 0, :]
+    beams = prepared.beams
+    if noise == "range":
+        nu = np.maximum(np.abs(beams[:, 0][nidx] * n_l[:, :1] + beams[:, 1][nidx] * n_l[:, 1:]),
+                        opt.min_incidence_cos)
+    else:
+        nu = np.ones_like(a)
+    nu = nu * nused
+    q = (wts * (nu * nu)[..., None]).transpose(0, 2, 1) @ wts
+    ref = np.column_stack([c_l, n_l, beta, q[:, 0, 0], q[:, 0, 1], q[:, 0, 2], q[:, 1, 1], q[:, 1, 2], q[:, 2, 2],
+                           np.abs(a).max(axis=1)])
+    np.testing.assert_array_equal(line, ref)
+    np.testing.assert_array_equal(coef, (nu[..., None] * wts).astype(np.float32))
+    assert (~used_l).any()          # some slots unused, so the masking takes part
