@@ -740,3 +740,29 @@ def line_offsets(points, beams, nidx, used, c_l, n_l, t_l, quadratic, range_nois
             nu[m, q] = c * u
         extent[m] = e
     return x, h, extent, nu
+
+
+@njit(cache=True, nogil=True)
+def point_candidates(idx, used, has_line, min_neighbours):
+    """Points with no line, at least ``min_neighbours`` neighbours and no neighbour on a line (icp._point_like).
+
+    ``~has_line & (used.sum(1) >= min_neighbours) & ~(has_line[idx] & used).any(1)``
+    as indices, ascending, without the (N, k) temporaries (0.2 ms of a 721-point scan in numpy).
+    """
+    n, k = idx.shape
+    pick = np.empty(n, np.int64)
+    m = 0
+    for p in range(n):
+        if has_line[p]:
+            continue
+        count = 0
+        lined = False
+        for j in range(k):
+            if used[p, j]:
+                count += 1
+                if has_line[idx[p, j]]:
+                    lined = True
+        if count >= min_neighbours and not lined:
+            pick[m] = p
+            m += 1
+    return pick[:m]

@@ -559,9 +559,7 @@ def _point_like(points, idx, used, has_line, opt: RegistrationOptions):
     """
     if not opt.point_features:
         return np.zeros(0, np.int64), np.zeros(0, np.int64)
-    count = used.sum(axis=1)
-    lined = (has_line[idx] & used).any(axis=1)
-    pick = np.flatnonzero(~has_line & (count >= 3) & ~lined)
+    pick = _kernels.point_candidates(idx, used, has_line, 3)
     # Objects: connected groups of neighbours among all the scan's points; a segment of
     # _associate_points never joins two of them.  Only small objects: a long group is a wall (near the sensor its
     # dense noisy readings are too thick for lines at places, far off too sparse), whose readings

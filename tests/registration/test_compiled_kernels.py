@@ -328,3 +328,18 @@ def test_line_models_match_the_numpy_expressions(model, noise):
     np.testing.assert_array_equal(line, ref)
     np.testing.assert_array_equal(coef, (nu[..., None] * wts).astype(np.float32))
     assert (~used_l).any()          # some slots unused, so the masking takes part
+
+
+def test_point_candidates_match_the_numpy_masks():
+    # Reference: the numpy masks the compiled selection replaced (icp._point_like).
+    from closurecheck.registration.icp import DEFAULT_OPTIONS, _line_features
+
+    rng = np.random.default_rng(12)
+    posts = rng.uniform(-8.0, 8.0, (30, 2))
+    blobs = (posts[:, None, :] + rng.normal(0.0, 0.04, (30, 4, 2))).reshape(-1, 2)
+    pts = np.concatenate([scan(PAIRS[4][0], rng), blobs])
+    idx, used, _, _, _, _, _, has_line = _line_features(pts, DEFAULT_OPTIONS)
+    ref = np.flatnonzero(~has_line & (used.sum(axis=1) >= 3) & ~(has_line[idx] & used).any(axis=1))
+    got = _kernels.point_candidates(idx, used, has_line, 3)
+    np.testing.assert_array_equal(got, ref)
+    assert 0 < len(ref) < (~has_line).sum()
