@@ -652,19 +652,29 @@ def _target_side(scan: PreparedScan, nidx, used_l, n_l, t_l, c_l, opt: Registrat
     quadratic = opt.line_model == "quadratic"
     # The offsets, design rows (M, k, 3), extents and noise factors, element by element in one
     # compiled call (_kernels.line_offsets; about 15 numpy calls on (M, k) arrays before, the same
-    # bits).
+    # bits); the products and the 3 x 3 inverses below stay numpy's (BLAS, LAPACK).
     x, h, extent, nu = _kernels.line_offsets(pts, beams, nidx, used_l, c_l, n_l, t_l, quadratic,
                                              opt.point_noise == "range", opt.min_incidence_cos)
-    # The least-squares fits, compiled as well (_kernels.line_models: numpy went through BLAS and
-    # LAPACK one 3 x 3 matrix at a time, 0.6 ms of a 600-line scan in per-matrix calls; about 0.1 ms
-    # now).  Plain sums instead of BLAS's fused ones: the models agree with the numpy version's to
-    # rounding (relative 3e-15), not to the bit.
-    line, coef = _kernels.line_models(x, h, nu, c_l, n_l, extent, quadratic)
+    xt = x.transpose(0, 2, 1)
+    xtx = xt @ x
+    if not quadratic:
+        xtx[:, 2, 2] = 1.0
+    # A relative ridge keeps the solve defined for a degenerate spread.
+    xtx += (1e-12 * np.trace(xtx, axis1=1, axis2=2))[:, None, None] * np.eye(3)
+    wts = x @ np.linalg.inv(xtx)                                         # (M, k, 3), inverse is symmetric
+    beta = (h[:, None, :] @ wts)[:, 0, :]
+    # Variance (units of sigma^2) of f(s): phi Q phi^T with Q = sum_l nu_l^2 wts_l wts_l^T.
+    q = (wts * (nu * nu)[..., None]).transpose(0, 2, 1) @ wts
+    line = np.column_stack([c_l, n_l, beta, q[:, 0, 0], q[:, 0, 1], q[:, 0, 2], q[:, 1, 1], q[:, 1, 2],
+                            q[:, 2, 2], extent])
     lp = np.ascontiguousarray(pts[scan.line_index])
     # The compiled cell index answers ICP's nearest-line queries in about a twentieth of the
     # kd-tree's time (0.02 against 0.5 ms for 600 queries); the kd-tree (PreparedScan.tree) is
     # built from lp only when something asks for it.
-    return lp, line, nidx.astype(np.int32), coef, (lp, *_kernels.cell_index(lp, _CELL_M))
+    # The batched products above stay in numpy: they go through BLAS, whose order of additions
+    # a compiled loop does not reproduce, and the demo record compares results to the bit.
+    return (lp, line, nidx.astype(np.int32), (nu[..., None] * wts).astype(np.float32),
+            (lp, *_kernels.cell_index(lp, _CELL_M)))
 
 
 # Cell width (metres) of a target's nearest-line index: about half the correspondence distance, so
