@@ -766,3 +766,74 @@ def point_candidates(idx, used, has_line, min_neighbours):
             pick[m] = p
             m += 1
     return pick[:m]
+
+
+@njit(cache=True, nogil=True)
+def _stable_order(keys_sorted_by, order):
+    """``order[np.argsort(keys_sorted_by[order], kind="stable")]``."""
+    tmp = np.empty(len(order))
+    for t in range(len(order)):
+        tmp[t] = keys_sorted_by[order[t]]
+    sub = np.argsort(tmp, kind="mergesort")
+    out = np.empty(len(order), np.int64)
+    for t in range(len(order)):
+        out[t] = order[sub[t]]
+    return out
+
+
+@njit(cache=True, nogil=True)
+def seed_leaves(own, records, j, k, sep_m, sep_rad, max_records):
+    """One seed's update of the coarse search's best leaves (correlative._Best.add), compiled.
+
+    ``own`` (m, 5) the seed's leaves that may still matter and ``records``
+    the new leaves of all seeds (rows [sum score, x, y, theta, seed]); those
+    of seed ``j`` are appended, sorted best first with equal scores by
+    (theta, x, y) as ``np.lexsort`` orders them (successive stable sorts,
+    the same permutation), reduced to the ``k`` best distinct
+    (:func:`distinct`) and to the leaves at or above the k-th best score.
+    Returns (kept leaves, the seed's list, k-th best score or -1, and
+    whether more than ``max_records`` leaves came together, in which case
+    nothing was sorted and the first array holds them all for the caller to
+    thin with numpy's argpartition first).
+    """
+    n_old = len(own)
+    cnt = 0
+    for r in range(len(records)):
+        if records[r, 4] == j:
+            cnt += 1
+    cat = np.empty((n_old + cnt, 5))
+    cat[:n_old] = own
+    t = n_old
+    for r in range(len(records)):
+        if records[r, 4] == j:
+            cat[t] = records[r]
+            t += 1
+    over = len(cat) > max_records
+    kept = cat
+    best = cat[:0]
+    kth = -1.0
+    if not over:
+        order = np.argsort(cat[:, 2], kind="mergesort")
+        order = _stable_order(cat[:, 1].copy(), order)
+        order = _stable_order(cat[:, 3].copy(), order)
+        order = _stable_order(-cat[:, 0], order)
+        srt = np.empty_like(cat)
+        for t in range(len(order)):
+            srt[t] = cat[order[t]]
+        keep = distinct(srt, k, sep_m, sep_rad)
+        best = np.empty((len(keep), 5))
+        for t in range(len(keep)):
+            best[t] = srt[keep[t]]
+        if len(keep) == k:
+            kth = srt[keep[-1], 0]
+        m = 0
+        for t in range(len(srt)):
+            if srt[t, 0] >= kth:
+                m += 1
+        kept = np.empty((m, 5))
+        m = 0
+        for t in range(len(srt)):
+            if srt[t, 0] >= kth:
+                kept[m] = srt[t]
+                m += 1
+    return kept, best, kth, over

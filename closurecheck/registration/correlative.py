@@ -230,6 +230,8 @@ def search(grid: LikelihoodGrid, points, seed, *, window_m: float, window_rad: f
     # among equal bounds decides which blocks open first, so the results stay those of before.
     while True:
         for lvl in range(1, top_level + 1):
+            if not len(open_score[lvl]):
+                continue
             # A block whose bound cannot beat the k-th best distinct leaf holds nothing to find.
             nodes, score = _kernels.live_blocks(open_nodes[lvl], open_score[lvl], best.bar, row_seed)
             if len(score):
@@ -295,18 +297,19 @@ class _Best:
 
     def add(self, records):
         """Take new leaves (rows [sum score, x, y, theta, seed index]) and update the lists and bars."""
-        for j in np.unique(records[:, 4]).astype(int):
-            own = np.concatenate([self.own[j], records[records[:, 4] == j]])
-            if len(own) > _MAX_RECORDS:
+        seeds = range(1) if len(self.own) == 1 else np.unique(records[:, 4]).astype(int)
+        for j in seeds:
+            # Best first, equal scores in a fixed order of the pose, so that ties are resolved the
+            # same whichever order the leaves were found in; leaves below the seed's k-th best
+            # distinct one can no longer be among its best.  Compiled (_kernels.seed_leaves: a
+            # dozen numpy calls on a few hundred rows, called some 7 times per search).
+            own, best, kth, over = _kernels.seed_leaves(self.own[j], records, j, self.k, self.sep_m, self.sep_rad,
+                                                        _MAX_RECORDS)
+            if over:
                 own = own[np.argpartition(-own[:, 0], _MAX_RECORDS - 1)[:_MAX_RECORDS]]
-            # Best first, equal scores in a fixed order of the pose, so that ties are
-            # resolved the same whichever order the leaves were found in.
-            own = own[np.lexsort((own[:, 2], own[:, 1], own[:, 3], -own[:, 0]))]
-            keep = distinct(own, self.k, self.sep_m, self.sep_rad)
-            self.lists[j] = own[keep]
-            self.kth[j] = own[keep[-1], 0] if len(keep) == self.k else -1.0
-            # Leaves below the seed's k-th best distinct one can no longer be among its best.
-            self.own[j] = own[own[:, 0] >= self.kth[j]]
+                own, best, kth, over = _kernels.seed_leaves(own, own[:0], j, self.k, self.sep_m, self.sep_rad,
+                                                            _MAX_RECORDS)
+            self.own[j], self.lists[j], self.kth[j] = own, best, kth
         # The merge of the seeds' lists, as if each seed had been searched on its own.
         union = np.concatenate(self.lists)
         union[:, 3] = np.pi - np.mod(np.pi - union[:, 3], 2 * np.pi)          # theta in (-pi, pi]

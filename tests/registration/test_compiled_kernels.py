@@ -343,3 +343,33 @@ def test_point_candidates_match_the_numpy_masks():
     got = _kernels.point_candidates(idx, used, has_line, 3)
     np.testing.assert_array_equal(got, ref)
     assert 0 < len(ref) < (~has_line).sum()
+
+
+@pytest.mark.parametrize("n_old, n_new", [(0, 40), (30, 200), (4000, 300)])
+def test_seed_leaves_match_lexsort_and_numpy_selection(n_old, n_new):
+    # Reference: np.lexsort on (y, x, theta, -score), then the distinct selection and the masks the
+    # coarse search used in numpy (correlative._Best.add).  Scores drawn from few values, so that
+    # many leaves tie and the order of equal scores decides.
+    from closurecheck.registration.correlative import distinct
+
+    rng = np.random.default_rng(n_old + n_new)
+
+    def leaves(n):
+        return np.column_stack([rng.integers(0, 12, n) * 100.0, rng.integers(-5, 5, (n, 2)) * 0.1,
+                                rng.integers(-4, 4, n) * 0.05, rng.integers(0, 2, n)]).astype(float)
+
+    own, records = leaves(n_old), leaves(n_new)
+    own = own[own[:, 4] == 1]
+    kept, best, kth, over = _kernels.seed_leaves(own, records, 1, 3, 0.25, 0.1, 4096)
+    cat = np.concatenate([own, records[records[:, 4] == 1]])
+    assert over == (len(cat) > 4096)
+    if over:
+        np.testing.assert_array_equal(kept, cat)
+        cat = cat[np.argpartition(-cat[:, 0], 4095)[:4096]]
+        kept, best, kth, over = _kernels.seed_leaves(cat, cat[:0], 1, 3, 0.25, 0.1, 4096)
+    srt = cat[np.lexsort((cat[:, 2], cat[:, 1], cat[:, 3], -cat[:, 0]))]
+    keep = distinct(srt, 3, 0.25, 0.1)
+    ref_kth = srt[keep[-1], 0] if len(keep) == 3 else -1.0
+    np.testing.assert_array_equal(best, srt[keep])
+    assert kth == ref_kth
+    np.testing.assert_array_equal(kept, srt[srt[:, 0] >= ref_kth])
