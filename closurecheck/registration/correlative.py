@@ -183,15 +183,14 @@ def search(grid: LikelihoodGrid, points, seed, *, window_m: float, window_rad: f
     rot = np.empty((2, 2, len(rows)))                 # rot[:, 0, a] maps a point to its x, rot[:, 1, a] to y
     rot[0, 0], rot[1, 0], rot[0, 1], rot[1, 1] = c, -s, s, c
     cells = ((pts / r) @ rot.reshape(2, -1)).reshape(len(pts), 2, len(rows))        # (N, 2, A) in cells
-    cells += ((rows[:, :2] - grid.origin) / r).T
-    np.floor(cells, out=cells)
-    np.clip(cells, -reach, np.array([[w - 1 + reach], [h - 1 + reach]]), out=cells)
-    cells += pad
     hp = h + 2 * pad
     size = (w + 2 * pad) * hp
     # 32-bit indices halve the memory traffic of the gathers, the search's main cost.
     index = np.int32 if size * len(grid.levels) < 2 ** 31 else np.int64
-    base = (cells[:, 0] * hp + cells[:, 1]).T.astype(index)                          # (A, N)
+    # Floor, clip, pad and flatten in one compiled pass (_kernels.cell_bases); the rotation stays a
+    # numpy product.
+    base = _kernels.cell_bases(cells, np.ascontiguousarray(((rows[:, :2] - grid.origin) / r).T), reach,
+                               float(w - 1 + reach), float(h - 1 + reach), float(pad), float(hp)).astype(index)
     # All pyramid levels, zero padded, in one flat array: level l starts at l * size.
     stack = np.zeros((len(grid.levels), w + 2 * pad, hp), dtype=np.uint8)
     stack[:, pad:pad + w, pad:pad + h] = grid.levels
@@ -205,8 +204,7 @@ def search(grid: LikelihoodGrid, points, seed, *, window_m: float, window_rad: f
         search of the default window)."""
         return _kernels.block_sums(nodes, stack, base, size, hp)
 
-    ta, tx, ty = np.meshgrid(np.arange(len(rows)), starts, starts, indexing="ij")
-    tops = np.column_stack([ta.ravel(), tx.ravel(), ty.ravel(), np.full(ta.size, top_level)])
+    tops = _kernels.top_blocks(len(rows), starts.astype(np.int64), top_level)
     if top_level == 0:
         tops = tops[(np.abs(tops[:, 1]) <= half) & (np.abs(tops[:, 2]) <= half)]
     top_score = bounds(tops)

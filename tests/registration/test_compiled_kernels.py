@@ -373,3 +373,24 @@ def test_seed_leaves_match_lexsort_and_numpy_selection(n_old, n_new):
     np.testing.assert_array_equal(best, srt[keep])
     assert kth == ref_kth
     np.testing.assert_array_equal(kept, srt[srt[:, 0] >= ref_kth])
+
+
+def test_cell_bases_and_top_blocks_match_numpy():
+    # Reference: the numpy steps correlative.search used (floor, clip, pad, flatten; a meshgrid).
+    rng = np.random.default_rng(6)
+    cells = rng.uniform(-300.0, 300.0, (50, 2, 9))
+    cells[0, 0, 0] = 7.0                          # exactly on a cell edge
+    offset = rng.uniform(-20.0, 20.0, (2, 9))
+    reach, w, h, pad = 60, 150, 120, 100
+    hp = h + 2 * pad
+    ref = np.floor(cells + offset)
+    np.clip(ref, -reach, np.array([[w - 1 + reach], [h - 1 + reach]]), out=ref)
+    ref += pad
+    ref = (ref[:, 0] * hp + ref[:, 1]).T.astype(np.int64)
+    got = _kernels.cell_bases(cells, offset, reach, float(w - 1 + reach), float(h - 1 + reach), float(pad), float(hp))
+    np.testing.assert_array_equal(got, ref)
+    assert (ref == pad - reach + (pad - reach) * hp).any() or (ref < (pad - reach + 1) * hp).any()   # clipped
+    starts = np.array([-35, -19, -3, 13, 29])
+    ta, tx, ty = np.meshgrid(np.arange(4), starts, starts, indexing="ij")
+    ref_tops = np.column_stack([ta.ravel(), tx.ravel(), ty.ravel(), np.full(ta.size, 4)])
+    np.testing.assert_array_equal(_kernels.top_blocks(4, starts, 4), ref_tops)
