@@ -878,3 +878,25 @@ def top_blocks(n_rows, starts, level):
                 out[t, 3] = level
                 t += 1
     return out
+
+
+@njit(cache=True, nogil=True)
+def stamp_grid(occupied, rows, cols, di, dj, value):
+    """The fine likelihood grid (correlative.build_grid): the maximum of the stamp around each occupied cell.
+
+    ``occupied`` flat indices ``i * cols + j`` of the cells holding points;
+    the stamp adds ``value[s]`` at offsets ``(di[s], dj[s])``, kept inside the
+    grid.  A maximum does not depend on the order it is taken in, so this is
+    numpy's ``np.maximum.at`` to the bit, without its (cells, stamp) index
+    arrays.  Returns (rows, cols) uint8.
+    """
+    fine = np.zeros((rows, cols), np.uint8)
+    for o in range(len(occupied)):
+        oi = occupied[o] // cols
+        oj = occupied[o] % cols
+        for s in range(len(value)):
+            ti = oi + di[s]
+            tj = oj + dj[s]
+            if 0 <= ti < rows and 0 <= tj < cols and value[s] > fine[ti, tj]:
+                fine[ti, tj] = value[s]
+    return fine

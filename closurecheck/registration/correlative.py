@@ -22,6 +22,7 @@ are the mean likelihood over the source points, in [0, 1].
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import lru_cache
 
 import numpy as np
 
@@ -73,18 +74,11 @@ def build_grid(points, resolution_m: float, sigma_m: float, top_block_cells: int
     # point and is zero beyond about 3.5 sigma, so the grid is the maximum over
     # the occupied cells of a small kernel stamped around each: the same
     # values as a distance transform of the whole grid, at a fraction of the cost.
-    k = int(np.ceil(np.sqrt(2.0 * np.log(2.0 * _LEVELS)) * sigma_m / resolution_m)) + 1
-    di, dj = np.meshgrid(np.arange(-k, k + 1), np.arange(-k, k + 1), indexing="ij")
-    dist = np.sqrt((di * di + dj * dj).astype(float)) * resolution_m
-    value = np.rint(np.exp(-0.5 * (dist / sigma_m) ** 2) * _LEVELS).astype(np.uint8)
-    used = value > 0
-    di, dj, value = di[used], dj[used], value[used]
+    di, dj, value = _stamp(float(resolution_m), float(sigma_m))
     occupied = np.unique(cells[:, 0] * shape[1] + cells[:, 1])
-    ti = occupied[:, None] // shape[1] + di
-    tj = occupied[:, None] % shape[1] + dj
-    inside = (ti >= 0) & (ti < shape[0]) & (tj >= 0) & (tj < shape[1])
-    fine = np.zeros(shape, dtype=np.uint8)
-    np.maximum.at(fine.ravel(), (ti * shape[1] + tj)[inside], np.broadcast_to(value, ti.shape)[inside])
+    # Compiled (_kernels.stamp_grid): np.maximum.at over (cells, stamp) index arrays cost about
+    # half of building a grid; a maximum is the same whatever order it is taken in.
+    fine = _kernels.stamp_grid(occupied, int(shape[0]), int(shape[1]), di, dj, value)
     levels = [fine]
     for lvl in range(1, n_levels):
         # max over [i, i + 2^l) = max of two level l-1 blocks, at i and i + 2^(l-1).
@@ -96,6 +90,20 @@ def build_grid(points, resolution_m: float, sigma_m: float, top_block_cells: int
         np.maximum(rows[:, :-half], rows[:, half:], out=out[:, :-half])
         levels.append(out)
     return LikelihoodGrid(origin=lo, resolution_m=float(resolution_m), levels=tuple(levels))
+
+
+@lru_cache(maxsize=16)
+def _stamp(resolution_m: float, sigma_m: float):
+    """Offsets (cells) and uint8 values of the likelihood stamped around an occupied cell (build_grid)."""
+    k = int(np.ceil(np.sqrt(2.0 * np.log(2.0 * _LEVELS)) * sigma_m / resolution_m)) + 1
+    di, dj = np.meshgrid(np.arange(-k, k + 1), np.arange(-k, k + 1), indexing="ij")
+    dist = np.sqrt((di * di + dj * dj).astype(float)) * resolution_m
+    value = np.rint(np.exp(-0.5 * (dist / sigma_m) ** 2) * _LEVELS).astype(np.uint8)
+    used = value > 0
+    out = (di[used].astype(np.int64), dj[used].astype(np.int64), value[used])
+    for a in out:
+        a.flags.writeable = False
+    return out
 
 
 def downsample(points, cell_m: float, max_points: int) -> np.ndarray:

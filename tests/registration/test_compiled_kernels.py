@@ -394,3 +394,21 @@ def test_cell_bases_and_top_blocks_match_numpy():
     ta, tx, ty = np.meshgrid(np.arange(4), starts, starts, indexing="ij")
     ref_tops = np.column_stack([ta.ravel(), tx.ravel(), ty.ravel(), np.full(ta.size, 4)])
     np.testing.assert_array_equal(_kernels.top_blocks(4, starts, 4), ref_tops)
+
+
+def test_stamp_grid_matches_maximum_at():
+    # Reference: numpy's np.maximum.at over every (occupied cell, stamp offset) pair inside the grid.
+    from closurecheck.registration.correlative import _stamp
+
+    rng = np.random.default_rng(2)
+    rows, cols = 40, 55
+    occupied = np.unique(rng.integers(0, rows * cols, 120))
+    di, dj, value = _stamp(0.1, 0.1)
+    ti = occupied[:, None] // cols + di
+    tj = occupied[:, None] % cols + dj
+    inside = (ti >= 0) & (ti < rows) & (tj >= 0) & (tj < cols)
+    ref = np.zeros((rows, cols), np.uint8)
+    np.maximum.at(ref.ravel(), (ti * cols + tj)[inside], np.broadcast_to(value, ti.shape)[inside])
+    got = _kernels.stamp_grid(occupied, rows, cols, di, dj, value)
+    np.testing.assert_array_equal(got, ref)
+    assert (~inside).any() and value.max() == 255 and len(np.unique(ref)) > 5
