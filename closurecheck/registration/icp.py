@@ -832,9 +832,14 @@ def _failed(x, it) -> _Solution:
 
 
 def _candidates(src: PreparedScan, cos_max):
-    """Source points that may be matched: (indices, points, normals), gathered once per ICP run."""
-    cand = src.line_index if cos_max is not None else np.arange(len(src.points))
-    return cand, src.points[cand], src.normals[cand]
+    """Source points that may be matched: (indices, points, normals), gathered once per source scan."""
+    key = ("cands", cos_max is not None)
+    got = src._lazy.get(key)
+    if got is None:
+        cand = src.line_index if cos_max is not None else np.arange(len(src.points))
+        got = (cand, src.points[cand], src.normals[cand])
+        src._lazy[key] = got
+    return got
 
 
 def _associate(src: PreparedScan, tgt: PreparedScan, x, opt, cos_max, cands=None):
