@@ -1,17 +1,21 @@
-"""Compiled kernels of scan preparation and of the coarse search (numba, cached on disk).
+"""Compiled kernels of registration: scan preparation, ICP, covariance, coarse search (numba, cached on disk).
 
 Why compiled code here (docs/architecture.md, "Compiled kernels"): the
-per-scan line fits and the coarse search's bounds work on arrays of a few
-hundred to a few thousand elements, where numpy's per-call overhead and the
-temporaries of (k, N) neighbour arrays, not arithmetic, set the time.  Each
-kernel computes the same quantities as the numpy code it replaced, in the
-same order of additions where that order was chosen on purpose (the line
-fits' sums); values agree to the last few bits (different libm and 3x3
-solves), which moves registered poses by far less than a micrometre.
+per-scan line fits, ICP's iterations and the coarse search's bounds work on
+arrays of a few hundred to a few thousand elements, where numpy's per-call
+overhead and the temporaries of (k, N) neighbour arrays, not arithmetic,
+set the time.  Each kernel computes the same quantities as the numpy code
+it replaced, in the same order of operations and additions, so results stay
+the same to the bit (tests/registration/test_compiled_kernels.py compares
+each with the numpy code or library it replaced); products that numpy sends
+through BLAS or LAPACK, and numpy's sin / cos / arctan2, stay in numpy.
+Kernels returning arrays keep a single return statement: numba's on-disk
+cache once failed to load such a function with a second return path
+("descr is NULL").
 
 ``cache=True`` keeps the machine code in ``__pycache__`` (or numba's user
 cache when the package folder is read-only), so only the very first call on
-a machine pays for compiling (about 2-3 s for all kernels together).
+a machine pays for compiling (several seconds for all kernels together).
 """
 
 from __future__ import annotations
