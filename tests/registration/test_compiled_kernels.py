@@ -145,25 +145,31 @@ def test_components_match_scipy_connected_components(k, radius):
             np.testing.assert_array_equal(hi[c], pts[ref == c].max(axis=0))
 
 
-def _pair_at(k, noise="range"):
-    """A prepared source and target of the workshop and the true pose, plus a pose 0.2 m and 4 deg off."""
+def _pair_at(k, noise="range", duplicates=False):
+    """A prepared source and target of the workshop and the true pose, plus a pose 0.2 m and 4 deg off.
+
+    ``duplicates``: every fifth target reading twice, so that nearest line points tie exactly."""
     rng = np.random.default_rng(20 + k)
     pa, pb = PAIRS[k]
     truth = se2.between(np.asarray(pa, float), np.asarray(pb, float))
     opt = RegistrationOptions(coarse=False, point_noise=noise)
-    tgt = prepare_scan(scan(pa, rng), opt, grid=False)
+    target_pts = scan(pa, rng)
+    if duplicates:
+        target_pts = np.concatenate([target_pts, target_pts[::5]])
+    tgt = prepare_scan(target_pts, opt, grid=False)
     src = prepare_scan(scan(pb, rng), opt, grid=False)
     return src, tgt, opt, [truth, truth + [0.2, -0.1, np.radians(4.0)]]
 
 
-@pytest.mark.parametrize("k", range(3))
+@pytest.mark.parametrize("k, duplicates", [(0, False), (1, False), (2, False), (0, True)])
 @pytest.mark.parametrize("normals", [True, False])
-def test_association_matches_kdtree_and_numpy(k, normals):
+def test_association_matches_kdtree_and_numpy(k, duplicates, normals):
     # Reference: scipy's cKDTree for the nearest line point, then the support and normal tests
     # written in numpy (the code the compiled association replaced); the same pairs and rows, to the bit.
+    # Duplicated target readings make exact ties, which the kd-tree resolves (its own order).
     from closurecheck.registration.icp import _associate
 
-    src, tgt, opt, poses = _pair_at(k)
+    src, tgt, opt, poses = _pair_at(k, duplicates=duplicates)
     if not normals:
         opt = RegistrationOptions(coarse=False, max_normal_angle_rad=4.0)
     cos_max = np.cos(opt.max_normal_angle_rad) if normals else None
