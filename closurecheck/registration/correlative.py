@@ -22,6 +22,7 @@ are the mean likelihood over the source points, in [0, 1].
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import lru_cache
 
 import numpy as np
 
@@ -73,18 +74,11 @@ def build_grid(points, resolution_m: float, sigma_m: float, top_block_cells: int
     # point and is zero beyond about 3.5 sigma, so the grid is the maximum over
     # the occupied cells of a small kernel stamped around each: the same
     # values as a distance transform of the whole grid, at a fraction of the cost.
-    k = int(np.ceil(np.sqrt(2.0 * np.log(2.0 * _LEVELS)) * sigma_m / resolution_m)) + 1
-    di, dj = np.meshgrid(np.arange(-k, k + 1), np.arange(-k, k + 1), indexing="ij")
-    dist = np.sqrt((di * di + dj * dj).astype(float)) * resolution_m
-    value = np.rint(np.exp(-0.5 * (dist / sigma_m) ** 2) * _LEVELS).astype(np.uint8)
-    used = value > 0
-    di, dj, value = di[used], dj[used], value[used]
+    di, dj, value = _stamp(float(resolution_m), float(sigma_m))
     occupied = np.unique(cells[:, 0] * shape[1] + cells[:, 1])
-    ti = occupied[:, None] // shape[1] + di
-    tj = occupied[:, None] % shape[1] + dj
-    inside = (ti >= 0) & (ti < shape[0]) & (tj >= 0) & (tj < shape[1])
-    fine = np.zeros(shape, dtype=np.uint8)
-    np.maximum.at(fine.ravel(), (ti * shape[1] + tj)[inside], np.broadcast_to(value, ti.shape)[inside])
+    # Compiled (_kernels.stamp_grid): np.maximum.at over (cells, stamp) index arrays cost about
+    # half of building a grid; a maximum is the same whatever order it is taken in.
+    fine = _kernels.stamp_grid(occupied, int(shape[0]), int(shape[1]), di, dj, value)
     levels = [fine]
     for lvl in range(1, n_levels):
         # max over [i, i + 2^l) = max of two level l-1 blocks, at i and i + 2^(l-1).
@@ -96,6 +90,20 @@ def build_grid(points, resolution_m: float, sigma_m: float, top_block_cells: int
         np.maximum(rows[:, :-half], rows[:, half:], out=out[:, :-half])
         levels.append(out)
     return LikelihoodGrid(origin=lo, resolution_m=float(resolution_m), levels=tuple(levels))
+
+
+@lru_cache(maxsize=16)
+def _stamp(resolution_m: float, sigma_m: float):
+    """Offsets (cells) and uint8 values of the likelihood stamped around an occupied cell (build_grid)."""
+    k = int(np.ceil(np.sqrt(2.0 * np.log(2.0 * _LEVELS)) * sigma_m / resolution_m)) + 1
+    di, dj = np.meshgrid(np.arange(-k, k + 1), np.arange(-k, k + 1), indexing="ij")
+    dist = np.sqrt((di * di + dj * dj).astype(float)) * resolution_m
+    value = np.rint(np.exp(-0.5 * (dist / sigma_m) ** 2) * _LEVELS).astype(np.uint8)
+    used = value > 0
+    out = (di[used].astype(np.int64), dj[used].astype(np.int64), value[used])
+    for a in out:
+        a.flags.writeable = False
+    return out
 
 
 def downsample(points, cell_m: float, max_points: int) -> np.ndarray:
@@ -183,15 +191,14 @@ def search(grid: LikelihoodGrid, points, seed, *, window_m: float, window_rad: f
     rot = np.empty((2, 2, len(rows)))                 # rot[:, 0, a] maps a point to its x, rot[:, 1, a] to y
     rot[0, 0], rot[1, 0], rot[0, 1], rot[1, 1] = c, -s, s, c
     cells = ((pts / r) @ rot.reshape(2, -1)).reshape(len(pts), 2, len(rows))        # (N, 2, A) in cells
-    cells += ((rows[:, :2] - grid.origin) / r).T
-    np.floor(cells, out=cells)
-    np.clip(cells, -reach, np.array([[w - 1 + reach], [h - 1 + reach]]), out=cells)
-    cells += pad
     hp = h + 2 * pad
     size = (w + 2 * pad) * hp
     # 32-bit indices halve the memory traffic of the gathers, the search's main cost.
     index = np.int32 if size * len(grid.levels) < 2 ** 31 else np.int64
-    base = (cells[:, 0] * hp + cells[:, 1]).T.astype(index)                          # (A, N)
+    # Floor, clip, pad and flatten in one compiled pass (_kernels.cell_bases); the rotation stays a
+    # numpy product.
+    base = _kernels.cell_bases(cells, np.ascontiguousarray(((rows[:, :2] - grid.origin) / r).T), reach,
+                               float(w - 1 + reach), float(h - 1 + reach), float(pad), float(hp)).astype(index)
     # All pyramid levels, zero padded, in one flat array: level l starts at l * size.
     stack = np.zeros((len(grid.levels), w + 2 * pad, hp), dtype=np.uint8)
     stack[:, pad:pad + w, pad:pad + h] = grid.levels
@@ -205,8 +212,7 @@ def search(grid: LikelihoodGrid, points, seed, *, window_m: float, window_rad: f
         search of the default window)."""
         return _kernels.block_sums(nodes, stack, base, size, hp)
 
-    ta, tx, ty = np.meshgrid(np.arange(len(rows)), starts, starts, indexing="ij")
-    tops = np.column_stack([ta.ravel(), tx.ravel(), ty.ravel(), np.full(ta.size, top_level)])
+    tops = _kernels.top_blocks(len(rows), starts.astype(np.int64), top_level)
     if top_level == 0:
         tops = tops[(np.abs(tops[:, 1]) <= half) & (np.abs(tops[:, 2]) <= half)]
     top_score = bounds(tops)
@@ -224,21 +230,24 @@ def search(grid: LikelihoodGrid, points, seed, *, window_m: float, window_rad: f
     # A block's four children (quadrants): node rows to add to the block's [angle, ox, oy, level].
     quad = np.array([[0, 0, 0, 0], [0, 0, 1, 0], [0, 1, 0, 0], [0, 1, 1, 0]])
     split = [None] + [quad * (1 << (lvl - 1)) - np.array([0, 0, 0, 1]) for lvl in range(1, top_level + 1)]
+    # The bookkeeping of each batch is compiled too (_kernels.live_blocks, take_rest, append_blocks):
+    # a search runs about 80 batches of a few dozen blocks, where a dozen numpy calls each cost more
+    # than the bounds.  The selection of the best blocks stays numpy's argpartition, whose choice
+    # among equal bounds decides which blocks open first, so the results stay those of before.
     while True:
         for lvl in range(1, top_level + 1):
+            if not len(open_score[lvl]):
+                continue
             # A block whose bound cannot beat the k-th best distinct leaf holds nothing to find.
-            live = open_score[lvl] > best.bar[row_seed[open_nodes[lvl][:, 0]]]
-            if live.any():
+            nodes, score = _kernels.live_blocks(open_nodes[lvl], open_score[lvl], best.bar, row_seed)
+            if len(score):
                 break
-            open_nodes[lvl], open_score[lvl] = open_nodes[lvl][:0], open_score[lvl][:0]
+            open_nodes[lvl], open_score[lvl] = nodes, score
         else:
             break
-        nodes, score = open_nodes[lvl][live], open_score[lvl][live]
         if len(nodes) > _BATCH_NODES:
             sel = np.argpartition(-score, _BATCH_NODES - 1)[:_BATCH_NODES]
-            rest = np.ones(len(nodes), dtype=bool)
-            rest[sel] = False
-            parents, open_nodes[lvl], open_score[lvl] = nodes[sel], nodes[rest], score[rest]
+            parents, open_nodes[lvl], open_score[lvl] = _kernels.take_rest(nodes, score, sel)
         else:
             parents, open_nodes[lvl], open_score[lvl] = nodes, nodes[:0], score[:0]
         # Compiled (_kernels.split_and_bound): the gathers over the pyramid are the search's main
@@ -250,8 +259,8 @@ def search(grid: LikelihoodGrid, points, seed, *, window_m: float, window_rad: f
             if len(kids):
                 best.add(_poses(kid_score, kids, rows, r))
         else:
-            open_nodes[lvl - 1] = np.concatenate([open_nodes[lvl - 1], kids])
-            open_score[lvl - 1] = np.concatenate([open_score[lvl - 1], kid_score])
+            open_nodes[lvl - 1], open_score[lvl - 1] = _kernels.append_blocks(open_nodes[lvl - 1],
+                                                                              open_score[lvl - 1], kids, kid_score)
     out = best.merged
     poses = out[:, 1:4].copy()
     return poses, out[:, 0] / (_LEVELS * len(pts))
@@ -294,18 +303,19 @@ class _Best:
 
     def add(self, records):
         """Take new leaves (rows [sum score, x, y, theta, seed index]) and update the lists and bars."""
-        for j in np.unique(records[:, 4]).astype(int):
-            own = np.concatenate([self.own[j], records[records[:, 4] == j]])
-            if len(own) > _MAX_RECORDS:
+        seeds = range(1) if len(self.own) == 1 else np.unique(records[:, 4]).astype(int)
+        for j in seeds:
+            # Best first, equal scores in a fixed order of the pose, so that ties are resolved the
+            # same whichever order the leaves were found in; leaves below the seed's k-th best
+            # distinct one can no longer be among its best.  Compiled (_kernels.seed_leaves: a
+            # dozen numpy calls on a few hundred rows, called some 7 times per search).
+            own, best, kth, over = _kernels.seed_leaves(self.own[j], records, j, self.k, self.sep_m, self.sep_rad,
+                                                        _MAX_RECORDS)
+            if over:
                 own = own[np.argpartition(-own[:, 0], _MAX_RECORDS - 1)[:_MAX_RECORDS]]
-            # Best first, equal scores in a fixed order of the pose, so that ties are
-            # resolved the same whichever order the leaves were found in.
-            own = own[np.lexsort((own[:, 2], own[:, 1], own[:, 3], -own[:, 0]))]
-            keep = distinct(own, self.k, self.sep_m, self.sep_rad)
-            self.lists[j] = own[keep]
-            self.kth[j] = own[keep[-1], 0] if len(keep) == self.k else -1.0
-            # Leaves below the seed's k-th best distinct one can no longer be among its best.
-            self.own[j] = own[own[:, 0] >= self.kth[j]]
+                own, best, kth, over = _kernels.seed_leaves(own, own[:0], j, self.k, self.sep_m, self.sep_rad,
+                                                            _MAX_RECORDS)
+            self.own[j], self.lists[j], self.kth[j] = own, best, kth
         # The merge of the seeds' lists, as if each seed had been searched on its own.
         union = np.concatenate(self.lists)
         union[:, 3] = np.pi - np.mod(np.pi - union[:, 3], 2 * np.pi)          # theta in (-pi, pi]

@@ -44,8 +44,6 @@ from __future__ import annotations
 from dataclasses import dataclass, field, fields, replace
 
 import numpy as np
-from scipy.sparse import coo_matrix
-from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
 
 from ..core import se2
@@ -269,8 +267,9 @@ class PreparedScan:
     point_noise: str
     key: tuple
     # Built on first use: "fit" holds the neighbourhoods the target side is
-    # built from (dropped once it is), "target" the built (tree, line,
-    # nbr_index, nbr_coef), "grid" the likelihood grid.
+    # built from (dropped once it is), "target" the built (line points, line,
+    # nbr_index, nbr_coef, cell index), "tree" the kd-tree over the line
+    # points, "grid" the likelihood grid.
     _lazy: dict = field(repr=False)
 
     def __len__(self) -> int:
@@ -291,7 +290,14 @@ class PreparedScan:
 
     @property
     def tree(self) -> cKDTree:
-        return self._target_side()[0]
+        got = self._lazy.get("tree")
+        if got is None:
+            # Built on first use: ICP's and the fit score's queries go to the compiled cell index
+            # (only duplicate points at the nearest distance ask the tree), so a single register
+            # call never needs it (0.1 ms per scan).
+            got = cKDTree(self._target_side()[0])
+            self._lazy["tree"] = got
+        return got
 
     @property
     def line(self) -> np.ndarray:
@@ -553,9 +559,7 @@ def _point_like(points, idx, used, has_line, opt: RegistrationOptions):
     """
     if not opt.point_features:
         return np.zeros(0, np.int64), np.zeros(0, np.int64)
-    count = used.sum(axis=1)
-    lined = (has_line[idx] & used).any(axis=1)
-    pick = np.flatnonzero(~has_line & (count >= 3) & ~lined)
+    pick = _kernels.point_candidates(idx, used, has_line, 3)
     # Objects: connected groups of neighbours among all the scan's points; a segment of
     # _associate_points never joins two of them.  Only small objects: a long group is a wall (near the sensor its
     # dense noisy readings are too thick for lines at places, far off too sparse), whose readings
@@ -563,19 +567,10 @@ def _point_like(points, idx, used, has_line, opt: RegistrationOptions):
     # its axis (tests/registration/test_covariance.py).
     if not len(pick):
         return pick, pick
-    n = len(points)
-    flat = used.ravel()
-    rows = np.repeat(np.arange(n), idx.shape[1])[flat]
-    graph = coo_matrix((np.ones(len(rows)), (rows, idx.ravel()[flat])), shape=(n, n)).tocsr()
-    count_objects, label = connected_components(graph, directed=False)
-    # Extent of each object: its points sorted by label, reduced per run.
-    order = np.argsort(label, kind="stable")
-    sorted_label = label[order]
-    starts = np.flatnonzero(np.r_[True, sorted_label[1:] != sorted_label[:-1]])
-    span = np.zeros(count_objects)
-    lo = np.minimum.reduceat(points[order], starts, axis=0)
-    hi = np.maximum.reduceat(points[order], starts, axis=0)
-    span[sorted_label[starts]] = np.hypot(*(hi - lo).T)
+    # Compiled (_kernels.components): the same labels as scipy's connected_components on the
+    # neighbour graph, without building a sparse matrix (0.42 -> 0.03 ms per 721-point scan).
+    label, lo, hi = _kernels.components(points, idx, used)
+    span = np.hypot(*(hi - lo).T)
     lab = label[pick]
     small = span[lab] <= 2.0 * opt.line_radius_m
     return pick[small], lab[small]
@@ -643,17 +638,10 @@ def _prepare(pts, opt: RegistrationOptions, with_grid: bool) -> PreparedScan:
 
 
 def _target_side(scan: PreparedScan, nidx, used_l, n_l, t_l, c_l, opt: RegistrationOptions):
-    """kd-tree, line models and reading sensitivities of a scan's line points (its role as a target)."""
+    """Line points, line models and reading sensitivities of a scan's line points (its role as a target)."""
     pts, beams = scan.points, scan.beams
-    nused = used_l.astype(float)
-    # Offsets of the neighbours from the centroid, one (M, k) array per coordinate: the
-    # products and sums below are those of (M, k, 2) arrays reduced over their last axis
-    # (same bits), at about half the cost.
-    dx = pts[:, 0][nidx] - c_l[:, :1]
-    dy = pts[:, 1][nidx] - c_l[:, 1:]
-    a = (dx * t_l[:, :1] + dy * t_l[:, 1:]) * nused                      # along the line (m)
-    h = (dx * n_l[:, :1] + dy * n_l[:, 1:]) * nused                      # across it (m)
-    # Local model h = f(a) fitted by least squares: a straight line
+    # Local model h = f(a) fitted by least squares, a the offset of a neighbour along the line
+    # and h across it: a straight line
     # [1, a] or, by default, a parabola [1, a, a^2] so that a curved surface
     # (a round column) is not replaced by its chord.  Beyond the readings'
     # extent e = max |a| the parabola continues along its tangent, never
@@ -662,8 +650,11 @@ def _target_side(scan: PreparedScan, nidx, used_l, n_l, t_l, c_l, opt: Registrat
     # f(s) = sum_l h_l (wts_l . phi(s)), the fit's linear dependence on each
     # reading, which the covariance needs.
     quadratic = opt.line_model == "quadratic"
-    cols = [nused, a, a * a if quadratic else np.zeros_like(a)]
-    x = np.stack(cols, axis=-1)                                           # (M, k, 3)
+    # The offsets, design rows (M, k, 3), extents and noise factors, element by element in one
+    # compiled call (_kernels.line_offsets; about 15 numpy calls on (M, k) arrays before, the same
+    # bits); the products and the 3 x 3 inverses below stay numpy's (BLAS, LAPACK).
+    x, h, extent, nu = _kernels.line_offsets(pts, beams, nidx, used_l, c_l, n_l, t_l, quadratic,
+                                             opt.point_noise == "range", opt.min_incidence_cos)
     xt = x.transpose(0, 2, 1)
     xtx = xt @ x
     if not quadratic:
@@ -672,23 +663,17 @@ def _target_side(scan: PreparedScan, nidx, used_l, n_l, t_l, c_l, opt: Registrat
     xtx += (1e-12 * np.trace(xtx, axis1=1, axis2=2))[:, None, None] * np.eye(3)
     wts = x @ np.linalg.inv(xtx)                                         # (M, k, 3), inverse is symmetric
     beta = (h[:, None, :] @ wts)[:, 0, :]
-    extent = np.abs(a).max(axis=1)
-    if opt.point_noise == "range":
-        nu = np.abs(beams[:, 0][nidx] * n_l[:, :1] + beams[:, 1][nidx] * n_l[:, 1:])
-        nu = np.maximum(nu, opt.min_incidence_cos)
-    else:
-        nu = np.ones_like(a)
-    nu = nu * nused
     # Variance (units of sigma^2) of f(s): phi Q phi^T with Q = sum_l nu_l^2 wts_l wts_l^T.
     q = (wts * (nu * nu)[..., None]).transpose(0, 2, 1) @ wts
     line = np.column_stack([c_l, n_l, beta, q[:, 0, 0], q[:, 0, 1], q[:, 0, 2], q[:, 1, 1], q[:, 1, 2],
                             q[:, 2, 2], extent])
     lp = np.ascontiguousarray(pts[scan.line_index])
     # The compiled cell index answers ICP's nearest-line queries in about a twentieth of the
-    # kd-tree's time (0.02 against 0.5 ms for 600 queries); the kd-tree stays for other callers.
+    # kd-tree's time (0.02 against 0.5 ms for 600 queries); the kd-tree (PreparedScan.tree) is
+    # built from lp only when something asks for it.
     # The batched products above stay in numpy: they go through BLAS, whose order of additions
     # a compiled loop does not reproduce, and the demo record compares results to the bit.
-    return (cKDTree(lp), line, nidx.astype(np.int32), (nu[..., None] * wts).astype(np.float32),
+    return (lp, line, nidx.astype(np.int32), (nu[..., None] * wts).astype(np.float32),
             (lp, *_kernels.cell_index(lp, _CELL_M)))
 
 
@@ -847,9 +832,14 @@ def _failed(x, it) -> _Solution:
 
 
 def _candidates(src: PreparedScan, cos_max):
-    """Source points that may be matched: (indices, points, normals), gathered once per ICP run."""
-    cand = src.line_index if cos_max is not None else np.arange(len(src.points))
-    return cand, src.points[cand], src.normals[cand]
+    """Source points that may be matched: (indices, points, normals), gathered once per source scan."""
+    key = ("cands", cos_max is not None)
+    got = src._lazy.get(key)
+    if got is None:
+        cand = src.line_index if cos_max is not None else np.arange(len(src.points))
+        got = (cand, src.points[cand], src.normals[cand])
+        src._lazy[key] = got
+    return got
 
 
 def _associate(src: PreparedScan, tgt: PreparedScan, x, opt, cos_max, cands=None):
@@ -867,24 +857,31 @@ def _associate(src: PreparedScan, tgt: PreparedScan, x, opt, cos_max, cands=None
     c, s = np.cos(x[2]), np.sin(x[2])
     rot_t = np.array([[c, s], [-s, c]])
     pw = cand_pts @ rot_t + x[:2]
-    _, j = _nearest_line(tgt, pw, opt.max_correspondence_m)
-    hit = np.flatnonzero(j < len(tgt.line_index))
-    j, pw = j[hit], pw[hit]
-    ln = tgt.line[j]
-    # Only points that fall along the target line's own support (plus a
-    # margin): beyond it the target never saw the surface, and a fit that
-    # caught a corner would be extrapolated.
-    along = np.abs(ln[:, 3] * (pw[:, 0] - ln[:, 0]) - ln[:, 2] * (pw[:, 1] - ln[:, 1]))
-    ok = along <= ln[:, 13] + opt.max_extrapolation_m
-    if cos_max is not None:
-        agree = ((cand_normals[hit] @ rot_t) * ln[:, 2:4]).sum(axis=1)
-        ok &= agree >= cos_max
-    i = cand[hit[ok]]
-    return i, j[ok], src.points[i], src.beams[i], np.ascontiguousarray(ln[ok].T)
+    # The nearest line, the support and the normal tests in one compiled call (_kernels.associate:
+    # a dozen numpy calls on a few hundred rows cost more than the arithmetic); the rotations stay
+    # numpy products (BLAS), as before.
+    nr = cand_normals @ rot_t if cos_max is not None else pw
+    keep, j, lt, tied = _kernels.associate(*tgt._target_side()[4], pw, nr, tgt.line, opt.max_correspondence_m,
+                                           opt.max_extrapolation_m, -np.inf if cos_max is None else cos_max,
+                                           cos_max is not None)
+    if tied:
+        # Two line points at exactly the nearest distance (duplicates): the kd-tree's pick, as before.
+        _, j = _nearest_line(tgt, pw, opt.max_correspondence_m)
+        hit = np.flatnonzero(j < len(tgt.line_index))
+        j, pw = j[hit], pw[hit]
+        ln = tgt.line[j]
+        along = np.abs(ln[:, 3] * (pw[:, 0] - ln[:, 0]) - ln[:, 2] * (pw[:, 1] - ln[:, 1]))
+        ok = along <= ln[:, 13] + opt.max_extrapolation_m
+        if cos_max is not None:
+            agree = (nr[hit] * ln[:, 2:4]).sum(axis=1)
+            ok &= agree >= cos_max
+        keep, j, lt = hit[ok], j[ok], np.ascontiguousarray(ln[ok].T)
+    i = cand[keep]
+    return i, j, src.points[i], src.beams[i], lt
 
 
 def _linearise(pairs, x, opt, range_noise: bool):
-    """Residuals, variance units, Jacobians, along-line offsets and source sensitivities at pose x.
+    """Residuals, variance units, Jacobians, along-line offsets, source sensitivities and r / sqrt(v) at pose x.
 
     The residual is the source point's offset across the target's local
     line minus the local model's offset there, ``r = n.(p - c) - f(s)``
@@ -895,28 +892,12 @@ def _linearise(pairs, x, opt, range_noise: bool):
     c, s = np.cos(x[2]), np.sin(x[2])
     rot_t = np.array([[c, s], [-s, c]])
     rp = p @ rot_t
-    nx, ny = lt[2], lt[3]
-    dx = rp[:, 0] + (x[0] - lt[0])
-    dy = rp[:, 1] + (x[1] - lt[1])
-    s_al = ny * dx - nx * dy            # t = (n_y, -n_x), as in _line_features
-    m = np.minimum(np.maximum(s_al, -lt[13]), lt[13])
-    phi2 = (2.0 * s_al - m) * m
-    r = nx * dx + ny * dy - (lt[4] + s_al * lt[5] + phi2 * lt[6])
-    fp = lt[5] + 2.0 * lt[6] * m
-    gx = nx - fp * ny
-    gy = ny + fp * nx
-    if range_noise:
-        ub = u @ rot_t
-        sc = np.maximum(np.abs(gx * ub[:, 0] + gy * ub[:, 1]), opt.min_incidence_cos)
-    else:
-        sc = np.hypot(gx, gy)
-    v = sc * sc + (lt[7] + s_al * (2.0 * lt[8] + s_al * lt[10])
-                   + phi2 * (2.0 * lt[9] + 2.0 * s_al * lt[11] + phi2 * lt[12]))
-    jac = np.empty((len(r), 3))
-    jac[:, 0] = gx
-    jac[:, 1] = gy
-    jac[:, 2] = gy * rp[:, 0] - gx * rp[:, 1]
-    return r, v, jac, (s_al, phi2), sc
+    ub = u @ rot_t if range_noise else rp
+    # Element by element in one compiled call (_kernels.linearise), the numpy expressions' order of
+    # operations kept: about 25 numpy calls on a few hundred rows per ICP iteration before.
+    r, v, jac, s_al, phi2, sc, z = _kernels.linearise(rp, ub, lt, float(x[0]), float(x[1]), opt.min_incidence_cos,
+                                                      range_noise)
+    return r, v, jac, (s_al, phi2), sc, z
 
 
 def _median(a) -> float:
@@ -928,8 +909,10 @@ def _median(a) -> float:
     return float((part[k - 1] + part[k]) / 2)
 
 
-def _robust(r, v, opt, kernel):
-    z = r / np.sqrt(v)
+def _robust(r, v, opt, kernel, z=None):
+    """Robust weights and scale of residuals r with variance units v (``z = r / sqrt(v)`` if given)."""
+    if z is None:
+        z = r / np.sqrt(v)
     scale = max(_MAD_TO_SIGMA * _median(np.abs(z)), opt.min_noise_m)
     w = kernel.weight(z / scale)
     return w, scale
@@ -959,10 +942,14 @@ def _icp_line(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions
         if len(pairs[0]) + (0 if matches is None else len(matches[0])) < 3:
             pairs = None
             break
-        r, v, jac, s_al, sc = _linearise(pairs, x, opt, range_noise)
+        r, v, jac, s_al, sc, z = _linearise(pairs, x, opt, range_noise)
         if matches is None:
-            w, scale = _robust(r, v, opt, kernel)
-            jw = jac * (w / v)[:, None]
+            if kernel.name == "huber":
+                # One compiled call for the default kernel (_kernels.huber_rows, the same values).
+                w, scale, jw = _kernels.huber_rows(z, v, jac, kernel.scale, _MAD_TO_SIGMA, opt.min_noise_m)
+            else:
+                w, scale = _robust(r, v, opt, kernel, z)
+                jw = jac * (w / v)[:, None]
             h = jw.T @ jac
             g = jw.T @ r
         else:
@@ -983,7 +970,7 @@ def _icp_line(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions
         return _failed(x, it)
     if matches is not None:
         # The rows at the final pose (the loop's last rows are from before its last step).
-        r, v, jac, s_al, sc = _linearise(pairs, x, opt, range_noise)
+        r, v, jac, s_al, sc, _ = _linearise(pairs, x, opt, range_noise)
         w, prow, scale = _weigh_with_points(_point_rows(src, tgt, matches, x, range_noise), r, v, opt, kernel)
     return _Solution(x, converged, it, pairs[0], pairs[1], r, v, w, jac, np.stack(s_al, axis=1), sc, scale, prow)
 
@@ -1027,8 +1014,8 @@ def _icp_point(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOption
     pairs = _associate(src, tgt, x, opt, cos_max)
     if len(pairs[0]) < 3:
         return _failed(x, it)
-    r, v, jac, s_al, sc = _linearise(pairs, x, opt, src.point_noise == "range")
-    w, scale = _robust(r, v, opt, kernel)
+    r, v, jac, s_al, sc, z = _linearise(pairs, x, opt, src.point_noise == "range")
+    w, scale = _robust(r, v, opt, kernel, z)
     return _Solution(x, converged, it, pairs[0], pairs[1], r, v, w, jac, np.stack(s_al, axis=1), sc, scale)
 
 
@@ -1075,10 +1062,9 @@ def _finish(src: PreparedScan, tgt: PreparedScan, sol: _Solution, opt: Registrat
     sigma2 = _cov.noise_variance(r_all, om_all, e_wu2)
     middle = None
     if opt.covariance == "censi":
-        w = tgt.nbr_coef[sol.tgt]
-        basis = sol.s_along                               # (n, 2): s and the third basis function
-        coef_t = -(w[..., 0] + basis[:, :1] * w[..., 1] + basis[:, 1:] * w[..., 2])
-        middle = _cov.censi_middle(sol.jac, om, sol.src_coef, tgt.nbr_index[sol.tgt], coef_t, len(tgt.points))
+        # sol.s_along (n, 2): s and the third basis function of each residual's line model.
+        middle = _cov.censi_middle_lines(sol.jac, om, sol.src_coef, sol.tgt, tgt.nbr_index, tgt.nbr_coef,
+                                         sol.s_along, len(tgt.points))
         if pr is not None:
             middle = middle + _point_middle(pr, om_all[len(sol.r):], len(src.points), len(tgt.points))
     est = _cov.analyse(h, middle, sigma2, len(r_all), src.length_m, method=opt.covariance,

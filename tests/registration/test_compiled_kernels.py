@@ -5,7 +5,8 @@ References: scipy.spatial.cKDTree's nearest-neighbour queries (with
 association and fit score, and for the neighbourhoods of the line fits;
 numpy.linalg.lstsq for the local line models' least-squares coefficients.
 Scans are ray cast in the invented workshop of test_icp.py; random clouds
-add clusters, a straight wall and a wide extent.
+add clusters, a straight wall and a wide extent.  scipy.sparse.csgraph.connected_components
+for the groups of neighbours that small objects are found by.
 """
 
 import numpy as np
@@ -13,6 +14,7 @@ import pytest
 from scipy.spatial import cKDTree
 from test_icp import PAIRS, scan
 
+from closurecheck.core import se2
 from closurecheck.registration import _kernels
 from closurecheck.registration.icp import _CELL_M, RegistrationOptions, prepare_scan
 
@@ -113,3 +115,306 @@ def test_a_scan_of_small_posts_alone_prepares_and_registers():
     assert len(prepared.line_index) == 0 and len(prepared.point_index) > 0
     r = register(pts, pts + [0.05, 0.0], np.zeros(3), coarse=False, point_features=True)
     assert np.all(np.isfinite(r.delta))
+
+
+@pytest.mark.parametrize("k, radius", [(16, 0.3), (5, 0.3), (16, 0.05)])
+def test_components_match_scipy_connected_components(k, radius):
+    # Reference: scipy.sparse.csgraph.connected_components on the undirected neighbour graph; the
+    # labels themselves must agree (both number the groups by their smallest point), and each
+    # group's bounding box must be numpy's min / max over its points.
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import connected_components
+
+    rng = np.random.default_rng(k)
+    posts = rng.uniform(-8.0, 8.0, (30, 2))
+    clouds = (np.ascontiguousarray(scan(PAIRS[1][0], rng)),
+              (posts[:, None, :] + rng.normal(0.0, 0.05, (30, 6, 2))).reshape(-1, 2),
+              rng.uniform(-3.0, 3.0, (500, 2)))
+    for pts in clouds:
+        idx, _ = _kernels.neighbourhoods(pts, k, radius)
+        used = idx < len(pts)
+        idx[~used] = 0
+        label, lo, hi = _kernels.components(pts, idx, used)
+        rows = np.repeat(np.arange(len(pts)), k)[used.ravel()]
+        graph = coo_matrix((np.ones(len(rows)), (rows, idx.ravel()[used.ravel()])), shape=(len(pts),) * 2)
+        count, ref = connected_components(graph.tocsr(), directed=False)
+        np.testing.assert_array_equal(label, ref)
+        assert len(lo) == count > 1
+        for c in rng.choice(count, min(count, 25), replace=False):
+            np.testing.assert_array_equal(lo[c], pts[ref == c].min(axis=0))
+            np.testing.assert_array_equal(hi[c], pts[ref == c].max(axis=0))
+
+
+def _pair_at(k, noise="range", duplicates=False):
+    """A prepared source and target of the workshop and the true pose, plus a pose 0.2 m and 4 deg off.
+
+    ``duplicates``: every fifth target reading twice, so that nearest line points tie exactly."""
+    rng = np.random.default_rng(20 + k)
+    pa, pb = PAIRS[k]
+    truth = se2.between(np.asarray(pa, float), np.asarray(pb, float))
+    opt = RegistrationOptions(coarse=False, point_noise=noise)
+    target_pts = scan(pa, rng)
+    if duplicates:
+        target_pts = np.concatenate([target_pts, target_pts[::5]])
+    tgt = prepare_scan(target_pts, opt, grid=False)
+    src = prepare_scan(scan(pb, rng), opt, grid=False)
+    return src, tgt, opt, [truth, truth + [0.2, -0.1, np.radians(4.0)]]
+
+
+@pytest.mark.parametrize("k, duplicates", [(0, False), (1, False), (2, False), (0, True)])
+@pytest.mark.parametrize("normals", [True, False])
+def test_association_matches_kdtree_and_numpy(k, duplicates, normals):
+    # Reference: scipy's cKDTree for the nearest line point, then the support and normal tests
+    # written in numpy (the code the compiled association replaced); the same pairs and rows, to the bit.
+    # Duplicated target readings make exact ties, which the kd-tree resolves (its own order).
+    from closurecheck.registration.icp import _associate
+
+    src, tgt, opt, poses = _pair_at(k, duplicates=duplicates)
+    if not normals:
+        opt = RegistrationOptions(coarse=False, max_normal_angle_rad=4.0)
+    cos_max = np.cos(opt.max_normal_angle_rad) if normals else None
+    for x in poses:
+        i, j, p, u, lt = _associate(src, tgt, x, opt, cos_max)
+        cand = src.line_index if normals else np.arange(len(src.points))
+        c, s = np.cos(x[2]), np.sin(x[2])
+        rot_t = np.array([[c, s], [-s, c]])
+        pw = src.points[cand] @ rot_t + x[:2]
+        _, ref_j = cKDTree(tgt.points[tgt.line_index]).query(pw, distance_upper_bound=opt.max_correspondence_m)
+        hit = np.flatnonzero(ref_j < len(tgt.line_index))
+        ln = tgt.line[ref_j[hit]]
+        along = np.abs(ln[:, 3] * (pw[hit, 0] - ln[:, 0]) - ln[:, 2] * (pw[hit, 1] - ln[:, 1]))
+        ok = along <= ln[:, 13] + opt.max_extrapolation_m
+        if normals:
+            ok &= ((src.normals[cand[hit]] @ rot_t) * ln[:, 2:4]).sum(axis=1) >= cos_max
+        assert ok.sum() > 100
+        np.testing.assert_array_equal(i, cand[hit[ok]])
+        np.testing.assert_array_equal(j, ref_j[hit[ok]])
+        np.testing.assert_array_equal(lt, ln[ok].T)
+        np.testing.assert_array_equal(p, src.points[i])
+        np.testing.assert_array_equal(u, src.beams[i])
+
+
+@pytest.mark.parametrize("noise", ["range", "isotropic"])
+def test_linearised_rows_match_the_numpy_expressions(noise):
+    # Reference: the residual model of icp._linearise evaluated with numpy arrays, expression by
+    # expression (the numpy version the compiled loop replaced); equal to the bit.
+    from closurecheck.registration.icp import _associate, _linearise
+
+    src, tgt, opt, poses = _pair_at(1, noise)
+    for x in poses:
+        pairs = _associate(src, tgt, x, opt, np.cos(opt.max_normal_angle_rad))
+        r, v, jac, (s_al, phi2), sc, z = _linearise(pairs, x, opt, noise == "range")
+        _, _, p, u, lt = pairs
+        c, s = np.cos(x[2]), np.sin(x[2])
+        rot_t = np.array([[c, s], [-s, c]])
+        rp = p @ rot_t
+        nx, ny = lt[2], lt[3]
+        dx = rp[:, 0] + (x[0] - lt[0])
+        dy = rp[:, 1] + (x[1] - lt[1])
+        ref_s = ny * dx - nx * dy
+        m = np.minimum(np.maximum(ref_s, -lt[13]), lt[13])
+        ref_phi2 = (2.0 * ref_s - m) * m
+        ref_r = nx * dx + ny * dy - (lt[4] + ref_s * lt[5] + ref_phi2 * lt[6])
+        fp = lt[5] + 2.0 * lt[6] * m
+        gx, gy = nx - fp * ny, ny + fp * nx
+        if noise == "range":
+            ub = u @ rot_t
+            ref_sc = np.maximum(np.abs(gx * ub[:, 0] + gy * ub[:, 1]), opt.min_incidence_cos)
+        else:
+            ref_sc = np.hypot(gx, gy)
+        ref_v = ref_sc * ref_sc + (lt[7] + ref_s * (2.0 * lt[8] + ref_s * lt[10])
+                                   + ref_phi2 * (2.0 * lt[9] + 2.0 * ref_s * lt[11] + ref_phi2 * lt[12]))
+        assert np.abs(ref_phi2).max() > 0          # the quadratic term takes part
+        for got, ref in ((r, ref_r), (v, ref_v), (s_al, ref_s), (phi2, ref_phi2), (sc, ref_sc),
+                         (jac, np.column_stack([gx, gy, gy * rp[:, 0] - gx * rp[:, 1]])), (z, ref_r / np.sqrt(ref_v))):
+            np.testing.assert_array_equal(got, ref)
+
+
+def test_censi_middle_of_line_rows_matches_bincount_version():
+    # Reference: covariance.censi_middle, numpy bincounts over the gathered (n, k) sensitivities.
+    from closurecheck.registration.covariance import censi_middle, censi_middle_lines
+    from closurecheck.registration.icp import _associate, _linearise
+
+    src, tgt, opt, poses = _pair_at(2)
+    pairs = _associate(src, tgt, poses[0], opt, np.cos(opt.max_normal_angle_rad))
+    r, v, jac, (s_al, phi2), sc, _ = _linearise(pairs, poses[0], opt, True)
+    om = np.random.default_rng(1).uniform(0.2, 1.0, len(r)) / v
+    rows = pairs[1]
+    got = censi_middle_lines(jac, om, sc, rows, tgt.nbr_index, tgt.nbr_coef, np.column_stack([s_al, phi2]),
+                             len(tgt.points))
+    w = tgt.nbr_coef[rows]
+    coef_t = -(w[..., 0] + s_al[:, None] * w[..., 1] + phi2[:, None] * w[..., 2])
+    ref = censi_middle(jac, om, sc, tgt.nbr_index[rows], coef_t, len(tgt.points))
+    np.testing.assert_array_equal(got, ref)
+    assert np.linalg.eigvalsh(ref).min() > 0
+
+
+def test_block_bookkeeping_matches_numpy_indexing():
+    # Reference: numpy boolean and fancy indexing and np.concatenate, which the coarse search's
+    # batch bookkeeping used before (correlative.search).
+    rng = np.random.default_rng(4)
+    nodes = np.column_stack([rng.integers(0, 30, 500), rng.integers(-40, 40, (500, 2)), rng.integers(0, 5, 500)])
+    score = rng.integers(0, 5000, 500)
+    row_seed = rng.integers(0, 3, 30)
+    bar = np.array([1200.0, -1.0, 3999.5])
+    live = score > bar[row_seed[nodes[:, 0]]]
+    got_nodes, got_score = _kernels.live_blocks(nodes, score, bar, row_seed)
+    np.testing.assert_array_equal(got_nodes, nodes[live])
+    np.testing.assert_array_equal(got_score, score[live])
+    assert 0 < live.sum() < len(live)
+    sel = np.argpartition(-score, 63)[:64]
+    rest = np.ones(len(score), bool)
+    rest[sel] = False
+    parents, rest_nodes, rest_score = _kernels.take_rest(nodes, score, sel)
+    np.testing.assert_array_equal(parents, nodes[sel])
+    np.testing.assert_array_equal(rest_nodes, nodes[rest])
+    np.testing.assert_array_equal(rest_score, score[rest])
+    both, both_score = _kernels.append_blocks(nodes[:7], score[:7], nodes[100:], score[100:])
+    np.testing.assert_array_equal(both, np.concatenate([nodes[:7], nodes[100:]]))
+    np.testing.assert_array_equal(both_score, np.concatenate([score[:7], score[100:]]))
+    empty, empty_score = _kernels.live_blocks(nodes[:0], score[:0], bar, row_seed)
+    assert empty.shape == (0, 4) and empty_score.shape == (0,)
+
+
+@pytest.mark.parametrize("n", [1, 2, 7, 600, 601])
+def test_huber_rows_match_the_numpy_weights(n):
+    # Reference: numpy's median and the Huber weight of closurecheck.core.kernels (the numpy path
+    # icp._robust still takes for the other kernels), then the weighted Jacobian rows.
+    from closurecheck.core.kernels import kernel_from_name
+    from closurecheck.registration.icp import _MAD_TO_SIGMA, _robust
+
+    rng = np.random.default_rng(n)
+    z = rng.standard_t(3, n) * 0.01
+    v = rng.uniform(0.5, 2.0, n)
+    jac = rng.normal(size=(n, 3))
+    opt = RegistrationOptions()
+    kernel = kernel_from_name("huber", opt.kernel_scale)
+    w, scale, jw = _kernels.huber_rows(z, v, jac, kernel.scale, _MAD_TO_SIGMA, opt.min_noise_m)
+    ref_w, ref_scale = _robust(z * np.sqrt(v), v, opt, kernel, z)
+    assert scale == ref_scale == max(_MAD_TO_SIGMA * float(np.median(np.abs(z))), opt.min_noise_m)
+    np.testing.assert_array_equal(w, ref_w)
+    np.testing.assert_array_equal(jw, jac * (ref_w / v)[:, None])
+    assert n < 7 or 0 < (w < 1).sum() < n       # both sides of the threshold
+
+
+@pytest.mark.parametrize("model", ["quadratic", "line"])
+@pytest.mark.parametrize("noise", ["range", "isotropic"])
+def test_line_models_match_the_numpy_expressions(model, noise):
+    # Reference: the local line models computed with numpy arrays throughout (the expressions the
+    # compiled offsets replaced, then the same numpy products); equal to the bit.
+    from closurecheck.registration.icp import _prepare, _target_side
+
+    opt = RegistrationOptions(line_model=model, point_noise=noise)
+    pts = scan(PAIRS[3][0], np.random.default_rng(9))
+    prepared = _prepare(pts, opt, False)
+    nidx, used_l, n_l, t_l, c_l, _ = prepared._lazy["fit"]
+    _, line, _, coef, _ = _target_side(prepared, nidx, used_l, n_l, t_l, c_l, opt)
+    nused = used_l.astype(float)
+    dx = pts[:, 0][nidx] - c_l[:, :1]
+    dy = pts[:, 1][nidx] - c_l[:, 1:]
+    a = (dx * t_l[:, :1] + dy * t_l[:, 1:]) * nused
+    h = (dx * n_l[:, :1] + dy * n_l[:, 1:]) * nused
+    x = np.stack([nused, a, a * a if model == "quadratic" else np.zeros_like(a)], axis=-1)
+    xtx = x.transpose(0, 2, 1) @ x
+    if model == "line":
+        xtx[:, 2, 2] = 1.0
+    xtx += (1e-12 * np.trace(xtx, axis1=1, axis2=2))[:, None, None] * np.eye(3)
+    wts = x @ np.linalg.inv(xtx)
+    beta = (h[:, None, :] @ wts)[:, 0, :]
+    beams = prepared.beams
+    if noise == "range":
+        nu = np.maximum(np.abs(beams[:, 0][nidx] * n_l[:, :1] + beams[:, 1][nidx] * n_l[:, 1:]),
+                        opt.min_incidence_cos)
+    else:
+        nu = np.ones_like(a)
+    nu = nu * nused
+    q = (wts * (nu * nu)[..., None]).transpose(0, 2, 1) @ wts
+    ref = np.column_stack([c_l, n_l, beta, q[:, 0, 0], q[:, 0, 1], q[:, 0, 2], q[:, 1, 1], q[:, 1, 2], q[:, 2, 2],
+                           np.abs(a).max(axis=1)])
+    np.testing.assert_array_equal(line, ref)
+    np.testing.assert_array_equal(coef, (nu[..., None] * wts).astype(np.float32))
+    assert (~used_l).any()          # some slots unused, so the masking takes part
+
+
+def test_point_candidates_match_the_numpy_masks():
+    # Reference: the numpy masks the compiled selection replaced (icp._point_like).
+    from closurecheck.registration.icp import DEFAULT_OPTIONS, _line_features
+
+    rng = np.random.default_rng(12)
+    posts = rng.uniform(-8.0, 8.0, (30, 2))
+    blobs = (posts[:, None, :] + rng.normal(0.0, 0.04, (30, 4, 2))).reshape(-1, 2)
+    pts = np.concatenate([scan(PAIRS[4][0], rng), blobs])
+    idx, used, _, _, _, _, _, has_line = _line_features(pts, DEFAULT_OPTIONS)
+    ref = np.flatnonzero(~has_line & (used.sum(axis=1) >= 3) & ~(has_line[idx] & used).any(axis=1))
+    got = _kernels.point_candidates(idx, used, has_line, 3)
+    np.testing.assert_array_equal(got, ref)
+    assert 0 < len(ref) < (~has_line).sum()
+
+
+@pytest.mark.parametrize("n_old, n_new", [(0, 40), (30, 200), (4000, 300)])
+def test_seed_leaves_match_lexsort_and_numpy_selection(n_old, n_new):
+    # Reference: np.lexsort on (y, x, theta, -score), then the distinct selection and the masks the
+    # coarse search used in numpy (correlative._Best.add).  Scores drawn from few values, so that
+    # many leaves tie and the order of equal scores decides.
+    from closurecheck.registration.correlative import distinct
+
+    rng = np.random.default_rng(n_old + n_new)
+
+    def leaves(n):
+        return np.column_stack([rng.integers(0, 12, n) * 100.0, rng.integers(-5, 5, (n, 2)) * 0.1,
+                                rng.integers(-4, 4, n) * 0.05, rng.integers(0, 2, n)]).astype(float)
+
+    own, records = leaves(n_old), leaves(n_new)
+    own = own[own[:, 4] == 1]
+    kept, best, kth, over = _kernels.seed_leaves(own, records, 1, 3, 0.25, 0.1, 4096)
+    cat = np.concatenate([own, records[records[:, 4] == 1]])
+    assert over == (len(cat) > 4096)
+    if over:
+        np.testing.assert_array_equal(kept, cat)
+        cat = cat[np.argpartition(-cat[:, 0], 4095)[:4096]]
+        kept, best, kth, over = _kernels.seed_leaves(cat, cat[:0], 1, 3, 0.25, 0.1, 4096)
+    srt = cat[np.lexsort((cat[:, 2], cat[:, 1], cat[:, 3], -cat[:, 0]))]
+    keep = distinct(srt, 3, 0.25, 0.1)
+    ref_kth = srt[keep[-1], 0] if len(keep) == 3 else -1.0
+    np.testing.assert_array_equal(best, srt[keep])
+    assert kth == ref_kth
+    np.testing.assert_array_equal(kept, srt[srt[:, 0] >= ref_kth])
+
+
+def test_cell_bases_and_top_blocks_match_numpy():
+    # Reference: the numpy steps correlative.search used (floor, clip, pad, flatten; a meshgrid).
+    rng = np.random.default_rng(6)
+    cells = rng.uniform(-300.0, 300.0, (50, 2, 9))
+    cells[0, 0, 0] = 7.0                          # exactly on a cell edge
+    offset = rng.uniform(-20.0, 20.0, (2, 9))
+    reach, w, h, pad = 60, 150, 120, 100
+    hp = h + 2 * pad
+    ref = np.floor(cells + offset)
+    np.clip(ref, -reach, np.array([[w - 1 + reach], [h - 1 + reach]]), out=ref)
+    ref += pad
+    ref = (ref[:, 0] * hp + ref[:, 1]).T.astype(np.int64)
+    got = _kernels.cell_bases(cells, offset, reach, float(w - 1 + reach), float(h - 1 + reach), float(pad), float(hp))
+    np.testing.assert_array_equal(got, ref)
+    assert (ref == pad - reach + (pad - reach) * hp).any() or (ref < (pad - reach + 1) * hp).any()   # clipped
+    starts = np.array([-35, -19, -3, 13, 29])
+    ta, tx, ty = np.meshgrid(np.arange(4), starts, starts, indexing="ij")
+    ref_tops = np.column_stack([ta.ravel(), tx.ravel(), ty.ravel(), np.full(ta.size, 4)])
+    np.testing.assert_array_equal(_kernels.top_blocks(4, starts, 4), ref_tops)
+
+
+def test_stamp_grid_matches_maximum_at():
+    # Reference: numpy's np.maximum.at over every (occupied cell, stamp offset) pair inside the grid.
+    from closurecheck.registration.correlative import _stamp
+
+    rng = np.random.default_rng(2)
+    rows, cols = 40, 55
+    occupied = np.unique(rng.integers(0, rows * cols, 120))
+    di, dj, value = _stamp(0.1, 0.1)
+    ti = occupied[:, None] // cols + di
+    tj = occupied[:, None] % cols + dj
+    inside = (ti >= 0) & (ti < rows) & (tj >= 0) & (tj < cols)
+    ref = np.zeros((rows, cols), np.uint8)
+    np.maximum.at(ref.ravel(), (ti * cols + tj)[inside], np.broadcast_to(value, ti.shape)[inside])
+    got = _kernels.stamp_grid(occupied, rows, cols, di, dj, value)
+    np.testing.assert_array_equal(got, ref)
+    assert (~inside).any() and value.max() == 255 and len(np.unique(ref)) > 5
