@@ -20,10 +20,12 @@ The search here is a hypothesis test with the free-space check as the
 judge, which needs no ground truth:
 
 1. the unchecked steps form stretches (runs of consecutive steps);
-2. each stretch is scored by the trouble near it: keyframes of
-   contradicting pairs, and ends of closures that registered well but were
-   rejected as inconsistent with the odometry or with each other;
-3. for the few best-scored stretches, one at a time, the stretch is given
+2. a stretch is a suspect when one slip there would let at least one
+   closure that the odometry gate rejected pass; suspects are ranked by
+   how many, then by the trouble near them: keyframes of contradicting
+   pairs, and ends of closures that registered well but were rejected as
+   inconsistent with the odometry or with each other;
+3. for the few best-ranked suspects, one at a time, the stretch is given
    the covariance of one slip of up to ``unseen_slip_max_m`` and
    ``unseen_slip_max_rad`` (two standard deviations, shared among its
    steps) and the whole decision is taken again;
@@ -200,13 +202,15 @@ def search_unseen_slips(result, decide, chain: OdometryChain, unchecked, options
         before = _count(best_result)
         if (not before and not kept) or tried.all():
             break
-        # First the stretches that would explain the most gate rejections (a
-        # slip lies inside the chains of the closures it bends), then those
-        # with the most trouble near them.
+        # Only stretches where a slip would undo at least one gate rejection
+        # (a slip lies inside the chains of the closures it bends); the most
+        # such rejections first, then the most trouble near.  On a 5,000-scan
+        # yard whose 5 contradicting pairs no slip explains, trying the four
+        # stretches nearest the trouble cost 9.5 s and changed nothing.
         explained = _explained_counts(best_result, runs, chain, steps, src, dst, delta, options, cons)
         near = _scores(runs, _trouble(best_result, src, dst))
         ranked = np.lexsort((-near, -explained))
-        order = [r for r in ranked if not tried[r] and (explained[r] or near[r])][:_SUSPECTS]
+        order = [r for r in ranked if not tried[r] and explained[r]][:_SUSPECTS]
         best = None
         for r in order:
             tried[r] = True

@@ -50,7 +50,8 @@ def _verification(contradictions, accepted, scale=1.0, n=10):
     acc = np.zeros(k, dtype=bool)
     acc[:accepted] = True
     reason = np.where(acc, "accepted", "odometry_gate")
-    return Verification(reason=reason, accepted=acc, closure_covariance=np.tile(np.eye(3), (k, 1, 1)), figures={},
+    return Verification(reason=reason, accepted=acc, closure_covariance=np.tile(np.diag([1e-4, 1e-4, 1e-6]), (k, 1, 1)),
+                        figures={},
                         poses=np.zeros((n, 3)), clique_exact=True, clique_size=accepted, odometry_scale=scale,
                         free_space=free)
 
@@ -75,8 +76,11 @@ def _search(initial, outcomes, unchecked, chain=None):
     kept_steps: set = set()
     k = len(initial.reason)
     src, dst = np.zeros(k, np.intp), np.full(k, len(chain) - 1, np.intp)
+    # Every rejected closure agrees with the odometry to within a slip (0.1 m), so a slip in any
+    # stretch would undo its gate rejection: every stretch is a suspect.
+    delta = np.tile(se2.between(chain.poses[0], chain.poses[-1]) + [0.1, 0.0, 0.0], (k, 1))
     out = search_unseen_slips(initial, decide, chain, np.asarray(unchecked), VerifyOptions(), ConsistencyOptions(),
-                              src, dst, np.zeros((k, 3)))
+                              src, dst, delta)
     return out, tried
 
 
@@ -101,6 +105,19 @@ def test_no_stretch_is_kept_when_none_lowers_the_contradictions():
     initial = _verification(3, 20)
     out, tried = _search(initial, {2: _verification(3, 60), 5: _verification(5, 30)}, [2, 5])
     assert out is initial and len(tried) == 2
+
+
+def test_a_stretch_that_explains_no_gate_rejection_is_not_tried():
+    # The rejected closures are 3 m off the odometry: no slip of up to 0.3 m explains them.
+    chain = _chain()
+    initial = _verification(4, 20)
+    k = len(initial.reason)
+    calls = []
+    delta = np.tile(se2.between(chain.poses[0], chain.poses[-1]) + [3.0, 0.0, 0.0], (k, 1))
+    out = search_unseen_slips(initial, lambda steps: calls.append(1) or _verification(0, 30), chain,
+                              np.array([2, 5]), VerifyOptions(), ConsistencyOptions(), np.zeros(k, np.intp),
+                              np.full(k, len(chain) - 1, np.intp), delta)
+    assert out is initial and not calls
 
 
 def test_more_closures_alone_never_justify_the_first_stretch():
