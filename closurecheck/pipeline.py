@@ -255,6 +255,17 @@ def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPai
         raise InputError(f"{len(cands)} candidate pairs to register, more than max_pairs = {config.max_pairs} "
                          f"(--max-pairs, docs/cli.md): that would take hours; raise the cap or split the work",
                          log.source or None)
+    exact_limit = config.verify.max_exact_closures
+    if config.verify.pair_window_m is None and len(cands) > exact_limit:
+        # Refused now rather than killed for memory after the registration
+        # (a 100,000-scan log: 7 minutes of registration, then out of memory
+        # in the pairwise test, docs/performance.md).
+        pairs = len(cands) * (len(cands) - 1) // 2
+        raise InputError(f"{len(cands)} candidate pairs, more than verify.max_exact_closures = {exact_limit}: the "
+                         f"exact pairwise consistency test would compare {pairs / 1e9:.1f} billion pairs of closures "
+                         f"and keep the failing ones in memory; split the log, or set verify.pair_window_m to test "
+                         f"only cycles within that many metres of odometry (the accepted set can then differ from "
+                         f"the exact one, docs/verification.md)", log.source or None)
     regs = st.run("registration", _register_candidates, log, cands, config, runner, progress)
 
     review = notes_review = verifier_reason = None

@@ -4,6 +4,7 @@ and no half-written or lost outputs."""
 import errno
 import json
 
+import numpy as np
 import pytest
 
 from closurecheck import cli, pipeline
@@ -440,3 +441,37 @@ def test_a_second_ctrl_c_exits_at_once_with_a_message(interrupt_case, tmp_path):
     assert took < 20
     assert survivors == []
     assert unchanged
+
+
+def test_more_candidates_than_the_exact_pairwise_test_takes_are_refused_before_registration():
+    # The exact PCM test is quadratic in memory on drifted logs (docs/verification.md); a run that would
+    # exceed verify.max_exact_closures is refused with one line before any candidate is registered.
+    import dataclasses
+    from pathlib import Path
+
+    from closurecheck import simulate_log
+    from closurecheck.config import RunConfig
+    from closurecheck.errors import InputError
+    from closurecheck.pipeline import run_log
+    from closurecheck.runners.serial import SerialRunner
+
+    log = simulate_log("ring", seed=1, scans=400)
+    base = RunConfig(jobs=1)
+    tight = dataclasses.replace(base, verify=dataclasses.replace(base.verify, max_exact_closures=3))
+    registered = []
+
+    class Counting(SerialRunner):
+        def register(self, points, src, dst, *args, **kwargs):
+            registered.append((np.asarray(src), np.asarray(dst)))
+            return super().register(points, src, dst, *args, **kwargs)
+
+    with pytest.raises(InputError) as err:
+        run_log(log, tight, runner=Counting())
+    text = str(err.value)
+    assert "verify.max_exact_closures = 3" in text and "verify.pair_window_m" in text and "\n" not in text
+    # only the calibration's keyframe steps were registered (each keyframe to the next), no candidate
+    assert len(registered) == 1
+    src, dst = registered[0]
+    assert np.array_equal(src[1:], dst[:-1])
+    doc = (Path(__file__).resolve().parents[1] / "docs" / "verification.md").read_text()
+    assert f"{RunConfig().verify.max_exact_closures:,}" in doc

@@ -101,6 +101,17 @@ class VerifyOptions:
         fail (odometry drift beyond its model): docs/performance.md has the
         measured differences (on a simulated 20,000-scan log, 150 m accepted
         192 wrong closures, 300 m changed 97 verdicts, 600 m 14).
+    max_exact_closures : with ``pair_window_m`` None, a run with more
+        candidates than this is refused before registration (exit status
+        2): the exact test is quadratic in time and in the memory of the
+        failing pairs, a fixed share of all pairs on drifted logs.  At
+        20,000 scans (13,334 candidates) it took 4.9 s and the whole
+        verification 645 MB; a 100,000-scan route driven round and round
+        (74,653 closures, 2.8 billion pairs) ran out of memory storing the
+        conflicts (docs/performance.md, "End to end at 5,000 scans, and the
+        100,000-scan size").  25,000 closures are 312 million pairs, about
+        20 s compiled and up to 1.5 GB of conflicts at the 61% share
+        measured on uncalibrated drift.
     clique_max_expansions : search budget of the exact maximum clique; past
         it the best clique found is used and the report says so.  An
         expansion on a conflict component wider than 512 closures counts
@@ -171,6 +182,7 @@ class VerifyOptions:
     gate_max_chain_std_rad: float = setting(0.25, above=0.0)
     pair_probability: float = setting(0.999, above=0.0, below=1.0)
     pair_window_m: float | None = setting(None, above=0.0)
+    max_exact_closures: int = setting(25_000, at_least=1)
     clique_max_expansions: int = setting(200_000, at_least=1)
     min_clique_size: int = setting(1, at_least=1)
     rival_margin: float = setting(1.0, at_least=1.0)
