@@ -305,7 +305,7 @@ def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPai
     if len(cands) == 0:
         notes.append(_no_candidates_note(log, external, also_propose))
     return RunOutcome(log=log, config=config, keyframes=keyframes, odom=log.odom[keyframes],
-                      step_covariances=chain.steps if ver.odometry_steps is None else ver.odometry_steps,
+                      step_covariances=ver.odometry_steps,
                       candidates=cands, registrations=regs, verification=ver, verdicts=verdicts, graph=graph,
                       calibration=cal, trust=trust,
                       timings=st.timings, notes=tuple(notes))
@@ -324,8 +324,7 @@ def _graph(log, chain: OdometryChain, ver: Verification, v: VerdictTable) -> Pos
     # drift removed and the covariance calibrated, so that a downstream
     # solver reaches the same optimum.  Nodes keep the input odometry.
     used = chain.poses if ver.odometry_poses is None else ver.odometry_poses
-    steps = chain.steps if ver.odometry_steps is None else ver.odometry_steps
-    o_src, o_dst, o_delta, o_info = odometry_edges(used, steps * ver.odometry_scale)
+    o_src, o_dst, o_delta, o_info = odometry_edges(used, ver.odometry_steps * ver.odometry_scale)
     odom = log.odom[chain.ids]
     acc = np.flatnonzero(v.accepted)
     l_info = np.linalg.inv(v.covariance[acc]) if len(acc) else np.zeros((0, 3, 3))

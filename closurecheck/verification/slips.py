@@ -193,7 +193,6 @@ def search_unseen_slips(result, decide, chain: OdometryChain, unchecked, options
     stretches widened (``odometry_steps``, ``unseen_slips`` and a note set).
     """
     runs = stretches(unchecked)
-    runs = runs[runs[:, 1] < len(chain) - 1]
     steps = np.array(chain.steps, dtype=float)
     widen = slip_covariance(options.unseen_slip_max_m, options.unseen_slip_max_rad)
     kept: list[UnseenSlip] = []

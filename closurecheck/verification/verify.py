@@ -234,7 +234,7 @@ class Verification:
     notes : human-readable remarks for the report.
     odometry_steps : (N - 1, 3, 3) the step covariances the graph was
         optimised with, before ``odometry_scale``: the chain's, or with the
-        unseen slips' stretches widened; None means the chain's.
+        unseen slips' stretches widened (:func:`verify` always sets it).
     unseen_slips : the :class:`~closurecheck.verification.slips.UnseenSlip`
         stretches whose widening was kept.
     set_aside : the largest consistent set when it was set aside for lack
@@ -700,10 +700,9 @@ def verify(closures: RegisteredClosures, chain: OdometryChain, options: VerifyOp
     gated = np.flatnonzero(result.reason == str(Reason.ODOMETRY_GATE))
     if not len(gated):
         return result
-    steps = (chain.steps if result.odometry_steps is None else result.odometry_steps) * result.odometry_scale
-    odom = chain.poses if result.odometry_poses is None else result.odometry_poses
     explained = explained_by_unseen_slip(src[gated], dst[gated], closures.delta[gated],
-                                         result.closure_covariance[gated], odom, steps, unchecked, options,
+                                         result.closure_covariance[gated], result.odometry_poses,
+                                         result.odometry_steps * result.odometry_scale, unchecked, options,
                                          _consistency_options(options))
     if not explained.any():
         return result
@@ -844,4 +843,5 @@ def _decide(closures: RegisteredClosures, chain: OdometryChain, options: VerifyO
                         clique_exact=clique_exact, clique_size=0 if clique is None else clique.size,
                         set_aside=stage.set_aside,
                         odometry_scale=scale, odometry_poses=np.array(odom_poses, dtype=float),
-                        heading_drift=drift, free_space=free, rivals=stage.rivals, notes=tuple(notes))
+                        heading_drift=drift, free_space=free, rivals=stage.rivals, notes=tuple(notes),
+                        odometry_steps=step_covariances)
