@@ -1,15 +1,24 @@
 """The shipped demo log's results, held against a stored record.
 
 Refactoring must not change what the tool decides: the verdict of every
-candidate and the optimised poses (to a micrometre, far above the last-bit
-differences between machines' floating point, far below anything a user
-would see).  A change that is meant to alter results updates the record in
-the same commit:
+candidate and the optimised poses (to 10 micrometres, far below anything a
+user would see).  A change that is meant to alter results updates the record
+in the same commit:
 
     CLOSURECHECK_UPDATE_DEMO_RECORD=1 .venv/bin/python -m pytest tests/test_demo_record.py
+
+Machines differ in the last bits of their floating point (vector units,
+BLAS kernels), and a decision that sits exactly on its bound can go either
+way: on an AMD EPYC machine without AVX-512 (2026-12-03), two of the 2,712
+demo candidates went from not_converged to odometry_gate against the record
+made on the previous machine (their ICP met its step tolerance on one and
+not on the other), and the poses rounded to a micrometre hashed
+differently, though the accepted set was the same.  So the record holds every verdict and every
+pose, and the test allows what such bits can do and nothing more: the same
+accepted pairs, at most ``MAX_REASON_FLIPS`` rejected candidates with
+another rejection reason, poses within ``POSE_TOLERANCE``.
 """
 
-import hashlib
 import json
 import os
 from pathlib import Path
@@ -26,8 +35,10 @@ from closurecheck.runners.factory import make_runner
 RECORD = Path(__file__).parent / "data" / "demo_record.json"
 
 
-def _digest(rows) -> str:
-    return hashlib.sha256("\n".join(rows).encode()).hexdigest()
+# Rejected candidates whose reason may differ between machines (0.15% of the demo's).
+MAX_REASON_FLIPS = 4
+# Metres and radians; the optimiser stops at 1e-10 relative change, far below this.
+POSE_TOLERANCE = 1e-5
 
 
 @pytest.mark.slow
@@ -38,12 +49,20 @@ def test_demo_results_match_the_record():
     finally:
         runner.close()
     v = out.verdicts
-    verdict_rows = [f"{a},{b},{r}" for a, b, r in zip(v.src.tolist(), v.dst.tolist(), v.reason.astype(str))]
-    # round() then + 0.0 turns -0.0 into 0.0, so a sign flip of a value within
-    # 1e-14 of zero cannot change the text.
-    pose_rows = [",".join(f"{round(x, 6) + 0.0:.6f}" for x in p) for p in np.asarray(out.poses).tolist()]
+    verdicts = [f"{a},{b},{r}" for a, b, r in zip(v.src.tolist(), v.dst.tolist(), v.reason.astype(str))]
+    # round() then + 0.0 turns -0.0 into 0.0.
+    poses = [[round(x, 6) + 0.0 for x in p] for p in np.asarray(out.poses).tolist()]
     got = {"candidates": len(v), "accepted": int(v.accepted.sum()), "reasons": v.counts(),
-           "verdicts_sha256": _digest(verdict_rows), "poses_um_sha256": _digest(pose_rows)}
+           "verdicts": verdicts, "poses": poses}
     if os.environ.get("CLOSURECHECK_UPDATE_DEMO_RECORD") == "1":
-        RECORD.write_text(json.dumps(got, indent=1) + "\n")
-    assert got == json.loads(RECORD.read_text())
+        RECORD.write_text(json.dumps(got, indent=0) + "\n")
+    record = json.loads(RECORD.read_text())
+    assert got["candidates"] == record["candidates"]
+    pair = [row.rsplit(",", 1) for row in verdicts]
+    ref = [row.rsplit(",", 1) for row in record["verdicts"]]
+    assert [p for p, _ in pair] == [p for p, _ in ref], "the candidate pairs changed"
+    accepted = {p for p, r in pair if r == "accepted"}
+    assert accepted == {p for p, r in ref if r == "accepted"}, "the accepted set changed"
+    flips = [(p, r0, r1) for (p, r1), (_, r0) in zip(pair, ref) if r0 != r1]
+    assert len(flips) <= MAX_REASON_FLIPS, f"{len(flips)} verdicts changed, e.g. {flips[:5]}"
+    np.testing.assert_allclose(np.asarray(poses), np.asarray(record["poses"]), rtol=0, atol=POSE_TOLERANCE)
