@@ -15,6 +15,14 @@ and ``_wrap`` follows numpy's floating remainder), so the squared distances
 are the same bits and the conflicts the same pairs;
 tests/verification/test_pcm_kernels.py holds the two against each other.
 
+Threads: :func:`failing_pairs` runs on every core (``parallel=True``,
+numba's default thread count), the other kernels on the calling thread.
+numba picks its threading layer on the first parallel call (OpenMP here;
+TBB where installed, else its own work queue).  GNU OpenMP is not safe
+across a ``fork`` without ``exec`` after a parallel region; the project's
+worker pools start from a fork server or by spawning, never by forking
+this process.
+
 Inputs are the per-closure columns of ``consistency._ClosureColumns`` as one
 (K, 20) float array ``q`` (one row per closure, so a pair reads two short
 rows), the oriented nodes ``src``, ``dst`` (K,) and the prefix sums' six
@@ -141,14 +149,19 @@ def _distance_sq(q, src, dst, pc, i, j, shared):
     return num / det
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, nogil=True)
 def pair_distances(q, src, dst, pc, first, second, shared):
     """Squared distances of the pairs (first[p], second[p]), (P,) float64.
 
-    Each p writes only out[p], so the threads' split cannot change a bit.
+    Serial on purpose: the windowed test calls it once per block of about
+    100,000 pairs (5 ms), between numpy steps that build the next block; a
+    parallel version (prange over p) doubled that path's CPU time and
+    wall time on the shared 2-core machine (K = 7,613, 300 m window,
+    3.6 M pairs: 0.50 -> 1.0-1.2 s, load 2.8), the idle thread spinning
+    at every block's barrier.
     """
     out = np.empty(len(first))
-    for p in prange(len(first)):
+    for p in range(len(first)):
         out[p] = _distance_sq(q, src, dst, pc, first[p], second[p], shared)
     return out
 
@@ -177,9 +190,9 @@ def _test_row(q, src, dst, pc, shared, threshold, i, bits, at):
 
 # Words of failure bits per wave (see failing_pairs): 8 MB, 64 M pair tests,
 # 3.5-4.5 s on one core, so a K = 20,000 test has four waves and waits at
-# eight barriers.  Each barrier costs a thread wake-up, a few ms when the
-# cores are shared (measured with waves of a few thousand pairs: 8 ms each
-# at load 3.6 on 2 cores), which is why the waves are large and hold bits.
+# eight barriers.  A barrier costs thread wake-ups, milliseconds when the
+# cores are shared (waves of 4,099 pairs, two barriers each: about 10 ms a
+# wave at load 3.6 on 2 cores), which is why the waves are large and hold bits.
 WAVE_WORDS = 1 << 20
 
 
