@@ -227,10 +227,12 @@ def failing_pairs(q, src, dst, pc, shared, threshold, rows, wave_words=WAVE_WORD
     m = len(rows)
     words = np.empty(m, np.int64)
     widest = 0
+    every = 0
     for r in range(m):
         words[r] = (max(k - 1 - rows[r], 0) + 63) // 64
         widest = max(widest, words[r])
-    bits = np.empty(max(wave_words, widest), np.uint64)
+        every += words[r]
+    bits = np.empty(max(min(wave_words, every), widest, 1), np.uint64)
     start = np.empty(m, np.int64)
     counts = np.zeros(m, np.int64)
     fi = np.empty(1024, np.int32)
