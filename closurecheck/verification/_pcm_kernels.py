@@ -205,8 +205,9 @@ def failing_pairs(q, src, dst, pc, shared, threshold, rows, wave_words=WAVE_WORD
     grows by doubling, so the memory is the failing pairs plus one wave's
     bits (below, at most 8 MB), never the K^2 / 2 tested.
 
-    Why parallel: the K^2 / 2 tests are the largest single-threaded step of
-    verify() (about 13 s at 20,000 scans) and every row is independent.
+    Why parallel: the K^2 / 2 tests are a large single-threaded step of
+    verify() (4-5 s of it at 20,000 scans, docs/performance.md, "The pair
+    test compiled") and every row is independent.
     numba's default thread count (one per core) is used; verification runs
     after registration, so no registration worker pool holds the cores then.
 
