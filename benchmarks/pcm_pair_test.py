@@ -8,6 +8,9 @@ trees that must give the same answer can be seen to.
 
     python benchmarks/pcm_pair_test.py --trees /tmp/before /work/wt/pcm [--k 9279] [--bias 0.0004] [--scale 0.002]
 
+With ``NUMBA_NUM_THREADS=1`` in the environment (the children inherit it)
+the pair test, parallel since 2026-12-03, runs on one thread.
+
 A tree is a checkout of the project (``git archive COMMIT | tar -x -C DIR``);
 each child runs with it first on PYTHONPATH.  Writes nothing; the numbers go
 into docs/performance.md.

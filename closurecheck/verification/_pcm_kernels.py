@@ -15,6 +15,14 @@ and ``_wrap`` follows numpy's floating remainder), so the squared distances
 are the same bits and the conflicts the same pairs;
 tests/verification/test_pcm_kernels.py holds the two against each other.
 
+Threads: :func:`failing_pairs` runs on every core (``parallel=True``,
+numba's default thread count), the other kernels on the calling thread.
+numba picks its threading layer on the first parallel call (OpenMP here;
+TBB where installed, else its own work queue).  GNU OpenMP is not safe
+across a ``fork`` without ``exec`` after a parallel region; the project's
+worker pools start from a fork server or by spawning, never by forking
+this process.
+
 Inputs are the per-closure columns of ``consistency._ClosureColumns`` as one
 (K, 20) float array ``q`` (one row per closure, so a pair reads two short
 rows), the oriented nodes ``src``, ``dst`` (K,) and the prefix sums' six
@@ -25,7 +33,7 @@ from __future__ import annotations
 
 
 import numpy as np
-from numba import njit
+from numba import njit, prange
 
 # Columns of q.
 XAX, XAY, CA, SA, MX, MY, MT, MC, MS, NX, NY, NT, NC, NS = range(14)
@@ -143,41 +151,154 @@ def _distance_sq(q, src, dst, pc, i, j, shared):
 
 @njit(cache=True, nogil=True)
 def pair_distances(q, src, dst, pc, first, second, shared):
-    """Squared distances of the pairs (first[p], second[p]), (P,) float64."""
+    """Squared distances of the pairs (first[p], second[p]), (P,) float64.
+
+    Serial on purpose: the windowed test calls it once per block of about
+    100,000 pairs (5 ms), between numpy steps that build the next block; a
+    parallel version (prange over p) doubled that path's CPU time and
+    wall time on the shared 2-core machine (K = 7,613, 300 m window,
+    3.6 M pairs: 0.50 -> 1.0-1.2 s, load 2.8), the idle thread spinning
+    at every block's barrier.
+    """
     out = np.empty(len(first))
     for p in range(len(first)):
         out[p] = _distance_sq(q, src, dst, pc, first[p], second[p], shared)
     return out
 
 
-@njit(cache=True, nogil=True)
-def failing_pairs(q, src, dst, pc, shared, threshold, rows):
+@njit(cache=True, nogil=True, inline="always")
+def _test_row(q, src, dst, pc, shared, threshold, i, bits, at):
+    """Test (i, j) for every j > i; set bit j - i - 1 of the words from bits[at] where it fails; return how many."""
+    n = 0
+    word = np.uint64(0)
+    bit = np.uint64(0)
+    one = np.uint64(1)
+    for j in range(i + 1, len(src)):
+        if _distance_sq(q, src, dst, pc, i, j, shared) > threshold:
+            word |= one << bit
+            n += 1
+        bit += one
+        if bit == np.uint64(64):
+            bits[at] = word
+            at += 1
+            word = np.uint64(0)
+            bit = np.uint64(0)
+    if bit != np.uint64(0):
+        bits[at] = word
+    return n
+
+
+# Words of failure bits per wave (see failing_pairs): 8 MB, 64 M pair tests,
+# 3.5-4.5 s on one core, so a K = 20,000 test has four waves and waits at
+# eight barriers.  A barrier costs thread wake-ups, milliseconds when the
+# cores are shared (waves of 4,099 pairs, two barriers each: about 10 ms a
+# wave at load 3.6 on 2 cores), which is why the waves are large and hold bits.
+WAVE_WORDS = 1 << 20
+
+
+@njit(cache=True, parallel=True)
+def failing_pairs(q, src, dst, pc, shared, threshold, rows, wave_words=WAVE_WORDS):
     """Pairs (i, j), i in ``rows``, j > i, whose squared distance exceeds ``threshold``.
 
     Returns two int32 arrays (i, j) of the failing pairs, in the order
-    tested (i ascending, then j).  Their storage grows by doubling, so the
-    memory is the failing pairs, never the K^2 / 2 tested.
+    tested (``rows`` in the given order, then j ascending).  Their storage
+    grows by doubling, so the memory is the failing pairs plus one wave's
+    bits (below, at most 8 MB), never the K^2 / 2 tested.
+
+    Why parallel: the K^2 / 2 tests are a large single-threaded step of
+    verify() (4-5 s of it at 20,000 scans, docs/performance.md, "The pair
+    test compiled") and every row is independent.
+    numba's default thread count (one per core) is used; verification runs
+    after registration, so no registration worker pool holds the cores then.
+
+    How the order is kept: rows go in waves of consecutive rows holding
+    about ``wave_words`` 64-bit words of one bit per tested pair; each row
+    sets its failure bits in its own words (whole words, so no two threads
+    write the same word) and stores its count.  After the wave a prefix sum
+    of the counts places every row's run in the output, in row order, and
+    the rows' bits are turned into j, ascending.  Which thread tests a row
+    changes no value and no position, so the arrays are those of the serial
+    loop (tests/verification/test_pcm_kernels.py).  Row i tests K - 1 - i
+    pairs, so each parallel iteration takes the two rows at either end of
+    what is left of the wave (lo + t and hi - 1 - t): every iteration then
+    costs about the same, and numba's static split of the iterations
+    between threads is balanced.
     """
     k = len(src)
+    m = len(rows)
+    words = np.empty(m, np.int64)
+    widest = 0
+    every = 0
+    for r in range(m):
+        words[r] = (max(k - 1 - rows[r], 0) + 63) // 64
+        widest = max(widest, words[r])
+        every += words[r]
+    bits = np.empty(max(min(wave_words, every), widest, 1), np.uint64)
+    start = np.empty(m, np.int64)
+    counts = np.zeros(m, np.int64)
     fi = np.empty(1024, np.int32)
     fj = np.empty(1024, np.int32)
     n = 0
-    for r in range(len(rows)):
-        i = rows[r]
-        for j in range(i + 1, k):
-            d2 = _distance_sq(q, src, dst, pc, i, j, shared)
-            if d2 > threshold:
-                if n == len(fi):
-                    gi = np.empty(2 * n, np.int32)
-                    gj = np.empty(2 * n, np.int32)
-                    gi[:n] = fi
-                    gj[:n] = fj
-                    fi = gi
-                    fj = gj
-                fi[n] = i
-                fj[n] = j
-                n += 1
+    lo = 0
+    while lo < m:
+        hi = lo
+        used = 0
+        while hi < m and (hi == lo or used + words[hi] <= len(bits)):
+            start[hi] = used
+            used += words[hi]
+            hi += 1
+        rows_in_wave = hi - lo
+        half = (rows_in_wave + 1) // 2
+        for t in prange(half):
+            r = lo + t
+            counts[r] = _test_row(q, src, dst, pc, shared, threshold, rows[r], bits, start[r])
+            u = hi - 1 - t
+            if u != r:
+                counts[u] = _test_row(q, src, dst, pc, shared, threshold, rows[u], bits, start[u])
+        # Where each row's run goes: the prefix sum of the counts (one add a row).
+        placed = np.empty(rows_in_wave, np.int64)
+        total = n
+        for r in range(lo, hi):
+            placed[r - lo] = total
+            total += counts[r]
+        if total > len(fi):
+            size = max(2 * len(fi), total)
+            gi = np.empty(size, np.int32)
+            gj = np.empty(size, np.int32)
+            # Element by element: numba's parallel rewrite of the slice copy
+            # asserts equal sizes of the whole destination and the slice.
+            for c in range(n):
+                gi[c] = fi[c]
+                gj[c] = fj[c]
+            fi = gi
+            fj = gj
+        for t in prange(half):
+            _bits_to_pairs(rows, words, start, placed, bits, lo + t, lo, fi, fj)
+            u = hi - 1 - t
+            if u != lo + t:
+                _bits_to_pairs(rows, words, start, placed, bits, u, lo, fi, fj)
+        n = total
+        lo = hi
     return fi[:n].copy(), fj[:n].copy()
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _bits_to_pairs(rows, words, start, placed, bits, r, lo, fi, fj):
+    """Write row r's failing pairs (rows[r], j), j ascending, from placed[r - lo] on."""
+    i = rows[r]
+    to = placed[r - lo]
+    zero = np.uint64(0)
+    one = np.uint64(1)
+    for w in range(words[r]):
+        word = bits[start[r] + w]
+        j = i + 1 + 64 * w
+        while word != zero:
+            if word & one:
+                fi[to] = i
+                fj[to] = j
+                to += 1
+            word >>= one
+            j += 1
 
 
 @njit(cache=True, nogil=True)

@@ -655,7 +655,8 @@ def pairwise_consistency(src, dst, deltas, covariances, poses, prefix,
     counts as consistent.
 
     The distances are computed by a compiled loop (``_pcm_kernels``) that
-    gives :func:`pair_distances`' values to the last bit.  Memory is the
+    gives :func:`pair_distances`' values to the last bit; without a window
+    it runs on every core and returns the pairs in the serial order.  Memory is the
     failing pairs (plus, with a window, one block of
     ``options.pairs_per_block`` candidate pairs): no K x K matrix is formed
     (the exhaustive reference kept 5 K^2 bytes, 2 GB at K = 20,000).  Time
@@ -689,7 +690,8 @@ def pairwise_consistency(src, dst, deltas, covariances, poses, prefix,
         cols = _columns(_closure_terms(src, dst, deltas, covariances, poses))
         # The compiled pair test (_pcm_kernels): the same bits as _pair_block,
         # 56-71 against 330-410 ns per pair with everything around it
-        # (37.7 M pairs, docs/performance.md, "The pair test compiled").
+        # (37.7 M pairs, docs/performance.md, "The pair test compiled");
+        # every pair at once runs on all cores, the window's blocks on one.
         q = _kernel_rows(cols)
         pc = np.ascontiguousarray(np.column_stack(_prefix_columns(prefix)))
         a, b = cols.src.astype(np.int64), cols.dst.astype(np.int64)
