@@ -50,6 +50,7 @@ import scipy.sparse
 
 from ..core.options import options, setting
 from ..errors import InputError
+from ._clique_kernels import greedy_starts
 
 __all__ = ["CliqueOptions", "CliqueResult", "core_numbers", "heuristic_clique", "max_clique", "max_clique_of_conflicts"]
 
@@ -1025,39 +1026,18 @@ def _heuristic_conflicts(c, core, order, w, weighted):
     """:func:`_heuristic` on the complement of ``c`` (positions as in :class:`_Graph`).
 
     Returns (clique as original vertex indices, size, weight).  Each start
-    costs O(n + conflicts) instead of bitset operations over n bits.
+    costs O(n + conflicts) instead of bitset operations over n bits; the
+    loop is compiled (:mod:`closurecheck.verification._clique_kernels`).
     """
     n = c.shape[0]
-    pos_order = order[::-1]
-    pos = np.empty(n, dtype=np.intp)
+    pos_order = np.ascontiguousarray(order[::-1], dtype=np.int64)
+    pos = np.empty(n, dtype=np.int64)
     pos[pos_order] = np.arange(n)
-    core_pos = core[pos_order]
-    wpos = w[pos_order]
-    best, best_size, best_w = [], 0, 0.0
-    for p in range(min(n, _HEURISTIC_STARTS)):
-        limit = int(core_pos[p]) + 1
-        if limit < best_size or (limit == best_size and not weighted):
-            break
-        count = int(np.count_nonzero(core_pos >= max(best_size - 1, 0)))
-        cand = np.zeros(n, dtype=bool)
-        cand[:count] = True
-        cand[p] = False
-        v = pos_order[p]
-        cand[pos[c.indices[c.indptr[v]:c.indptr[v + 1]]]] = False
-        clique = [p]
-        # The lowest candidate position is taken each time and candidates
-        # only ever drop out, so one forward scan finds them all.
-        for u in np.flatnonzero(cand).tolist():
-            if not cand[u]:
-                continue
-            clique.append(u)
-            vu = pos_order[u]
-            cand[pos[c.indices[c.indptr[vu]:c.indptr[vu + 1]]]] = False
-        size = len(clique)
-        weight = float(sum(wpos[q] for q in clique))
-        if _better(size, weight, best_size, best_w, weighted):
-            best, best_size, best_w = clique, size, weight
-    return pos_order[best], best_size, best_w
+    core_pos = np.ascontiguousarray(core[pos_order], dtype=np.int64)
+    wpos = np.ascontiguousarray(w[pos_order], dtype=np.float64)
+    best, best_size, best_w = greedy_starts(c.indptr, c.indices, pos, pos_order, core_pos, wpos,
+                                            _HEURISTIC_STARTS, bool(weighted))
+    return pos_order[best], int(best_size), float(best_w)
 
 
 def max_clique_of_conflicts(conflicts, weights=None, options: CliqueOptions = CliqueOptions()) -> CliqueResult:
