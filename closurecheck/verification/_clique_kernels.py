@@ -87,3 +87,30 @@ def greedy_starts(indptr, indices, pos, pos_order, core_pos, wpos, starts, weigh
             best_size = size
             best_w = weight
     return best, best_size, best_w
+
+
+@njit(cache=True, nogil=True)
+def is_symmetric(indptr, indices):
+    """True when every stored (i, j) of a square CSR pattern with sorted indices has (j, i) stored.
+
+    The same answer as ``(a != a.T).nnz == 0`` for a boolean matrix without
+    stored zeros, without forming the transpose: at 20,000 scans that
+    comparison took 1.4-2.7 s of the maximum clique (scipy converts the tens
+    of millions of conflicts to CSC and back); here each entry is one binary
+    search in the other row.
+    """
+    n = len(indptr) - 1
+    for i in range(n):
+        for k in range(indptr[i], indptr[i + 1]):
+            j = indices[k]
+            lo = indptr[j]
+            hi = indptr[j + 1]
+            while lo < hi:
+                mid = (lo + hi) // 2
+                if indices[mid] < i:
+                    lo = mid + 1
+                else:
+                    hi = mid
+            if lo == indptr[j + 1] or indices[lo] != i:
+                return False
+    return True

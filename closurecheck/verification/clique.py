@@ -50,7 +50,7 @@ import scipy.sparse
 
 from ..core.options import options, setting
 from ..errors import InputError
-from ._clique_kernels import greedy_starts
+from ._clique_kernels import greedy_starts, is_symmetric
 
 __all__ = ["CliqueOptions", "CliqueResult", "core_numbers", "heuristic_clique", "max_clique", "max_clique_of_conflicts"]
 
@@ -153,9 +153,9 @@ def _adjacency_csr(adjacency):
         a = a.copy()  # never modify the caller's matrix
         a.setdiag(False)
         a.eliminate_zeros()
-    if (a != a.T).nnz:
-        raise InputError("adjacency must be symmetric (an undirected graph)")
     a.sort_indices()
+    if not is_symmetric(a.indptr, a.indices):
+        raise InputError("adjacency must be symmetric (an undirected graph)")
     return a
 
 

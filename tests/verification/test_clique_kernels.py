@@ -88,3 +88,27 @@ def test_greedy_is_a_lower_bound_of_networkx_maximum():
     _, best = nx.max_weight_clique(comp, weight=None)
     assert greedy_size <= best
     assert max_clique_of_conflicts(scipy.sparse.csr_array(dense)).size == best
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_symmetry_check_agrees_with_scipy_transpose(seed):
+    # Reference: scipy.sparse's own transpose and comparison.
+    rng = np.random.default_rng(seed)
+    n = int(rng.integers(1, 300))
+    upper = scipy.sparse.random(n, n, density=0.05, random_state=seed, format="csr") > 0
+    sym = scipy.sparse.csr_array(upper + upper.T)
+    for a in (sym, scipy.sparse.csr_array(upper)):
+        a = scipy.sparse.csr_array(a, dtype=bool)
+        a.sort_indices()
+        expected = (a != a.T).nnz == 0
+        assert clique_module.is_symmetric(a.indptr, a.indices) == expected
+    if sym.nnz:
+        # One entry removed from a symmetric pattern breaks it.
+        broken = sym.tolil()
+        i, j = sym.nonzero()[0][0], sym.nonzero()[1][0]
+        if i != j:
+            broken[i, j] = False
+            broken = scipy.sparse.csr_array(broken.tocsr())
+            broken.eliminate_zeros()
+            broken.sort_indices()
+            assert not clique_module.is_symmetric(broken.indptr, broken.indices)
