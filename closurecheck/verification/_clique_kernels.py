@@ -114,3 +114,132 @@ def is_symmetric(indptr, indices):
             if lo == indptr[j + 1] or indices[lo] != i:
                 return False
     return True
+
+
+@njit(cache=True, nogil=True)
+def maximum_matching(indptr, indices, n_right):
+    """A maximum matching of a bipartite graph, Hopcroft and Karp (SIAM J. Comput. 2(4), 1973).
+
+    Left vertex v is joined to the right vertices ``indices[indptr[v]:indptr[v + 1]]``.
+    Returns (match_left (n_left,), match_right (n_right,)) with -1 for
+    unmatched vertices.  Why not scipy's ``maximum_bipartite_matching``: on
+    the double cover of the conflicts of a 100,000-scan log (74,607 closures,
+    15.9 M conflicts, window 600 m) it took 129 s; here a greedy first
+    matching leaves few vertices free, and each phase is one breadth-first
+    layering and depth-first searches along it, compiled.  Which maximum
+    matching is found does not matter to :func:`konig_reach`'s sets (see
+    there), so the split is the same.
+    """
+    n_left = len(indptr) - 1
+    match_l = np.full(n_left, -1, dtype=np.int64)
+    match_r = np.full(n_right, -1, dtype=np.int64)
+    for v in range(n_left):
+        for k in range(indptr[v], indptr[v + 1]):
+            u = indices[k]
+            if match_r[u] < 0:
+                match_l[v] = u
+                match_r[u] = v
+                break
+    unreached = np.iinfo(np.int64).max
+    dist = np.empty(n_left, dtype=np.int64)
+    queue = np.empty(n_left, dtype=np.int64)
+    edge = np.empty(n_left, dtype=np.int64)
+    stack = np.empty(n_left, dtype=np.int64)
+    while True:
+        # Layers of left vertices by alternating distance from the free ones.
+        head = 0
+        tail = 0
+        for v in range(n_left):
+            if match_l[v] < 0:
+                dist[v] = 0
+                queue[tail] = v
+                tail += 1
+            else:
+                dist[v] = unreached
+        found = False
+        while head < tail:
+            v = queue[head]
+            head += 1
+            for k in range(indptr[v], indptr[v + 1]):
+                w = match_r[indices[k]]
+                if w < 0:
+                    found = True
+                elif dist[w] == unreached:
+                    dist[w] = dist[v] + 1
+                    queue[tail] = w
+                    tail += 1
+        if not found:
+            return match_l, match_r
+        # Augmenting paths along the layers, depth first; a dead end is cut from the layering.
+        for v in range(n_left):
+            edge[v] = indptr[v]
+        for s in range(n_left):
+            if match_l[s] >= 0:
+                continue
+            top = 0
+            stack[0] = s
+            while top >= 0:
+                v = stack[top]
+                moved = False
+                while edge[v] < indptr[v + 1]:
+                    u = indices[edge[v]]
+                    w = match_r[u]
+                    if w < 0:
+                        # Flip the path: each left vertex on the stack takes the right vertex of its current edge.
+                        for i in range(top, -1, -1):
+                            x = stack[i]
+                            y = indices[edge[x]]
+                            match_l[x] = y
+                            match_r[y] = x
+                        top = -1
+                        moved = True
+                        break
+                    if dist[w] != unreached and dist[w] == dist[v] + 1:
+                        top += 1
+                        stack[top] = w
+                        moved = True
+                        break
+                    edge[v] += 1
+                if not moved:
+                    dist[v] = unreached
+                    top -= 1
+                    if top >= 0:
+                        edge[stack[top]] += 1
+
+
+@njit(cache=True, nogil=True)
+def konig_reach(indptr, indices, match_l, match_r):
+    """Vertices reached by alternating paths from the free left vertices of a maximum matching.
+
+    Left to right along any edge, right to left along the matching.  Returns
+    (reached_left (n_left,), reached_right (n_right,)) booleans.  These sets
+    do not depend on which maximum matching is given: the left ones are the
+    vertices some maximum matching leaves free, the right ones their
+    neighbours (the Dulmage-Mendelsohn decomposition; Dulmage and
+    Mendelsohn, Canad. J. Math. 10, 1958), so neither does Konig's cover
+    read off them.
+    """
+    n_left = len(indptr) - 1
+    reached_l = np.zeros(n_left, dtype=np.bool_)
+    reached_r = np.zeros(len(match_r), dtype=np.bool_)
+    queue = np.empty(n_left, dtype=np.int64)
+    tail = 0
+    for v in range(n_left):
+        if match_l[v] < 0:
+            reached_l[v] = True
+            queue[tail] = v
+            tail += 1
+    head = 0
+    while head < tail:
+        v = queue[head]
+        head += 1
+        for k in range(indptr[v], indptr[v + 1]):
+            u = indices[k]
+            if not reached_r[u]:
+                reached_r[u] = True
+                w = match_r[u]
+                if w >= 0 and not reached_l[w]:
+                    reached_l[w] = True
+                    queue[tail] = w
+                    tail += 1
+    return reached_l, reached_r

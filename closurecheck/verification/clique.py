@@ -50,7 +50,7 @@ import scipy.sparse
 
 from ..core.options import options, setting
 from ..errors import InputError
-from ._clique_kernels import greedy_starts, is_symmetric
+from ._clique_kernels import greedy_starts, is_symmetric, konig_reach, maximum_matching
 
 __all__ = ["CliqueOptions", "CliqueResult", "core_numbers", "heuristic_clique", "max_clique", "max_clique_of_conflicts"]
 
@@ -720,22 +720,13 @@ def _lp_split(c):
     packings: structural properties and algorithms", Math. Programming 8
     (1975): some maximum independent set contains every x = 0 vertex and no
     x = 1 vertex, so alpha(c) = |zero| + alpha(c[half]); and alpha(c[half])
-    <= |half| / 2.  Time O(m sqrt(n)) (Hopcroft-Karp), no dense matrix.
+    <= |half| / 2.  Time O(m sqrt(n)) (Hopcroft-Karp, compiled in
+    :mod:`closurecheck.verification._clique_kernels`), no dense matrix.
     """
-    from scipy.sparse.csgraph import breadth_first_order, maximum_bipartite_matching
-
     n = c.shape[0]
-    match = maximum_bipartite_matching(c, perm_type="column")  # row -> column, -1 when free
-    matched = np.flatnonzero(match >= 0)
-    # Alternating paths from the free left copies: left -> right along any
-    # edge, right -> left along the matching.  Nodes: left v = v, right v = n + v, source = 2n.
-    rows = np.concatenate([np.repeat(np.arange(n), np.diff(c.indptr)), n + match[matched],
-                           np.full(n - len(matched), 2 * n)])
-    cols = np.concatenate([n + c.indices, matched, np.flatnonzero(match < 0)])
-    walk = scipy.sparse.csr_array((np.ones(len(rows), dtype=bool), (rows, cols)), shape=(2 * n + 1, 2 * n + 1))
-    reached = np.zeros(2 * n + 1, dtype=bool)
-    reached[breadth_first_order(walk, 2 * n, directed=True, return_predecessors=False)] = True
-    twice_x = (~reached[:n]).astype(np.int8) + reached[n:2 * n]  # Konig's cover: unreached left, reached right
+    match_l, match_r = maximum_matching(c.indptr, c.indices, n)
+    reached_l, reached_r = konig_reach(c.indptr, c.indices, match_l, match_r)
+    twice_x = (~reached_l).astype(np.int8) + reached_r  # Konig's cover: unreached left, reached right
     return twice_x == 0, twice_x == 1
 
 

@@ -12,6 +12,7 @@ import networkx as nx
 import numpy as np
 import pytest
 import scipy.sparse
+import scipy.sparse.csgraph
 
 from closurecheck.verification import clique as clique_module
 from closurecheck.verification.clique import max_clique_of_conflicts
@@ -112,3 +113,53 @@ def test_symmetry_check_agrees_with_scipy_transpose(seed):
             broken.eliminate_zeros()
             broken.sort_indices()
             assert not clique_module.is_symmetric(broken.indptr, broken.indices)
+
+
+def scipy_split(c):
+    """The Nemhauser-Trotter split as it was computed with scipy's matching and search (reference)."""
+    from scipy.sparse.csgraph import breadth_first_order, maximum_bipartite_matching
+
+    n = c.shape[0]
+    match = maximum_bipartite_matching(c, perm_type="column")
+    matched = np.flatnonzero(match >= 0)
+    rows = np.concatenate([np.repeat(np.arange(n), np.diff(c.indptr)), n + match[matched],
+                           np.full(n - len(matched), 2 * n)])
+    cols = np.concatenate([n + c.indices, matched, np.flatnonzero(match < 0)])
+    walk = scipy.sparse.csr_array((np.ones(len(rows), dtype=bool), (rows, cols)), shape=(2 * n + 1, 2 * n + 1))
+    reached = np.zeros(2 * n + 1, dtype=bool)
+    reached[breadth_first_order(walk, 2 * n, directed=True, return_predecessors=False)] = True
+    twice_x = (~reached[:n]).astype(np.int8) + reached[n:2 * n]
+    return twice_x == 0, twice_x == 1
+
+
+@pytest.mark.parametrize("seed, n, density", [(0, 1, 0.0), (1, 50, 0.1), (2, 400, 0.01), (3, 300, 0.2),
+                                               (4, 250, 0.002), (5, 120, 0.5)])
+def test_matching_is_maximum_like_scipy(seed, n, density):
+    # Reference: scipy.sparse.csgraph.maximum_bipartite_matching gives the matching's size; ours must be
+    # a matching (each vertex at most once, along edges) of the same size, on asymmetric graphs too.
+    rng = np.random.default_rng(seed)
+    a = scipy.sparse.csr_array(rng.random((n, n + 7)) < density)
+    a.sort_indices()
+    match_l, match_r = clique_module.maximum_matching(a.indptr, a.indices, n + 7)
+    ref = scipy.sparse.csgraph.maximum_bipartite_matching(a, perm_type="column")
+    assert np.count_nonzero(match_l >= 0) == np.count_nonzero(ref >= 0)
+    left = np.flatnonzero(match_l >= 0)
+    assert np.array_equal(match_r[match_l[left]], left)
+    assert np.all(a.toarray()[left, match_l[left]])
+    assert np.count_nonzero(match_r >= 0) == len(left)
+
+
+@pytest.mark.parametrize("seed, n, outliers, pair_p, hub_p", [
+    (0, 300, 30, 0.01, 0.7), (1, 600, 60, 0.02, 0.9), (2, 500, 0, 0.004, 0.0), (3, 200, 100, 0.05, 0.5),
+    (4, 80, 80, 0.3, 0.9),
+])
+def test_split_is_the_one_scipy_gave(seed, n, outliers, pair_p, hub_p):
+    # The split depends only on the graph, not on the maximum matching found (Dulmage-Mendelsohn): the
+    # compiled matching gives the masks of the former scipy formulation exactly.
+    rng = np.random.default_rng(seed)
+    c = scipy.sparse.csr_array(pcm_like_conflicts(rng, n, outliers, pair_p, hub_p))
+    c.sort_indices()
+    zero, half = clique_module._lp_split(c)
+    ref_zero, ref_half = scipy_split(c)
+    assert np.array_equal(zero, ref_zero)
+    assert np.array_equal(half, ref_half)
