@@ -50,6 +50,7 @@ import scipy.sparse
 
 from ..core.options import options, setting
 from ..errors import InputError
+from ._clique_kernels import greedy_starts, is_symmetric, konig_reach, maximum_matching
 
 __all__ = ["CliqueOptions", "CliqueResult", "core_numbers", "heuristic_clique", "max_clique", "max_clique_of_conflicts"]
 
@@ -152,9 +153,9 @@ def _adjacency_csr(adjacency):
         a = a.copy()  # never modify the caller's matrix
         a.setdiag(False)
         a.eliminate_zeros()
-    if (a != a.T).nnz:
-        raise InputError("adjacency must be symmetric (an undirected graph)")
     a.sort_indices()
+    if not is_symmetric(a.indptr, a.indices):
+        raise InputError("adjacency must be symmetric (an undirected graph)")
     return a
 
 
@@ -719,22 +720,13 @@ def _lp_split(c):
     packings: structural properties and algorithms", Math. Programming 8
     (1975): some maximum independent set contains every x = 0 vertex and no
     x = 1 vertex, so alpha(c) = |zero| + alpha(c[half]); and alpha(c[half])
-    <= |half| / 2.  Time O(m sqrt(n)) (Hopcroft-Karp), no dense matrix.
+    <= |half| / 2.  Time O(m sqrt(n)) (Hopcroft-Karp, compiled in
+    :mod:`closurecheck.verification._clique_kernels`), no dense matrix.
     """
-    from scipy.sparse.csgraph import breadth_first_order, maximum_bipartite_matching
-
     n = c.shape[0]
-    match = maximum_bipartite_matching(c, perm_type="column")  # row -> column, -1 when free
-    matched = np.flatnonzero(match >= 0)
-    # Alternating paths from the free left copies: left -> right along any
-    # edge, right -> left along the matching.  Nodes: left v = v, right v = n + v, source = 2n.
-    rows = np.concatenate([np.repeat(np.arange(n), np.diff(c.indptr)), n + match[matched],
-                           np.full(n - len(matched), 2 * n)])
-    cols = np.concatenate([n + c.indices, matched, np.flatnonzero(match < 0)])
-    walk = scipy.sparse.csr_array((np.ones(len(rows), dtype=bool), (rows, cols)), shape=(2 * n + 1, 2 * n + 1))
-    reached = np.zeros(2 * n + 1, dtype=bool)
-    reached[breadth_first_order(walk, 2 * n, directed=True, return_predecessors=False)] = True
-    twice_x = (~reached[:n]).astype(np.int8) + reached[n:2 * n]  # Konig's cover: unreached left, reached right
+    match_l, match_r = maximum_matching(c.indptr, c.indices, n)
+    reached_l, reached_r = konig_reach(c.indptr, c.indices, match_l, match_r)
+    twice_x = (~reached_l).astype(np.int8) + reached_r  # Konig's cover: unreached left, reached right
     return twice_x == 0, twice_x == 1
 
 
@@ -1025,39 +1017,18 @@ def _heuristic_conflicts(c, core, order, w, weighted):
     """:func:`_heuristic` on the complement of ``c`` (positions as in :class:`_Graph`).
 
     Returns (clique as original vertex indices, size, weight).  Each start
-    costs O(n + conflicts) instead of bitset operations over n bits.
+    costs O(n + conflicts) instead of bitset operations over n bits; the
+    loop is compiled (:mod:`closurecheck.verification._clique_kernels`).
     """
     n = c.shape[0]
-    pos_order = order[::-1]
-    pos = np.empty(n, dtype=np.intp)
+    pos_order = np.ascontiguousarray(order[::-1], dtype=np.int64)
+    pos = np.empty(n, dtype=np.int64)
     pos[pos_order] = np.arange(n)
-    core_pos = core[pos_order]
-    wpos = w[pos_order]
-    best, best_size, best_w = [], 0, 0.0
-    for p in range(min(n, _HEURISTIC_STARTS)):
-        limit = int(core_pos[p]) + 1
-        if limit < best_size or (limit == best_size and not weighted):
-            break
-        count = int(np.count_nonzero(core_pos >= max(best_size - 1, 0)))
-        cand = np.zeros(n, dtype=bool)
-        cand[:count] = True
-        cand[p] = False
-        v = pos_order[p]
-        cand[pos[c.indices[c.indptr[v]:c.indptr[v + 1]]]] = False
-        clique = [p]
-        # The lowest candidate position is taken each time and candidates
-        # only ever drop out, so one forward scan finds them all.
-        for u in np.flatnonzero(cand).tolist():
-            if not cand[u]:
-                continue
-            clique.append(u)
-            vu = pos_order[u]
-            cand[pos[c.indices[c.indptr[vu]:c.indptr[vu + 1]]]] = False
-        size = len(clique)
-        weight = float(sum(wpos[q] for q in clique))
-        if _better(size, weight, best_size, best_w, weighted):
-            best, best_size, best_w = clique, size, weight
-    return pos_order[best], best_size, best_w
+    core_pos = np.ascontiguousarray(core[pos_order], dtype=np.int64)
+    wpos = np.ascontiguousarray(w[pos_order], dtype=np.float64)
+    best, best_size, best_w = greedy_starts(c.indptr, c.indices, pos, pos_order, core_pos, wpos,
+                                            _HEURISTIC_STARTS, bool(weighted))
+    return pos_order[best], int(best_size), float(best_w)
 
 
 def max_clique_of_conflicts(conflicts, weights=None, options: CliqueOptions = CliqueOptions()) -> CliqueResult:
