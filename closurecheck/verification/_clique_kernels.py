@@ -91,28 +91,32 @@ def greedy_starts(indptr, indices, pos, pos_order, core_pos, wpos, starts, weigh
 
 @njit(cache=True, nogil=True)
 def is_symmetric(indptr, indices):
-    """True when every stored (i, j) of a square CSR pattern with sorted indices has (j, i) stored.
+    """True when every stored (i, j) of a square CSR pattern with sorted, distinct indices has (j, i) stored.
 
     The same answer as ``(a != a.T).nnz == 0`` for a boolean matrix without
-    stored zeros, without forming the transpose: at 20,000 scans that
-    comparison took 1.4-2.7 s of the maximum clique (scipy converts the tens
-    of millions of conflicts to CSC and back); here each entry is one binary
-    search in the other row.
+    stored zeros, without forming the transpose (scipy converts the tens of
+    millions of conflicts to CSC and back: 1.4-2.7 s at 20,000 scans).  Rows
+    are visited in order, and the entries (i, j) with j > i must then turn up
+    in row j in increasing i: one cursor per row walks its entries below the
+    diagonal, so each entry is read once (one binary search per entry took
+    7 s on 69 M conflicts, each search a cache miss).
     """
     n = len(indptr) - 1
+    cursor = indptr[:-1].copy()
     for i in range(n):
         for k in range(indptr[i], indptr[i + 1]):
             j = indices[k]
-            lo = indptr[j]
-            hi = indptr[j + 1]
-            while lo < hi:
-                mid = (lo + hi) // 2
-                if indices[mid] < i:
-                    lo = mid + 1
-                else:
-                    hi = mid
-            if lo == indptr[j + 1] or indices[lo] != i:
+            if j <= i:
+                continue
+            c = cursor[j]
+            if c >= indptr[j + 1] or indices[c] != i:
                 return False
+            cursor[j] = c + 1
+    # Every entry of a row below its diagonal must have been met from the other side.
+    for j in range(n):
+        c = cursor[j]
+        if c < indptr[j + 1] and indices[c] < j:
+            return False
     return True
 
 

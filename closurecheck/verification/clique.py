@@ -153,7 +153,7 @@ def _adjacency_csr(adjacency):
         a = a.copy()  # never modify the caller's matrix
         a.setdiag(False)
         a.eliminate_zeros()
-    a.sort_indices()
+    a.sum_duplicates()  # sorted, distinct indices (what the symmetry check reads); no-op when canonical
     if not is_symmetric(a.indptr, a.indices):
         raise InputError("adjacency must be symmetric (an undirected graph)")
     return a
