@@ -13,21 +13,26 @@ per needed node, so O(N^2) when most nodes are needed.  Here instead:
    chain plus closures between nearby places, so separators stay small and
    the elimination tree stays shallow;
 2. a block LDL^T factorisation ``H = L D L^T`` (L unit lower block
-   triangular, D block diagonal) runs on the symbolic pattern of L, one
-   elimination-tree level at a time (the columns of one level are
-   independent);
+   triangular, D block diagonal) runs on the symbolic pattern of L, stored
+   column by column without padding, in one compiled right-looking loop;
 3. column q of ``L^-1`` is non-zero only on the path from q to the root of
    the elimination tree, and follows from its parents' columns
    (``L^-1 L = I`` gives ``L^-1[:, q] = e_q - sum_{m in struct(q)}
-   L^-1[:, m] L[m, q]``), so all of them are computed top down, one depth at
-   a time;
+   L^-1[:, m] L[m, q]``), so all of them are computed top down in one
+   compiled loop (:mod:`closurecheck.graph._inverse_kernels`), each stored
+   only as deep as its own node;
 4. ``S = L^-T D^-1 L^-1`` then gives any block as a sum over the common
    ancestors of the two nodes: ``S[i, j] = sum_k L^-1[k, i]^T D_k^-1
    L^-1[k, j]``.
 
 Time is O(N * depth * front) and memory O(N * depth) blocks for N nodes,
-elimination-tree depth ``depth`` and largest column pattern ``front``, instead
-of N times the number of needed nodes.  Both grow slowly for the locally
+elimination-tree depth ``depth`` and column pattern ``front``, instead
+of N times the number of needed nodes.  On the 100,000-scan log's map-gate
+graph (33,332 nodes, depth up to 1,192, patterns up to 599 blocks) the
+former numpy formulation, padded to the widest pattern and the deepest
+node, held 20.0 M factor blocks and 39.8 M path blocks (4.3-5.4 GB) and
+ran for more than 20 minutes; unpadded, 2.3 M and 26.3 M
+(docs/performance.md).  Both grow slowly for the locally
 connected graphs of a mapping run (measured on the graphs of
 benchmarks/verification_scaling.py: depth 29 at 1,667 nodes, 64 at 6,667).
 A graph whose edges join random far-apart nodes (an expander) has large
@@ -46,69 +51,63 @@ import numpy as np
 import scipy.sparse as sp
 from scipy.sparse import csgraph
 
+from ._inverse_kernels import block_ldl, path_products, root_path_columns
+
 # Subgraphs of at most this many nodes are not dissected further (their
 # elimination-tree paths are at most this long).
 _LEAF_NODES = 16
-# Pairs per batch when summing over common ancestors (bounds the temporary
-# arrays to a few tens of MB).
-_PAIR_BATCH = 2048
 
 
 @dataclass(frozen=True, eq=False)
 class SparseInverse:
     """Factored form of ``S = H^-1`` from which any ``b x b`` block is a short sum.
 
-    ``scaled[q, t]`` holds ``R_k L^-1[k, q]`` for the ancestor ``k =
-    ancestor[q, t]`` of node q at elimination-tree depth t (root: t = 0;
-    ``D_k^-1 = R_k^T R_k``); for t deeper than q itself ``ancestor[q, t]`` is
-    -1 and ``scaled[q, t]`` is zero.  Use :meth:`blocks` and :meth:`diagonal`.
+    Arrays are indexed by elimination position (``position[q]`` for node
+    q).  ``paths[offset[p] + t]`` holds ``R_k L^-1[k, p]`` for the ancestor
+    k of p at elimination-tree depth t (root: t = 0, p itself: t =
+    ``depth[p]``; ``D_k^-1 = R_k^T R_k``), so ``S[p, r]`` is the sum over the
+    common ancestors of ``paths[.]^T paths[.]``.  Use :meth:`blocks` and
+    :meth:`diagonal`, which take node numbers.
     """
 
     block_size: int
-    ancestor: np.ndarray  # (n, T) int64
-    scaled: np.ndarray  # (n, T, b, b)
+    position: np.ndarray  # (n,) int64
+    parent: np.ndarray  # (n,) int64, by position, -1 for roots
+    depth: np.ndarray  # (n,) int64, by position
+    offset: np.ndarray  # (n + 1,) int64
+    paths: np.ndarray  # (offset[n], b, b)
+
+    def _check(self, nodes):
+        nodes = np.asarray(nodes, dtype=np.int64).ravel()
+        if len(nodes) and (nodes.min() < 0 or nodes.max() >= len(self.position)):
+            raise ValueError("node index out of range")
+        return nodes
 
     def blocks(self, rows, cols) -> np.ndarray:
         """``S[rows[k], cols[k]]`` (block row and column are node indices of H) as a (P, b, b) array."""
-        rows = np.asarray(rows, dtype=np.int64).ravel()
-        cols = np.asarray(cols, dtype=np.int64).ravel()
-        n = len(self.ancestor)
+        rows, cols = self._check(rows), self._check(cols)
         if rows.shape != cols.shape:
             raise ValueError("rows and cols must have the same length")
-        if len(rows) and (min(rows.min(), cols.min()) < 0 or max(rows.max(), cols.max()) >= n):
-            raise ValueError("node index out of range")
-        b = self.block_size
-        out = np.empty((len(rows), b, b))
-        # The common ancestors of two nodes are a prefix of both root paths (root first): count them, and
-        # batch pairs with similar counts so each batch sums over few depths.
-        anc_r = self.ancestor[rows]
-        common = np.count_nonzero((anc_r == self.ancestor[cols]) & (anc_r >= 0), axis=1)
-        by_common = np.argsort(common, kind="stable")
-        for start in range(0, len(rows), _PAIR_BATCH):
-            sel = by_common[start:start + _PAIR_BATCH]
-            t_len = int(common[sel].max())
-            r, c = rows[sel], cols[sel]
-            if t_len == 0:
-                out[sel] = 0.0
-                continue
-            inside = np.arange(t_len)[None, :] < common[sel][:, None]
-            vr = (self.scaled[r, :t_len] * inside[:, :, None, None]).reshape(len(r), t_len * b, b)
-            out[sel] = np.swapaxes(vr, 1, 2) @ self.scaled[c, :t_len].reshape(len(c), t_len * b, b)
-        return out
+        return path_products(self.paths, self.offset, self.depth, self.parent, self.position[rows],
+                             self.position[cols])
 
     def diagonal(self, nodes=None) -> np.ndarray:
         """Diagonal blocks ``S[q, q]`` for ``nodes`` (default: all) as an (M, b, b) array."""
-        nodes = np.arange(len(self.ancestor)) if nodes is None else np.asarray(nodes, dtype=np.int64).ravel()
-        if len(nodes) and (nodes.min() < 0 or nodes.max() >= len(self.ancestor)):
-            raise ValueError("node index out of range")
-        b = self.block_size
-        t_len = self.scaled.shape[1]
-        out = np.empty((len(nodes), b, b))
-        # Rows below a node's own depth are zero, so every stored row of its path counts.
-        for start in range(0, len(nodes), _PAIR_BATCH):
-            v = self.scaled[nodes[start:start + _PAIR_BATCH]].reshape(-1, t_len * b, b)
-            out[start:start + _PAIR_BATCH] = np.swapaxes(v, 1, 2) @ v
-        return out
+        nodes = np.arange(len(self.position)) if nodes is None else self._check(nodes)
+        p = self.position[nodes]
+        return path_products(self.paths, self.offset, self.depth, self.parent, p, p)
+
+
+def _find_slots(colptr, rows, row, col):
+    """Slots of the blocks (row, col) of the ragged pattern (positions, row > col); -1 where absent."""
+    n = len(colptr) - 1
+    # Rows ascend within a column and columns ascend, so col * n + row is sorted over the slots.
+    keys = np.repeat(np.arange(n, dtype=np.int64), np.diff(colptr)) * n + rows
+    want = col * n + row
+    at = np.searchsorted(keys, want)
+    at_c = np.minimum(at, max(len(keys) - 1, 0))
+    found = (at < len(keys)) & (keys[at_c] == want) if len(keys) else np.zeros(len(want), dtype=bool)
+    return np.where(found, at, -1)
 
 
 def _node_graph(h, b):
@@ -197,8 +196,9 @@ def nested_dissection_order(adjacency, leaf_nodes: int = _LEAF_NODES) -> np.ndar
 def _symbolic(adjacency, order):
     """Column patterns of the block factor in elimination order.
 
-    Returns (struct (n, m_max) int64 padded with n, counts (n,), parent (n,)
-    with -1 for roots); entries are elimination positions.
+    Returns (colptr (n + 1,), rows (nnz,) with the rows of column j in
+    ``rows[colptr[j]:colptr[j + 1]]``, ascending, and parent (n,) with -1 for
+    roots); entries are elimination positions.
     """
     n = adjacency.shape[0]
     perm = adjacency[order][:, order].tocsr()
@@ -211,19 +211,17 @@ def _symbolic(adjacency, order):
         nb = indices[indptr[j]:indptr[j + 1]]
         parts = [nb[nb > j]]
         for c in children[j]:
-            sc = struct[c]
-            parts.append(sc[1:])  # struct of a child starts with j, its parent
+            parts.append(struct[c][1:])  # struct of a child starts with j, its parent
         s = parts[0] if len(parts) == 1 else np.unique(np.concatenate(parts))
         struct[j] = s
         if len(s):
             parent[j] = s[0]
             children[int(s[0])].append(j)
-    counts = np.fromiter((len(s) for s in struct), dtype=np.int64, count=n)
-    m_max = int(counts.max()) if n else 0
-    padded = np.full((n, max(m_max, 1)), n, dtype=np.int64)
-    for j in range(n):
-        padded[j, :counts[j]] = struct[j]
-    return padded, counts, parent
+    counts = np.fromiter((len(x) for x in struct), dtype=np.int64, count=n)
+    colptr = np.zeros(n + 1, dtype=np.int64)
+    np.cumsum(counts, out=colptr[1:])
+    rows = np.concatenate(struct).astype(np.int64) if n else np.zeros(0, dtype=np.int64)
+    return colptr, rows, parent
 
 
 def _heights_and_depths(parent):
@@ -241,67 +239,28 @@ def _heights_and_depths(parent):
     return height, depth
 
 
-def _factor(h, b, order, struct, counts, height):
-    """Block LDL^T in elimination order: returns (D^-1 (n, b, b), L blocks (n, m_max, b, b))."""
-    n, m_max = struct.shape
+def _factor(h, b, order, colptr, rows):
+    """Block LDL^T in elimination order: (R (n, b, b) with D^-1 = R^T R, L blocks (nnz, b, b) on the pattern)."""
+    n = len(order)
+    nnz = len(rows)
     position = np.empty(n, dtype=np.int64)
     position[order] = np.arange(n)
-    # Flat block slots: 0..n-1 diagonal of each column, n a discarded dummy, then n + 1 + j * m_max + r for
-    # the block (struct[j, r], j).
-    valid = np.arange(m_max)[None, :] < counts[:, None]
-    cols = np.repeat(np.arange(n, dtype=np.int64), counts)
-    keys = cols * n + struct[valid]  # sorted: columns ascending, rows ascending within a column
-    flat_of_key = n + 1 + np.flatnonzero(valid.ravel())
-
-    def slot(row, col):
-        """Slot of block (row, col), row > col in elimination order (both present on the pattern)."""
-        return flat_of_key[np.searchsorted(keys, col * n + row)]
-
     coo = h.tocoo()
     pr, pc = position[coo.row // b], position[coo.col // b]
     low = pr >= pc
     pr, pc = pr[low], pc[low]
+    # Slots 0..n-1: the diagonal blocks; n + k: the pattern's block k.
     target = pc.copy()
     off = pr != pc
-    target[off] = slot(pr[off], pc[off])
+    target[off] = n + _find_slots(colptr, rows, pr[off], pc[off])
     flat = (target * b + coo.row[low] % b) * b + coo.col[low] % b
-    store = np.bincount(flat, weights=coo.data[low], minlength=(n + 1 + n * m_max) * b * b).reshape(-1, b, b)
-
-    d_inv = np.empty((n, b, b))
-    lblocks = np.zeros((n, m_max, b, b))
-    by_height = np.argsort(height, kind="stable")
-    bounds = np.searchsorted(height[by_height], np.arange(height.max() + 2 if n else 1))
-    for lv in range(len(bounds) - 1):
-        cols_j = by_height[bounds[lv]:bounds[lv + 1]]
-        d = store[cols_j]
-        d = 0.5 * (d + np.swapaxes(d, 1, 2))
-        try:
-            np.linalg.cholesky(d)
-        except np.linalg.LinAlgError:
-            raise np.linalg.LinAlgError("matrix is not positive definite") from None
-        dinv = np.linalg.inv(d)
-        d_inv[cols_j] = dinv
-        m = int(counts[cols_j].max())
-        if m == 0:
-            continue
-        s = struct[cols_j, :m]
-        c = store[n + 1 + cols_j[:, None] * m_max + np.arange(m)[None, :]]  # A[s, j]; zero on padding
-        lc = c @ dinv[:, None]
-        lblocks[cols_j, :m] = lc
-        # Schur update A[s_p, s_q] -= L[s_p, j] A[s_q, j]^T for p >= q, accumulated over the level's columns.
-        p, q = np.tril_indices(m)
-        upd = lc[:, p] @ np.swapaxes(c[:, q], 2, 3)
-        rows, colq = s[:, p], s[:, q]
-        ok = rows < n
-        tgt = np.full(rows.shape, n, dtype=np.int64)
-        diag = ok & (p == q)[None, :]
-        tgt[diag] = rows[diag]
-        off = ok & (p != q)[None, :]
-        tgt[off] = slot(rows[off], colq[off])
-        uniq, inv = np.unique(tgt.ravel(), return_inverse=True)
-        flat = (inv[:, None] * (b * b) + np.arange(b * b)[None, :]).ravel()
-        store[uniq] -= np.bincount(flat, weights=upd.ravel(), minlength=len(uniq) * b * b).reshape(-1, b, b)
-    return d_inv, lblocks
+    store = np.bincount(flat, weights=coo.data[low], minlength=(n + nnz) * b * b).reshape(-1, b, b)
+    diag, lower = np.ascontiguousarray(store[:n]), np.ascontiguousarray(store[n:])
+    del store
+    r_fac, failed = block_ldl(colptr, rows, diag, lower)
+    if failed >= 0:
+        raise np.linalg.LinAlgError("matrix is not positive definite")
+    return r_fac, lower
 
 
 def sparse_inverse(h, block_size: int) -> SparseInverse:
@@ -314,9 +273,20 @@ def sparse_inverse(h, block_size: int) -> SparseInverse:
         exactly symmetric).
     block_size : b, variables per node.
 
-    Returns a :class:`SparseInverse`; ``.blocks(rows, cols)`` gives
-    ``(H^-1)[rows[k], cols[k]]`` blocks for any node pairs.  Raises
-    ``numpy.linalg.LinAlgError`` when H is not positive definite.
+    Returns
+    -------
+    SparseInverse
+        ``.blocks(rows, cols)`` gives ``(H^-1)[rows[k], cols[k]]`` blocks for
+        any node pairs, ``.diagonal()`` the diagonal blocks.  Raises
+        ``numpy.linalg.LinAlgError`` when H is not positive definite.
+
+    Examples
+    --------
+    >>> import numpy as np, scipy.sparse as sp
+    >>> h = np.array([[4.0, 1, 0], [1, 3, 1], [0, 1, 2]])
+    >>> inv = sparse_inverse(sp.csc_matrix(h), 1)
+    >>> bool(np.allclose(inv.blocks([0, 2], [2, 0])[:, 0, 0], np.linalg.inv(h)[0, 2]))
+    True
     """
     b = int(block_size)
     h = sp.csc_matrix(h)
@@ -324,38 +294,17 @@ def sparse_inverse(h, block_size: int) -> SparseInverse:
         raise ValueError(f"matrix of shape {h.shape} is not square in blocks of {b}")
     n = h.shape[0] // b
     if n == 0:
-        return SparseInverse(block_size=b, ancestor=np.zeros((0, 1), dtype=np.int64), scaled=np.zeros((0, 1, b, b)))
+        empty = np.zeros(0, dtype=np.int64)
+        return SparseInverse(block_size=b, position=empty, parent=empty, depth=empty,
+                             offset=np.zeros(1, dtype=np.int64), paths=np.zeros((0, b, b)))
     adjacency = _node_graph(h, b)
     order = nested_dissection_order(adjacency)
-    struct, counts, parent = _symbolic(adjacency, order)
-    height, depth = _heights_and_depths(parent)
-    d_inv, lblocks = _factor(h, b, order, struct, counts, height)
-
-    # Columns of L^-1 on their root paths, indexed by depth, top down, each block scaled on the left by R_k
-    # with D_k^-1 = R_k^T R_k (the recursion multiplies on the right, so the scaling carries through):
-    # V_q[depth(q)] = R_q and V_q[t] = -sum_{m in struct(q)} V_m[t] L[m, q].  Then
-    # S[i, j] = sum over common ancestors of V_i[t]^T V_j[t].
-    r_fac = np.swapaxes(np.linalg.cholesky(d_inv), 1, 2)
-    t_len = int(depth.max()) + 1 if n else 1
-    w = np.zeros((n + 1, t_len, b, b))  # row n: zero column for padded struct entries
-    anc = np.full((n + 1, t_len), -1, dtype=np.int64)
+    colptr, rows, parent = _symbolic(adjacency, order)
+    _, depth = _heights_and_depths(parent)
+    # D_k^-1 = R_k^T R_k; the recursion multiplies on the right, so the scaling carries through.
+    r_fac, lblocks = _factor(h, b, order, colptr, rows)
     by_depth = np.argsort(depth, kind="stable")
-    bounds = np.searchsorted(depth[by_depth], np.arange(t_len + 1))
-    for dl in range(t_len):
-        q = by_depth[bounds[dl]:bounds[dl + 1]]
-        if dl:
-            anc[q, :dl] = anc[parent[q], :dl]
-            acc = np.zeros((len(q), dl * b, b))
-            for r in range(int(counts[q].max())):
-                acc -= w[struct[q, r], :dl].reshape(len(q), dl * b, b) @ lblocks[q, r]
-            w[q, :dl] = acc.reshape(len(q), dl, b, b)
-        w[q, dl] = r_fac[q]
-        anc[q, dl] = q
-    w = w[:n]
-    anc = anc[:n]
-    has = anc >= 0
-    # Report nodes in the caller's numbering.
-    node_anc = np.where(has, order[np.maximum(anc, 0)], -1)
+    paths, offset = root_path_columns(colptr, rows, lblocks, r_fac, depth, by_depth)
     position = np.empty(n, dtype=np.int64)
     position[order] = np.arange(n)
-    return SparseInverse(block_size=b, ancestor=node_anc[position], scaled=w[position])
+    return SparseInverse(block_size=b, position=position, parent=parent, depth=depth, offset=offset, paths=paths)
