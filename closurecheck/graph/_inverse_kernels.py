@@ -112,6 +112,18 @@ def path_products(paths, offset, depth, parent, pi, pj):
     return out
 
 
+@njit(cache=True, nogil=True, inline="always")
+def _subtract_abt(out, a, bt):
+    """``out -= a @ bt.T`` for b x b blocks, summed in the order of k."""
+    b = out.shape[0]
+    for r in range(b):
+        for col in range(b):
+            acc = 0.0
+            for k in range(b):
+                acc += a[r, k] * bt[col, k]
+            out[r, col] -= acc
+
+
 @njit(cache=True, nogil=True)
 def block_ldl(colptr, rows, diag, lower):
     """Block LDL^T of a symmetric matrix on its (filled) ragged pattern, right-looking, in place.
@@ -187,24 +199,13 @@ def block_ldl(colptr, rows, diag, lower):
         # found through a mark array (each s_p with p > q is in s_q's pattern: the pattern is a clique).
         for q in range(m):
             target = rows[s0 + q]
-            for r in range(b):
-                for col in range(b):
-                    acc = 0.0
-                    for k in range(b):
-                        acc += lower[s0 + q, r, k] * c[q, col, k]
-                    diag[target, r, col] -= acc
+            _subtract_abt(diag[target], lower[s0 + q], c[q])
             if q + 1 == m:
                 continue
             for k in range(colptr[target], colptr[target + 1]):
                 mark[rows[k]] = k
             for p in range(q + 1, m):
-                slot = mark[rows[s0 + p]]
-                for r in range(b):
-                    for col in range(b):
-                        acc = 0.0
-                        for k in range(b):
-                            acc += lower[s0 + p, r, k] * c[q, col, k]
-                        lower[slot, r, col] -= acc
+                _subtract_abt(lower[mark[rows[s0 + p]]], lower[s0 + p], c[q])
             for k in range(colptr[target], colptr[target + 1]):
                 mark[rows[k]] = -1
     return r_fac, -1
