@@ -30,8 +30,8 @@ elimination-tree depth ``depth`` and column pattern ``front``, instead
 of N times the number of needed nodes.  On the 100,000-scan log's map-gate
 graph (33,332 nodes, depth up to 1,192, patterns up to 599 blocks) the
 former numpy formulation, padded to the widest pattern and the deepest
-node, held 20.0 M factor blocks and 39.8 M path blocks (4.3-5.4 GB) and
-ran for more than 20 minutes; unpadded, 2.3 M and 26.3 M
+node, held 20.0 M factor blocks and 39.8 M path blocks (9.1 GB of the
+verify() process) and took 451.5 s for one call; unpadded, 2.3 M and 26.3 M
 (docs/performance.md).  Both grow slowly for the locally
 connected graphs of a mapping run (measured on the graphs of
 benchmarks/verification_scaling.py: depth 29 at 1,667 nodes, 64 at 6,667).
@@ -224,19 +224,15 @@ def _symbolic(adjacency, order):
     return colptr, rows, parent
 
 
-def _heights_and_depths(parent):
+def _depths(parent):
+    """Elimination-tree depth of each position (roots 0; parents come after their children)."""
     n = len(parent)
-    height = np.zeros(n, dtype=np.int64)
-    for j in range(n):  # parents come after their children
-        p = parent[j]
-        if p >= 0 and height[p] < height[j] + 1:
-            height[p] = height[j] + 1
     depth = np.zeros(n, dtype=np.int64)
     for j in range(n - 1, -1, -1):
         p = parent[j]
         if p >= 0:
             depth[j] = depth[p] + 1
-    return height, depth
+    return depth
 
 
 def _factor(h, b, order, colptr, rows):
@@ -300,7 +296,7 @@ def sparse_inverse(h, block_size: int) -> SparseInverse:
     adjacency = _node_graph(h, b)
     order = nested_dissection_order(adjacency)
     colptr, rows, parent = _symbolic(adjacency, order)
-    _, depth = _heights_and_depths(parent)
+    depth = _depths(parent)
     # D_k^-1 = R_k^T R_k; the recursion multiplies on the right, so the scaling carries through.
     r_fac, lblocks = _factor(h, b, order, colptr, rows)
     by_depth = np.argsort(depth, kind="stable")
