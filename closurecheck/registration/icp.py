@@ -944,6 +944,9 @@ def _icp_line(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions
             break
         r, v, jac, s_al, sc, z = _linearise(pairs, x, opt, range_noise)
         if matches is None:
+            # No small-object rows at this pose: rows of an earlier association, made at an earlier
+            # pose, would otherwise reach the covariance (32 of the demo log's ICP runs).
+            prow = None
             if kernel.name == "huber":
                 # One compiled call for the default kernel (_kernels.huber_rows, the same values).
                 w, scale, jw = _kernels.huber_rows(z, v, jac, kernel.scale, _MAD_TO_SIGMA, opt.min_noise_m)
