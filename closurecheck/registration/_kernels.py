@@ -904,3 +904,351 @@ def stamp_grid(occupied, rows, cols, di, dj, value):
             if 0 <= ti < rows and 0 <= tj < cols and value[s] > fine[ti, tj]:
                 fine[ti, tj] = value[s]
     return fine
+
+
+@njit(cache=True, nogil=True)
+def _solve3(a, b):
+    """x with ``a x = b`` for a (3, 3) matrix: Gaussian elimination with partial pivoting (LAPACK's dgesv method)."""
+    m = a.copy()
+    y = b.copy()
+    for col in range(3):
+        piv = col
+        for row in range(col + 1, 3):
+            if abs(m[row, col]) > abs(m[piv, col]):
+                piv = row
+        if piv != col:
+            for c in range(3):
+                t = m[col, c]
+                m[col, c] = m[piv, c]
+                m[piv, c] = t
+            t = y[col]
+            y[col] = y[piv]
+            y[piv] = t
+        for row in range(col + 1, 3):
+            f = m[row, col] / m[col, col]
+            for c in range(col + 1, 3):
+                m[row, c] -= f * m[col, c]
+            y[row] -= f * y[col]
+    out = np.empty(3)
+    for row in range(2, -1, -1):
+        acc = y[row]
+        for c in range(row + 1, 3):
+            acc -= m[row, c] * out[c]
+        out[row] = acc / m[row, row]
+    return out
+
+
+@njit(cache=True, nogil=True)
+def _rotate(p, c, s, tx, ty):
+    """``p @ [[c, s], [-s, c]] + (tx, ty)`` for (n, 2) points p."""
+    n = len(p)
+    out = np.empty((n, 2))
+    for k in range(n):
+        out[k, 0] = p[k, 0] * c - p[k, 1] * s + tx
+        out[k, 1] = p[k, 0] * s + p[k, 1] * c + ty
+    return out
+
+
+@njit(cache=True, nogil=True)
+def nearest_k(points, origin, cell, columns, start, order, queries, upper, k):
+    """The k nearest of ``points`` to each query closer than ``upper`` metres, nearest first (a :func:`cell_index`).
+
+    As ``cKDTree(points).query(queries, k=k, distance_upper_bound=upper)[1]``:
+    (Q, k) indices, ``len(points)`` where fewer than k lie closer; ``tied``
+    is True when two points lie at exactly the same distance among those
+    ranked (their order is then the kd-tree's to give).
+    """
+    nq = len(queries)
+    n = len(points)
+    idx = np.full((nq, k), n, np.int64)
+    best = np.empty(k)
+    bi = np.empty(k, np.int64)
+    tied = False
+    u2 = upper * upper
+    nj = columns
+    ni = (len(start) - 1) // nj
+    reach = int(math.ceil(upper / cell))
+    for p in range(nq):
+        qx, qy = queries[p, 0], queries[p, 1]
+        fi = (qx - origin[0]) / cell
+        fj = (qy - origin[1]) / cell
+        if fi < -reach - 1.0 or fj < -reach - 1.0 or fi > ni + reach + 1.0 or fj > nj + reach + 1.0:
+            continue
+        i0 = max(int(math.floor(fi)) - reach, 0)
+        i1 = min(int(math.floor(fi)) + reach, ni - 1)
+        j0 = max(int(math.floor(fj)) - reach, 0)
+        j1 = min(int(math.floor(fj)) + reach, nj - 1)
+        for t in range(k):
+            best[t] = u2
+            bi[t] = n
+        for i in range(i0, i1 + 1):
+            gx = max(i - fi, 0.0, fi - (i + 1)) * cell
+            for j in range(j0, j1 + 1):
+                gy = max(j - fj, 0.0, fj - (j + 1)) * cell
+                if gx * gx + gy * gy > best[k - 1]:
+                    continue
+                c = i * nj + j
+                for s in range(start[c], start[c + 1]):
+                    q = order[s]
+                    ex = qx - points[q, 0]
+                    ey = qy - points[q, 1]
+                    d = ex * ex + ey * ey
+                    if d > best[k - 1]:
+                        continue
+                    if d == best[k - 1]:
+                        if bi[k - 1] < n:
+                            tied = True
+                        continue
+                    # Insert in order; an equal distance already held is a tie.
+                    t = k - 1
+                    while t > 0 and best[t - 1] > d:
+                        best[t] = best[t - 1]
+                        bi[t] = bi[t - 1]
+                        t -= 1
+                    if t > 0 and best[t - 1] == d:
+                        tied = True
+                    best[t] = d
+                    bi[t] = q
+        for t in range(k):
+            idx[p, t] = bi[t]
+    return idx, tied
+
+
+@njit(cache=True, nogil=True)
+def _point_matches(pp, p_origin, p_cell, p_columns, p_start, p_order, p_obj, src_pidx, src_points, tgt_pidx,
+                   tgt_points, c, s, tx, ty, upper):
+    """Small-object matches of icp._associate_points under the pose (cos, sin, tx, ty).
+
+    Returns (src (P,) source indices, ends (P, 2) target reading indices,
+    tied); P = 0 where icp's version returns None.
+    """
+    m = len(pp)
+    k = min(3, m)
+    pw = np.empty((len(src_pidx), 2))
+    for t in range(len(src_pidx)):
+        q = src_pidx[t]
+        pw[t, 0] = src_points[q, 0] * c - src_points[q, 1] * s + tx
+        pw[t, 1] = src_points[q, 0] * s + src_points[q, 1] * c + ty
+    j, tied = nearest_k(pp, p_origin, p_cell, p_columns, p_start, p_order, pw, upper, k)
+    out_src = np.empty(len(pw), np.int64)
+    ends = np.empty((len(pw), 2), np.int64)
+    n_out = 0
+    for t in range(len(pw)):
+        first = j[t, 0]
+        if first >= m:
+            continue
+        # The nearest of the next neighbours on the same object.
+        second = m
+        for col in range(1, k):
+            if j[t, col] < m and p_obj[j[t, col]] == p_obj[first]:
+                second = j[t, col]
+                break
+        if second >= m:
+            continue
+        a = tgt_pidx[first]
+        b = tgt_pidx[second]
+        sx = tgt_points[b, 0] - tgt_points[a, 0]
+        sy = tgt_points[b, 1] - tgt_points[a, 1]
+        lam = ((pw[t, 0] - tgt_points[a, 0]) * sx + (pw[t, 1] - tgt_points[a, 1]) * sy) / max(sx * sx + sy * sy,
+                                                                                                1e-18)
+        if lam >= 0.0 and lam <= 1.0:
+            out_src[n_out] = src_pidx[t]
+            ends[n_out, 0] = a
+            ends[n_out, 1] = b
+            n_out += 1
+    return out_src[:n_out], ends[:n_out], tied
+
+
+@njit(cache=True, nogil=True)
+def _point_rows(src_i, ends, src_points, src_beams, tgt_points, tgt_beams, c, s, tx, ty, range_noise):
+    """Point-to-segment rows of icp._point_rows at the pose: r, v, jac (P, 3), src_coef, tgt_coef (P, 2)."""
+    n = len(src_i)
+    r = np.empty(n)
+    v = np.empty(n)
+    jac = np.empty((n, 3))
+    src_coef = np.empty(n)
+    tgt_coef = np.empty((n, 2))
+    for t in range(n):
+        q = src_i[t]
+        a = ends[t, 0]
+        b = ends[t, 1]
+        rpx = src_points[q, 0] * c - src_points[q, 1] * s
+        rpy = src_points[q, 0] * s + src_points[q, 1] * c
+        sx = tgt_points[b, 0] - tgt_points[a, 0]
+        sy = tgt_points[b, 1] - tgt_points[a, 1]
+        length2 = max(sx * sx + sy * sy, 1e-18)
+        norm = math.sqrt(length2)
+        nx = -sy / norm
+        ny = sx / norm
+        dx = rpx + tx - tgt_points[a, 0]
+        dy = rpy + ty - tgt_points[a, 1]
+        lam = min(max((dx * sx + dy * sy) / length2, 0.0), 1.0)
+        r[t] = nx * dx + ny * dy
+        jac[t, 0] = nx
+        jac[t, 1] = ny
+        jac[t, 2] = ny * rpx - nx * rpy
+        if range_noise:
+            ubx = src_beams[q, 0] * c - src_beams[q, 1] * s
+            uby = src_beams[q, 0] * s + src_beams[q, 1] * c
+            sc = nx * ubx + ny * uby
+            t0 = -((1.0 - lam) * (nx * tgt_beams[a, 0] + ny * tgt_beams[a, 1]))
+            t1 = -(lam * (nx * tgt_beams[b, 0] + ny * tgt_beams[b, 1]))
+        else:
+            sc = 1.0
+            t0 = -(1.0 - lam)
+            t1 = -lam
+        src_coef[t] = sc
+        tgt_coef[t, 0] = t0
+        tgt_coef[t, 1] = t1
+        v[t] = sc * sc + (t0 * t0 + t1 * t1)
+    return r, v, jac, src_coef, tgt_coef
+
+
+@njit(cache=True, nogil=True)
+def icp_line(points, origin, cell, columns, start, order, line, cand, cand_pts, cand_normals, src_points,
+             src_beams, x0, lscale, max_iterations, reassociate_m, upper, max_extra, cos_max, check_normals,
+             min_incidence_cos, range_noise, huber_c, mad_to_sigma, min_noise, damping, tol_m, tol_rad,
+             radius_m, has_points, pp, p_origin, p_cell, p_columns, p_start, p_order, p_obj, src_pidx, tgt_pidx,
+             tgt_points, tgt_beams):
+    """The iterations of point-to-line ICP with the Huber kernel (icp._icp_line_loop), in one call.
+
+    Each iteration is icp's: re-associate (:func:`associate`, and the
+    small objects' :func:`_point_matches` when ``has_points``) once the pose
+    has moved by ``reassociate_m`` since the last association, linearise
+    (:func:`linearise`, :func:`_point_rows`), weigh all rows under one
+    robust scale (:func:`huber_rows`), and take a damped Gauss-Newton step
+    on ``(H + mu diag(lscale)) dx = -g``.  As a Python loop of numpy and
+    kernel calls one iteration cost 230-480 µs on a 5,000-scan warehouse
+    log, most of it call overhead on a few hundred rows.  The sums run in
+    row order here, so results no longer depend on the BLAS kernel a
+    machine picks (they differed between two x86 machines before).
+
+    ``pp`` (m, 2) the target's small-object readings with their cell
+    index, ``p_obj`` their object labels; ``src_pidx`` / ``tgt_pidx`` the
+    small-object reading indices of each scan.
+
+    Returns (x (3,), converged, iterations, status, i (K,) source indices,
+    j (K,) target line indices, r, v, w (K,), jac (K, 3), s, phi2, sc (K,),
+    scale, and the small-object rows: src (P,), ends (P, 2), r, v, w (P,),
+    jac (P, 3), src_coef (P,), tgt_coef (P, 2)).  status 0: done; 1: fewer
+    than 3 correspondences (icp._failed); 2: a tie between nearest points,
+    which the caller resolves with the kd-tree instead.  P = 0 where icp
+    has no small-object rows.
+    """
+    x = x0.copy()
+    converged = False
+    status = 0
+    it = 0
+    moved = np.inf
+    keep = np.zeros(0, np.int64)
+    jj = np.zeros(0, np.int64)
+    lt = np.zeros((line.shape[1], 0))
+    kept_pts = np.zeros((0, 2))
+    kept_beams = np.zeros((0, 2))
+    r = np.zeros(0)
+    v = np.zeros(0)
+    w = np.zeros(0)
+    jac = np.zeros((0, 3))
+    s_al = np.zeros(0)
+    phi2 = np.zeros(0)
+    sc = np.zeros(0)
+    scale = 0.0
+    m_src = np.zeros(0, np.int64)
+    m_ends = np.zeros((0, 2), np.int64)
+    pr = np.zeros(0)
+    pv = np.zeros(0)
+    pwt = np.zeros(0)
+    pjac = np.zeros((0, 3))
+    psc = np.zeros(0)
+    ptc = np.zeros((0, 2))
+    h = np.empty((3, 3))
+    g = np.empty(3)
+    for it in range(1, max_iterations + 1):
+        c = math.cos(x[2])
+        s = math.sin(x[2])
+        if moved >= reassociate_m:
+            pw = _rotate(cand_pts, c, s, x[0], x[1])
+            nr = _rotate(cand_normals, c, s, 0.0, 0.0) if check_normals else pw
+            keep, jj, lt, tied = associate(points, origin, cell, columns, start, order, pw, nr, line, upper,
+                                           max_extra, cos_max, check_normals)
+            if has_points:
+                m_src, m_ends, tied_p = _point_matches(pp, p_origin, p_cell, p_columns, p_start, p_order, p_obj,
+                                                       src_pidx, src_points, tgt_pidx, tgt_points, c, s, x[0],
+                                                       x[1], upper)
+                tied = tied or tied_p
+            if tied:
+                status = 2
+                break
+            kept_pts = np.empty((len(keep), 2))
+            kept_beams = np.empty((len(keep), 2))
+            for t in range(len(keep)):
+                q = cand[keep[t]]
+                kept_pts[t, 0] = src_points[q, 0]
+                kept_pts[t, 1] = src_points[q, 1]
+                kept_beams[t, 0] = src_beams[q, 0]
+                kept_beams[t, 1] = src_beams[q, 1]
+            moved = 0.0
+        n_pts = len(m_src)
+        if len(keep) + n_pts < 3:
+            status = 1
+            break
+        r, v, w, jac, s_al, phi2, sc, scale, pr, pv, pwt, pjac, psc, ptc, jw = _icp_rows(
+            kept_pts, kept_beams, lt, x, c, s, min_incidence_cos, range_noise, huber_c, mad_to_sigma, min_noise,
+            m_src, m_ends, src_points, src_beams, tgt_points, tgt_beams)
+        # One pass over the rows, each sum accumulated in row order (lines, then small objects).
+        h[:, :] = 0.0
+        g[:] = 0.0
+        n_l = len(r)
+        for k in range(n_l + n_pts):
+            rk = r[k] if k < n_l else pr[k - n_l]
+            for a in range(3):
+                ja = jw[k, a]
+                g[a] += ja * rk
+                for b in range(3):
+                    h[a, b] += ja * (jac[k, b] if k < n_l else pjac[k - n_l, b])
+        mu = damping * (h[0, 0] / lscale[0] + h[1, 1] / lscale[1] + h[2, 2] / lscale[2]) / 3.0
+        for a in range(3):
+            h[a, a] += mu * lscale[a]
+        step = _solve3(h, g)
+        for a in range(3):
+            x[a] -= step[a]
+        moved += math.hypot(step[0], step[1]) + radius_m * abs(step[2])
+        if math.hypot(step[0], step[1]) < tol_m and abs(step[2]) < tol_rad:
+            converged = True
+            break
+    if status == 0 and len(m_src):
+        # icp keeps the rows of the final pose when small objects take part (the loop's are from
+        # before its last step).
+        r, v, w, jac, s_al, phi2, sc, scale, pr, pv, pwt, pjac, psc, ptc, jw = _icp_rows(
+            kept_pts, kept_beams, lt, x, math.cos(x[2]), math.sin(x[2]), min_incidence_cos, range_noise, huber_c,
+            mad_to_sigma, min_noise, m_src, m_ends, src_points, src_beams, tgt_points, tgt_beams)
+    idx = np.empty(len(keep), np.int64)
+    for t in range(len(keep)):
+        idx[t] = cand[keep[t]]
+    return (x, converged, it, status, idx, jj, r, v, w, jac, s_al, phi2, sc, scale,
+            m_src, m_ends, pr, pv, pwt, pjac, psc, ptc)
+
+
+@njit(cache=True, nogil=True)
+def _icp_rows(kept_pts, kept_beams, lt, x, c, s, min_incidence_cos, range_noise, huber_c, mad_to_sigma, min_noise,
+              m_src, m_ends, src_points, src_beams, tgt_points, tgt_beams):
+    """All of ICP's rows at pose x and their Huber weights under one scale; jw (K + P, 3) the weighted Jacobian."""
+    rp = _rotate(kept_pts, c, s, 0.0, 0.0)
+    ub = _rotate(kept_beams, c, s, 0.0, 0.0) if range_noise else rp
+    r, v, jac, s_al, phi2, sc, z = linearise(rp, ub, lt, x[0], x[1], min_incidence_cos, range_noise)
+    pr, pv, pjac, psc, ptc = _point_rows(m_src, m_ends, src_points, src_beams, tgt_points, tgt_beams, c, s, x[0],
+                                         x[1], range_noise)
+    n_l = len(r)
+    n_p = len(pr)
+    z_all = np.empty(n_l + n_p)
+    v_all = np.empty(n_l + n_p)
+    jac_all = np.empty((n_l + n_p, 3))
+    z_all[:n_l] = z
+    v_all[:n_l] = v
+    jac_all[:n_l] = jac
+    for t in range(n_p):
+        z_all[n_l + t] = pr[t] / math.sqrt(pv[t])
+        v_all[n_l + t] = pv[t]
+        jac_all[n_l + t] = pjac[t]
+    w_all, scale, jw = huber_rows(z_all, v_all, jac_all, huber_c, mad_to_sigma, min_noise)
+    return (r, v, w_all[:n_l].copy(), jac, s_al, phi2, sc, scale, pr, pv, w_all[n_l:].copy(), pjac, psc, ptc, jw)

@@ -317,6 +317,15 @@ class PreparedScan:
             self._lazy["point_tree"] = cKDTree(self.points[self.point_index]) if len(self.point_index) else None
         return self._lazy["point_tree"]
 
+    def _point_cells(self):
+        """The small-object readings (m, 2) and their cell index (_kernels.cell_index), for ICP's queries."""
+        got = self._lazy.get("point_cells")
+        if got is None:
+            pp = np.ascontiguousarray(self.points[self.point_index])
+            got = (pp, *_kernels.cell_index(pp, _CELL_M))
+            self._lazy["point_cells"] = got
+        return got
+
     @property
     def fit_tree(self) -> cKDTree:
         got = self._lazy.get("fit_tree")
@@ -919,10 +928,38 @@ def _robust(r, v, opt, kernel, z=None):
 
 
 def _icp_line(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions, kernel) -> _Solution:
-    x = np.array(x0, dtype=float)
     cos_max = np.cos(opt.max_normal_angle_rad) if opt.max_normal_angle_rad < np.pi else None
-    range_noise = src.point_noise == "range"
     lscale = np.array([1.0, 1.0, src.length_m ** 2])
+    if kernel.name == "huber":
+        # The default kernel: the whole loop in one compiled call (_kernels.icp_line, the same
+        # iterations in a fixed order of additions).  Measured on a 5,000-scan warehouse log: 230 µs
+        # per iteration as a Python loop of numpy and kernel calls, 480 µs with small objects.
+        cand, cand_pts, cand_normals = _candidates(src, cos_max)
+        has_points = len(src.point_index) > 0 and len(tgt.point_index) >= 2
+        target_index = tgt._target_side()[4]
+        pp_index = tgt._point_cells() if has_points else target_index
+        (x, converged, it, status, i, j, r, v, w, jac, s_al, phi2, sc, scale,
+         m_src, m_ends, pr, pv, pw, pjac, psc, ptc) = _kernels.icp_line(
+            *target_index, tgt.line, cand, cand_pts, cand_normals if cos_max is not None else cand_pts,
+            src.points, src.beams, np.array(x0, dtype=float), lscale, opt.max_iterations, opt.reassociate_m,
+            opt.max_correspondence_m, opt.max_extrapolation_m, -np.inf if cos_max is None else cos_max,
+            cos_max is not None, opt.min_incidence_cos, src.point_noise == "range", kernel.scale, _MAD_TO_SIGMA,
+            opt.min_noise_m, opt.damping, opt.tolerance_m, opt.tolerance_rad, src.radius_m,
+            has_points, *pp_index, tgt.point_object, src.point_index, tgt.point_index, tgt.points, tgt.beams)
+        if status != 2:     # 2: a tie between nearest points, which the loop below resolves with the kd-tree
+            x[2] = np.pi - np.mod(np.pi - x[2], 2 * np.pi)
+            if status == 1:
+                return _failed(x, it)
+            rows = _PointRows(m_src, m_ends, pr, pv, pw, pjac, psc, ptc) if len(m_src) else None
+            return _Solution(x, converged, it, i, j, r, v, w, jac, np.stack((s_al, phi2), axis=1), sc, scale, rows)
+    return _icp_line_loop(src, tgt, x0, opt, kernel, cos_max, lscale)
+
+
+def _icp_line_loop(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions, kernel, cos_max,
+                   lscale) -> _Solution:
+    """Point-to-line ICP as a Python loop: any kernel, small objects, ties between nearest points."""
+    x = np.array(x0, dtype=float)
+    range_noise = src.point_noise == "range"
     lscale_diag = np.diag(lscale)
     converged = False
     it = 0
