@@ -322,16 +322,27 @@ def nearest(points, origin, cell, columns, start, order, queries, upper):
         if 0 <= ci < ni and 0 <= cj < nj:
             c = ci * nj + cj
             best, bi, tie = _scan_cell(points, order, start[c], start[c + 1], qx, qy, n, best, bi, tie)
-        for i in range(i0, i1 + 1):
-            gx = max(i - fi, 0.0, fi - (i + 1)) * cell
-            for j in range(j0, j1 + 1):
-                if i == ci and j == cj:
-                    continue
-                gy = max(j - fj, 0.0, fj - (j + 1)) * cell
-                if gx * gx + gy * gy > best:
-                    continue
-                c = i * nj + j
-                best, bi, tie = _scan_cell(points, order, start[c], start[c + 1], qx, qy, n, best, bi, tie)
+        # Then ring by ring around it, while a ring can hold a point as near as the best so far: an
+        # ICP query usually lies a few centimetres from a wall point, so the own cell and at most
+        # its first ring settle it instead of all (2 reach + 1)^2 cells' gap tests (150 -> 118 ns a
+        # query on simulated warehouse pairs, 105 -> 87 in the yard, best of 60 runs).  A ring is
+        # skipped only when it lies strictly farther than the best, so ties are seen as before.
+        edge = min(fi - ci, ci + 1 - fi, fj - cj, cj + 1 - fj) * cell
+        for ring in range(1, reach + 1):
+            gap = edge + (ring - 1) * cell
+            if gap * gap > best:
+                break
+            for i in range(max(ci - ring, i0), min(ci + ring, i1) + 1):
+                gx = max(i - fi, 0.0, fi - (i + 1)) * cell
+                step = 1 if i == ci - ring or i == ci + ring else 2 * ring
+                for j in range(cj - ring, cj + ring + 1, step):
+                    if j < j0 or j > j1:
+                        continue
+                    gy = max(j - fj, 0.0, fj - (j + 1)) * cell
+                    if gx * gx + gy * gy > best:
+                        continue
+                    c = i * nj + j
+                    best, bi, tie = _scan_cell(points, order, start[c], start[c + 1], qx, qy, n, best, bi, tie)
         if bi < n:
             dist[p] = math.sqrt(best)
             idx[p] = bi
