@@ -178,8 +178,6 @@ def search(grid: LikelihoodGrid, points, seed, *, window_m: float, window_rad: f
     n_top = int(np.ceil((2 * half + 1) / top))
     starts = -half + top * np.arange(n_top)
     rows = _rotations(seeds, window_rad, angle_step_rad)          # (A, 4) seed x, seed y, theta, seed index
-    row_seed = rows[:, 3].astype(np.intp)
-    best = _Best(len(seeds), n_best, separation_m, separation_rad)
 
     # Cells of the rotated source points at zero offset.  Clipping keeps
     # points far outside the grid far enough outside that no offset in the
@@ -215,55 +213,22 @@ def search(grid: LikelihoodGrid, points, seed, *, window_m: float, window_rad: f
     tops = _kernels.top_blocks(len(rows), starts.astype(np.int64), top_level)
     if top_level == 0:
         tops = tops[(np.abs(tops[:, 1]) <= half) & (np.abs(tops[:, 2]) <= half)]
-    top_score = bounds(tops)
-    if top_level == 0:
-        best.add(_poses(top_score, tops, rows, r))
-        tops, top_score = tops[:0], top_score[:0]
-    # Open blocks by level.  Each round splits the best _BATCH_NODES open blocks of
-    # the finest level that has any that can still beat the k-th best leaf: the
-    # search dives to full resolution in a few rounds, and the leaves it finds
-    # there set a bar that most of the coarse blocks never clear (splitting the
-    # best blocks of all levels first would open most coarse blocks before
-    # the first leaf is reached).
-    open_nodes = [tops[:0]] * top_level + [tops]
-    open_score = [top_score[:0]] * top_level + [top_score]
-    # A block's four children (quadrants): node rows to add to the block's [angle, ox, oy, level].
-    quad = np.array([[0, 0, 0, 0], [0, 0, 1, 0], [0, 1, 0, 0], [0, 1, 1, 0]])
-    split = [None] + [quad * (1 << (lvl - 1)) - np.array([0, 0, 0, 1]) for lvl in range(1, top_level + 1)]
-    # The bookkeeping of each batch is compiled too (_kernels.live_blocks, take_rest, append_blocks):
-    # a search runs about 80 batches of a few dozen blocks, where a dozen numpy calls each cost more
-    # than the bounds.  The selection of the best blocks stays numpy's argpartition, whose choice
-    # among equal bounds decides which blocks open first, so the results stay those of before.
-    while True:
-        for lvl in range(1, top_level + 1):
-            if not len(open_score[lvl]):
-                continue
-            # A block whose bound cannot beat the k-th best distinct leaf holds nothing to find.
-            nodes, score = _kernels.live_blocks(open_nodes[lvl], open_score[lvl], best.bar, row_seed)
-            if len(score):
-                break
-            open_nodes[lvl], open_score[lvl] = nodes, score
-        else:
-            break
-        if len(nodes) > _BATCH_NODES:
-            sel = np.argpartition(-score, _BATCH_NODES - 1)[:_BATCH_NODES]
-            parents, open_nodes[lvl], open_score[lvl] = _kernels.take_rest(nodes, score, sel)
-        else:
-            parents, open_nodes[lvl], open_score[lvl] = nodes, nodes[:0], score[:0]
-        # Compiled (_kernels.split_and_bound): the gathers over the pyramid are the search's main
-        # cost, and numpy spent as much again on the temporaries of each batch.
-        # Only the children whose bound beats their seed's bar come back: leaves found, or blocks to open.
-        kids, kid_score = _kernels.split_and_bound(parents, split[lvl], half, lvl == 1, stack, base, size, hp,
-                                                   best.bar, row_seed)
-        if lvl == 1:
-            if len(kids):
-                best.add(_poses(kid_score, kids, rows, r))
-        else:
-            open_nodes[lvl - 1], open_score[lvl - 1] = _kernels.append_blocks(open_nodes[lvl - 1],
-                                                                              open_score[lvl - 1], kids, kid_score)
-    out = best.merged
+    split = np.zeros((top_level + 1, 4, 4), np.int64)
+    for lvl in range(1, top_level + 1):
+        split[lvl] = quad_split(lvl)
+    # The rounds of splitting and the leaves' lists in one compiled call (_kernels.coarse_search;
+    # as a Python loop of kernel calls, the loop's overhead was more than half of a search's time).
+    out = _kernels.coarse_search(tops, bounds(tops), top_level, split, half, stack, base, size, hp,
+                                 np.ascontiguousarray(rows), float(r), len(seeds), int(n_best), float(separation_m),
+                                 float(separation_rad), _BATCH_NODES, _MAX_RECORDS)
     poses = out[:, 1:4].copy()
     return poses, out[:, 0] / (_LEVELS * len(pts))
+
+
+def quad_split(level: int) -> np.ndarray:
+    """Rows to add to a block [angle, ox, oy, level] of ``level`` for its four children (quadrants)."""
+    quad = np.array([[0, 0, 0, 0], [0, 0, 1, 0], [0, 1, 0, 0], [0, 1, 1, 0]])
+    return quad * (1 << (level - 1)) - np.array([0, 0, 0, 1])
 
 
 def _rotations(seeds, window_rad, step) -> np.ndarray:
@@ -273,53 +238,3 @@ def _rotations(seeds, window_rad, step) -> np.ndarray:
     ks = step * np.arange(-n_ang, n_ang + 1)
     return np.concatenate([np.column_stack([np.full(len(ks), sd[0]), np.full(len(ks), sd[1]), sd[2] + ks,
                                             np.full(len(ks), k)]) for k, sd in enumerate(seeds)])
-
-
-def _poses(score, nodes, rows, r) -> np.ndarray:
-    """Leaf scores and nodes [angle row, ox, oy, level] -> records [sum score, x, y, theta, seed index]."""
-    return np.column_stack([score, rows[nodes[:, 0], 0] + r * nodes[:, 1], rows[nodes[:, 0], 1] + r * nodes[:, 2],
-                            rows[nodes[:, 0], 2], rows[nodes[:, 0], 3]]).astype(float)
-
-
-class _Best:
-    """Leaves found so far: each seed's n_best distinct ones, their merge, and the pruning bar.
-
-    ``bar[j]`` is the score a leaf of seed j must beat to matter: the higher
-    of the seed's own n_best-th best distinct leaf and that of the merged
-    lists (-1 while a list is short).  As in any branch and bound on the
-    k-th best distinct leaf, a later leaf that suppresses two of the best so
-    far lowers the k-th best again, and a block pruned before may then have
-    held one of the final best; this is rare (one pair in 715 in the
-    comparison against independent searches, a runner-up of a false pair).
-    """
-
-    def __init__(self, n_seeds: int, k: int, sep_m: float, sep_rad: float):
-        self.k, self.sep_m, self.sep_rad = k, sep_m, sep_rad
-        self.own = [np.empty((0, 5))] * n_seeds       # the leaves of each seed that may still matter
-        self.lists = [np.empty((0, 5))] * n_seeds     # each seed's n_best distinct leaves, best first
-        self.kth = np.full(n_seeds, -1.0)
-        self.merged = np.empty((0, 5))
-        self.bar = np.full(n_seeds, -1.0)
-
-    def add(self, records):
-        """Take new leaves (rows [sum score, x, y, theta, seed index]) and update the lists and bars."""
-        seeds = range(1) if len(self.own) == 1 else np.unique(records[:, 4]).astype(int)
-        for j in seeds:
-            # Best first, equal scores in a fixed order of the pose, so that ties are resolved the
-            # same whichever order the leaves were found in; leaves below the seed's k-th best
-            # distinct one can no longer be among its best.  Compiled (_kernels.seed_leaves: a
-            # dozen numpy calls on a few hundred rows, called some 7 times per search).
-            own, best, kth, over = _kernels.seed_leaves(self.own[j], records, j, self.k, self.sep_m, self.sep_rad,
-                                                        _MAX_RECORDS)
-            if over:
-                own = own[np.argpartition(-own[:, 0], _MAX_RECORDS - 1)[:_MAX_RECORDS]]
-                own, best, kth, over = _kernels.seed_leaves(own, own[:0], j, self.k, self.sep_m, self.sep_rad,
-                                                            _MAX_RECORDS)
-            self.own[j], self.lists[j], self.kth[j] = own, best, kth
-        # The merge of the seeds' lists, as if each seed had been searched on its own.
-        union = np.concatenate(self.lists)
-        union[:, 3] = np.pi - np.mod(np.pi - union[:, 3], 2 * np.pi)          # theta in (-pi, pi]
-        union = union[np.argsort(-union[:, 0], kind="stable")]
-        self.merged = union[distinct(union, self.k, self.sep_m, self.sep_rad)]
-        merged_kth = self.merged[-1, 0] if len(self.merged) == self.k else -1.0
-        self.bar = np.maximum(self.kth, merged_kth)
