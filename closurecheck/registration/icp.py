@@ -326,6 +326,15 @@ class PreparedScan:
             self._lazy["point_cells"] = got
         return got
 
+    def _fit_cells(self):
+        """fit_tree's points (those with a line or of a small object) and their cell index (_kernels.cell_index)."""
+        got = self._lazy.get("fit_cells")
+        if got is None:
+            fp = np.ascontiguousarray(self.points[np.union1d(self.line_index, self.point_index)])
+            got = (fp, *_kernels.cell_index(fp, _CELL_M))
+            self._lazy["fit_cells"] = got
+        return got
+
     @property
     def fit_tree(self) -> cKDTree:
         got = self._lazy.get("fit_tree")
@@ -1074,7 +1083,9 @@ def _fit_score(src: PreparedScan, tgt: PreparedScan, x, opt: RegistrationOptions
     pts = src.coarse_points
     pw = pts @ np.array([[c, s], [-s, c]]) + x[:2]
     if len(tgt.point_index):
-        d, _ = tgt.fit_tree.query(pw, distance_upper_bound=4.0 * opt.fit_sigma_m)
+        # The compiled lookup over the same points as fit_tree: only distances are used, so a tie
+        # between two nearest points needs no tree (120 µs a call with the tree's query).
+        d = _kernels.nearest(*tgt._fit_cells(), np.ascontiguousarray(pw), 4.0 * opt.fit_sigma_m)[0]
     else:   # fit_tree is the line tree: the compiled lookup gives its answers
         d, _ = _nearest_line(tgt, pw, 4.0 * opt.fit_sigma_m)
     d = d[np.isfinite(d)]
