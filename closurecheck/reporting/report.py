@@ -266,15 +266,19 @@ def _anchor(poses: np.ndarray) -> np.ndarray:
     return se2.compose(se2.inverse(poses[0]), poses) if len(poses) else poses
 
 
-def _draw_map(ax, poses, scan_points, colour, title, stride=3):
-    xs, ys = [], []
-    for pose, pts in zip(poses, scan_points):
-        if len(pts):
-            w = se2.transform_points(pose, np.asarray(pts)[::stride])
-            xs.append(w[:, 0])
-            ys.append(w[:, 1])
-    if xs:
-        ax.plot(np.concatenate(xs), np.concatenate(ys), ",", color=colour, alpha=0.6, rasterized=True)
+def _map_points(scan_points, stride=3):
+    """Every ``stride``-th point of each scan, (M, 2) in its robot frame, and the index of its scan (M,)."""
+    parts = [np.asarray(p, dtype=float).reshape(-1, 2)[::stride] for p in scan_points]
+    if not parts:
+        return np.zeros((0, 2)), np.zeros(0, dtype=np.int64)
+    return np.concatenate(parts), np.repeat(np.arange(len(parts)), [len(p) for p in parts])
+
+
+def _draw_map(ax, poses, points, owner, colour, title):
+    if len(points):
+        # All scans in one call (a call per scan was 0.05 s per map at 5,000 scans).
+        w = se2.transform_points(poses[owner], points[:, None, :])[:, 0]
+        ax.plot(w[:, 0], w[:, 1], ",", color=colour, alpha=0.6, rasterized=True)
     ax.plot(poses[:, 0], poses[:, 1], "-", color=TRAJECTORY_COLOUR, lw=0.6, alpha=0.8)
     ax.plot(poses[:1, 0], poses[:1, 1], "o", color=TRAJECTORY_COLOUR, ms=5)
     ax.set_title(title)
@@ -286,8 +290,9 @@ def _draw_map(ax, poses, scan_points, colour, title, stride=3):
 def figure_maps(data: ReportData) -> bytes:
     """Odometry-only map next to the optimised one, both anchored at the first keyframe."""
     fig, (axes,) = _figure(13, 6.2, 1, 2, top=0.35, bottom=0.55, left=0.75, wgap=0.75)
-    _draw_map(axes[0], _anchor(data.odom), data.scan_points, ODOM_COLOUR, "Odometry only")
-    _draw_map(axes[1], _anchor(data.poses), data.scan_points, MAP_COLOUR, "With verified loop closures")
+    points, owner = _map_points(data.scan_points)
+    _draw_map(axes[0], _anchor(data.odom), points, owner, ODOM_COLOUR, "Odometry only")
+    _draw_map(axes[1], _anchor(data.poses), points, owner, MAP_COLOUR, "With verified loop closures")
     return _png(fig)
 
 
@@ -316,15 +321,17 @@ def figure_agreement(data: ReportData) -> bytes | None:
 
 
 def _ellipse_points(cov2, centre, n_sigma, scale, n=48):
-    """Points of the ``n_sigma`` contour of a 2-D Gaussian, magnified ``scale`` times.
+    """Points (..., n, 2) of the ``n_sigma`` contour of 2-D Gaussians (``cov2`` (..., 2, 2), ``centre`` (..., 2)),
+    magnified ``scale`` times.
 
     Every returned point p satisfies (p - c)^T cov2^-1 (p - c) = (n_sigma * scale)^2.
     """
-    vals, vecs = np.linalg.eigh(0.5 * (cov2 + cov2.T))
+    cov2 = np.asarray(cov2, dtype=float)
+    vals, vecs = np.linalg.eigh(0.5 * (cov2 + np.swapaxes(cov2, -1, -2)))
     vals = np.clip(vals, 0.0, None)
     a = np.linspace(0, 2 * np.pi, n)
-    circle = np.stack([np.cos(a), np.sin(a)], -1) * (n_sigma * scale * np.sqrt(vals))
-    return centre + circle @ vecs.T
+    circle = np.stack([np.cos(a), np.sin(a)], -1) * (n_sigma * scale * np.sqrt(vals))[..., None, :]
+    return np.asarray(centre, dtype=float)[..., None, :] + circle @ np.swapaxes(vecs, -1, -2)
 
 
 def _nice_scale(x: float) -> float:
@@ -394,18 +401,18 @@ def figure_loops(data: ReportData, ellipse_scale: float) -> bytes:
         # long: the end markers keep them visible where the line is not.
         ax.plot(*seg, "-", color=ACCEPT_COLOUR, lw=1.1, alpha=0.85, marker="o", ms=2.5,
                 label="verified loop closure")
-    ex, ey = [], []
-    for k in acc:
-        s, d = int(v.src[k]), int(v.dst[k])
-        if s not in index or d not in index or not np.isfinite(v.covariance[k]).all():
-            continue
+    drawn = [k for k in acc if int(v.src[k]) in index and int(v.dst[k]) in index
+             and np.isfinite(v.covariance[k]).all()]
+    if drawn:
+        si = np.array([index[int(v.src[k])] for k in drawn])
+        di = np.array([index[int(v.dst[k])] for k in drawn])
         # The covariance is in the src frame; the ellipse sits on the dst pose it locates.
-        rot = se2.rotation(poses[index[s], 2])
-        pts = _ellipse_points(rot @ v.covariance[k][:2, :2] @ rot.T, poses[index[d], :2], 3.0, ellipse_scale)
-        ex.append(np.append(pts[:, 0], np.nan))
-        ey.append(np.append(pts[:, 1], np.nan))
-    if ex:
-        ax.plot(np.concatenate(ex), np.concatenate(ey), "-", color=ELLIPSE_COLOUR, lw=0.6, alpha=0.7,
+        rot = se2.rotation(poses[si, 2])
+        cov = rot @ np.asarray(v.covariance, float)[drawn][:, :2, :2] @ np.swapaxes(rot, -1, -2)
+        pts = _ellipse_points(cov, poses[di, :2], 3.0, ellipse_scale)
+        # A NaN after each ellipse separates them within one line.
+        pts = np.concatenate([pts, np.full((len(drawn), 1, 2), np.nan)], axis=1).reshape(-1, 2)
+        ax.plot(pts[:, 0], pts[:, 1], "-", color=ELLIPSE_COLOUR, lw=0.6, alpha=0.7,
                 label=f"3-sigma position ellipse (x{ellipse_scale:g})")
     ax.set_title(f"Verified loop closures ({len(acc)})")
 
