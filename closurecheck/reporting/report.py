@@ -252,11 +252,20 @@ def _plain_formatter_class():
     return PlainMathFormatter
 
 
-def _plain_log_labels(*axes) -> None:
-    """Label the log-scaled axes among ``axes`` (matplotlib Axis objects) with :func:`plain_math`."""
+def _log_ticks(*axes) -> None:
+    """Ticks of the log-scaled axes among ``axes`` (matplotlib Axis objects): labels through
+    :func:`plain_math`, and minor ticks at 2 and 5 times each power of ten instead of 2 to 9.
+
+    Each tick is a handful of artists made at draw time: the fewer minor
+    ticks took 0.2 s off the histograms and NEES pictures at 5,000 scans
+    (0.68 + 0.39 s -> 0.59 + 0.27 s of CPU).
+    """
+    from matplotlib.ticker import LogLocator
+
     cls = _plain_formatter_class()
     for axis in axes:
         if axis.get_scale() == "log":
+            axis.set_minor_locator(LogLocator(subs=(2.0, 5.0)))
             axis.set_major_formatter(cls(axis.get_major_formatter()))
             axis.set_minor_formatter(cls(axis.get_minor_formatter()))
 
@@ -510,7 +519,7 @@ def figure_histograms(data: ReportData) -> bytes | None:
                 below_counts = top
         if log_scale:
             ax.set_xscale("log")
-            _plain_log_labels(ax.xaxis)
+            _log_ticks(ax.xaxis)
         if thr is not None and np.isfinite(thr):
             ax.axvline(thr, color="#1d2733", ls="--", lw=1.0,
                        label=THRESHOLD_LABEL.get(key, "bound {:.3g}").format(thr))
@@ -602,7 +611,7 @@ def figure_nees(score: dict) -> bytes | None:
     for q, style in ((0.5, ":"), (0.025, "--"), (0.975, "--")):
         ax.axvline(dist.ppf(q), color="#5b6b7c", ls=style, lw=0.9)
     ax.set_xscale("log")
-    _plain_log_labels(ax.xaxis)
+    _log_ticks(ax.xaxis)
     ax.set_xlabel("NEES (squared Mahalanobis error against truth)")
     ax.set_ylabel("closures")
     inside50 = score.get("nees_share_in_central_50pct", math.nan)
@@ -615,7 +624,7 @@ def figure_nees(score: dict) -> bytes | None:
     aq.loglog(q, x, ".", color=ACCEPT_COLOUR, ms=3, label="sorted NEES")
     span = np.array([min(q[0], x[0]), max(q[-1], x[-1])])
     aq.loglog(span, span, "-", color="#1d2733", lw=1.0, label="honest (y = x)")
-    _plain_log_labels(aq.xaxis, aq.yaxis)
+    _log_ticks(aq.xaxis, aq.yaxis)
     aq.set_xlabel("chi-square(3) quantile")
     aq.set_ylabel("NEES")
     aq.set_title("Quantile-quantile: below the line, covariances too large; above, too small", fontsize=9)
