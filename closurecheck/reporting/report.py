@@ -180,7 +180,8 @@ def _png(fig) -> bytes:
     fig.canvas.draw()
     rgba = np.asarray(fig.canvas.buffer_rgba())
     face = np.array([round(255 * c) for c in fig.get_facecolor()], dtype=np.uint8)
-    ink = (rgba != face).any(axis=2)
+    # One 32-bit comparison per pixel instead of four 8-bit ones.
+    ink = np.ascontiguousarray(rgba).view(np.uint32)[..., 0] != face.view(np.uint32)[0]
     rows, cols = np.flatnonzero(ink.any(axis=1)), np.flatnonzero(ink.any(axis=0))
     if len(rows):
         y0, y1 = max(rows[0] - _PAD_PX, 0), min(rows[-1] + 1 + _PAD_PX, rgba.shape[0])
