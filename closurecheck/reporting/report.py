@@ -770,7 +770,7 @@ def _column_cells(values, klass: str) -> list:
 
     Numeric and boolean columns skip the per-value type tests (and the
     escaping: their text holds no markup); text columns escape each
-    distinct value once.  The whole table (3,400 rows, 21 columns) took
+    distinct value once.  The whole table (3,400 rows, 26 columns) took
     0.24 s cell by cell and 0.07 s this way, with the same bytes
     (5,000-scan warehouse log).
     """
