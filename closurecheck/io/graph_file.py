@@ -71,15 +71,22 @@ def graph_to_dict(graph: PoseGraph) -> dict:
     """The JSON document of ``graph`` (docs/formats.md, "Pose graph")."""
     info = _symmetric(np.asarray(graph.information, dtype=float))
     cov = _symmetric(np.linalg.inv(info)) if len(info) else info
-    nodes = [{"id": int(i), "t": float(t), "pose": [float(v) for v in p], "odom": [float(v) for v in o]}
-             for i, t, p, o in zip(graph.ids, graph.t, graph.poses, graph.odom)]
+
+    def rows(a):
+        # One tolist per array gives the same Python floats as float() of each number, without a call per number.
+        return np.asarray(a, dtype=float).tolist()
+
+    nodes = [{"id": int(i), "t": t, "pose": p, "odom": o}
+             for i, t, p, o in zip(graph.ids, rows(graph.t), rows(graph.poses), rows(graph.odom))]
     edges = []
     checks = graph.checks or tuple({} for _ in range(len(graph.src)))
-    for k in range(len(graph.src)):
-        edge = {"from": int(graph.src[k]), "to": int(graph.dst[k]), "kind": str(graph.kind[k]),
-                "delta": [float(v) for v in graph.delta[k]], "information": _matrix(info[k])}
-        if edge["kind"] == "loop":
-            edge["covariance"] = _matrix(cov[k])
+    loops = set(np.flatnonzero(np.asarray(graph.kind).astype(str) == "loop").tolist())
+    covariance = {k: cov[k].tolist() for k in loops}
+    for k, (s, d, kind, delta, information) in enumerate(zip(graph.src, graph.dst, graph.kind, rows(graph.delta),
+                                                             info.tolist())):
+        edge = {"from": int(s), "to": int(d), "kind": str(kind), "delta": delta, "information": information}
+        if k in loops:
+            edge["covariance"] = covariance[k]
             edge["checks"] = jsonable(checks[k])
         edges.append(edge)
     return {"graph": GRAPH_VERSION, "source": graph.source, "nodes": nodes, "edges": edges}

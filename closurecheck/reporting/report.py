@@ -19,10 +19,12 @@ buttons write rows for ``closurecheck run --decisions``.
 from __future__ import annotations
 
 import base64
+import functools
 import html
 import io
 import json
 import math
+import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -131,11 +133,143 @@ def check_thresholds(verify_options) -> dict:
     return check_bounds(verify_options)
 
 
+# Blank canvas (inches) around each figure's nominal area: labels, legends
+# and titles that outgrow their margins land on it instead of being cut off,
+# and _png crops it away again.
+_SLACK_IN = 1.0
+# Blank border (pixels) kept around the drawn content, as savefig's
+# bbox_inches="tight" keeps its default pad_inches=0.1 at 100 dpi.
+_PAD_PX = 10
+# zlib level of the PNGs.  Measured on the 5,000-scan warehouse log's six
+# pictures: level 6 (Pillow's default) 0.18 s to encode, level 1 0.11 s, the
+# files 8% larger (765 kB against 708 kB).
+_PNG_LEVEL = 1
+
+
+def _figure(width: float, height: float, rows: int = 1, cols: int = 1, *, left: float = 0.8,
+            right: float = 0.2, bottom: float = 0.6, top: float = 0.4, wgap: float = 0.8, hgap: float = 0.8,
+            **subplot_kw):
+    """A figure and its (rows, cols) axes with fixed margins and gaps in inches, for one draw.
+
+    The axes fill ``width`` x ``height`` inches less the margins; the
+    layout is set here instead of by tight_layout (or savefig's
+    bbox_inches="tight"), each of which draws the whole figure once more
+    to measure it: on the 5,000-scan warehouse log the six pictures took
+    3.5 s with both and 2.3 s drawn once (wall time, load average 2.3 on
+    2 cores).  No pyplot: the figure is not registered with a window
+    manager, so nothing needs closing.
+    """
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    full_w, full_h = width + 2 * _SLACK_IN, height + 2 * _SLACK_IN
+    fig = Figure(figsize=(full_w, full_h), dpi=100)
+    FigureCanvasAgg(fig)
+    ax_w = (width - left - right - (cols - 1) * wgap) / cols
+    ax_h = (height - top - bottom - (rows - 1) * hgap) / rows
+    grid = {"left": (_SLACK_IN + left) / full_w, "right": 1.0 - (_SLACK_IN + right) / full_w,
+            "bottom": (_SLACK_IN + bottom) / full_h, "top": 1.0 - (_SLACK_IN + top) / full_h,
+            "wspace": wgap / ax_w, "hspace": hgap / ax_h}
+    axes = fig.subplots(rows, cols, squeeze=False, gridspec_kw=grid, **subplot_kw)
+    return fig, axes
+
+
 def _png(fig) -> bytes:
+    """Draw ``fig`` once and encode it as PNG, cropped to its content plus a pad of ``_PAD_PX``."""
+    from PIL import Image
+
+    fig.canvas.draw()
+    rgba = np.asarray(fig.canvas.buffer_rgba())
+    face = np.array([round(255 * c) for c in fig.get_facecolor()], dtype=np.uint8)
+    # One 32-bit comparison per pixel instead of four 8-bit ones.
+    ink = np.ascontiguousarray(rgba).view(np.uint32)[..., 0] != face.view(np.uint32)[0]
+    rows, cols = np.flatnonzero(ink.any(axis=1)), np.flatnonzero(ink.any(axis=0))
+    if len(rows):
+        y0, y1 = max(rows[0] - _PAD_PX, 0), min(rows[-1] + 1 + _PAD_PX, rgba.shape[0])
+        x0, x1 = max(cols[0] - _PAD_PX, 0), min(cols[-1] + 1 + _PAD_PX, rgba.shape[1])
+        rgba = rgba[y0:y1, x0:x1]
     buf = io.BytesIO()
-    # No "Software" text chunk: the PNGs stay byte-identical across matplotlib versions' banners.
-    fig.savefig(buf, format="png", dpi=100, bbox_inches="tight", metadata={"Software": None})
+    # The figure is opaque: RGB is a quarter less to compress than RGBA.  No
+    # text chunks (Pillow writes none unless asked), so the PNGs do not
+    # depend on the library versions; pHYs says 100 dpi as savefig did.
+    Image.fromarray(np.ascontiguousarray(rgba[..., :3])).save(buf, format="png", dpi=(100, 100),
+                                                              compress_level=_PNG_LEVEL)
     return buf.getvalue()
+
+
+_SUPERSCRIPT = str.maketrans("-0123456789", "\u207b\u2070\u00b9\u00b2\u00b3\u2074\u2075\u2076\u2077\u2078\u2079")
+_MATH_POWER = re.compile(r"\^\{([^{}]*)\}")
+
+
+def plain_math(label: str) -> str:
+    """A log axis' tick label as plain text: exponents as Unicode superscripts, ``\\times`` as a times sign.
+
+    matplotlib labels log axes in mathtext (``$\\mathdefault{10^{-2}}$``),
+    and parsing it cost about 0.2 s of the report's pictures at 5,000
+    scans; the plain text needs no parser and reads the same.  Labels that
+    are not mathtext come back unchanged.
+
+    Examples
+    --------
+    >>> from closurecheck.reporting.report import plain_math
+    >>> plain_math("$\\mathdefault{10^{-2}}$"), plain_math("$\\mathdefault{2\\times10^{1}}$"), plain_math("")
+    ('10⁻²', '2×10¹', '')
+    """
+    if len(label) < 2 or not (label.startswith("$") and label.endswith("$")):
+        return label
+    body = label[1:-1]
+    if body.startswith("\\mathdefault{") and body.endswith("}"):
+        body = body[len("\\mathdefault{"):-1]
+    body = _MATH_POWER.sub(lambda m: m.group(1).translate(_SUPERSCRIPT), body)
+    return body.replace("\\times", "\u00d7").replace("-", "\u2212")
+
+
+@functools.cache
+def _plain_formatter_class():
+    from matplotlib.ticker import Formatter
+
+    class PlainMathFormatter(Formatter):
+        """Another formatter's labels through :func:`plain_math` (it still decides which ticks get one)."""
+
+        def __init__(self, inner):
+            self.inner = inner
+
+        def set_axis(self, axis):
+            super().set_axis(axis)
+            self.inner.set_axis(axis)
+
+        def set_locs(self, locs):
+            super().set_locs(locs)
+            self.inner.set_locs(locs)
+
+        def __call__(self, x, pos=None):
+            return plain_math(self.inner(x, pos))
+
+        def format_data(self, value):
+            return plain_math(self.inner.format_data(value))
+
+        def format_data_short(self, value):
+            return plain_math(self.inner.format_data_short(value))
+
+    return PlainMathFormatter
+
+
+def _log_ticks(*axes) -> None:
+    """Ticks of the log-scaled axes among ``axes`` (matplotlib Axis objects): labels through
+    :func:`plain_math`, and minor ticks at 2 and 5 times each power of ten instead of 2 to 9.
+
+    Each tick is a handful of artists made at draw time: the fewer minor
+    ticks took 0.2 s off the histograms and NEES pictures at 5,000 scans
+    (0.68 + 0.39 s -> 0.59 + 0.27 s of CPU).
+    """
+    from matplotlib.ticker import LogLocator
+
+    cls = _plain_formatter_class()
+    for axis in axes:
+        if axis.get_scale() == "log":
+            axis.set_minor_locator(LogLocator(subs=(2.0, 5.0)))
+            axis.set_major_formatter(cls(axis.get_major_formatter()))
+            axis.set_minor_formatter(cls(axis.get_minor_formatter()))
 
 
 def _anchor(poses: np.ndarray) -> np.ndarray:
@@ -143,15 +277,19 @@ def _anchor(poses: np.ndarray) -> np.ndarray:
     return se2.compose(se2.inverse(poses[0]), poses) if len(poses) else poses
 
 
-def _draw_map(ax, poses, scan_points, colour, title, stride=3):
-    xs, ys = [], []
-    for pose, pts in zip(poses, scan_points):
-        if len(pts):
-            w = se2.transform_points(pose, np.asarray(pts)[::stride])
-            xs.append(w[:, 0])
-            ys.append(w[:, 1])
-    if xs:
-        ax.plot(np.concatenate(xs), np.concatenate(ys), ",", color=colour, alpha=0.6, rasterized=True)
+def _map_points(scan_points, stride=3):
+    """Every ``stride``-th point of each scan, (M, 2) in its robot frame, and the index of its scan (M,)."""
+    parts = [np.asarray(p, dtype=float).reshape(-1, 2)[::stride] for p in scan_points]
+    if not parts:
+        return np.zeros((0, 2)), np.zeros(0, dtype=np.int64)
+    return np.concatenate(parts), np.repeat(np.arange(len(parts)), [len(p) for p in parts])
+
+
+def _draw_map(ax, poses, points, owner, colour, title):
+    if len(points):
+        # All scans in one call (a call per scan was 0.05 s per map at 5,000 scans).
+        w = se2.transform_points(poses[owner], points[:, None, :])[:, 0]
+        ax.plot(w[:, 0], w[:, 1], ",", color=colour, alpha=0.6, rasterized=True)
     ax.plot(poses[:, 0], poses[:, 1], "-", color=TRAJECTORY_COLOUR, lw=0.6, alpha=0.8)
     ax.plot(poses[:1, 0], poses[:1, 1], "o", color=TRAJECTORY_COLOUR, ms=5)
     ax.set_title(title)
@@ -162,15 +300,11 @@ def _draw_map(ax, poses, scan_points, colour, title, stride=3):
 
 def figure_maps(data: ReportData) -> bytes:
     """Odometry-only map next to the optimised one, both anchored at the first keyframe."""
-    import matplotlib.pyplot as plt
-
-    fig, axes = plt.subplots(1, 2, figsize=(13, 6.2))
-    _draw_map(axes[0], _anchor(data.odom), data.scan_points, ODOM_COLOUR, "Odometry only")
-    _draw_map(axes[1], _anchor(data.poses), data.scan_points, MAP_COLOUR, "With verified loop closures")
-    fig.tight_layout()
-    out = _png(fig)
-    plt.close(fig)
-    return out
+    fig, (axes,) = _figure(13, 6.2, 1, 2, top=0.35, bottom=0.55, left=0.75, wgap=0.75)
+    points, owner = _map_points(data.scan_points)
+    _draw_map(axes[0], _anchor(data.odom), points, owner, ODOM_COLOUR, "Odometry only")
+    _draw_map(axes[1], _anchor(data.poses), points, owner, MAP_COLOUR, "With verified loop closures")
+    return _png(fig)
 
 
 def figure_agreement(data: ReportData) -> bytes | None:
@@ -178,12 +312,11 @@ def figure_agreement(data: ReportData) -> bytes | None:
     check = data.free_space
     if check is None or not len(check.a):
         return None
-    import matplotlib.pyplot as plt
-
     poses = _anchor(data.poses)
     mid = 0.5 * (poses[check.a, :2] + poses[check.b, :2])
     bad = check.contradicts
-    fig, ax = plt.subplots(figsize=(9, _panel_height(poses, 9)))
+    # The legend hangs below the axes (at most three rows).
+    fig, ((ax,),) = _figure(9, _panel_height(poses, 9), top=0.15, bottom=1.1, left=0.75)
     ax.plot(poses[:, 0], poses[:, 1], "-", color=TRAJECTORY_COLOUR, lw=0.8, label="trajectory (optimised)")
     ax.plot(mid[~bad, 0], mid[~bad, 1], ".", color=ACCEPT_COLOUR, ms=3,
             label=f"visits that agree ({int((~bad).sum())} pairs)")
@@ -195,22 +328,21 @@ def figure_agreement(data: ReportData) -> bytes | None:
     ax.set_xlabel("x (m)")
     ax.set_ylabel("y (m)")
     ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.08), ncol=1, fontsize=8, frameon=False)
-    fig.tight_layout()
-    out = _png(fig)
-    plt.close(fig)
-    return out
+    return _png(fig)
 
 
 def _ellipse_points(cov2, centre, n_sigma, scale, n=48):
-    """Points of the ``n_sigma`` contour of a 2-D Gaussian, magnified ``scale`` times.
+    """Points (..., n, 2) of the ``n_sigma`` contour of 2-D Gaussians (``cov2`` (..., 2, 2), ``centre`` (..., 2)),
+    magnified ``scale`` times.
 
     Every returned point p satisfies (p - c)^T cov2^-1 (p - c) = (n_sigma * scale)^2.
     """
-    vals, vecs = np.linalg.eigh(0.5 * (cov2 + cov2.T))
+    cov2 = np.asarray(cov2, dtype=float)
+    vals, vecs = np.linalg.eigh(0.5 * (cov2 + np.swapaxes(cov2, -1, -2)))
     vals = np.clip(vals, 0.0, None)
     a = np.linspace(0, 2 * np.pi, n)
-    circle = np.stack([np.cos(a), np.sin(a)], -1) * (n_sigma * scale * np.sqrt(vals))
-    return centre + circle @ vecs.T
+    circle = np.stack([np.cos(a), np.sin(a)], -1) * (n_sigma * scale * np.sqrt(vals))[..., None, :]
+    return np.asarray(centre, dtype=float)[..., None, :] + circle @ np.swapaxes(vecs, -1, -2)
 
 
 def _nice_scale(x: float) -> float:
@@ -262,14 +394,14 @@ def figure_loops(data: ReportData, ellipse_scale: float) -> bytes:
     """Two panels on the optimised trajectory: verified closures with their
     3-sigma position ellipses (magnified ``ellipse_scale`` times), and the
     rejected candidates coloured by the stage that stopped them."""
-    import matplotlib.pyplot as plt
-
     poses = _anchor(data.poses)
     index = {int(i): k for k, i in enumerate(data.ids)}
     v = data.verdicts
     acc = np.flatnonzero(v.accepted)
     rej = np.flatnonzero(~v.accepted)
-    fig, axes = plt.subplots(1, 2, figsize=(13, _panel_height(poses)), sharex=True, sharey=True)
+    # The legends hang below the axes, a tenth of the axes' height down (two rows each).
+    fig, (axes,) = _figure(13, _panel_height(poses), 1, 2, top=0.35, bottom=1.0, left=0.75, wgap=0.35,
+                           sharex=True, sharey=True)
     for ax in axes:
         ax.plot(poses[:, 0], poses[:, 1], "-", color="#b8c2cc", lw=0.8, label="trajectory (optimised)")
 
@@ -280,18 +412,18 @@ def figure_loops(data: ReportData, ellipse_scale: float) -> bytes:
         # long: the end markers keep them visible where the line is not.
         ax.plot(*seg, "-", color=ACCEPT_COLOUR, lw=1.1, alpha=0.85, marker="o", ms=2.5,
                 label="verified loop closure")
-    ex, ey = [], []
-    for k in acc:
-        s, d = int(v.src[k]), int(v.dst[k])
-        if s not in index or d not in index or not np.isfinite(v.covariance[k]).all():
-            continue
+    drawn = [k for k in acc if int(v.src[k]) in index and int(v.dst[k]) in index
+             and np.isfinite(v.covariance[k]).all()]
+    if drawn:
+        si = np.array([index[int(v.src[k])] for k in drawn])
+        di = np.array([index[int(v.dst[k])] for k in drawn])
         # The covariance is in the src frame; the ellipse sits on the dst pose it locates.
-        rot = se2.rotation(poses[index[s], 2])
-        pts = _ellipse_points(rot @ v.covariance[k][:2, :2] @ rot.T, poses[index[d], :2], 3.0, ellipse_scale)
-        ex.append(np.append(pts[:, 0], np.nan))
-        ey.append(np.append(pts[:, 1], np.nan))
-    if ex:
-        ax.plot(np.concatenate(ex), np.concatenate(ey), "-", color=ELLIPSE_COLOUR, lw=0.6, alpha=0.7,
+        rot = se2.rotation(poses[si, 2])
+        cov = rot @ np.asarray(v.covariance, float)[drawn][:, :2, :2] @ np.swapaxes(rot, -1, -2)
+        pts = _ellipse_points(cov, poses[di, :2], 3.0, ellipse_scale)
+        # A NaN after each ellipse separates them within one line.
+        pts = np.concatenate([pts, np.full((len(drawn), 1, 2), np.nan)], axis=1).reshape(-1, 2)
+        ax.plot(pts[:, 0], pts[:, 1], "-", color=ELLIPSE_COLOUR, lw=0.6, alpha=0.7,
                 label=f"3-sigma position ellipse (x{ellipse_scale:g})")
     ax.set_title(f"Verified loop closures ({len(acc)})")
 
@@ -315,10 +447,7 @@ def figure_loops(data: ReportData, ellipse_scale: float) -> bytes:
             handle.set_alpha(1.0)
             handle.set_linewidth(2.0)
     axes[0].set_ylabel("y (m)")
-    fig.tight_layout()
-    out = _png(fig)
-    plt.close(fig)
-    return out
+    return _png(fig)
 
 
 def histogram_edges(values, threshold: float | None = None, bins: int = 30):
@@ -364,8 +493,6 @@ def histogram_edges(values, threshold: float | None = None, bins: int = 30):
 
 def figure_histograms(data: ReportData) -> bytes | None:
     """Stacked histograms (rejected under accepted) of the check figures."""
-    import matplotlib.pyplot as plt
-
     v = data.verdicts
     present = [(k, lab) for k, lab in HISTOGRAM_FIGURES
                if k in v.figures and np.isfinite(np.asarray(v.figures[k], float)).any()]
@@ -373,23 +500,28 @@ def figure_histograms(data: ReportData) -> bytes | None:
         return None
     cols = 3
     rows = -(-len(present) // cols)
-    fig, axes = plt.subplots(rows, cols, figsize=(13, 3.1 * rows), squeeze=False)
+    # Titles of up to three 9-point lines above each panel.
+    fig, axes = _figure(13, 3.1 * rows, rows, cols, top=0.55, bottom=0.3, left=0.45, wgap=0.55, hgap=0.85)
     for ax, (key, label) in zip(axes.ravel(), present):
         vals = np.asarray(v.figures[key], dtype=float)
         ok = np.isfinite(vals)
         thr = data.thresholds.get(key)
         edges, log_scale = histogram_edges(vals[ok], thr)
         clipped = np.clip(vals, edges[0], edges[-1])
-        stack, colours, names = [], [], []
+        # One filled outline per layer, stacked on the counts below it: the
+        # same bars as a stacked ax.hist, which makes a Rectangle per bar
+        # (about 0.3 s for these six panels at 5,000 scans).
+        below_counts = np.zeros(len(edges) - 1)
         for accepted, colour, name in ((False, REJECT_COLOUR, "rejected"), (True, ACCEPT_COLOUR, "accepted")):
             sel = ok & (v.accepted == accepted)
             if sel.any():
-                stack.append(clipped[sel])
-                colours.append(colour)
-                names.append(f"{name} ({int(sel.sum())})")
-        ax.hist(stack, bins=edges, stacked=True, color=colours, alpha=0.75, label=names)
+                top = below_counts + np.histogram(clipped[sel], bins=edges)[0]
+                ax.stairs(top, edges, baseline=below_counts, fill=True, color=colour, alpha=0.75,
+                          label=f"{name} ({int(sel.sum())})")
+                below_counts = top
         if log_scale:
             ax.set_xscale("log")
+            _log_ticks(ax.xaxis)
         if thr is not None and np.isfinite(thr):
             ax.axvline(thr, color="#1d2733", ls="--", lw=1.0,
                        label=THRESHOLD_LABEL.get(key, "bound {:.3g}").format(thr))
@@ -404,10 +536,7 @@ def figure_histograms(data: ReportData) -> bytes | None:
         ax.legend(fontsize=7)
     for ax in axes.ravel()[len(present):]:
         ax.axis("off")
-    fig.tight_layout()
-    out = _png(fig)
-    plt.close(fig)
-    return out
+    return _png(fig)
 
 
 def trajectories_in_map_frame(data: ReportData):
@@ -438,13 +567,12 @@ def trajectories_in_map_frame(data: ReportData):
 def figure_truth(data: ReportData) -> bytes | None:
     """Odometry-only and optimised trajectories against ground truth, in the maps' frame
     (:func:`trajectories_in_map_frame`)."""
-    import matplotlib.pyplot as plt
-
     lines = trajectories_in_map_frame(data)
     if lines is None:
         return None
     truth, odo, optimised = lines
-    fig, ax = plt.subplots(figsize=(6.2, 5.2))
+    # The legend hangs below the axes (one or two rows).
+    fig, ((ax,),) = _figure(6.2, 5.2, top=0.35, bottom=1.0, left=0.75)
     ax.plot(truth[:, 0], truth[:, 1], "-", color=TRUTH_COLOUR, lw=3.0, alpha=0.7,
             label="ground truth (rigidly aligned)")
     ax.plot(odo[:, 0], odo[:, 1], "-", color=ODOM_COLOUR, lw=1.0, label="odometry only (rigidly aligned)")
@@ -454,10 +582,7 @@ def figure_truth(data: ReportData) -> bytes | None:
     ax.set_title("Trajectories against ground truth, in the maps' frame")
     ax.set_xlabel("x (m)")
     ax.set_ylabel("y (m)")
-    fig.tight_layout()
-    out = _png(fig)
-    plt.close(fig)
-    return out
+    return _png(fig)
 
 
 def figure_nees(score: dict) -> bytes | None:
@@ -468,7 +593,6 @@ def figure_nees(score: dict) -> bytes | None:
     against chi-square(3) quantiles at (i - 0.5) / n; points on the diagonal
     are honest covariances, below it too large, above it too small.
     """
-    import matplotlib.pyplot as plt
     from scipy.stats import chi2
 
     x = np.asarray(score.get("nees_values") or [], float)
@@ -476,17 +600,20 @@ def figure_nees(score: dict) -> bytes | None:
     if len(x) < 2:
         return None
     dist = chi2(3)
-    fig, (ax, aq) = plt.subplots(1, 2, figsize=(12, 4.0))
+    # Two-line title on the left panel.
+    fig, ((ax, aq),) = _figure(12, 4.0, 1, 2, top=0.45, bottom=0.5, left=0.7, wgap=0.8)
     lo = min(float(x[0]), float(dist.ppf(0.001))) / 1.5
     hi = max(float(x[-1]), float(dist.ppf(0.999))) * 1.5
     edges = np.geomspace(lo, hi, 31)
-    ax.hist(x, bins=edges, color=ACCEPT_COLOUR, alpha=0.7, label=f"verified closures ({len(x)})")
+    ax.stairs(np.histogram(x, bins=edges)[0], edges, fill=True, color=ACCEPT_COLOUR, alpha=0.7,
+              label=f"verified closures ({len(x)})")
     expected = len(x) * np.diff(dist.cdf(edges))
     ax.step(edges, np.r_[expected, expected[-1]], where="post", color="#1d2733", lw=1.2,
             label="chi-square(3), expected count")
     for q, style in ((0.5, ":"), (0.025, "--"), (0.975, "--")):
         ax.axvline(dist.ppf(q), color="#5b6b7c", ls=style, lw=0.9)
     ax.set_xscale("log")
+    _log_ticks(ax.xaxis)
     ax.set_xlabel("NEES (squared Mahalanobis error against truth)")
     ax.set_ylabel("closures")
     inside50 = score.get("nees_share_in_central_50pct", math.nan)
@@ -499,24 +626,20 @@ def figure_nees(score: dict) -> bytes | None:
     aq.loglog(q, x, ".", color=ACCEPT_COLOUR, ms=3, label="sorted NEES")
     span = np.array([min(q[0], x[0]), max(q[-1], x[-1])])
     aq.loglog(span, span, "-", color="#1d2733", lw=1.0, label="honest (y = x)")
+    _log_ticks(aq.xaxis, aq.yaxis)
     aq.set_xlabel("chi-square(3) quantile")
     aq.set_ylabel("NEES")
     aq.set_title("Quantile-quantile: below the line, covariances too large; above, too small", fontsize=9)
     aq.legend(fontsize=8)
-    fig.tight_layout()
-    out = _png(fig)
-    plt.close(fig)
-    return out
+    return _png(fig)
 
 
 def figure_precision_recall(score: dict) -> bytes | None:
     """Precision against recall over the front-end's score, with the best recall at precision 1 marked."""
-    import matplotlib.pyplot as plt
-
     curve = score.get("frontend_pr_curve")
     if not curve or len(curve.get("recall", [])) < 2:
         return None
-    fig, ax = plt.subplots(figsize=(6.2, 4.4))
+    fig, ((ax,),) = _figure(6.2, 4.4, top=0.3, bottom=0.55, left=0.75)
     reference = "this run's verdicts (a reference, not the truth)" if score.get("reference") == REFERENCE_VERDICTS \
         else "the ground truth"
     ax.step(curve["recall"], curve["precision"], where="post", color=TRAJECTORY_COLOUR, lw=1.5,
@@ -531,10 +654,7 @@ def figure_precision_recall(score: dict) -> bytes | None:
     ax.set_ylabel("precision (right / kept)")
     ax.set_title(f"Front-end score against {reference}", fontsize=9)
     ax.legend(fontsize=8, loc="lower left")
-    fig.tight_layout()
-    out = _png(fig)
-    plt.close(fig)
-    return out
+    return _png(fig)
 
 
 _CSS = """
@@ -645,6 +765,37 @@ def _fmt(v) -> tuple[str, str]:
     return (str(v), str(v))
 
 
+def _column_cells(values, klass: str) -> list:
+    """The <td> of each value of one table column, as :func:`_fmt` writes them, formatted a column at a time.
+
+    Numeric and boolean columns skip the per-value type tests (and the
+    escaping: their text holds no markup); text columns escape each
+    distinct value once.  The whole table (3,400 rows, 26 columns) took
+    0.24 s cell by cell and 0.07 s this way, with the same bytes
+    (5,000-scan warehouse log).
+    """
+    arr = np.asarray(values)
+    head = f'<td class="{klass}" data-v="'
+    kind = arr.dtype.kind
+    if kind == "b":
+        return [f'{head}1">yes</td>' if b else f'{head}0">no</td>' for b in arr.tolist()]
+    if kind in "iu":
+        return [f'{head}{i}">{i}</td>' for i in arr.tolist()]
+    if kind == "f":
+        return [f'{head}{x!r}">{x:.4g}</td>' if math.isfinite(x) else f'{head}"></td>' for x in arr.tolist()]
+    seen = {}
+    out = []
+    for v in arr.tolist() if kind in "US" else arr:
+        cell = seen.get(v) if isinstance(v, str) else None
+        if cell is None:
+            text, key = _fmt(v)
+            cell = f'{head}{html.escape(key)}">{html.escape(text)}</td>'
+            if isinstance(v, str):
+                seen[v] = cell
+        out.append(cell)
+    return out
+
+
 def _candidate_table(v: VerdictTable, limit: int, margins: Margins | None = None) -> str:
     keys = [k for k in v.figures if np.asarray(v.figures[k]).dtype.kind in "fiub"]
     optional = v.optional_columns()
@@ -658,25 +809,24 @@ def _candidate_table(v: VerdictTable, limit: int, margins: Margins | None = None
         tip = f' title="{html.escape(COLUMN_TEXT[h])}; click to sort"' if h in COLUMN_TEXT else ' title="click to sort"'
         out.append(f'<th class="{"txt" if h in txt_cols else "num"}"{tip}>{html.escape(h)}</th>')
     out.append("</tr></thead><tbody>")
-    figures = [np.asarray(v.figures[key]) for key in keys]
-    extra = [np.asarray(col) for col in optional.values()]
     order = np.lexsort((v.dst, v.src, ~np.asarray(v.accepted, bool)))[:limit]
-    for k in order:
-        d = v.delta[k]
-        vals = [int(v.src[k]), int(v.dst[k]), str(v.origin[k]),
-                "accepted" if v.accepted[k] else "rejected", str(v.reason[k]),
-                float(d[0]), float(d[1]), float(np.degrees(d[2]))]
-        if margins is not None:
-            vals += [float(margins.value[k]), str(margins.check[k])]
-        vals += [c[k] for c in extra] + [f[k] for f in figures]
-        cells = []
-        for h, val in zip(head, vals):
-            text, key = _fmt(val)
-            klass = "txt" if h in txt_cols else ""
-            if h == "verdict":
-                klass += " verdict"
-            cells.append(f'<td class="{klass.strip()}" data-v="{html.escape(key)}">{html.escape(text)}</td>')
-        out.append(f'<tr class="{"acc" if v.accepted[k] else "rej"}" data-k="{int(k)}">' + "".join(cells) + "</tr>")
+    accepted = np.asarray(v.accepted, bool)[order]
+    delta = np.asarray(v.delta, float).reshape(-1, 3)[order]
+    columns = [np.asarray(v.src)[order].astype(np.int64), np.asarray(v.dst)[order].astype(np.int64),
+               np.asarray(v.origin)[order].astype(str), np.where(accepted, "accepted", "rejected"),
+               np.asarray(v.reason)[order].astype(str), delta[:, 0], delta[:, 1], np.degrees(delta[:, 2])]
+    if margins is not None:
+        columns += [np.asarray(margins.value, float)[order], np.asarray(margins.check)[order].astype(str)]
+    columns += [np.asarray(col)[order] for col in optional.values()]
+    columns += [np.asarray(v.figures[key])[order] for key in keys]
+    cells = []
+    for h, col in zip(head, columns):
+        klass = "txt" if h in txt_cols else ""
+        if h == "verdict":
+            klass += " verdict"
+        cells.append(_column_cells(col, klass.strip()))
+    starts = [f'<tr class="{"acc" if a else "rej"}" data-k="{k}">' for a, k in zip(accepted.tolist(), order.tolist())]
+    out.extend(start + "".join(row) + "</tr>" for start, row in zip(starts, zip(*cells)))
     out.append("</tbody></table>")
     return "".join(out)
 
@@ -942,8 +1092,10 @@ def build_report(out_dir, data: ReportData, *, table_limit: int = 5000, progress
     """
     import matplotlib
 
-    # Before pyplot is imported: no window system, no GUI event loop or
-    # threads that could outlive an interrupted run.
+    # The pictures draw on their own Agg canvases (_figure, no pyplot); Agg
+    # is still chosen for anything in this process that uses pyplot: no
+    # window system, no GUI event loop or threads that could outlive an
+    # interrupted run.
     matplotlib.use("Agg", force=False)
     out_dir = Path(out_dir)
     fig_dir = out_dir / "figures"

@@ -133,3 +133,18 @@ def test_score_survives_the_output_file(tmp_path):
     assert rows.frontend_score[0] == 0.125 and math.isnan(rows.frontend_score[1])
     assert rows.origin.tolist() == ["external", "external"]
     assert read_candidates(_write(tmp_path, ",".join(OUTPUT_COLUMNS) + "\n", "empty.csv")).frontend_score is None
+
+
+@pytest.mark.parametrize("values", [
+    np.array([True, False]),
+    np.array([3, -7, 0], dtype=np.int32),
+    np.array([7, 65535], dtype=np.uint16),
+    np.array([0.1, np.nan, -np.inf, 1e300, 5e-324, -0.0]),
+    np.array([0.1, np.nan], dtype=np.float32),
+    np.array(["a,b", 'q"x', ""]),
+    np.array([None, 1.5, float("nan"), True, np.int32(3), "t"], dtype=object),
+], ids=["bool", "int32", "uint16", "float64", "float32", "str", "object"])
+def test_cells_of_a_column_are_the_cells_of_its_values(values):
+    from closurecheck.io.pairs_csv import _cell, _cells
+
+    assert _cells(values) == [_cell(v) for v in np.asarray(values, dtype=object)]

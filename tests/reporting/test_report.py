@@ -265,6 +265,25 @@ def test_table_sort_keys_carry_the_full_values(built):
             assert key == "" and r["cells"][col]["text"] == ""
 
 
+@pytest.mark.parametrize("values", [
+    np.array([True, False, True]),
+    np.array([3, -7, 0], dtype=np.int32),
+    np.array([7, 255, 0], dtype=np.uint8),
+    np.array([0.1, np.nan, -np.inf, 1e12, 2.5e-7]),
+    np.array([0.1, np.nan, 3.25], dtype=np.float32),
+    np.array(["accepted", "odometry_gate", "accepted"]),
+    np.array(["", "a <b> & 'c' \"d\"", 1.5, None, True], dtype=object),
+], ids=["bool", "int32", "uint8", "float64", "float32", "str", "object"])
+def test_table_cells_a_column_at_a_time_match_the_cell_by_cell_format(values):
+    """The column formatter must write what formatting each value alone (report._fmt) and escaping
+    it with the standard library's html.escape writes."""
+    want = []
+    for v in values:
+        text, key = report._fmt(v)
+        want.append(f'<td class="txt" data-v="{html.escape(key)}">{html.escape(text)}</td>')
+    assert report._column_cells(values, "txt") == want
+
+
 def test_table_limit_keeps_the_verified_first(tmp_path):
     data = _data(accepted=(True, False, True, False, False), score=False)
     _, page = _parse(build_report(tmp_path, data, table_limit=2))
