@@ -13,10 +13,10 @@ from .lifeline import guard_worker
 from .serial import SerialRunner
 from .work import (
     CACHE_SCANS,
+    HeldScans,
     OrderedPairs,
     ScanCache,
     advance,
-    as_table,
     begin,
     batch_slices,
     run_batch,
@@ -33,10 +33,12 @@ def _pool_init(table, options, cache_scans):
     _WORKER["cache"] = ScanCache(table, options, cache_scans)
 
 
-def _pool_batch(src, dst, seeds):
+def _pool_batch(src, dst, seeds, options):
+    # A worker runs one batch at a time: the difference is this batch's own preparations.
     cache = _WORKER["cache"]
-    out = run_batch(cache, src, dst, seeds)
-    return os.getpid(), cache.builds, out
+    before = cache.builds
+    out = run_batch(cache, src, dst, seeds, options)
+    return cache.builds - before, out
 
 
 def package_root() -> str:
@@ -103,10 +105,13 @@ def _stop(pool: ProcessPoolExecutor) -> None:
 class PoolRunner:
     """A local process pool with ``workers`` processes (0 = all cores).
 
-    A pool is started for each ``register`` call (one per log) and receives
-    that log's points once, in its initializer.  As with any process pool,
-    a script that uses it needs the ``if __name__ == "__main__":`` guard
-    (workers import the main module).
+    A pool is started for each log (each :class:`HeldScans`, or each
+    ``register`` call given the points themselves) and receives that log's
+    points once, in its initializer; it lives until the scans are released,
+    so that its workers keep the scans they prepared (their ScanCache) from
+    the calibration to the candidates.  As with any process pool, a script
+    that uses it needs the ``if __name__ == "__main__":`` guard (workers
+    import the main module).
     """
 
     name = "local pool"
@@ -117,39 +122,66 @@ class PoolRunner:
         self.workers = workers or os.cpu_count() or 1
         self.cache_scans = cache_scans
         self.last_builds = 0
+        self._serial = SerialRunner(cache_scans)
+
+    def hold(self, points, options) -> HeldScans:
+        """Keep these scans, and the pool started for them, from one ``register`` call to the next."""
+        return HeldScans(self, points, options)
 
     def register(self, points, src, dst, seeds, options, batch_pairs, progress=None):
         """Per-pair result tuples (or None) in input order; see pairwise_registration.register_batch."""
+        if not isinstance(points, HeldScans):
+            if len(src) == 0:
+                return []
+            with self.hold(points, options) as held:
+                return self.register(held, src, dst, seeds, options, batch_pairs, progress)
+        held = points
+        held.check(src, dst, options)
         if len(src) == 0:
+            self.last_builds = 0
             return []
         if self.workers == 1:
-            serial = SerialRunner(self.cache_scans)
-            out = serial.register(points, src, dst, seeds, options, batch_pairs, progress)
-            self.last_builds = serial.last_builds
+            out = self._serial.register(held, src, dst, seeds, options, batch_pairs, progress)
+            self.last_builds = self._serial.last_builds
             return out
-        table = as_table(points)
         work = OrderedPairs(src, dst, seeds)
         slices = batch_slices(len(work), self.workers, batch_pairs)
         parts: list = [None] * len(slices)
-        builds: dict = {}
+        built = 0
         begin(progress, len(work), min(self.workers, len(slices)))
-        pool = ProcessPoolExecutor(max_workers=min(self.workers, len(slices)), mp_context=_pool_context(),
-                                   initializer=_pool_init, initargs=(table, options, self.cache_scans))
         try:
-            futures = {pool.submit(_pool_batch, work.src[sl], work.dst[sl], work.seeds[sl]): k
+            pool = held.state
+            if pool is None:
+                # Workers start as batches are submitted (a fork server spawns them on demand), so
+                # a call of one batch starts one worker, as a pool sized for it did.
+                pool = held.state = ProcessPoolExecutor(
+                    max_workers=self.workers, mp_context=_pool_context(), initializer=_pool_init,
+                    initargs=(held.table, held.options, self.cache_scans))
+            futures = {pool.submit(_pool_batch, work.src[sl], work.dst[sl], work.seeds[sl], options): k
                        for k, sl in enumerate(slices)}
             for fut in as_completed(futures):
                 k = futures[fut]
-                pid, built, parts[k] = fut.result()
-                builds[pid] = max(builds.get(pid, 0), built)
+                got, parts[k] = fut.result()
+                built += got
                 advance(progress, slices[k], len(work))
         except BaseException:
-            _stop(pool)
+            # A worker died, Ctrl-C, or a batch failed: the pool is not reused (the held scans
+            # are released with it), whatever its state.
+            self.release(held, abort=True)
             raise
-        pool.shutdown(wait=True)
         # Scans prepared over all workers (a scan may be prepared in several).
-        self.last_builds = sum(builds.values())
+        self.last_builds = built
+        held.builds += built
         return work.restore([r for part in parts for r in part])
+
+    def release(self, held: HeldScans, abort: bool = False) -> None:
+        """Stop the pool started for ``held``: at once on an error or Ctrl-C, else once its workers are idle."""
+        state, held.state = held.state, None
+        if isinstance(state, ProcessPoolExecutor):
+            if abort:
+                _stop(state)
+            else:
+                state.shutdown(wait=True)
 
     def close(self):
         pass
