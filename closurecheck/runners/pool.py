@@ -5,7 +5,7 @@ from __future__ import annotations
 import contextlib
 import multiprocessing
 import os
-from concurrent.futures import ProcessPoolExecutor, as_completed
+from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 from pathlib import Path
 
 from ..errors import InputError
@@ -15,6 +15,7 @@ from .work import (
     CACHE_SCANS,
     HeldScans,
     OrderedPairs,
+    Regions,
     ScanCache,
     advance,
     begin,
@@ -102,6 +103,35 @@ def _stop(pool: ProcessPoolExecutor) -> None:
     pool.shutdown(wait=True, cancel_futures=True)
 
 
+class _Lanes:
+    """One single-process executor a worker, so that this process chooses the worker of each batch.
+
+    One executor for all workers hands each batch to whichever worker is
+    free, so neighbouring batches, which share scans, alternate between the
+    workers and each prepares most scans; with a lane a worker, the batches
+    follow :class:`closurecheck.runners.work.Regions`.  The workers start on
+    their first batch (a fork server spawns them on demand).
+    """
+
+    def __init__(self, count: int, table, options, cache_scans: int):
+        ctx = _pool_context()
+        self.executors = [ProcessPoolExecutor(max_workers=1, mp_context=ctx, initializer=_pool_init,
+                                              initargs=(table, options, cache_scans)) for _ in range(count)]
+
+    def stop(self) -> None:
+        for ex in self.executors:
+            _stop(ex)
+
+    def shutdown(self) -> None:
+        for ex in self.executors:
+            ex.shutdown(wait=True)
+
+
+# Batches queued in each worker beyond the one it runs: it starts the next without waiting for this
+# process to hand it one, and the later batches stay free to go to whichever worker runs out first.
+_QUEUED_PER_WORKER = 1
+
+
 class PoolRunner:
     """A local process pool with ``workers`` processes (0 = all cores).
 
@@ -109,9 +139,11 @@ class PoolRunner:
     ``register`` call given the points themselves) and receives that log's
     points once, in its initializer; it lives until the scans are released,
     so that its workers keep the scans they prepared (their ScanCache) from
-    the calibration to the candidates.  As with any process pool, a script
-    that uses it needs the ``if __name__ == "__main__":`` guard (workers
-    import the main module).
+    the calibration to the candidates.  Each worker runs a contiguous run of
+    the batches (:class:`closurecheck.runners.work.Regions`), so that a
+    scan's pairs mostly meet in one worker's cache.  As with any process
+    pool, a script that uses it needs the ``if __name__ == "__main__":``
+    guard (workers import the main module).
     """
 
     name = "local pool"
@@ -150,20 +182,31 @@ class PoolRunner:
         built = 0
         begin(progress, len(work), min(self.workers, len(slices)))
         try:
-            pool = held.state
-            if pool is None:
-                # Workers start as batches are submitted (a fork server spawns them on demand), so
-                # a call of one batch starts one worker, as a pool sized for it did.
-                pool = held.state = ProcessPoolExecutor(
-                    max_workers=self.workers, mp_context=_pool_context(), initializer=_pool_init,
-                    initargs=(held.table, held.options, self.cache_scans))
-            futures = {pool.submit(_pool_batch, work.src[sl], work.dst[sl], work.seeds[sl], options): k
-                       for k, sl in enumerate(slices)}
-            for fut in as_completed(futures):
-                k = futures[fut]
-                got, parts[k] = fut.result()
-                built += got
-                advance(progress, slices[k], len(work))
+            lanes = held.state
+            if lanes is None:
+                lanes = held.state = _Lanes(self.workers, held.table, held.options, self.cache_scans)
+            regions = Regions(len(slices), len(lanes.executors))
+            pending: dict = {}
+
+            def feed(lane: int) -> None:
+                k = regions.next(lane)
+                if k is not None:
+                    sl = slices[k]
+                    fut = lanes.executors[lane].submit(_pool_batch, work.src[sl], work.dst[sl], work.seeds[sl],
+                                                       options)
+                    pending[fut] = (lane, k)
+
+            for lane in range(len(lanes.executors)):
+                for _ in range(1 + _QUEUED_PER_WORKER):
+                    feed(lane)
+            while pending:
+                done, _ = wait(pending, return_when=FIRST_COMPLETED)
+                for fut in done:
+                    lane, k = pending.pop(fut)
+                    got, parts[k] = fut.result()
+                    built += got
+                    advance(progress, slices[k], len(work))
+                    feed(lane)
         except BaseException:
             # A worker died, Ctrl-C, or a batch failed: the pool is not reused (the held scans
             # are released with it), whatever its state.
@@ -177,11 +220,11 @@ class PoolRunner:
     def release(self, held: HeldScans, abort: bool = False) -> None:
         """Stop the pool started for ``held``: at once on an error or Ctrl-C, else once its workers are idle."""
         state, held.state = held.state, None
-        if isinstance(state, ProcessPoolExecutor):
+        if isinstance(state, _Lanes):
             if abort:
-                _stop(state)
+                state.stop()
             else:
-                state.shutdown(wait=True)
+                state.shutdown()
 
     def close(self):
         pass

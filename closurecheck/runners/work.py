@@ -34,7 +34,7 @@ from __future__ import annotations
 
 import contextlib
 import threading
-from collections import OrderedDict
+from collections import OrderedDict, deque
 from dataclasses import dataclass
 from typing import Protocol
 
@@ -274,6 +274,40 @@ class HeldScans:
 
     def __exit__(self, exc_type, exc, tb) -> None:
         self.close(abort=exc_type is not None)
+
+
+class Regions:
+    """Which batch each worker runs next: one contiguous run of batches a worker, then the others' ends.
+
+    The batches, cut from the pairs in locality order, are split into one
+    contiguous region per worker; a worker takes its own region's batches in
+    order and, once they are done, the last batch of the region with the most
+    left (the end farthest from where that region's worker is).  A scan's
+    pairs lie in neighbouring batches, so they mostly land on one worker and
+    its cache prepares the scan once, where batches handed to whichever
+    worker is free alternate between the workers and both prepare most scans
+    (the 5,000-scan warehouse log's candidates: 2,251 to 2,353 scans prepared
+    by two workers for 1,667 keyframes; about 1,700 in a simulation of these
+    regions).  Which worker runs a batch changes no result.
+
+    Examples
+    --------
+    >>> r = Regions(7, 2)
+    >>> [r.next(0), r.next(0), r.next(1), r.next(0), r.next(0), r.next(0), r.next(0), r.next(1)]
+    [0, 1, 3, 2, 6, 5, 4, None]
+    """
+
+    def __init__(self, batches: int, workers: int):
+        bounds = [batches * w // max(1, workers) for w in range(max(1, workers) + 1)]
+        self.regions = [deque(range(bounds[w], bounds[w + 1])) for w in range(max(1, workers))]
+
+    def next(self, worker: int) -> int | None:
+        """The batch ``worker`` runs next, or None when every batch has been handed out."""
+        own = self.regions[worker]
+        if own:
+            return own.popleft()
+        largest = max(self.regions, key=len)
+        return largest.pop() if largest else None
 
 
 def single_thread_blas():

@@ -31,7 +31,7 @@ from closurecheck.registration.icp import prepare_scan
 from closurecheck.runners.factory import make_runner
 from closurecheck.runners.pool import PoolRunner
 from closurecheck.runners.serial import SerialRunner
-from closurecheck.runners.work import PointsTable, ScanCache, locality_order
+from closurecheck.runners.work import PointsTable, Regions, ScanCache, locality_order
 from closurecheck.simulation.simulate import simulate_log
 
 SCENARIO, SEED, SCANS, STRIDE = "ring", 3, 700, 4
@@ -289,13 +289,15 @@ def test_a_pool_holds_its_workers_and_their_scans_across_calls(case):
     with runner.hold(points, CONFIG.registration) as scans:
         scans.register(*steps, CONFIG.batch_pairs)
         pool = scans.state
-        workers = set(pool._processes)
+        workers = [set(ex._processes) for ex in pool.executors]
         first = runner.last_builds
         got = scans.register(*cands, CONFIG.batch_pairs)
-        assert scans.state is pool and set(pool._processes) == workers and len(workers) == 2  # the same workers
+        # The same worker processes.
+        assert scans.state is pool and [set(ex._processes) for ex in pool.executors] == workers
+        assert len(set().union(*workers)) == 2
         second = runner.last_builds
         assert scans.builds == first + second
-    assert scans.state is None and pool._shutdown_thread  # released: the pool is shut down
+    assert scans.state is None and all(ex._shutdown_thread for ex in pool.executors)  # released: shut down
     _same_fits(reference, got)
     # Each worker's cache (256 scans) holds every keyframe of this log, so over both calls a worker
     # prepares a scan at most once: the candidates found the calibration's scans in the workers.
@@ -312,3 +314,28 @@ def test_held_scans_refuse_what_they_cannot_serve(case):
         outside = max(points) + 1
         with pytest.raises(ValueError, match=rf"scans \[{outside}\] are not among the held scans"):
             scans.register(np.array([min(points)]), np.array([outside]), [np.zeros((1, 3))], CONFIG.registration, 8)
+
+
+def test_regions_hand_out_every_batch_once_and_keep_each_workers_run_contiguous():
+    for batches, workers in ((0, 2), (1, 3), (7, 2), (54, 2), (27, 4)):
+        regions = Regions(batches, workers)
+        own = [list(r) for r in regions.regions]
+        assert [k for r in own for k in r] == list(range(batches))  # contiguous, in order
+        assert max(map(len, own)) - min(map(len, own)) <= 1
+        # Workers asking in turn, one of them twice as often: each starts on its own region, in order.
+        asks = [0, 0] + list(range(workers)) * batches
+        got = [(w, regions.next(w)) for w in asks]
+        handed = [k for _, k in got if k is not None]
+        assert sorted(handed) == list(range(batches))
+        for w in range(workers):
+            mine = [k for v, k in got if v == w and k is not None]
+            from_own = [k for k in mine if k in own[w]]
+            # Its own batches first, from the front of its region (the others take from the back).
+            assert mine[:len(from_own)] == from_own == own[w][:len(from_own)]
+            # Another's batch is taken from the back of the region with the most batches left.
+            for k in mine[len(from_own):]:
+                assert k not in own[w]
+    # The region with the most left loses its last batch first.
+    regions = Regions(10, 2)
+    assert [regions.next(0) for _ in range(5)] == [0, 1, 2, 3, 4]
+    assert regions.next(0) == 9 and regions.next(1) == 5 and regions.next(0) == 8
