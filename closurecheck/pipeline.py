@@ -67,6 +67,10 @@ class _Stages:
     def run(self, name, fn, *args, **kwargs):
         if self.progress is not None:
             self.progress.stage(name)
+        return self.timed(name, fn, *args, **kwargs)
+
+    def timed(self, name, fn, *args, **kwargs):
+        """Run ``fn``, its time counted to stage ``name``, without announcing the stage."""
         t0 = time.perf_counter()
         out = fn(*args, **kwargs)
         self.timings[name] = self.timings.get(name, 0.0) + time.perf_counter() - t0
@@ -264,7 +268,8 @@ def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPai
         keyframes = merge_keyframes(keyframes, decisions.scan_ids)
     # Held from the calibration to the candidates' registration, released (a pool's workers stopped)
     # before the verification: the candidates reuse the scans the calibration prepared.
-    with _hold_keyframes(log, keyframes, config, runner) as scans:
+    # Reading the keyframes' points is the calibration's (as when it read them itself).
+    with st.timed("calibration", _hold_keyframes, log, keyframes, config, runner) as scans:
         cal = st.run("calibration", _calibrate, log, keyframes, config, scans, progress)
         chain = cal.chain
         # Proposals must reach revisits even where the fitted model is tight: the

@@ -31,7 +31,7 @@ from closurecheck.registration.icp import prepare_scan
 from closurecheck.runners.factory import make_runner
 from closurecheck.runners.pool import PoolRunner
 from closurecheck.runners.serial import SerialRunner
-from closurecheck.runners.work import PointsTable, Regions, ScanCache, locality_order
+from closurecheck.runners.work import HeldScans, PointsTable, Regions, ScanCache, locality_order
 from closurecheck.simulation.simulate import simulate_log
 
 SCENARIO, SEED, SCANS, STRIDE = "ring", 3, 700, 4
@@ -303,6 +303,24 @@ def test_a_pool_holds_its_workers_and_their_scans_across_calls(case):
     # prepares a scan at most once: the candidates found the calibration's scans in the workers.
     assert len(points) <= 256 and len(points) <= first <= 2 * len(points)
     assert first + second <= 2 * len(points)
+
+
+def test_the_pipeline_holds_the_keyframes_from_the_calibration_to_the_candidates(case):
+    calls = []
+
+    class Recording(SerialRunner):
+        def register(self, points, *args, **kwargs):
+            out = super().register(points, *args, **kwargs)
+            calls.append((points, self.last_builds))
+            return out
+
+    outcome = run_log(case["log"], CONFIG, external=case["pairs"], runner=Recording())
+    (steps, calibration), (candidates, again) = calls
+    assert steps is candidates and isinstance(steps, HeldScans) and steps.state is None  # one hold, released
+    assert np.array_equal(steps.table.ids, outcome.keyframes)
+    # This log's keyframes fit in the cache: the calibration prepared them all, the candidates none.
+    assert len(outcome.keyframes) <= 256 and calibration == len(outcome.keyframes) and again == 0
+    _assert_same_run(case["serial"], outcome)
 
 
 def test_held_scans_refuse_what_they_cannot_serve(case):
