@@ -67,31 +67,46 @@ class _Stages:
     def run(self, name, fn, *args, **kwargs):
         if self.progress is not None:
             self.progress.stage(name)
+        return self.timed(name, fn, *args, **kwargs)
+
+    def timed(self, name, fn, *args, **kwargs):
+        """Run ``fn``, its time counted to stage ``name``, without announcing the stage."""
         t0 = time.perf_counter()
         out = fn(*args, **kwargs)
         self.timings[name] = self.timings.get(name, 0.0) + time.perf_counter() - t0
         return out
 
 
-def _register(log: ScanLog, src, dst, seeds, options, config: RunConfig, runner, progress) -> RegisteredClosures:
-    """Register the pairs (src, dst) of scan ids from their seeds with the run's runner."""
-    ids = np.unique(np.concatenate([src, dst])) if len(src) else np.zeros(0, np.int64)
-    points = {int(i): log.points(int(i)) for i in ids}
+def _hold_keyframes(log: ScanLog, keyframes, config: RunConfig, runner):
+    """The keyframes' scans, held by the runner for both registration stages (runners.work.HeldScans).
+
+    The calibration and the candidates register the same keyframes with the
+    same preparation settings (only the coarse stage differs, which a
+    prepared scan does not depend on): held once, the runner's caches (a
+    pool's workers with theirs) last from one stage to the other.  The
+    candidates' scans are keyframes (pairs files' and reviewer decisions'
+    scans join the keyframes).
+    """
     if runner is None:
         from .runners.serial import SerialRunner
 
         runner = SerialRunner()
-    fits = runner.register(points, src, dst, seeds, options, config.batch_pairs, progress)
+    return runner.hold({int(i): log.points(int(i)) for i in keyframes}, config.registration)
+
+
+def _register(scans, src, dst, seeds, options, config: RunConfig, progress) -> RegisteredClosures:
+    """Register the pairs (src, dst) of held scan ids from their seeds with the run's runner."""
+    fits = scans.register(src, dst, seeds, options, config.batch_pairs, progress)
     return collect(src, dst, fits)
 
 
-def _register_candidates(log: ScanLog, cands: CandidateSet, config: RunConfig, runner, progress):
+def _register_candidates(scans, cands: CandidateSet, config: RunConfig, progress):
     window = config.registration.coarse_window_rad if config.registration.coarse else 0.0
     seeds = [seeds_for(cands.guess[k], cands.yaw[k], window) for k in range(len(cands))]
-    return _register(log, cands.src, cands.dst, seeds, config.registration, config, runner, progress)
+    return _register(scans, cands.src, cands.dst, seeds, config.registration, config, progress)
 
 
-def _calibrate(log: ScanLog, keyframes, config: RunConfig, runner, progress) -> OdometryCalibration:
+def _calibrate(log: ScanLog, keyframes, config: RunConfig, scans, progress) -> OdometryCalibration:
     """Register each keyframe to the next and measure the odometry against those steps."""
     prior = effective_noise(log, config.odometry)
     src, dst = step_pairs(keyframes)
@@ -99,8 +114,8 @@ def _calibrate(log: ScanLog, keyframes, config: RunConfig, runner, progress) -> 
         # Consecutive keyframes are half a metre apart: the odometry step is a
         # guess good to centimetres, so ICP alone suffices.
         seeds = [se2.between(log.odom[a], log.odom[b])[None] for a, b in zip(src, dst)]
-        steps = _register(log, src, dst, seeds, dataclasses.replace(config.registration, coarse=False), config,
-                          runner, progress)
+        steps = _register(scans, src, dst, seeds, dataclasses.replace(config.registration, coarse=False), config,
+                          progress)
     else:
         steps = collect(src, dst, [None] * len(src))
     cal = calibrate(log.odom, keyframes, steps, prior, config.calibration)
@@ -208,6 +223,25 @@ def _review_verdicts(cands: CandidateSet, regs: RegisteredClosures, decisions: R
     return ReviewerVerdicts(accept=accept, reject=reject), notes
 
 
+def _refuse_too_many(log: ScanLog, cands: CandidateSet, config: RunConfig) -> None:
+    """Refuse, before registering them, more candidates than the run's caps allow (InputError)."""
+    if len(cands) > config.max_pairs:
+        raise InputError(f"{len(cands)} candidate pairs to register, more than max_pairs = {config.max_pairs} "
+                         f"(--max-pairs, docs/cli.md): that would take hours; raise the cap or split the work",
+                         log.source or None)
+    exact_limit = config.verify.max_exact_closures
+    if config.verify.pair_window_m is None and len(cands) > exact_limit:
+        # Refused now rather than killed for memory after the registration
+        # (a 100,000-scan log: 7 minutes of registration, then out of memory
+        # in the pairwise test, docs/performance.md).
+        pairs = len(cands) * (len(cands) - 1) // 2
+        raise InputError(f"{len(cands)} candidate pairs, more than verify.max_exact_closures = {exact_limit}: the "
+                         f"exact pairwise consistency test would compare {pairs / 1e9:.1f} billion pairs of closures "
+                         f"and keep the failing ones in memory; split the log, or set verify.pair_window_m to test "
+                         f"only cycles within that many metres of odometry (the accepted set can then differ from "
+                         f"the exact one, docs/verification.md)", log.source or None)
+
+
 def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPairs | None = None,
             runner=None, progress=None, also_propose: bool = False,
             decisions: ReviewDecisions | None = None) -> RunOutcome:
@@ -232,41 +266,31 @@ def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPai
         keyframes = merge_keyframes(keyframes, external.scan_ids)
     if decisions is not None:
         keyframes = merge_keyframes(keyframes, decisions.scan_ids)
-    cal = st.run("calibration", _calibrate, log, keyframes, config, runner, progress)
-    chain = cal.chain
-    # Proposals must reach revisits even where the fitted model is tight: the
-    # proximity gate uses at least the default noise.
-    travel, rotation = odometry_travel(log.odom)
-    lengths, turns = np.diff(travel[keyframes]), np.diff(rotation[keyframes])
-    wide = np.maximum(chain.steps, proposal_noise(cal.noise).step_covariance(lengths, turns))
-    data = st.run("descriptors", prepare, log, keyframes, descriptor_options=config.descriptors,
-                  chain=OdometryChain.from_steps(keyframes, chain.poses, wide))
-    if external is not None:
-        cands = st.run("candidates", external_candidates, external, data.descriptors, data.chain,
-                       config.candidates)
-        if also_propose:
-            cands = merge_candidates(cands, st.run("candidates", propose_for, data, config.candidates))
-    else:
-        cands = st.run("candidates", propose_for, data, config.candidates)
-    if decisions is not None:
-        cands = _reviewed_candidates(cands, decisions, data, config)
+    # Held from the calibration to the candidates' registration, released (a pool's workers stopped)
+    # before the verification: the candidates reuse the scans the calibration prepared.
+    # Reading the keyframes' points is the calibration's (as when it read them itself).
+    with st.timed("calibration", _hold_keyframes, log, keyframes, config, runner) as scans:
+        cal = st.run("calibration", _calibrate, log, keyframes, config, scans, progress)
+        chain = cal.chain
+        # Proposals must reach revisits even where the fitted model is tight: the
+        # proximity gate uses at least the default noise.
+        travel, rotation = odometry_travel(log.odom)
+        lengths, turns = np.diff(travel[keyframes]), np.diff(rotation[keyframes])
+        wide = np.maximum(chain.steps, proposal_noise(cal.noise).step_covariance(lengths, turns))
+        data = st.run("descriptors", prepare, log, keyframes, descriptor_options=config.descriptors,
+                      chain=OdometryChain.from_steps(keyframes, chain.poses, wide))
+        if external is not None:
+            cands = st.run("candidates", external_candidates, external, data.descriptors, data.chain,
+                           config.candidates)
+            if also_propose:
+                cands = merge_candidates(cands, st.run("candidates", propose_for, data, config.candidates))
+        else:
+            cands = st.run("candidates", propose_for, data, config.candidates)
+        if decisions is not None:
+            cands = _reviewed_candidates(cands, decisions, data, config)
 
-    if len(cands) > config.max_pairs:
-        raise InputError(f"{len(cands)} candidate pairs to register, more than max_pairs = {config.max_pairs} "
-                         f"(--max-pairs, docs/cli.md): that would take hours; raise the cap or split the work",
-                         log.source or None)
-    exact_limit = config.verify.max_exact_closures
-    if config.verify.pair_window_m is None and len(cands) > exact_limit:
-        # Refused now rather than killed for memory after the registration
-        # (a 100,000-scan log: 7 minutes of registration, then out of memory
-        # in the pairwise test, docs/performance.md).
-        pairs = len(cands) * (len(cands) - 1) // 2
-        raise InputError(f"{len(cands)} candidate pairs, more than verify.max_exact_closures = {exact_limit}: the "
-                         f"exact pairwise consistency test would compare {pairs / 1e9:.1f} billion pairs of closures "
-                         f"and keep the failing ones in memory; split the log, or set verify.pair_window_m to test "
-                         f"only cycles within that many metres of odometry (the accepted set can then differ from "
-                         f"the exact one, docs/verification.md)", log.source or None)
-    regs = st.run("registration", _register_candidates, log, cands, config, runner, progress)
+        _refuse_too_many(log, cands, config)
+        regs = st.run("registration", _register_candidates, scans, cands, config, progress)
 
     review = notes_review = verifier_reason = None
     if decisions is not None:

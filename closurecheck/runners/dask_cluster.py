@@ -8,8 +8,9 @@ have the same closurecheck version installed (checked on connecting).
 Per log, the scan points are scattered to every worker once (one packed
 array, :class:`closurecheck.runners.PointsTable`); each batch of pairs is a
 task that takes the scattered table, and every worker keeps its prepared
-scans in a bounded cache keyed by the run's token, dropped when the log is
-done.  Results come back in input order and are the same, bit for bit, as a
+scans in a bounded cache keyed by the run's token (one token per
+:class:`closurecheck.runners.work.HeldScans`, shared by the calibration and
+the candidates), dropped when the log is done.  Results come back in input order and are the same, bit for bit, as a
 serial run (same code, BLAS on one thread in the worker).
 
 Dask is an optional extra (``pip install 'closurecheck[dask]'``), imported
@@ -29,9 +30,9 @@ from .._version import __version__
 from ..errors import InputError, one_line
 from .work import (
     CACHE_SCANS,
+    HeldScans,
     OrderedPairs,
     ScanCache,
-    as_table,
     batch_slices,
     begin,
     run_batch,
@@ -67,9 +68,19 @@ def _worker_cache(token: str, table, options, cache_scans: int) -> ScanCache:
         return cache
 
 
-def _dask_batch(token: str, table, options, cache_scans: int, src, dst, seeds) -> list:
-    """Task: register one batch on a worker (see closurecheck.runners.run_batch)."""
-    return run_batch(_worker_cache(token, table, options, cache_scans), src, dst, seeds)
+def _dask_batch(token: str, table, prepare, cache_scans: int, src, dst, seeds, options) -> list:
+    """Task: register one batch on a worker (see closurecheck.runners.run_batch).
+
+    ``prepare``: the held scans' options (the cache's preparation), ``options``: this call's.
+    """
+    return run_batch(_worker_cache(token, table, prepare, cache_scans), src, dst, seeds, options)
+
+
+def _built(token: str) -> int:
+    """Scans this worker has prepared for the run so far."""
+    with _LOCK:
+        cache = _CACHES.get(token)
+    return 0 if cache is None else cache.builds
 
 
 def _forget(token: str) -> int:
@@ -152,20 +163,33 @@ class DaskRunner:
         # Batches are cut for the tasks that can run at once: threads over all workers.
         self.workers = max(1, sum(self.client.nthreads().values()))
 
+    def hold(self, points, options) -> HeldScans:
+        """Keep these scans scattered, and the workers' caches of them, from one ``register`` call to the next."""
+        return HeldScans(self, points, options)
+
     def register(self, points, src, dst, seeds, options, batch_pairs, progress=None):
         """Per-pair result tuples (or None) in input order; see pairwise_registration.register_batch."""
+        if not isinstance(points, HeldScans):
+            if len(src) == 0:
+                return []
+            with self.hold(points, options) as held:
+                return self.register(held, src, dst, seeds, options, batch_pairs, progress)
+        held = points
+        held.check(src, dst, options)
+        self.last_builds = 0
         if len(src) == 0:
             return []
         from distributed import as_completed
 
         client = self.client
-        token = uuid.uuid4().hex
-        table = client.scatter(as_table(points), broadcast=True, hash=False)
+        if held.state is None:
+            held.state = (uuid.uuid4().hex, client.scatter(held.table, broadcast=True, hash=False))
+        token, table = held.state
         work = OrderedPairs(src, dst, seeds)
         slices = batch_slices(len(work), self.workers, batch_pairs)
         begin(progress, len(work), min(self.workers, len(slices)))
-        futures = [client.submit(_dask_batch, token, table, options, self.cache_scans, work.src[sl], work.dst[sl],
-                                 work.seeds[sl], key=f"closurecheck-batch-{token}-{k}")
+        futures = [client.submit(_dask_batch, token, table, held.options, self.cache_scans, work.src[sl],
+                                 work.dst[sl], work.seeds[sl], options, key=f"closurecheck-batch-{token}-{k}")
                    for k, sl in enumerate(slices)]
         order = {f.key: k for k, f in enumerate(futures)}
         parts: list = [None] * len(slices)
@@ -176,11 +200,23 @@ class DaskRunner:
                 if progress is not None:
                     progress.advance("registration", slices[k].stop - slices[k].start, len(work))
         finally:
-            client.cancel(futures + [table])
+            client.cancel(futures)
             # A worker lost meanwhile keeps nothing of ours worth reporting.
             with contextlib.suppress(Exception):
-                self.last_builds = sum(client.run(_forget, token).values())
+                total = sum(client.run(_built, token).values())
+                self.last_builds = max(0, total - held.builds)
+                held.builds = total
         return work.restore([r for part in parts for r in part])
+
+    def release(self, held: HeldScans, abort: bool = False) -> None:
+        """Release the scattered scans and drop the workers' caches of them."""
+        state, held.state = held.state, None
+        if state is None:
+            return
+        token, table = state
+        with contextlib.suppress(Exception):  # the cluster may be gone already
+            self.client.cancel([table])
+            self.client.run(_forget, token)
 
     def close(self):
         """Close the client and, for ``local``, shut the embedded cluster down."""

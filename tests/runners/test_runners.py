@@ -20,6 +20,7 @@ import numpy as np
 import pytest
 
 from closurecheck.config import RunConfig
+from closurecheck.core import se2
 from closurecheck.errors import InputError
 from closurecheck.frontend.candidates import prepare, proposal_noise, propose_for
 from closurecheck.frontend.keyframes import select_keyframes
@@ -30,7 +31,7 @@ from closurecheck.registration.icp import prepare_scan
 from closurecheck.runners.factory import make_runner
 from closurecheck.runners.pool import PoolRunner
 from closurecheck.runners.serial import SerialRunner
-from closurecheck.runners.work import PointsTable, ScanCache, locality_order
+from closurecheck.runners.work import HeldScans, PointsTable, Regions, ScanCache, locality_order
 from closurecheck.simulation.simulate import simulate_log
 
 SCENARIO, SEED, SCANS, STRIDE = "ring", 3, 700, 4
@@ -101,12 +102,14 @@ def test_dask_local_cluster_matches_serial(case):
             assert remote.workers == 2
             few = _few_pairs(case)
             by_address = remote.register(*few, CONFIG.registration, 2)
+            # Counted over the workers: each scan prepared at least once (in one or both workers).
+            few_builds = remote.last_builds
         finally:
             remote.close()
     finally:
         runner.close()
     _assert_same_run(case["serial"], distributed)
-    assert runner.last_builds >= len(np.union1d(case["pairs"].src, case["pairs"].dst))
+    assert few_builds >= len(few[0])
     assert left and set(left.values()) == {0}
     reference = SerialRunner().register(*few, CONFIG.registration, 2)
     assert len(by_address) == len(reference)
@@ -235,3 +238,122 @@ def test_bad_dask_addresses_are_input_errors(monkeypatch):
     with pytest.raises(InputError, match=f"cannot connect to the Dask scheduler at tcp://127.0.0.1:{port}") as err:
         dask_runner.DaskRunner(f"tcp://127.0.0.1:{port}")
     assert "\n" not in str(err.value)
+
+
+def _two_stages(case):
+    """The keyframes' points, and the two registration stages of a run on them: the calibration's
+    keyframe steps without the coarse stage, then the candidates with it (seeds from odometry)."""
+    log, pairs = case["log"], case["pairs"]
+    kf = np.union1d(select_keyframes(log.odom, CONFIG.keyframes), np.union1d(pairs.src, pairs.dst))
+    points = {int(i): log.points(int(i)) for i in kf}
+
+    def seeds(src, dst):
+        return [se2.between(log.odom[a], log.odom[b])[None] for a, b in zip(src, dst)]
+
+    steps = (kf[:-1], kf[1:], seeds(kf[:-1], kf[1:]), dataclasses.replace(CONFIG.registration, coarse=False))
+    cands = (pairs.src, pairs.dst, seeds(pairs.src, pairs.dst), CONFIG.registration)
+    return points, steps, cands
+
+
+def _same_fits(a, b):
+    assert len(a) == len(b)
+    for ra, rb in zip(a, b):
+        assert (ra is None) == (rb is None)
+        assert ra is None or all(np.array_equal(x, y, equal_nan=True) for x, y in zip(astuple(ra), astuple(rb)))
+
+
+def test_the_candidates_reuse_the_scans_the_calibration_prepared(case):
+    points, steps, cands = _two_stages(case)
+    # Fresh: each stage prepares its scans itself, as every register call did before scans were held.
+    fresh = SerialRunner(cache_scans=len(points))
+    fresh_steps = fresh.register(points, *steps, CONFIG.batch_pairs)
+    fresh_cands = fresh.register(points, *cands, CONFIG.batch_pairs)
+    assert fresh.last_builds == len(np.union1d(cands[0], cands[1]))
+    # Held, with room for every keyframe: the candidates prepare nothing, and get the same bits.
+    runner = SerialRunner(cache_scans=len(points))
+    with runner.hold(points, CONFIG.registration) as scans:
+        held_steps = scans.register(*steps, CONFIG.batch_pairs)
+        assert runner.last_builds == len(points)
+        held_cands = scans.register(*cands, CONFIG.batch_pairs)
+        assert runner.last_builds == 0
+        assert scans.builds == len(points)
+    assert scans.state is None  # released
+    _same_fits(fresh_steps, held_steps)
+    _same_fits(fresh_cands, held_cands)
+
+
+def test_a_pool_holds_its_workers_and_their_scans_across_calls(case):
+    points, steps, cands = _two_stages(case)
+    reference = SerialRunner().register(points, *cands, CONFIG.batch_pairs)
+    runner = PoolRunner(2)
+    with runner.hold(points, CONFIG.registration) as scans:
+        scans.register(*steps, CONFIG.batch_pairs)
+        pool = scans.state
+        workers = [set(ex._processes) for ex in pool.executors]
+        first = runner.last_builds
+        got = scans.register(*cands, CONFIG.batch_pairs)
+        # The same worker processes.
+        assert scans.state is pool and [set(ex._processes) for ex in pool.executors] == workers
+        assert len(set().union(*workers)) == 2
+        second = runner.last_builds
+        assert scans.builds == first + second
+    assert scans.state is None and all(ex._shutdown_thread for ex in pool.executors)  # released: shut down
+    _same_fits(reference, got)
+    # Each worker's cache (256 scans) holds every keyframe of this log, so over both calls a worker
+    # prepares a scan at most once: the candidates found the calibration's scans in the workers.
+    assert len(points) <= 256 and len(points) <= first <= 2 * len(points)
+    assert first + second <= 2 * len(points)
+
+
+def test_the_pipeline_holds_the_keyframes_from_the_calibration_to_the_candidates(case):
+    calls = []
+
+    class Recording(SerialRunner):
+        def register(self, points, *args, **kwargs):
+            out = super().register(points, *args, **kwargs)
+            calls.append((points, self.last_builds))
+            return out
+
+    outcome = run_log(case["log"], CONFIG, external=case["pairs"], runner=Recording())
+    (steps, calibration), (candidates, again) = calls
+    assert steps is candidates and isinstance(steps, HeldScans) and steps.state is None  # one hold, released
+    assert np.array_equal(steps.table.ids, outcome.keyframes)
+    # This log's keyframes fit in the cache: the calibration prepared them all, the candidates none.
+    assert len(outcome.keyframes) <= 256 and calibration == len(outcome.keyframes) and again == 0
+    _assert_same_run(case["serial"], outcome)
+
+
+def test_held_scans_refuse_what_they_cannot_serve(case):
+    points, steps, cands = _two_stages(case)
+    runner = SerialRunner()
+    with runner.hold(points, CONFIG.registration) as scans:
+        with pytest.raises(ValueError, match="prepare scans differently"):
+            scans.register(*steps[:3], dataclasses.replace(CONFIG.registration, line_neighbours=12), 8)
+        outside = max(points) + 1
+        with pytest.raises(ValueError, match=rf"scans \[{outside}\] are not among the held scans"):
+            scans.register(np.array([min(points)]), np.array([outside]), [np.zeros((1, 3))], CONFIG.registration, 8)
+
+
+def test_regions_hand_out_every_batch_once_and_keep_each_workers_run_contiguous():
+    for batches, workers in ((0, 2), (1, 3), (7, 2), (54, 2), (27, 4)):
+        regions = Regions(batches, workers)
+        own = [list(r) for r in regions.regions]
+        assert [k for r in own for k in r] == list(range(batches))  # contiguous, in order
+        assert max(map(len, own)) - min(map(len, own)) <= 1
+        # Workers asking in turn, one of them twice as often: each starts on its own region, in order.
+        asks = [0, 0] + list(range(workers)) * batches
+        got = [(w, regions.next(w)) for w in asks]
+        handed = [k for _, k in got if k is not None]
+        assert sorted(handed) == list(range(batches))
+        for w in range(workers):
+            mine = [k for v, k in got if v == w and k is not None]
+            from_own = [k for k in mine if k in own[w]]
+            # Its own batches first, from the front of its region (the others take from the back).
+            assert mine[:len(from_own)] == from_own == own[w][:len(from_own)]
+            # Another's batch is taken from the back of the region with the most batches left.
+            for k in mine[len(from_own):]:
+                assert k not in own[w]
+    # The region with the most left loses its last batch first.
+    regions = Regions(10, 2)
+    assert [regions.next(0) for _ in range(5)] == [0, 1, 2, 3, 4]
+    assert regions.next(0) == 9 and regions.next(1) == 5 and regions.next(0) == 8
