@@ -16,23 +16,33 @@ per needed node, so O(N^2) when most nodes are needed.  Here instead:
    triangular, D block diagonal) runs on the symbolic pattern of L, stored
    column by column without padding, in one compiled right-looking loop;
 3. column q of ``L^-1`` is non-zero only on the path from q to the root of
-   the elimination tree, and follows from its parents' columns
+   the elimination tree, and follows from its ancestors' columns
    (``L^-1 L = I`` gives ``L^-1[:, q] = e_q - sum_{m in struct(q)}
-   L^-1[:, m] L[m, q]``), so all of them are computed top down in one
-   compiled loop (:mod:`closurecheck.graph._inverse_kernels`), each stored
-   only as deep as its own node;
+   L^-1[:, m] L[m, q]``, every m in struct(q) an ancestor of q), so one
+   depth-first walk of the tree computes them all while holding only the
+   current node's ancestors (:mod:`closurecheck.graph._inverse_kernels`);
 4. ``S = L^-T D^-1 L^-1`` then gives any block as a sum over the common
    ancestors of the two nodes: ``S[i, j] = sum_k L^-1[k, i]^T D_k^-1
-   L^-1[k, j]``.
+   L^-1[k, j]``, summed when the walk reaches the later of the two nodes;
+   the earlier one's column is kept aside until then, and only as deep as
+   its pairs' common ancestors reach.  The blocks asked for must therefore
+   be known before the walk (:func:`inverse_blocks` takes them as
+   arguments).
 
-Time is O(N * depth * front) and memory O(N * depth) blocks for N nodes,
-elimination-tree depth ``depth`` and column pattern ``front``, instead
-of N times the number of needed nodes.  On the 100,000-scan log's map-gate
-graph (33,332 nodes, depth up to 1,192, patterns up to 599 blocks) the
-former numpy formulation, padded to the widest pattern and the deepest
-node, held 20.0 M factor blocks and 39.8 M path blocks (9.1 GB of the
-verify() process) and took 451.5 s for one call; unpadded, 2.3 M and 26.3 M
-(docs/performance.md).  Both grow slowly for the locally
+Time is O(N * depth * front) for N nodes, elimination-tree depth
+``depth`` and column pattern ``front``; memory is the factor, ``depth^2 / 2``
+blocks of the walk's ancestor columns and the kept columns of the nodes
+asked for, instead of N times the number of needed nodes (block columns
+solved one by one) or all N columns along their root paths (O(N * depth)).
+On the 100,000-scan log's map-gate graph (33,332 nodes, depth up to 1,192,
+patterns up to 599 blocks, 20,027 pairs) the former numpy formulation,
+padded to the widest pattern and the deepest node, held 20.0 M factor
+blocks and 39.8 M path blocks (9.1 GB of the verify() process) and took
+451.5 s for one call; stored unpadded, 2.3 M and 26.3 M (1.9 GB) and 30 s;
+with the depth-first walk 2.3 M factor blocks, 0.71 M ancestor blocks and
+the kept columns, freed after their last pair (the call's process at
+0.80 GB instead of 2.38 GB), in 29 s.  Depth
+and fronts grow slowly for the locally
 connected graphs of a mapping run (measured on the graphs of
 benchmarks/verification_scaling.py: depth 29 at 1,667 nodes, 64 at 6,667).
 A graph whose edges join random far-apart nodes (an expander) has large
@@ -45,57 +55,15 @@ SE(2) poses); node ``k`` holds variables ``b*k .. b*k + b - 1``.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 import numpy as np
 import scipy.sparse as sp
 from scipy.sparse import csgraph
 
-from ._inverse_kernels import block_ldl, path_products, root_path_columns
+from ._inverse_kernels import block_ldl, selected_path_products
 
 # Subgraphs of at most this many nodes are not dissected further (their
 # elimination-tree paths are at most this long).
 _LEAF_NODES = 16
-
-
-@dataclass(frozen=True, eq=False)
-class SparseInverse:
-    """Factored form of ``S = H^-1`` from which any ``b x b`` block is a short sum.
-
-    Arrays are indexed by elimination position (``position[q]`` for node
-    q).  ``paths[offset[p] + t]`` holds ``R_k L^-1[k, p]`` for the ancestor
-    k of p at elimination-tree depth t (root: t = 0, p itself: t =
-    ``depth[p]``; ``D_k^-1 = R_k^T R_k``), so ``S[p, r]`` is the sum over the
-    common ancestors of ``paths[.]^T paths[.]``.  Use :meth:`blocks` and
-    :meth:`diagonal`, which take node numbers.
-    """
-
-    block_size: int
-    position: np.ndarray  # (n,) int64
-    parent: np.ndarray  # (n,) int64, by position, -1 for roots
-    depth: np.ndarray  # (n,) int64, by position
-    offset: np.ndarray  # (n + 1,) int64
-    paths: np.ndarray  # (offset[n], b, b)
-
-    def _check(self, nodes):
-        nodes = np.asarray(nodes, dtype=np.int64).ravel()
-        if len(nodes) and (nodes.min() < 0 or nodes.max() >= len(self.position)):
-            raise ValueError("node index out of range")
-        return nodes
-
-    def blocks(self, rows, cols) -> np.ndarray:
-        """``S[rows[k], cols[k]]`` (block row and column are node indices of H) as a (P, b, b) array."""
-        rows, cols = self._check(rows), self._check(cols)
-        if rows.shape != cols.shape:
-            raise ValueError("rows and cols must have the same length")
-        return path_products(self.paths, self.offset, self.depth, self.parent, self.position[rows],
-                             self.position[cols])
-
-    def diagonal(self, nodes=None) -> np.ndarray:
-        """Diagonal blocks ``S[q, q]`` for ``nodes`` (default: all) as an (M, b, b) array."""
-        nodes = np.arange(len(self.position)) if nodes is None else self._check(nodes)
-        p = self.position[nodes]
-        return path_products(self.paths, self.offset, self.depth, self.parent, p, p)
 
 
 def _find_slots(colptr, rows, row, col):
@@ -259,8 +227,8 @@ def _factor(h, b, order, colptr, rows):
     return r_fac, lower
 
 
-def sparse_inverse(h, block_size: int) -> SparseInverse:
-    """Factor a sparse symmetric positive definite block matrix for reading blocks of its inverse.
+def inverse_blocks(h, block_size: int, rows, cols) -> np.ndarray:
+    """Blocks ``(H^-1)[rows[k], cols[k]]`` of a sparse symmetric positive definite block matrix.
 
     Parameters
     ----------
@@ -268,20 +236,20 @@ def sparse_inverse(h, block_size: int) -> SparseInverse:
         (only its lower triangle in elimination order is read, so it must be
         exactly symmetric).
     block_size : b, variables per node.
+    rows, cols : (P,) node indices (0 .. n - 1) of the blocks asked for;
+        ``rows[k] == cols[k]`` asks for a diagonal block.
 
     Returns
     -------
-    SparseInverse
-        ``.blocks(rows, cols)`` gives ``(H^-1)[rows[k], cols[k]]`` blocks for
-        any node pairs, ``.diagonal()`` the diagonal blocks.  Raises
-        ``numpy.linalg.LinAlgError`` when H is not positive definite.
+    (P, b, b) array, block k ``(H^-1)[b*rows[k]:b*rows[k]+b, b*cols[k]:b*cols[k]+b]``.
+    Raises ``numpy.linalg.LinAlgError`` when H is not positive definite.
 
     Examples
     --------
     >>> import numpy as np, scipy.sparse as sp
     >>> h = np.array([[4.0, 1, 0], [1, 3, 1], [0, 1, 2]])
-    >>> inv = sparse_inverse(sp.csc_matrix(h), 1)
-    >>> bool(np.allclose(inv.blocks([0, 2], [2, 0])[:, 0, 0], np.linalg.inv(h)[0, 2]))
+    >>> s = inverse_blocks(sp.csc_matrix(h), 1, [0, 2, 1], [2, 0, 1])
+    >>> bool(np.allclose(s[:, 0, 0], np.linalg.inv(h)[[0, 2, 1], [2, 0, 1]]))
     True
     """
     b = int(block_size)
@@ -289,18 +257,21 @@ def sparse_inverse(h, block_size: int) -> SparseInverse:
     if h.shape[0] != h.shape[1] or h.shape[0] % b:
         raise ValueError(f"matrix of shape {h.shape} is not square in blocks of {b}")
     n = h.shape[0] // b
+    rows = np.asarray(rows, dtype=np.int64).ravel()
+    cols = np.asarray(cols, dtype=np.int64).ravel()
+    if rows.shape != cols.shape:
+        raise ValueError("rows and cols must have the same length")
+    for nodes in (rows, cols):
+        if len(nodes) and (nodes.min() < 0 or nodes.max() >= n):
+            raise ValueError("node index out of range")
     if n == 0:
-        empty = np.zeros(0, dtype=np.int64)
-        return SparseInverse(block_size=b, position=empty, parent=empty, depth=empty,
-                             offset=np.zeros(1, dtype=np.int64), paths=np.zeros((0, b, b)))
+        return np.zeros((0, b, b))
     adjacency = _node_graph(h, b)
     order = nested_dissection_order(adjacency)
-    colptr, rows, parent = _symbolic(adjacency, order)
+    colptr, frows, parent = _symbolic(adjacency, order)
     depth = _depths(parent)
-    # D_k^-1 = R_k^T R_k; the recursion multiplies on the right, so the scaling carries through.
-    r_fac, lblocks = _factor(h, b, order, colptr, rows)
-    by_depth = np.argsort(depth, kind="stable")
-    paths, offset = root_path_columns(colptr, rows, lblocks, r_fac, depth, by_depth)
+    r_fac, lblocks = _factor(h, b, order, colptr, frows)
     position = np.empty(n, dtype=np.int64)
     position[order] = np.arange(n)
-    return SparseInverse(block_size=b, position=position, parent=parent, depth=depth, offset=offset, paths=paths)
+    # D_k^-1 = R_k^T R_k; the recursion multiplies on the right, so the scaling carries through.
+    return selected_path_products(colptr, frows, lblocks, r_fac, parent, depth, position[rows], position[cols])

@@ -247,3 +247,62 @@ def konig_reach(indptr, indices, match_l, match_r):
                     queue[tail] = w
                     tail += 1
     return reached_l, reached_r
+
+
+@njit(cache=True, nogil=True)
+def lex_improve_conflicts(indptr, indices, order, pos, member, wpos, weight, min_weight):
+    """:func:`clique._lex_improve` on the conflict lists instead of the complement's bitsets.
+
+    Parameters
+    ----------
+    indptr, indices : CSR arrays of the (symmetric, loop-free) conflict graph
+        over the n vertices (local numbering).
+    order : (n,) vertex at each position; pos : (n,) its inverse.
+    member : (n,) bool by position, the clique; changed in place.
+    wpos : (n,) float weight at each position.
+    weight : the members' summed weight (as the caller summed it).
+    min_weight : a swap must keep the weight at least this.
+
+    Returns
+    -------
+    member : the improved clique, by position.
+
+    The same scan as the bitset version: vertices in increasing index, the
+    first non-member that conflicts with exactly one member of larger index
+    (and keeps the weight) is swapped in, and the scan starts again.  A
+    non-member's count of conflicting members is kept up to date across
+    swaps, so each scan is O(n) plus the conflict lists of the swapped
+    vertices.  Why: the bitsets of a component of s closures take s^2 / 8
+    bytes, 690 MB at the 74,637 closures of the 100,000-scan log, where the
+    Nemhauser-Trotter split had already decided the search without them.
+    """
+    n = len(order)
+    count = np.zeros(n, dtype=np.int64)
+    for v in range(n):
+        for k in range(indptr[v], indptr[v + 1]):
+            if member[pos[indices[k]]]:
+                count[v] += 1
+    improved = True
+    while improved:
+        improved = False
+        for v in range(n):
+            u = pos[v]
+            if member[u] or count[v] != 1:
+                continue
+            mv = -1
+            for k in range(indptr[v], indptr[v + 1]):
+                if member[pos[indices[k]]]:
+                    mv = indices[k]
+                    break
+            m = pos[mv]
+            if mv > v and weight - wpos[m] + wpos[u] >= min_weight:
+                member[m] = False
+                member[u] = True
+                weight += wpos[u] - wpos[m]
+                for k in range(indptr[mv], indptr[mv + 1]):
+                    count[indices[k]] -= 1
+                for k in range(indptr[v], indptr[v + 1]):
+                    count[indices[k]] += 1
+                improved = True
+                break
+    return member

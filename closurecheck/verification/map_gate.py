@@ -18,7 +18,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..core import se2
-from ..graph.selected_inverse import sparse_inverse
+from ..graph.selected_inverse import inverse_blocks
 from ..graph.solver import normal_matrix
 
 
@@ -26,20 +26,19 @@ def _posterior_blocks(h, pair_i, pair_j):
     """Blocks ``S_ii, S_jj, S_ij`` of ``S = H^-1`` for node pairs (node 0, the gauge, has S = 0).
 
     H is the gauge-fixed normal matrix (variables: nodes 1..n-1).  The blocks
-    come from :func:`closurecheck.graph.selected_inverse.sparse_inverse`, whose
-    cost grows with the graph's size times its elimination-tree depth, not
-    with the graph's size times the number of nodes asked for.
+    come from :func:`closurecheck.graph.selected_inverse.inverse_blocks`, whose
+    time grows with the graph's size times its elimination-tree depth, not
+    with the graph's size times the number of nodes asked for; its memory
+    with the factor and the depth of the nodes asked for.
     """
     if h.shape[0] == 0:
         zero = np.zeros((len(pair_i), 3, 3))
         return zero, zero.copy(), zero.copy()
-    inverse = sparse_inverse(h, 3)
     gauge_i, gauge_j = pair_i == 0, pair_j == 0
     vi, vj = np.maximum(pair_i - 1, 0), np.maximum(pair_j - 1, 0)
-    diag = inverse.diagonal()
-    sii = diag[vi]
-    sjj = diag[vj]
-    sij = inverse.blocks(vi, vj)
+    p = len(pair_i)
+    blocks = inverse_blocks(h, 3, np.concatenate([vi, vj, vi]), np.concatenate([vi, vj, vj]))
+    sii, sjj, sij = blocks[:p], blocks[p:2 * p], blocks[2 * p:]
     sii[gauge_i] = 0.0
     sjj[gauge_j] = 0.0
     sij[gauge_i | gauge_j] = 0.0
@@ -73,7 +72,8 @@ def relative_posterior(poses, src, dst, delta, information, pair_i, pair_j):
     rel = se2.between(poses[pair_i], poses[pair_j])
     ja, jb = se2.between_jacobians(poses[pair_i], poses[pair_j])
     t = np.swapaxes
-    cov = ja @ sii @ t(ja, -1, -2) + jb @ sjj @ t(jb, -1, -2) + ja @ sij @ t(jb, -1, -2) + jb @ t(sij, -1, -2) @ t(ja, -1, -2)
+    cov = (ja @ sii @ t(ja, -1, -2) + jb @ sjj @ t(jb, -1, -2) + ja @ sij @ t(jb, -1, -2)
+           + jb @ t(sij, -1, -2) @ t(ja, -1, -2))
     return rel, 0.5 * (cov + t(cov, -1, -2))
 
 

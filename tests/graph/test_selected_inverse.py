@@ -13,8 +13,8 @@ from closurecheck.core import se2
 from closurecheck.graph.selected_inverse import (
     _node_graph,
     _symbolic,
+    inverse_blocks,
     nested_dissection_order,
-    sparse_inverse,
 )
 from closurecheck.graph.solver import normal_matrix
 from closurecheck.verification.map_gate import relative_posterior
@@ -50,12 +50,29 @@ def test_every_block_equals_the_dense_inverse(n, b, extra, components, seed):
     rng = np.random.default_rng(seed)
     h = random_block_spd(n, b, extra, rng, components)
     expected = all_blocks(np.linalg.inv(h), n, b)  # reference: numpy.linalg.inv
-    inv = sparse_inverse(sp.csc_matrix(h), b)
     rows, cols = np.meshgrid(np.arange(n), np.arange(n), indexing="ij")
-    got = inv.blocks(rows.ravel(), cols.ravel()).reshape(n, n, b, b)
+    got = inverse_blocks(sp.csc_matrix(h), b, rows.ravel(), cols.ravel()).reshape(n, n, b, b)
     np.testing.assert_allclose(got, expected, rtol=0, atol=1e-10 * np.abs(expected).max())
-    diag = inv.diagonal()
+    diag = inverse_blocks(sp.csc_matrix(h), b, np.arange(n), np.arange(n))
     np.testing.assert_allclose(diag, expected[np.arange(n), np.arange(n)], rtol=0, atol=1e-10 * np.abs(expected).max())
+
+
+def test_blocks_do_not_depend_on_which_others_are_asked_for():
+    # Each block is summed from the same columns in the same order whatever else is asked for (the
+    # walk keeps a node's column only as deep as its own pairs need), so a subset, a repeat or a
+    # reversed order of the pairs gives the same bits; the values against numpy.linalg.inv.
+    rng = np.random.default_rng(12)
+    n, b = 300, 3
+    h = sp.csc_matrix(random_block_spd(n, b, 120, rng, components=2))
+    rows, cols = rng.integers(0, n, 400), rng.integers(0, n, 400)
+    full = inverse_blocks(h, b, rows, cols)
+    pick = rng.choice(400, 37, replace=False)
+    np.testing.assert_array_equal(inverse_blocks(h, b, rows[pick], cols[pick]), full[pick])
+    np.testing.assert_array_equal(inverse_blocks(h, b, rows[::-1], cols[::-1]), full[::-1])
+    np.testing.assert_array_equal(inverse_blocks(h, b, np.r_[rows, rows], np.r_[cols, cols])[400:], full)
+    expected = all_blocks(np.linalg.inv(h.toarray()), n, b)[rows, cols]
+    np.testing.assert_allclose(full, expected, rtol=0, atol=1e-10 * np.abs(expected).max())
+    assert inverse_blocks(h, b, [], []).shape == (0, b, b)
 
 
 def test_nested_dissection_keeps_a_long_chain_shallow():
@@ -85,13 +102,14 @@ def test_order_is_a_permutation_on_disconnected_graphs():
 def test_not_positive_definite_raises():
     h = np.diag([1.0, 2.0, 3.0, 1.0, -1.0, 1.0])
     with pytest.raises(np.linalg.LinAlgError):
-        sparse_inverse(sp.csc_matrix(h), 3)
+        inverse_blocks(sp.csc_matrix(h), 3, [0], [0])
 
 
 def test_out_of_range_node_raises():
-    inv = sparse_inverse(sp.identity(6, format="csc"), 3)
     with pytest.raises(ValueError):
-        inv.blocks([0], [2])
+        inverse_blocks(sp.identity(6, format="csc"), 3, [0], [2])
+    with pytest.raises(ValueError):
+        inverse_blocks(sp.identity(6, format="csc"), 3, [0, 1], [1])
 
 
 # ---------------------------------------------------------------------------

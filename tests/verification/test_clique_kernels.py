@@ -163,3 +163,36 @@ def test_split_is_the_one_scipy_gave(seed, n, outliers, pair_p, hub_p):
     ref_zero, ref_half = scipy_split(c)
     assert np.array_equal(zero, ref_zero)
     assert np.array_equal(half, ref_half)
+
+
+@pytest.mark.parametrize("seed, n, outliers, pair_p, hub_p, weighted", [
+    (0, 300, 30, 0.01, 0.7, False), (1, 200, 10, 0.05, 0.5, False), (2, 150, 20, 0.1, 0.3, True),
+    (3, 2, 0, 0.0, 0.0, False),
+])
+def test_lex_improve_on_conflict_lists_equals_the_bitsets(seed, n, outliers, pair_p, hub_p, weighted):
+    # Reference: the bitset formulation of clique._lex_improve (the complement's neighbour bitsets).
+    # The start is a maximal clique grown from the largest indices down, so swaps towards smaller
+    # indices exist.
+    rng = np.random.default_rng(seed)
+    c = scipy.sparse.csr_array(pcm_like_conflicts(rng, n, outliers, pair_p, hub_p))
+    a = clique_module._adjacency_csr(c)
+    w = rng.uniform(0.5, 2.0, n) if weighted else np.ones(n)
+    dense = a.toarray()
+    start = []
+    for v in range(n - 1, -1, -1):
+        if not dense[v, start].any():
+            start.append(v)
+    lists = clique_module._graph_of_conflicts(a, w, weighted)
+    bitsets = clique_module._graph_of_conflicts(a, w, weighted)
+    assert bitsets.nbr is not None and lists._nbr is None
+    members = [int(p) for p in lists.pos[start]]
+    weight = sum(lists.wpos[p] for p in members)
+    min_weight = weight - 1e-9 * max(1.0, abs(weight))
+    got = clique_module._lex_improve(lists, members, min_weight)
+    ref = clique_module._lex_improve(bitsets, members, min_weight)
+    assert lists._nbr is None  # the conflict-list scan never built the bitsets
+    assert got == ref
+    found = np.sort(lists.order[got])
+    assert not dense[np.ix_(found, found)].any()
+    if seed == 0:
+        assert not np.array_equal(found, np.sort(start))  # swaps happened
