@@ -140,6 +140,28 @@ def _common_depth(parent, depth, i, j):
 
 
 @njit(cache=True, nogil=True)
+def _buckets(key, n):
+    """Items ``0 .. len(key) - 1`` grouped by their key in [0, n) (a negative key: none), ascending in a group.
+
+    Returns (ptr (n + 1,), items): the items of key k are ``items[ptr[k]:ptr[k + 1]]`` (a counting sort).
+    """
+    ptr = np.zeros(n + 1, dtype=np.int64)
+    for q in range(len(key)):
+        if key[q] >= 0:
+            ptr[key[q] + 1] += 1
+    for t in range(n):
+        ptr[t + 1] += ptr[t]
+    items = np.empty(max(ptr[n], 1), dtype=np.int64)
+    fill = ptr[:n].copy()
+    for q in range(len(key)):
+        k = key[q]
+        if k >= 0:
+            items[fill[k]] = q
+            fill[k] += 1
+    return ptr, items
+
+
+@njit(cache=True, nogil=True)
 def selected_path_products(colptr, rows, lblocks, r_fac, parent, depth, pi, pj):
     """Blocks ``S[pi[e], pj[e]]`` (elimination positions) without storing every root path.
 
@@ -183,19 +205,7 @@ def selected_path_products(colptr, rows, lblocks, r_fac, parent, depth, pi, pj):
     if n == 0:
         return out
     # Depth-first preorder of the elimination tree (children ascending, roots ascending).
-    nchild = np.zeros(n + 1, dtype=np.int64)
-    for q in range(n):
-        if parent[q] >= 0:
-            nchild[parent[q] + 1] += 1
-    for q in range(n):
-        nchild[q + 1] += nchild[q]
-    child = np.empty(max(nchild[n], 1), dtype=np.int64)
-    fill = nchild[:n].copy()
-    for q in range(n):
-        p = parent[q]
-        if p >= 0:
-            child[fill[p]] = q
-            fill[p] += 1
+    nchild, child = _buckets(parent, n)
     preorder = np.empty(n, dtype=np.int64)
     todo = np.empty(n, dtype=np.int64)
     top = 0
@@ -244,18 +254,7 @@ def selected_path_products(colptr, rows, lblocks, r_fac, parent, depth, pi, pj):
         chunks[q] = (keep[q] + _KEEP_CHUNK - 1) // _KEEP_CHUNK
         chunk_at[q + 1] = chunk_at[q] + chunks[q]
     table = np.zeros(max(chunk_at[n], 1), dtype=np.int64)
-    done_at = np.zeros(n + 1, dtype=np.int64)
-    for q in range(n):
-        if last[q] >= 0:
-            done_at[last[q] + 1] += 1
-    for t in range(n):
-        done_at[t + 1] += done_at[t]
-    done = np.empty(max(done_at[n], 1), dtype=np.int64)
-    fill = done_at[:n].copy()
-    for q in range(n):
-        if last[q] >= 0:
-            done[fill[last[q]]] = q
-            fill[last[q]] += 1
+    done_at, done = _buckets(last, n)
     alive = 0
     most = 0
     for t in range(n):
@@ -267,16 +266,7 @@ def selected_path_products(colptr, rows, lblocks, r_fac, parent, depth, pi, pj):
     pool = np.zeros((max(most, 1) * _KEEP_CHUNK, b, b))
     free = np.arange(max(most, 1))[::-1].copy()
     free_top = most
-    by_late = np.zeros(n + 1, dtype=np.int64)
-    for e in range(count):
-        by_late[late[e] + 1] += 1
-    for q in range(n):
-        by_late[q + 1] += by_late[q]
-    pairs_at = np.empty(count, dtype=np.int64)
-    fill = by_late[:n].copy()
-    for e in range(count):
-        pairs_at[fill[late[e]]] = e
-        fill[late[e]] += 1
+    by_late, pairs_at = _buckets(late, n)
     deepest = 0
     for q in range(n):
         if depth[q] > deepest:
