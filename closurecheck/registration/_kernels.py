@@ -283,6 +283,25 @@ def _scan_cell(points, order, lo, hi, qx, qy, n, best, bi, tie):
 
 
 @njit(cache=True, nogil=True)
+def _cell_window(qx, qy, origin, cell, ni, nj, reach):
+    """The cells of a cell index that may hold a point within ``reach`` cells of the query (qx, qy).
+
+    Returns (far: no cell can, fi, fj: the query in cell units, i0, i1, j0,
+    j1: the inclusive ranges of cell rows and columns, clipped to the grid).
+    """
+    fi = (qx - origin[0]) / cell
+    fj = (qy - origin[1]) / cell
+    far = fi < -reach - 1.0 or fj < -reach - 1.0 or fi > ni + reach + 1.0 or fj > nj + reach + 1.0
+    i0, i1, j0, j1 = 0, -1, 0, -1
+    if not far:     # a far query's cell number may not fit an integer
+        i0 = max(int(math.floor(fi)) - reach, 0)
+        i1 = min(int(math.floor(fi)) + reach, ni - 1)
+        j0 = max(int(math.floor(fj)) - reach, 0)
+        j1 = min(int(math.floor(fj)) + reach, nj - 1)
+    return far, fi, fj, i0, i1, j0, j1
+
+
+@njit(cache=True, nogil=True)
 def nearest(points, origin, cell, columns, start, order, queries, upper):
     """Nearest of ``points`` to each query closer than ``upper`` metres (an index of :func:`cell_index`).
 
@@ -303,15 +322,9 @@ def nearest(points, origin, cell, columns, start, order, queries, upper):
     reach = int(math.ceil(upper / cell))
     for p in range(nq):
         qx, qy = queries[p, 0], queries[p, 1]
-        fi = (qx - origin[0]) / cell
-        fj = (qy - origin[1]) / cell
-        if fi < -reach - 1.0 or fj < -reach - 1.0 or fi > ni + reach + 1.0 or fj > nj + reach + 1.0:
+        far, fi, fj, i0, i1, j0, j1 = _cell_window(qx, qy, origin, cell, ni, nj, reach)
+        if far:
             continue
-        # The cells that may hold a point within upper of the query.
-        i0 = max(int(math.floor(fi)) - reach, 0)
-        i1 = min(int(math.floor(fi)) + reach, ni - 1)
-        j0 = max(int(math.floor(fj)) - reach, 0)
-        j1 = min(int(math.floor(fj)) + reach, nj - 1)
         best = u2
         bi = n
         tie = False
@@ -981,14 +994,9 @@ def nearest_k(points, origin, cell, columns, start, order, queries, upper, k):
     reach = int(math.ceil(upper / cell))
     for p in range(nq):
         qx, qy = queries[p, 0], queries[p, 1]
-        fi = (qx - origin[0]) / cell
-        fj = (qy - origin[1]) / cell
-        if fi < -reach - 1.0 or fj < -reach - 1.0 or fi > ni + reach + 1.0 or fj > nj + reach + 1.0:
+        far, fi, fj, i0, i1, j0, j1 = _cell_window(qx, qy, origin, cell, ni, nj, reach)
+        if far:
             continue
-        i0 = max(int(math.floor(fi)) - reach, 0)
-        i1 = min(int(math.floor(fi)) + reach, ni - 1)
-        j0 = max(int(math.floor(fj)) - reach, 0)
-        j1 = min(int(math.floor(fj)) + reach, nj - 1)
         for t in range(k):
             best[t] = u2
             bi[t] = n
