@@ -35,6 +35,7 @@ from .work import (
     ScanCache,
     batch_slices,
     begin,
+    register_once,
     run_batch,
     single_thread_blas,
 )
@@ -170,10 +171,7 @@ class DaskRunner:
     def register(self, points, src, dst, seeds, options, batch_pairs, progress=None):
         """Per-pair result tuples (or None) in input order; see pairwise_registration.register_batch."""
         if not isinstance(points, HeldScans):
-            if len(src) == 0:
-                return []
-            with self.hold(points, options) as held:
-                return self.register(held, src, dst, seeds, options, batch_pairs, progress)
+            return register_once(self, points, src, dst, seeds, options, batch_pairs, progress)
         held = points
         held.check(src, dst, options)
         self.last_builds = 0

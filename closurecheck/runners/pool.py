@@ -20,6 +20,7 @@ from .work import (
     advance,
     begin,
     batch_slices,
+    register_once,
     run_batch,
     single_thread_blas,
 )
@@ -163,10 +164,7 @@ class PoolRunner:
     def register(self, points, src, dst, seeds, options, batch_pairs, progress=None):
         """Per-pair result tuples (or None) in input order; see pairwise_registration.register_batch."""
         if not isinstance(points, HeldScans):
-            if len(src) == 0:
-                return []
-            with self.hold(points, options) as held:
-                return self.register(held, src, dst, seeds, options, batch_pairs, progress)
+            return register_once(self, points, src, dst, seeds, options, batch_pairs, progress)
         held = points
         held.check(src, dst, options)
         if len(src) == 0:

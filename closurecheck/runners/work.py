@@ -277,6 +277,14 @@ class HeldScans:
         self.close(abort=exc_type is not None)
 
 
+def register_once(runner, points, src, dst, seeds, options, batch_pairs, progress) -> list:
+    """``runner.register`` given the points themselves: through a hold released when the call returns."""
+    if len(src) == 0:
+        return []
+    with runner.hold(points, options) as held:
+        return runner.register(held, src, dst, seeds, options, batch_pairs, progress)
+
+
 class Regions:
     """Which batch each worker runs next: one contiguous run of batches a worker, then the others' ends.
 
