@@ -202,9 +202,9 @@ _MATH_POWER = re.compile(r"\^\{([^{}]*)\}")
 
 
 def plain_math(label: str) -> str:
-    """A log axis' tick label as plain text: exponents as Unicode superscripts, ``\\times`` as a times sign.
+    r"""A log axis' tick label as plain text: exponents as Unicode superscripts, ``\times`` as a times sign.
 
-    matplotlib labels log axes in mathtext (``$\\mathdefault{10^{-2}}$``),
+    matplotlib labels log axes in mathtext (``$\mathdefault{10^{-2}}$``),
     and parsing it cost about 0.2 s of the report's pictures at 5,000
     scans; the plain text needs no parser and reads the same.  Labels that
     are not mathtext come back unchanged.
