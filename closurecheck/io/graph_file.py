@@ -81,12 +81,11 @@ def graph_to_dict(graph: PoseGraph) -> dict:
     edges = []
     checks = graph.checks or tuple({} for _ in range(len(graph.src)))
     loops = set(np.flatnonzero(np.asarray(graph.kind).astype(str) == "loop").tolist())
-    covariance = {k: cov[k].tolist() for k in loops}
     for k, (s, d, kind, delta, information) in enumerate(zip(graph.src, graph.dst, graph.kind, rows(graph.delta),
                                                              info.tolist())):
         edge = {"from": int(s), "to": int(d), "kind": str(kind), "delta": delta, "information": information}
         if k in loops:
-            edge["covariance"] = covariance[k]
+            edge["covariance"] = cov[k].tolist()
             edge["checks"] = jsonable(checks[k])
         edges.append(edge)
     return {"graph": GRAPH_VERSION, "source": graph.source, "nodes": nodes, "edges": edges}

@@ -811,7 +811,7 @@ def _stable_order(keys_sorted_by, order):
 
 @njit(cache=True, nogil=True)
 def seed_leaves(own, records, j, k, sep_m, sep_rad, max_records):
-    """One seed's update of the coarse search's best leaves (correlative._Best.add), compiled.
+    """One seed's update of the coarse search's best leaves (its part of :func:`_add_leaves`).
 
     ``own`` (m, 5) the seed's leaves that may still matter and ``records``
     the new leaves of all seeds (rows [sum score, x, y, theta, seed]); those
@@ -822,7 +822,7 @@ def seed_leaves(own, records, j, k, sep_m, sep_rad, max_records):
     Returns (kept leaves, the seed's list, k-th best score or -1, and
     whether more than ``max_records`` leaves came together, in which case
     nothing was sorted and the first array holds them all for the caller to
-    thin with numpy's argpartition first).
+    thin to the ``max_records`` best first).
     """
     n_old = len(own)
     cnt = 0
@@ -1295,7 +1295,13 @@ def _best_rows(score, batch):
 
 @njit(cache=True, nogil=True)
 def _add_leaves(records, own, lists, kth, k, sep_m, sep_rad, max_records):
-    """correlative._Best.add, compiled: the seeds' leaves and lists updated in place; returns (merged, bar)."""
+    """New leaves of :func:`coarse_search` into the seeds' lists, updated in place; returns (merged, bar).
+
+    ``records`` rows [sum score, x, y, theta, seed index]; ``own``, ``lists``
+    and ``kth`` per seed as :func:`seed_leaves` returns them; ``merged`` the
+    k best distinct of the seeds' lists, as if each seed had been searched
+    on its own, and ``bar`` each seed's pruning bar (coarse_search).
+    """
     n_seeds = len(own)
     for j in range(n_seeds):
         present = False

@@ -202,30 +202,26 @@ def search(grid: LikelihoodGrid, points, seed, *, window_m: float, window_rad: f
     stack[:, pad:pad + w, pad:pad + h] = grid.levels
     stack = stack.ravel()
 
-    def bounds(nodes):
-        """Sum over the points of each node's level at its offset; nodes are rows [angle, ox, oy, level].
-
-        Compiled (_kernels.block_sums): a wide window has thousands of top blocks of N gathers
-        each, for which numpy's take built two (blocks, N) temporaries (0.73 -> 0.21 ms per
-        search of the default window)."""
-        return _kernels.block_sums(nodes, stack, base, size, hp)
-
     tops = _kernels.top_blocks(len(rows), starts.astype(np.int64), top_level)
     if top_level == 0:
         tops = tops[(np.abs(tops[:, 1]) <= half) & (np.abs(tops[:, 2]) <= half)]
     split = np.zeros((top_level + 1, 4, 4), np.int64)
     for lvl in range(1, top_level + 1):
-        split[lvl] = quad_split(lvl)
+        split[lvl] = _quad_split(lvl)
     # The rounds of splitting and the leaves' lists in one compiled call (_kernels.coarse_search;
     # as a Python loop of kernel calls, the loop's overhead was more than half of a search's time).
-    out = _kernels.coarse_search(tops, bounds(tops), top_level, split, half, stack, base, size, hp,
+    # The top blocks' bounds: the sum over the points of each block's level at its offset (compiled,
+    # _kernels.block_sums: a wide window has thousands of top blocks of N gathers each, for which
+    # numpy's take built two (blocks, N) temporaries; 0.73 -> 0.21 ms per search of the default window).
+    top_score = _kernels.block_sums(tops, stack, base, size, hp)
+    out = _kernels.coarse_search(tops, top_score, top_level, split, half, stack, base, size, hp,
                                  np.ascontiguousarray(rows), float(r), len(seeds), int(n_best), float(separation_m),
                                  float(separation_rad), _BATCH_NODES, _MAX_RECORDS)
     poses = out[:, 1:4].copy()
     return poses, out[:, 0] / (_LEVELS * len(pts))
 
 
-def quad_split(level: int) -> np.ndarray:
+def _quad_split(level: int) -> np.ndarray:
     """Rows to add to a block [angle, ox, oy, level] of ``level`` for its four children (quadrants)."""
     quad = np.array([[0, 0, 0, 0], [0, 0, 1, 0], [0, 1, 0, 0], [0, 1, 1, 0]])
     return quad * (1 << (level - 1)) - np.array([0, 0, 0, 1])

@@ -104,7 +104,6 @@ class ScanCache:
     def __init__(self, table: PointsTable, options: RegistrationOptions, max_scans: int = CACHE_SCANS):
         self.table = table
         self.options = options
-        self.key = options.preparation_key()
         self.max_scans = max(1, int(max_scans))
         self.prepared: OrderedDict = OrderedDict()
         self.builds = 0
@@ -152,12 +151,11 @@ def run_batch(cache: ScanCache, src, dst, seeds, options: RegistrationOptions | 
     """Register one batch of pairs with scans from ``cache`` (see register_batch).
 
     ``options`` (default: the cache's) may differ from the cache's in
-    anything but the preparation settings: the calibration and the candidates
-    share one cache, without and with the coarse stage.
+    anything but the preparation settings (HeldScans.check refuses others
+    before the batches are made): the calibration and the candidates share
+    one cache, without and with the coarse stage.
     """
     options = cache.options if options is None else options
-    if options.preparation_key() != cache.key:
-        raise ValueError("the options prepare scans differently from the ones the cache holds")
     prepared = cache.get(np.unique(np.concatenate([np.asarray(src), np.asarray(dst)])))
     return register_batch(prepared, src, dst, seeds, options)
 
