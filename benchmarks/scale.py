@@ -139,16 +139,18 @@ def child_run(args) -> None:
         profiler = Profiler()
         profiler.start()
     cpu0, t0 = time.process_time(), time.perf_counter()
-    log, _ = load_input(args.log)
-    t_read = time.perf_counter() - t0
-    memory = _MemoryByStage()
-    memory.peaks["read"] = _rusage_mb()
     config = RunConfig(jobs=args.jobs)
     if args.pair_window is not None:
         import dataclasses
 
         config = dataclasses.replace(config, verify=dataclasses.replace(config.verify, pair_window_m=args.pair_window))
+    # Made before the log is read, as `closurecheck run` does: a pool's fork server starts (imports,
+    # loads the compiled kernels) while this process reads.
     runner = make_runner(config.jobs)
+    log, _ = load_input(args.log)
+    t_read = time.perf_counter() - t0
+    memory = _MemoryByStage()
+    memory.peaks["read"] = _rusage_mb()
     try:
         outcome = run_log(log, config, runner=runner, progress=memory)
     finally:

@@ -27,15 +27,45 @@ Examples
 (True, (3,), (3, 3))
 """
 
+import importlib
+
 from ._version import __version__
-from .config import RunConfig, build_config
 from .errors import InputError
-from .io.graph_file import PoseGraph, read_graph
-from .io.scanlog import ScanLog, Sensor, read_scanlog, scan_points, write_scanlog
-from .pipeline import run
-from .registration.icp import Registration, RegistrationOptions, register
-from .simulation.simulate import simulate_log
+
+# Each public name and the module that defines it, imported on first use (PEP 562): the whole
+# package takes about 2 s to import (scipy.stats, scipy.optimize, scikit-learn), while a pool
+# worker needs only registration (about 0.5 s), and the pool's fork server imports this package
+# before it can start one (runners/pool.py).
+_HOMES = {
+    "run": ".pipeline",
+    "RunConfig": ".config",
+    "build_config": ".config",
+    "PoseGraph": ".io.graph_file",
+    "read_graph": ".io.graph_file",
+    "ScanLog": ".io.scanlog",
+    "Sensor": ".io.scanlog",
+    "read_scanlog": ".io.scanlog",
+    "scan_points": ".io.scanlog",
+    "write_scanlog": ".io.scanlog",
+    "Registration": ".registration.icp",
+    "RegistrationOptions": ".registration.icp",
+    "register": ".registration.icp",
+    "simulate_log": ".simulation.simulate",
+}
 
 __all__ = ["__version__", "run", "RunConfig", "build_config", "InputError", "ScanLog", "Sensor", "read_scanlog",
            "write_scanlog", "scan_points", "PoseGraph", "read_graph", "register", "Registration",
            "RegistrationOptions", "simulate_log"]
+
+
+def __getattr__(name: str):
+    home = _HOMES.get(name)
+    if home is None:
+        raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+    value = getattr(importlib.import_module(home, __name__), name)
+    globals()[name] = value
+    return value
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(_HOMES))

@@ -114,8 +114,7 @@ class _Lanes:
     their first batch (a fork server spawns them on demand).
     """
 
-    def __init__(self, count: int, table, options, cache_scans: int):
-        ctx = _pool_context()
+    def __init__(self, count: int, table, options, cache_scans: int, ctx):
         self.executors = [ProcessPoolExecutor(max_workers=1, mp_context=ctx, initializer=_pool_init,
                                               initargs=(table, options, cache_scans)) for _ in range(count)]
 
@@ -145,6 +144,11 @@ class PoolRunner:
     scan's pairs mostly meet in one worker's cache.  As with any process
     pool, a script that uses it needs the ``if __name__ == "__main__":``
     guard (workers import the main module).
+
+    The fork server starts when the runner is made, so that its imports and
+    its loading of the compiled kernels (registration/warm.py), about 2.6 s
+    on the 2-core machine of docs/performance.md, run while this process
+    reads the log rather than before the first batch.
     """
 
     name = "local pool"
@@ -156,6 +160,7 @@ class PoolRunner:
         self.cache_scans = cache_scans
         self.last_builds = 0
         self._serial = SerialRunner(cache_scans)
+        self._context = _pool_context() if self.workers > 1 else None
 
     def hold(self, points, options) -> HeldScans:
         """Keep these scans, and the pool started for them, from one ``register`` call to the next."""
@@ -182,7 +187,8 @@ class PoolRunner:
         try:
             lanes = held.state
             if lanes is None:
-                lanes = held.state = _Lanes(self.workers, held.table, held.options, self.cache_scans)
+                lanes = held.state = _Lanes(self.workers, held.table, held.options, self.cache_scans,
+                                                    self._context)
             regions = Regions(len(slices), len(lanes.executors))
             pending: dict = {}
 
