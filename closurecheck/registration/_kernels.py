@@ -771,6 +771,111 @@ def line_offsets(points, beams, nidx, used, c_l, n_l, t_l, quadratic, range_nois
 
 
 @njit(cache=True, nogil=True)
+def _inverse3(a, lu, inv):
+    """inv = a^-1 for a (3, 3) matrix, by Gaussian elimination with partial pivoting (as _solve3), in place.
+
+    ``lu`` is scratch space; a is left as it was.  One factorisation for the
+    three columns, and no allocation: line_fits calls it once per line.
+    """
+    perm0, perm1, perm2 = 0, 1, 2
+    for i in range(3):
+        for j in range(3):
+            lu[i, j] = a[i, j]
+    for col in range(3):
+        piv = col
+        for row in range(col + 1, 3):
+            if abs(lu[row, col]) > abs(lu[piv, col]):
+                piv = row
+        if piv != col:
+            for c in range(3):
+                t = lu[col, c]
+                lu[col, c] = lu[piv, c]
+                lu[piv, c] = t
+            if col == 0:
+                if piv == 1:
+                    perm0, perm1 = perm1, perm0
+                else:
+                    perm0, perm2 = perm2, perm0
+            else:
+                perm1, perm2 = perm2, perm1
+        for row in range(col + 1, 3):
+            f = lu[row, col] / lu[col, col]
+            lu[row, col] = f
+            for c in range(col + 1, 3):
+                lu[row, c] -= f * lu[col, c]
+    for j in range(3):
+        # Column j of the identity, permuted as the rows were, then forward and back substitution.
+        y0 = 1.0 if perm0 == j else 0.0
+        y1 = (1.0 if perm1 == j else 0.0) - lu[1, 0] * y0
+        y2 = (1.0 if perm2 == j else 0.0) - lu[2, 0] * y0 - lu[2, 1] * y1
+        z2 = y2 / lu[2, 2]
+        z1 = (y1 - lu[1, 2] * z2) / lu[1, 1]
+        z0 = (y0 - lu[0, 1] * z1 - lu[0, 2] * z2) / lu[0, 0]
+        inv[0, j] = z0
+        inv[1, j] = z1
+        inv[2, j] = z2
+
+
+@njit(cache=True, nogil=True)
+def line_fits(x, h, nu, c_l, n_l, extent, quadratic):
+    """The least-squares part of the local line models' fits (icp._target_side), per line.
+
+    With X = x[m] (k, 3) the design rows and A = X^T X plus a relative
+    ridge (1e-12 trace(A) on the diagonal; A[2, 2] = 1 for straight
+    lines): wts = X A^-1 (k, 3), the model coefficients beta = h^T wts and
+    Q = sum_l nu_l^2 wts_l wts_l^T, the model's variance in units of
+    sigma^2.  A^-1 comes from Gaussian elimination with partial pivoting
+    (LAPACK's dgesv method, as numpy's inv).  Returns the (M, 14) line
+    rows [centroid (2), normal (2), beta (3), Q00, Q01, Q02, Q11, Q12,
+    Q22, extent] and the (M, k, 3) reading sensitivities nu * wts as float32.
+    """
+    nl, k = h.shape
+    line = np.empty((nl, 14))
+    sens = np.empty((nl, k, 3), np.float32)
+    a = np.empty((3, 3))
+    lu = np.empty((3, 3))
+    inv = np.empty((3, 3))
+    w = np.empty((k, 3))
+    for m in range(nl):
+        for i in range(3):
+            for j in range(i, 3):
+                acc = 0.0
+                for q in range(k):
+                    acc += x[m, q, i] * x[m, q, j]
+                a[i, j] = acc
+                a[j, i] = acc
+        if not quadratic:
+            a[2, 2] = 1.0
+        ridge = 1e-12 * (a[0, 0] + a[1, 1] + a[2, 2])
+        for i in range(3):
+            a[i, i] += ridge
+        _inverse3(a, lu, inv)
+        for q in range(k):
+            for j in range(3):
+                w[q, j] = x[m, q, 0] * inv[0, j] + x[m, q, 1] * inv[1, j] + x[m, q, 2] * inv[2, j]
+                sens[m, q, j] = nu[m, q] * w[q, j]
+        line[m, 0] = c_l[m, 0]
+        line[m, 1] = c_l[m, 1]
+        line[m, 2] = n_l[m, 0]
+        line[m, 3] = n_l[m, 1]
+        for j in range(3):
+            acc = 0.0
+            for q in range(k):
+                acc += h[m, q] * w[q, j]
+            line[m, 4 + j] = acc
+        slot = 7
+        for i in range(3):
+            for j in range(i, 3):
+                acc = 0.0
+                for q in range(k):
+                    acc += nu[m, q] * nu[m, q] * w[q, i] * w[q, j]
+                line[m, slot] = acc
+                slot += 1
+        line[m, 13] = extent[m]
+    return line, sens
+
+
+@njit(cache=True, nogil=True)
 def point_candidates(idx, used, has_line, min_neighbours):
     """Points with no line, at least ``min_neighbours`` neighbours and no neighbour on a line (icp._point_like).
 
