@@ -32,6 +32,7 @@ import scipy.spatial
 from ..core import se2
 from ..core.options import options, setting
 from ..io.scanlog import Sensor
+from . import _free_space_kernels as _kernels
 
 
 @options
@@ -156,27 +157,14 @@ def _against(points_b, pose_ab, ranges_a, sensor: Sensor, options: FreeSpaceOpti
     ``min_run`` consecutive points: a single beam through a gap a hand
     wide is not a misplaced wall.
     """
-    p = se2.transform_points(pose_ab, points_b)
-    rho = np.hypot(p[:, 0], p[:, 1])
-    phi = np.arctan2(p[:, 1], p[:, 0])
-    beam = np.rint(np.mod(phi - sensor.first_angle, 2.0 * np.pi) / sensor.angle_step).astype(np.int64)
-    inside = (beam >= 1) & (beam < sensor.beams - 1) & (rho <= sensor.max_range)
-    r = np.asarray(ranges_a, dtype=np.float64)
-    bb = np.where(inside, beam, 1)
-    near = np.stack([r[bb - 1], r[bb], r[bb + 1]])
-    seen = inside & np.isfinite(near).all(axis=0)
-    closest = np.min(np.where(np.isfinite(near), near, np.inf), axis=0)
-    bad = seen & (rho < closest - (options.margin_m + options.margin_per_m * rho))
-    # Runs of consecutive contradicting points (the points are in beam order).
-    edges = np.diff(np.r_[0, bad.astype(np.int8), 0])
-    start, stop = np.flatnonzero(edges == 1), np.flatnonzero(edges == -1)
-    long = np.zeros(len(bad) + 1, dtype=np.int64)
-    runs = (stop - start) >= options.min_run
-    np.add.at(long, start[runs], 1)
-    np.add.at(long, stop[runs], -1)
-    counted = np.cumsum(long)[:-1] > 0
-    arc = rho * abs(sensor.angle_step)
-    return float(arc[counted].sum()), float(arc[seen].sum())
+    # One compiled loop over the points (_free_space_kernels.against: about 100 -> 10 us a comparison).
+    x, y, t = (float(v) for v in pose_ab)
+    c, s = float(np.cos(t)), float(np.sin(t))
+    bad, judged = _kernels.against(np.ascontiguousarray(points_b, dtype=np.float64), x, y, c, s, ranges_a,
+                                   float(sensor.first_angle), float(sensor.angle_step), int(sensor.beams),
+                                   float(sensor.max_range), float(options.margin_m), float(options.margin_per_m),
+                                   int(options.min_run))
+    return float(bad), float(judged)
 
 
 def check_free_space(poses, travel, scans: KeyframeScans, options: FreeSpaceOptions = FreeSpaceOptions(),
