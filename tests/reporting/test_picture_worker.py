@@ -84,12 +84,16 @@ def test_closing_a_job_ends_its_worker():
     assert job.proc.poll() is not None
 
 
-@pytest.mark.parametrize("jobs, expected", [(1, False), (0, None), (2, None)])
-def test_one_job_means_one_process(jobs, expected):
-    got = worth_a_worker(jobs)
-    if expected is None:
-        import os
+def test_one_job_means_one_process():
+    assert worth_a_worker(1) is False
 
-        cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
-        expected = cores > 1
-    assert got is expected
+
+@pytest.mark.parametrize("cores, load, expected", [(1, 0.0, False), (2, 0.9, True), (2, 1.2, True), (2, 1.6, False),
+                                                   (4, 3.0, True), (4, 3.6, False)])
+def test_a_worker_only_where_a_core_is_idle(monkeypatch, cores, load, expected):
+    import os
+
+    monkeypatch.setattr(os, "sched_getaffinity", lambda pid: set(range(cores)), raising=False)
+    monkeypatch.setattr(os, "getloadavg", lambda: (load, load, load))
+    assert worth_a_worker(0) is expected
+    assert worth_a_worker(2) is expected
