@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import base64
 import functools
+import gc
 import html
 import io
 import json
@@ -1217,6 +1218,12 @@ def build_report(out_dir, data: ReportData, *, table_limit: int = 5000, progress
                 told.add(text)
             if name in names:
                 pngs[name] = draw_picture(name, data)
+                if not gc.isenabled():
+                    # A drawn figure is a reference cycle holding its data (the
+                    # maps: every scan point, twice).  write_outputs pauses the
+                    # collector; the young generation, which holds the figure, is
+                    # collected at once, in milliseconds.
+                    gc.collect(0)
 
     draw({name for name, _ in PICTURES} - remote, remote)
     if remote:
