@@ -91,15 +91,16 @@ class PictureJob:
 
 def worth_a_worker(jobs: int) -> bool:
     """Whether a second process should draw the pictures: ``jobs`` (the run's worker setting,
-    0 = all cores) allows more than one process, and this process may use more than one core
-    of which, by the one-minute load average, at least about half a core is idle.
+    0 = all cores) allows more than one process, and a core is idle for it beside this process
+    (:func:`busy_elsewhere`).
 
     The worker costs about 0.85 s of CPU time more than drawing everything
     here (its own start and matplotlib import), so it pays only where it
     runs beside the main process, not instead of it.  On the 5,000-scan
     warehouse log on 2 cores the write took 2.2-2.5 s with the worker
-    against 3.0-3.7 s without at a load average of 1.2-1.6, and 4.0-5.4 s
-    against 3.4-4.2 s at a load average of 4 (another job using both cores).
+    against 3.0-3.7 s without at a load average of 1.2-1.6 (mostly these
+    measurements themselves), and 3.8-5.4 s against 3.0-4.2 s at a load
+    average of 3.5-4 (another job using both cores).
     """
     if jobs == 1:
         return False
@@ -109,12 +110,32 @@ def worth_a_worker(jobs: int) -> bool:
         cores = os.cpu_count() or 1
     if cores < 2:
         return False
+    return busy_elsewhere() <= cores - 2
+
+
+def busy_elsewhere() -> float:
+    """How many other tasks want a core now: the kernel's count of runnable tasks less this one
+    (/proc/loadavg, the median of five readings 2 ms apart), or the one-minute load average
+    less one where there is no /proc.
+
+    Not the load average on Linux: it trails by a minute, and right after
+    registration it still counts the run's own pool workers.
+    """
+    import time
+
+    counts = []
     try:
-        load = os.getloadavg()[0]
-    except (AttributeError, OSError):  # no load average (Windows)
-        return True
-    # The run itself counts about 1 in the load average.
-    return load < cores - 0.5
+        for k in range(5):
+            if k:
+                time.sleep(0.002)
+            with open("/proc/loadavg") as f:
+                counts.append(int(f.read().split()[3].split("/")[0]))
+    except (OSError, ValueError, IndexError):
+        try:
+            return max(os.getloadavg()[0] - 1.0, 0.0)
+        except (AttributeError, OSError):  # no load average (Windows)
+            return 0.0
+    return float(max(sorted(counts)[2] - 1, 0))
 
 
 def start_pictures(data, names: tuple | None = None) -> PictureJob | None:

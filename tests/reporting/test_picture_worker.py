@@ -88,12 +88,17 @@ def test_one_job_means_one_process():
     assert worth_a_worker(1) is False
 
 
-@pytest.mark.parametrize("cores, load, expected", [(1, 0.0, False), (2, 0.9, True), (2, 1.2, True), (2, 1.6, False),
-                                                   (4, 3.0, True), (4, 3.6, False)])
-def test_a_worker_only_where_a_core_is_idle(monkeypatch, cores, load, expected):
+@pytest.mark.parametrize("cores, busy, expected", [(1, 0.0, False), (2, 0.0, True), (2, 1.0, False),
+                                                   (4, 2.0, True), (4, 3.0, False)])
+def test_a_worker_only_where_a_core_is_idle(monkeypatch, cores, busy, expected):
     import os
 
     monkeypatch.setattr(os, "sched_getaffinity", lambda pid: set(range(cores)), raising=False)
-    monkeypatch.setattr(os, "getloadavg", lambda: (load, load, load))
+    monkeypatch.setattr(picture_worker, "busy_elsewhere", lambda: busy)
     assert worth_a_worker(0) is expected
     assert worth_a_worker(2) is expected
+
+
+def test_busy_elsewhere_is_a_count():
+    busy = picture_worker.busy_elsewhere()
+    assert busy >= 0 and busy == int(busy)
