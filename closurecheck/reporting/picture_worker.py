@@ -97,10 +97,11 @@ def worth_a_worker(jobs: int) -> bool:
     The worker costs about 0.85 s of CPU time more than drawing everything
     here (its own start and matplotlib import), so it pays only where it
     runs beside the main process, not instead of it.  On the 5,000-scan
-    warehouse log on 2 cores the write took 2.2-2.5 s with the worker
-    against 3.0-3.7 s without at a load average of 1.2-1.6 (mostly these
-    measurements themselves), and 3.8-5.4 s against 3.0-4.2 s at a load
-    average of 3.5-4 (another job using both cores).
+    warehouse log on 2 cores shared with another job, medians of three runs
+    alternating with the code before the worker: 3.1 s with it against 3.5
+    and 3.9 s without (two sets, one-minute load average 1.1-2.0), but 4.0
+    against 3.2 s in a third set (load average 1.8-2.0), and 3.8-5.4 s
+    against 3.0-4.2 s with another job using both cores (load average 3.5-4).
     """
     if jobs == 1:
         return False
