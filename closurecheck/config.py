@@ -67,7 +67,9 @@ class ReviewOptions:
 class RunConfig:
     """Every setting of a run; one TOML table per stage (docs/cli.md, "Settings").
 
-    jobs : worker processes for registration (0 = all cores, 1 = serial).
+    jobs : worker processes for registration (0 = all cores, 1 = serial);
+        unless 1, a second process also draws most of the report's pictures
+        (closurecheck.reporting.picture_worker).
     batch_pairs : candidate pairs per unit of parallel work.
     max_pairs : most candidate pairs a run registers (a pairs file and
         proposals together); more are refused with exit status 2 before

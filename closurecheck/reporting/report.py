@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import base64
 import functools
+import gc
 import html
 import io
 import json
@@ -27,17 +28,22 @@ import math
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from ..core import se2
 from ..io.atomic import write_bytes, write_text
-from ..verification.free_space import FreeSpaceCheck
-from ..verification.margins import CHECKS, Margins, check_bounds, decision_margins
 from ..verification.reasons import GROUPS, Reason
 from ..verification.verdicts import VerdictTable
 from .report_script import VIEWER_CSS, VIEWER_JS
-from .scoring import REFERENCE_NOTE, REFERENCE_VERDICTS, TRAJECTORY_TITLE, curve_rows, score_blocks, trajectory_rows
+
+# margins and scoring (and free_space) import scipy, about 2 s in a fresh
+# process; the picture worker (closurecheck.reporting.picture_worker)
+# imports this module without them, so they are imported where used.
+if TYPE_CHECKING:
+    from ..verification.free_space import FreeSpaceCheck
+    from ..verification.margins import Margins
 
 SAFETY_TEXT = (
     "Verified loop closures are statistical decisions, not guarantees: a closure that passed every "
@@ -130,6 +136,8 @@ def check_thresholds(verify_options) -> dict:
     the rule): the chi-square figures get the quantile of chi-square with 3
     degrees of freedom at the configured probability.
     """
+    from ..verification.margins import check_bounds
+
     return check_bounds(verify_options)
 
 
@@ -145,6 +153,12 @@ _PAD_PX = 10
 # files 8% larger (765 kB against 708 kB).
 _PNG_LEVEL = 1
 
+# Titles sit at the top of their axes (plus matplotlib's title pad).  Left to
+# itself (y unset) matplotlib places each title at draw time, measuring the
+# tick labels of the y axis to dodge an offset text ("1e6") none of these
+# pictures has: a second layout of every y tick label.
+_TITLE_Y = 1.0
+
 
 def _figure(width: float, height: float, rows: int = 1, cols: int = 1, *, left: float = 0.8,
             right: float = 0.2, bottom: float = 0.6, top: float = 0.4, wgap: float = 0.8, hgap: float = 0.8,
@@ -159,9 +173,15 @@ def _figure(width: float, height: float, rows: int = 1, cols: int = 1, *, left: 
     2 cores).  No pyplot: the figure is not registered with a window
     manager, so nothing needs closing.
     """
+    import matplotlib
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
+    # The pictures draw on their own Agg canvases (no pyplot); Agg is still
+    # chosen for anything in this process that uses pyplot: no window
+    # system, no GUI event loop or threads that could outlive an
+    # interrupted run.
+    matplotlib.use("Agg", force=False)
     full_w, full_h = width + 2 * _SLACK_IN, height + 2 * _SLACK_IN
     fig = Figure(figsize=(full_w, full_h), dpi=100)
     FigureCanvasAgg(fig)
@@ -292,7 +312,7 @@ def _draw_map(ax, poses, points, owner, colour, title):
         ax.plot(w[:, 0], w[:, 1], ",", color=colour, alpha=0.6, rasterized=True)
     ax.plot(poses[:, 0], poses[:, 1], "-", color=TRAJECTORY_COLOUR, lw=0.6, alpha=0.8)
     ax.plot(poses[:1, 0], poses[:1, 1], "o", color=TRAJECTORY_COLOUR, ms=5)
-    ax.set_title(title)
+    ax.set_title(title, y=_TITLE_Y)
     ax.set_aspect("equal", adjustable="datalim")
     ax.set_xlabel("x (m)")
     ax.set_ylabel("y (m)")
@@ -425,7 +445,7 @@ def figure_loops(data: ReportData, ellipse_scale: float) -> bytes:
         pts = np.concatenate([pts, np.full((len(drawn), 1, 2), np.nan)], axis=1).reshape(-1, 2)
         ax.plot(pts[:, 0], pts[:, 1], "-", color=ELLIPSE_COLOUR, lw=0.6, alpha=0.7,
                 label=f"3-sigma position ellipse (x{ellipse_scale:g})")
-    ax.set_title(f"Verified loop closures ({len(acc)})")
+    ax.set_title(f"Verified loop closures ({len(acc)})", y=_TITLE_Y)
 
     ax = axes[1]
     groups = np.array([Reason(str(r)).group for r in v.reason[rej]], dtype=object)
@@ -435,7 +455,7 @@ def figure_loops(data: ReportData, ellipse_scale: float) -> bytes:
         seg = _segments(poses, index, v.src[sel], v.dst[sel])
         if seg is not None:
             ax.plot(*seg, "-", color=colour, lw=0.5, alpha=0.4, label=f"{label} ({len(sel)})")
-    ax.set_title(f"Rejected candidates ({len(rej)})")
+    ax.set_title(f"Rejected candidates ({len(rej)})", y=_TITLE_Y)
 
     for ax in axes:
         # Shared axes keep both panels on one scale; "box" is the aspect mode that allows sharing.
@@ -531,7 +551,7 @@ def figure_histograms(data: ReportData) -> bytes | None:
         clipped_text += [f"{above} above {edges[-1]:.3g} in the last bar"] if above else []
         if clipped_text:
             title += "\n" + "; ".join(clipped_text)
-        ax.set_title(title, fontsize=9)
+        ax.set_title(title, fontsize=9, y=_TITLE_Y)
         ax.tick_params(labelsize=8)
         ax.legend(fontsize=7)
     for ax in axes.ravel()[len(present):]:
@@ -579,7 +599,7 @@ def figure_truth(data: ReportData) -> bytes | None:
     ax.plot(optimised[:, 0], optimised[:, 1], "-", color=TRAJECTORY_COLOUR, lw=1.0, label="optimised")
     ax.set_aspect("equal", adjustable="datalim")
     ax.legend(fontsize=8, loc="upper center", bbox_to_anchor=(0.5, -0.12), ncol=3, frameon=False)
-    ax.set_title("Trajectories against ground truth, in the maps' frame")
+    ax.set_title("Trajectories against ground truth, in the maps' frame", y=_TITLE_Y)
     ax.set_xlabel("x (m)")
     ax.set_ylabel("y (m)")
     return _png(fig)
@@ -620,7 +640,7 @@ def figure_nees(score: dict) -> bytes | None:
     inside95 = score.get("nees_share_in_central_95pct", math.nan)
     ax.set_title(f"mean {_num(score.get('nees_mean'))}, median {_num(score.get('nees_median'))} "
                  f"(honest: 3, 2.37)\ninside the central 50%: {_num(inside50, 2)} (0.5), 95%: "
-                 f"{_num(inside95, 2)} (0.95); dashed: the 95% bounds", fontsize=9)
+                 f"{_num(inside95, 2)} (0.95); dashed: the 95% bounds", fontsize=9, y=_TITLE_Y)
     ax.legend(fontsize=8)
     q = dist.ppf((np.arange(1, len(x) + 1) - 0.5) / len(x))
     aq.loglog(q, x, ".", color=ACCEPT_COLOUR, ms=3, label="sorted NEES")
@@ -629,13 +649,15 @@ def figure_nees(score: dict) -> bytes | None:
     _log_ticks(aq.xaxis, aq.yaxis)
     aq.set_xlabel("chi-square(3) quantile")
     aq.set_ylabel("NEES")
-    aq.set_title("Quantile-quantile: below the line, covariances too large; above, too small", fontsize=9)
+    aq.set_title("Quantile-quantile: below the line, covariances too large; above, too small", fontsize=9, y=_TITLE_Y)
     aq.legend(fontsize=8)
     return _png(fig)
 
 
 def figure_precision_recall(score: dict) -> bytes | None:
     """Precision against recall over the front-end's score, with the best recall at precision 1 marked."""
+    from .scoring import REFERENCE_VERDICTS
+
     curve = score.get("frontend_pr_curve")
     if not curve or len(curve.get("recall", [])) < 2:
         return None
@@ -652,9 +674,74 @@ def figure_precision_recall(score: dict) -> bytes | None:
     ax.set_ylim(0.0, 1.05)
     ax.set_xlabel("recall (share of the right pairs kept)")
     ax.set_ylabel("precision (right / kept)")
-    ax.set_title(f"Front-end score against {reference}", fontsize=9)
+    ax.set_title(f"Front-end score against {reference}", fontsize=9, y=_TITLE_Y)
     ax.legend(fontsize=8, loc="lower left")
     return _png(fig)
+
+
+
+# The report's pictures by file name (figures/NAME.png), in the order they
+# are drawn, each with the progress text shown before it.
+PICTURES = (("map", "maps"), ("loops", "loop closures"), ("checks", "check figures"),
+            ("agreement", "scan agreement"), ("truth", "ground truth and scores"),
+            ("nees", "ground truth and scores"), ("precision-recall", "ground truth and scores"))
+# The pictures of a scored run only.
+SCORE_PICTURES = ("truth", "nees", "precision-recall")
+
+
+def draw_picture(name: str, data: ReportData) -> bytes | None:
+    """The PNG of one of the report's :data:`PICTURES` by name, or None where it does not apply
+    (no ground truth, no scan agreement check, too few values).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from closurecheck.reporting.report import ReportData, draw_picture
+    >>> from closurecheck.verification.verdicts import VerdictTable
+    >>> none = np.zeros(0, int)
+    >>> table = VerdictTable(src=none, dst=none, origin=np.zeros(0, object), accepted=np.zeros(0, bool),
+    ...                      reason=np.zeros(0, object), delta=np.zeros((0, 3)), covariance=np.zeros((0, 3, 3)))
+    >>> data = ReportData(log_name="two scans", ids=np.arange(2), odom=np.zeros((2, 3)), poses=np.zeros((2, 3)),
+    ...                   scan_points=[np.ones((3, 2)), np.ones((3, 2))], verdicts=table)
+    >>> draw_picture("map", data)[:8], draw_picture("checks", data)
+    (b'\\x89PNG\\r\\n\\x1a\\n', None)
+    """
+    if name == "map":
+        return figure_maps(data)
+    if name == "loops":
+        return figure_loops(data, ellipse_magnification(data))
+    if name == "checks":
+        return figure_histograms(data)
+    if name == "agreement":
+        return figure_agreement(data)
+    if not data.score:
+        return None
+    if name == "truth":
+        return figure_truth(data)
+    if name == "nees":
+        return figure_nees(data.score)
+    if name == "precision-recall":
+        return figure_precision_recall(data.score)
+    raise ValueError(f"no picture named {name!r}")
+
+
+@dataclass(frozen=True, eq=False)
+class AgreementPairs:
+    """What :func:`figure_agreement` reads of a :class:`closurecheck.verification.free_space.FreeSpaceCheck`:
+    keyframe positions ``a``, ``b`` (P,), ``contradicts`` (P,) bool and ``length_m`` (P,) metres.
+
+    The picture worker receives this instead, so that it need not import
+    the free-space module (and scipy with it, about 0.8 s).
+    """
+
+    a: np.ndarray
+    b: np.ndarray
+    contradicts: np.ndarray
+    length_m: np.ndarray
+
+    @property
+    def count(self) -> int:
+        return int(np.asarray(self.contradicts).sum())
 
 
 _CSS = """
@@ -863,6 +950,8 @@ def _num(value, digits: int = 3) -> str:
 def _score_section(score: dict) -> str:
     """Scores grouped into small tables with the labels of :data:`closurecheck.reporting.scoring.SECTIONS`;
     keys this page does not know still show under "Other"."""
+    from .scoring import TRAJECTORY_TITLE, curve_rows, score_blocks, trajectory_rows
+
     sections, other = score_blocks(score, _num)
     blocks = [f"<div><h3>{html.escape(title)}</h3>{_kv_table(rows)}</div>" for title, rows in sections]
     traj = trajectory_rows(score)
@@ -889,6 +978,8 @@ def _score_section(score: dict) -> str:
 
 def _score_cards(score: dict) -> list:
     """(label, value, state) cards for the top of the page."""
+    from .scoring import REFERENCE_VERDICTS
+
     cards = []
     if score.get("reference") == REFERENCE_VERDICTS:
         if "proposals" in score:
@@ -973,6 +1064,8 @@ def encode_scans(scan_points) -> dict:
 def viewer_data(data: ReportData, margins: Margins, ellipse_scale: float) -> dict:
     """Everything the page's script draws: scans, keyframe poses (both anchored at the first keyframe,
     as the maps are drawn), and every candidate's pair, delta, verdict, margin and figures."""
+    from ..verification.margins import CHECKS
+
     v = data.verdicts
     index = {int(i): k for k, i in enumerate(data.ids)}
     src = [index.get(int(a), -1) for a in v.src]
@@ -1079,7 +1172,7 @@ def _overlay_panel() -> str:
         "<code>closurecheck run LOG --decisions FILE.csv</code>.</p></div></div></div>")
 
 
-def build_report(out_dir, data: ReportData, *, table_limit: int = 5000, progress=None) -> Path:
+def build_report(out_dir, data: ReportData, *, table_limit: int = 5000, progress=None, pictures=None) -> Path:
     """Draw the pictures and write ``report.html`` into ``out_dir``.
 
     Returns the report's path.  The PNGs are also written to
@@ -1088,15 +1181,15 @@ def build_report(out_dir, data: ReportData, *, table_limit: int = 5000, progress
     the page's table (accepted first); candidates.csv has them all, and
     every candidate's overlay is in the page.  ``progress`` (optional,
     :class:`closurecheck.reporting.terminal.Progress`) is told each picture
-    as it is drawn.
+    as it is drawn.  ``pictures`` (optional) is a
+    :class:`closurecheck.reporting.picture_worker.PictureJob` drawing some
+    of the pictures in a second process, started on the same ``data``; the
+    others are drawn here meanwhile, and the job's are drawn here too if it
+    fails.
     """
-    import matplotlib
+    from ..verification.margins import decision_margins
+    from .scoring import REFERENCE_NOTE, REFERENCE_VERDICTS
 
-    # The pictures draw on their own Agg canvases (_figure, no pyplot); Agg
-    # is still chosen for anything in this process that uses pyplot: no
-    # window system, no GUI event loop or threads that could outlive an
-    # interrupted run.
-    matplotlib.use("Agg", force=False)
     out_dir = Path(out_dir)
     fig_dir = out_dir / "figures"
     fig_dir.mkdir(parents=True, exist_ok=True)
@@ -1108,33 +1201,55 @@ def build_report(out_dir, data: ReportData, *, table_limit: int = 5000, progress
     v = data.verdicts
     scale = ellipse_magnification(data)
     margins = decision_margins(v.reason, v.figures, data.thresholds)
+    remote = set(pictures.names) if pictures is not None else set()
+    if remote:
+        # The page's text parts first, while the second process draws.
+        step("page")
+        table = _candidate_table(v, table_limit, margins)
+        page_data = _script_json(viewer_data(data, margins, scale))
+    pngs, told = {}, set()
+
+    def draw(names, elsewhere=frozenset()):
+        # Pictures in ``elsewhere`` are being drawn by the second process: told, not drawn.
+        for name, text in PICTURES:
+            if (name in names or name in elsewhere) and text not in told \
+                    and (data.score or name not in SCORE_PICTURES):
+                step(text if name in names else f"{text} (second process)")
+                told.add(text)
+            if name in names:
+                pngs[name] = draw_picture(name, data)
+                if not gc.isenabled():
+                    # A drawn figure is a reference cycle holding its data (the
+                    # maps: every scan point, twice).  write_outputs pauses the
+                    # collector; the young generation, which holds the figure, is
+                    # collected at once, in milliseconds.
+                    gc.collect(0)
+
+    draw({name for name, _ in PICTURES} - remote, remote)
+    if remote:
+        got = pictures.result()
+        if got is None:
+            # The second process failed: its pictures are drawn here, where an error is raised as it is.
+            told.clear()
+            draw(remote)
+        else:
+            pngs.update(got)
+    else:
+        step("page")
+        table = _candidate_table(v, table_limit, margins)
+        page_data = _script_json(viewer_data(data, margins, scale))
     # Static maps for documents and mail; the page draws its own, zoomable.
-    step("maps")
-    write_bytes(fig_dir / "map.png", figure_maps(data))
-    step("loop closures")
-    write_bytes(fig_dir / "loops.png", figure_loops(data, scale))
-    pictures = []
-    step("check figures")
-    hist = figure_histograms(data)
-    if hist is not None:
-        pictures.append(("checks", hist, "Histograms of the check figures"))
-    step("scan agreement")
-    agreement = figure_agreement(data)
-    if agreement is not None:
-        pictures.append(("agreement", agreement, "Where the scans of different visits agree and contradict"))
-    if data.score:
-        step("ground truth and scores")
-        for name, fn, alt in (("truth", lambda: figure_truth(data), "Trajectories against ground truth"),
-                              ("nees", lambda: figure_nees(data.score), "NEES against chi-square(3)"),
-                              ("precision-recall", lambda: figure_precision_recall(data.score),
-                               "Precision and recall over the front-end score")):
-            png = fn()
-            if png is not None:
-                pictures.append((name, png, alt))
-    step("page")
-    for name, png, _ in pictures:
+    write_bytes(fig_dir / "map.png", pngs["map"])
+    write_bytes(fig_dir / "loops.png", pngs["loops"])
+    alts = {"checks": "Histograms of the check figures",
+            "agreement": "Where the scans of different visits agree and contradict",
+            "truth": "Trajectories against ground truth", "nees": "NEES against chi-square(3)",
+            "precision-recall": "Precision and recall over the front-end score"}
+    pictures_shown = [(name, pngs[name], alts[name]) for name, _ in PICTURES
+                      if name in alts and pngs.get(name) is not None]
+    for name, png, _ in pictures_shown:
         write_bytes(fig_dir / f"{name}.png", png)
-    pics = {name: _img(name, png, alt) for name, png, alt in pictures}
+    pics = {name: _img(name, png, alt) for name, png, alt in pictures_shown}
 
     n_acc = int(np.asarray(v.accepted, bool).sum())
     n_review = int(sum(str(r).startswith("reviewer_") for r in v.reason))
@@ -1257,7 +1372,7 @@ def build_report(out_dir, data: ReportData, *, table_limit: int = 5000, progress
                           f"(again to reverse), a row to lay its two scans over each other. All of them are in "
                           f"candidates.csv, with the variances of x, y and theta (the full covariance of each "
                           f"verified closure is in graph.json).</p>"
-                          f'<div class="scroll">{_candidate_table(v, table_limit, margins)}</div>'))
+                          f'<div class="scroll">{table}</div>'))
     parts.append(_section("decisions", "Decisions",
                           "<p>Rows for <code>closurecheck run LOG --decisions decisions.csv</code>: each accept or "
                           "reject button above adds or replaces the row of its pair; you can also edit the text. "
@@ -1273,7 +1388,7 @@ def build_report(out_dir, data: ReportData, *, table_limit: int = 5000, progress
                               f"with --config)</summary><pre>{html.escape(data.config_text)}</pre></details>"))
     parts.append("</main>" + _overlay_panel())
     parts.append("<script type='application/json' id='report-data'>"
-                 f"{_script_json(viewer_data(data, margins, scale))}</script>")
+                 f"{page_data}</script>")
     parts.append(f"<script>{_SORT_JS}</script><script>{VIEWER_JS}</script></body></html>")
     path = out_dir / "report.html"
     write_text(path, "\n".join(parts))
