@@ -770,17 +770,14 @@ def line_offsets(points, beams, nidx, used, c_l, n_l, t_l, quadratic, range_nois
     return x, h, extent, nu
 
 
-@njit(cache=True, nogil=True)
-def _inverse3(a, lu, inv):
-    """inv = a^-1 for a (3, 3) matrix, by Gaussian elimination with partial pivoting (as _solve3), in place.
+@njit(cache=True, nogil=True, inline="always")
+def _lu3(lu, perm):
+    """Factor the (3, 3) matrix in ``lu`` in place by Gaussian elimination with partial pivoting (LAPACK's method).
 
-    ``lu`` is scratch space; a is left as it was.  One factorisation for the
-    three columns, and no allocation: line_fits calls it once per line.
+    Rows are swapped whole, so afterwards P a = L U with L's multipliers
+    below the diagonal of ``lu`` and U on and above it; ``perm`` (3,) int,
+    given as [0, 1, 2], ends as the original row now at each position.
     """
-    perm0, perm1, perm2 = 0, 1, 2
-    for i in range(3):
-        for j in range(3):
-            lu[i, j] = a[i, j]
     for col in range(3):
         piv = col
         for row in range(col + 1, 3):
@@ -791,29 +788,44 @@ def _inverse3(a, lu, inv):
                 t = lu[col, c]
                 lu[col, c] = lu[piv, c]
                 lu[piv, c] = t
-            if col == 0:
-                if piv == 1:
-                    perm0, perm1 = perm1, perm0
-                else:
-                    perm0, perm2 = perm2, perm0
-            else:
-                perm1, perm2 = perm2, perm1
+            k = perm[col]
+            perm[col] = perm[piv]
+            perm[piv] = k
         for row in range(col + 1, 3):
             f = lu[row, col] / lu[col, col]
             lu[row, col] = f
             for c in range(col + 1, 3):
                 lu[row, c] -= f * lu[col, c]
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _lu_solve3(lu, perm, b, out):
+    """out = a^-1 b from _lu3's factors: forward then back substitution, in elimination's order of operations."""
+    y0 = b[perm[0]]
+    y1 = b[perm[1]] - lu[1, 0] * y0
+    y2 = b[perm[2]] - lu[2, 0] * y0 - lu[2, 1] * y1
+    out[2] = y2 / lu[2, 2]
+    out[1] = (y1 - lu[1, 2] * out[2]) / lu[1, 1]
+    out[0] = (y0 - lu[0, 1] * out[1] - lu[0, 2] * out[2]) / lu[0, 0]
+
+
+@njit(cache=True, nogil=True)
+def _inverse3(a, lu, perm, unit, inv):
+    """inv = a^-1 for a (3, 3) matrix: one factorisation (_lu3) for the three columns, in place.
+
+    ``lu``, ``perm`` (3,) int and ``unit`` (3,) are scratch space, so that
+    line_fits, which calls it once per line, allocates nothing; a is left
+    as it was.
+    """
+    for i in range(3):
+        perm[i] = i
+        for j in range(3):
+            lu[i, j] = a[i, j]
+    _lu3(lu, perm)
     for j in range(3):
-        # Column j of the identity, permuted as the rows were, then forward and back substitution.
-        y0 = 1.0 if perm0 == j else 0.0
-        y1 = (1.0 if perm1 == j else 0.0) - lu[1, 0] * y0
-        y2 = (1.0 if perm2 == j else 0.0) - lu[2, 0] * y0 - lu[2, 1] * y1
-        z2 = y2 / lu[2, 2]
-        z1 = (y1 - lu[1, 2] * z2) / lu[1, 1]
-        z0 = (y0 - lu[0, 1] * z1 - lu[0, 2] * z2) / lu[0, 0]
-        inv[0, j] = z0
-        inv[1, j] = z1
-        inv[2, j] = z2
+        for i in range(3):
+            unit[i] = 1.0 if i == j else 0.0
+        _lu_solve3(lu, perm, unit, inv[:, j])
 
 
 @njit(cache=True, nogil=True)
@@ -834,6 +846,8 @@ def line_fits(x, h, nu, c_l, n_l, extent, quadratic):
     sens = np.empty((nl, k, 3), np.float32)
     a = np.empty((3, 3))
     lu = np.empty((3, 3))
+    perm = np.empty(3, np.int64)
+    unit = np.empty(3)
     inv = np.empty((3, 3))
     w = np.empty((k, 3))
     for m in range(nl):
@@ -849,7 +863,7 @@ def line_fits(x, h, nu, c_l, n_l, extent, quadratic):
         ridge = 1e-12 * (a[0, 0] + a[1, 1] + a[2, 2])
         for i in range(3):
             a[i, i] += ridge
-        _inverse3(a, lu, inv)
+        _inverse3(a, lu, perm, unit, inv)
         for q in range(k):
             for j in range(3):
                 w[q, j] = x[m, q, 0] * inv[0, j] + x[m, q, 1] * inv[1, j] + x[m, q, 2] * inv[2, j]
@@ -1037,33 +1051,12 @@ def stamp_grid(occupied, rows, cols, di, dj, value):
 
 @njit(cache=True, nogil=True)
 def _solve3(a, b):
-    """x with ``a x = b`` for a (3, 3) matrix: Gaussian elimination with partial pivoting (LAPACK's dgesv method)."""
-    m = a.copy()
-    y = b.copy()
-    for col in range(3):
-        piv = col
-        for row in range(col + 1, 3):
-            if abs(m[row, col]) > abs(m[piv, col]):
-                piv = row
-        if piv != col:
-            for c in range(3):
-                t = m[col, c]
-                m[col, c] = m[piv, c]
-                m[piv, c] = t
-            t = y[col]
-            y[col] = y[piv]
-            y[piv] = t
-        for row in range(col + 1, 3):
-            f = m[row, col] / m[col, col]
-            for c in range(col + 1, 3):
-                m[row, c] -= f * m[col, c]
-            y[row] -= f * y[col]
+    """x with ``a x = b`` for a (3, 3) matrix: Gaussian elimination with partial pivoting (_lu3; LAPACK's dgesv)."""
+    lu = a.copy()
+    perm = np.arange(3)
+    _lu3(lu, perm)
     out = np.empty(3)
-    for row in range(2, -1, -1):
-        acc = y[row]
-        for c in range(row + 1, 3):
-            acc -= m[row, c] * out[c]
-        out[row] = acc / m[row, row]
+    _lu_solve3(lu, perm, b, out)
     return out
 
 

@@ -355,9 +355,10 @@ def test_inverse3_matches_numpy_inv_with_pivoting():
         x = np.column_stack([np.ones(8), a, a * a])
         xtx = x.T @ x
         mats.append(xtx + 1e-12 * np.trace(xtx) * np.eye(3))
-    lu, inv = np.empty((3, 3)), np.empty((3, 3))
+    lu, perm, unit, inv = np.empty((3, 3)), np.empty(3, np.int64), np.empty(3), np.empty((3, 3))
     for m in mats:
-        _kernels._inverse3(m, lu, inv)
+        _kernels._inverse3(m, lu, perm, unit, inv)
+        np.testing.assert_array_equal(inv[:, 1], _kernels._solve3(m, np.array([0.0, 1.0, 0.0])))
         ref = np.linalg.inv(m)
         np.testing.assert_allclose(inv @ m, np.eye(3), atol=1e-9 * np.linalg.cond(m) * 1e-6 + 1e-9)
         np.testing.assert_allclose(inv, ref, rtol=1e-12 * np.linalg.cond(m), atol=1e-14 * np.abs(ref).max())
