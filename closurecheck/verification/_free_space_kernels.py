@@ -8,8 +8,7 @@ each, most of it call overhead).  One loop per comparison does it in about
 10 us.
 
 Each expression is the numpy version's, per point, in the same order of
-operations (the cosine and sine of the pose come from numpy; numpy's
-floating remainder is followed); only the two sums run point by point
+operations (the cosine and sine of the pose come from numpy); only the two sums run point by point
 instead of numpy's pairwise order, so the surface lengths may differ from
 the numpy version's in the last bits.
 """
@@ -23,18 +22,6 @@ from numba import njit
 
 
 _TWO_PI = 2.0 * np.pi
-
-
-@njit(cache=True, nogil=True, inline="always")
-def _remainder_2pi(a):
-    """``np.mod(a, 2 pi)``: numpy's floating remainder (fmod, then shifted to be non-negative)."""
-    mod = np.fmod(a, _TWO_PI)
-    if mod != 0.0:
-        if mod < 0.0:
-            mod += _TWO_PI
-    else:
-        mod = 0.0
-    return mod
 
 
 @njit(cache=True, nogil=True)
@@ -61,7 +48,8 @@ def against(points_b, x, y, c, s, ranges_a, first_angle, angle_step, beams, max_
         py = s * points_b[i, 0] + c * points_b[i, 1] + y
         rho = math.hypot(px, py)
         phi = math.atan2(py, px)
-        beam = round(_remainder_2pi(phi - first_angle) / angle_step)      # half to even, as np.rint
+        # numba's np.mod is numpy's floating remainder; round() goes half to even, as np.rint.
+        beam = round(np.mod(phi - first_angle, _TWO_PI) / angle_step)
         bad = False
         if beam >= 1 and beam < beams - 1 and rho <= max_range:
             k = beam
