@@ -157,7 +157,7 @@ def _against(points_b, pose_ab, ranges_a, sensor: Sensor, options: FreeSpaceOpti
     ``min_run`` consecutive points: a single beam through a gap a hand
     wide is not a misplaced wall.
     """
-    # One compiled loop over the points (_free_space_kernels.against: about 100 -> 10 us a comparison).
+    # One compiled loop over the points (_free_space_kernels.against: 182-190 -> 43-44 us a comparison).
     x, y, t = (float(v) for v in pose_ab)
     c, s = float(np.cos(t)), float(np.sin(t))
     bad, judged = _kernels.against(np.ascontiguousarray(points_b, dtype=np.float64), x, y, c, s, ranges_a,
