@@ -25,9 +25,16 @@ _POST = (1.0, -0.5, 0.05)
 
 
 def room_scan(pose, beams: int = 721) -> np.ndarray:
-    """(N, 2) readings, in the sensor frame, of the invented room seen from ``pose`` (x, y, theta).
+    """Readings of the invented room seen from ``pose``, without noise.
 
-    Beams span 270 degrees; every beam hits a wall or the post (no noise).
+    Parameters
+    ----------
+    pose : (3,) sensor pose (x, y, theta) in the room's frame (m, m, rad).
+    beams : beams over 270 degrees, evenly spaced from -135 to +135 degrees.
+
+    Returns
+    -------
+    (beams, 2) points in the sensor frame (m); every beam hits a wall or the post.
 
     Examples
     --------
@@ -60,6 +67,11 @@ def warm_kernels(options: RegistrationOptions | None = None) -> None:
 
     The second kernel runs ICP's Python loop, which also resolves ties
     between nearest points under the default kernel.
+
+    Parameters
+    ----------
+    options : registration settings (default: the defaults), which choose
+        the code paths that run and so the kernels loaded.
 
     Examples
     --------
