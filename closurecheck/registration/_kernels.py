@@ -282,6 +282,12 @@ def _scan_cell(points, order, lo, hi, qx, qy, n, best, bi, tie):
     return best, bi, tie
 
 
+@njit(cache=True, nogil=True, inline="always")
+def _grid_extent(start, columns, upper, cell):
+    """(rows, columns, reach) of a cell index: its grid's shape and the rings of cells within ``upper`` metres."""
+    return (len(start) - 1) // columns, columns, int(math.ceil(upper / cell))
+
+
 @njit(cache=True, nogil=True)
 def _cell_window(qx, qy, origin, cell, ni, nj, reach):
     """The cells of a cell index that may hold a point within ``reach`` cells of the query (qx, qy).
@@ -317,9 +323,7 @@ def nearest(points, origin, cell, columns, start, order, queries, upper):
     idx = np.full(nq, n, np.int64)
     tied = np.zeros(nq, np.bool_)
     u2 = upper * upper
-    nj = columns
-    ni = (len(start) - 1) // nj
-    reach = int(math.ceil(upper / cell))
+    ni, nj, reach = _grid_extent(start, columns, upper, cell)
     for p in range(nq):
         qx, qy = queries[p, 0], queries[p, 1]
         far, fi, fj, i0, i1, j0, j1 = _cell_window(qx, qy, origin, cell, ni, nj, reach)
@@ -1087,9 +1091,7 @@ def nearest_k(points, origin, cell, columns, start, order, queries, upper, k):
     bi = np.empty(k, np.int64)
     tied = False
     u2 = upper * upper
-    nj = columns
-    ni = (len(start) - 1) // nj
-    reach = int(math.ceil(upper / cell))
+    ni, nj, reach = _grid_extent(start, columns, upper, cell)
     for p in range(nq):
         qx, qy = queries[p, 0], queries[p, 1]
         far, fi, fj, i0, i1, j0, j1 = _cell_window(qx, qy, origin, cell, ni, nj, reach)
