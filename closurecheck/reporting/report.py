@@ -1202,11 +1202,14 @@ def build_report(out_dir, data: ReportData, *, table_limit: int = 5000, progress
     scale = ellipse_magnification(data)
     margins = decision_margins(v.reason, v.figures, data.thresholds)
     remote = set(pictures.names) if pictures is not None else set()
+
+    def page():
+        step("page")
+        return _candidate_table(v, table_limit, margins), _script_json(viewer_data(data, margins, scale))
+
     if remote:
         # The page's text parts first, while the second process draws.
-        step("page")
-        table = _candidate_table(v, table_limit, margins)
-        page_data = _script_json(viewer_data(data, margins, scale))
+        table, page_data = page()
     pngs, told = {}, set()
 
     def draw(names, elsewhere=frozenset()):
@@ -1235,9 +1238,7 @@ def build_report(out_dir, data: ReportData, *, table_limit: int = 5000, progress
         else:
             pngs.update(got)
     else:
-        step("page")
-        table = _candidate_table(v, table_limit, margins)
-        page_data = _script_json(viewer_data(data, margins, scale))
+        table, page_data = page()
     # Static maps for documents and mail; the page draws its own, zoomable.
     write_bytes(fig_dir / "map.png", pngs["map"])
     write_bytes(fig_dir / "loops.png", pngs["loops"])
