@@ -1224,11 +1224,29 @@ def _point_rows(src_i, ends, src_points, src_beams, tgt_points, tgt_beams, c, s,
 
 
 @njit(cache=True, nogil=True)
+def reached(x, found, radius_m, within_m):
+    """Index of the first row of ``found`` (m, 3) that pose x (3,) is within ``within_m`` of, or -1.
+
+    The distance is the most any source point of a scan of range
+    ``radius_m`` moves between the two poses: ``hypot(dx, dy) + radius_m *
+    |dtheta|`` (metres, theta wrapped to (-pi, pi]), the measure of
+    ``reassociate_m``.  Used by every ICP loop to stop a hypothesis that
+    reaches a pose another hypothesis already converged to
+    (icp._register_prepared).
+    """
+    for k in range(len(found)):
+        dt = abs(np.pi - np.mod(np.pi - (x[2] - found[k, 2]), 2.0 * np.pi))
+        if math.hypot(x[0] - found[k, 0], x[1] - found[k, 1]) + radius_m * dt < within_m:
+            return k
+    return -1
+
+
+@njit(cache=True, nogil=True)
 def icp_line(points, origin, cell, columns, start, order, line, cand, cand_pts, cand_normals, src_points,
              src_beams, x0, lscale, max_iterations, reassociate_m, upper, max_extra, cos_max, check_normals,
              min_incidence_cos, range_noise, huber_c, mad_to_sigma, min_noise, damping, tol_m, tol_rad,
              radius_m, has_points, pp, p_origin, p_cell, p_columns, p_start, p_order, p_obj, src_pidx, tgt_pidx,
-             tgt_points, tgt_beams):
+             tgt_points, tgt_beams, found, merge_m):
     """The iterations of point-to-line ICP with the Huber kernel (icp._icp_line_loop), in one call.
 
     Each iteration is icp's: re-associate (:func:`associate`, and the
@@ -1251,8 +1269,10 @@ def icp_line(points, origin, cell, columns, start, order, line, cand, cand_pts, 
     scale, and the small-object rows: src (P,), ends (P, 2), r, v, w (P,),
     jac (P, 3), src_coef (P,), tgt_coef (P, 2)).  status 0: done; 1: fewer
     than 3 correspondences (icp._failed); 2: a tie between nearest points,
-    which the caller resolves with the kd-tree instead.  P = 0 where icp
-    has no small-object rows.
+    which the caller resolves with the kd-tree instead; 3: at the start of
+    an iteration the pose was within ``merge_m`` of row ``found[merged]``
+    (:func:`reached`; the row's index is returned in place of ``scale``,
+    nothing else is filled).  P = 0 where icp has no small-object rows.
     """
     x = x0.copy()
     converged = False
@@ -1283,6 +1303,11 @@ def icp_line(points, origin, cell, columns, start, order, line, cand, cand_pts, 
     h = np.empty((3, 3))
     g = np.empty(3)
     for it in range(1, max_iterations + 1):
+        hit = reached(x, found, radius_m, merge_m)
+        if hit >= 0:
+            status = 3
+            scale = float(hit)
+            break
         c = math.cos(x[2])
         s = math.sin(x[2])
         if moved >= reassociate_m:
