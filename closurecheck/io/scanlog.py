@@ -483,6 +483,8 @@ def _read_lines(lines: _Lines, path: Path) -> ScanLog:
             continue
         if pending_blank is not None:
             raise InputError("empty line inside the log", path, pending_blank)
+        # orjson first: load_input of the 5,000-scan warehouse log took 1.377 s with json per line and
+        # 0.442 s so (medians of 5 alternating runs, load average 1.5-1.8; docs/performance.md).
         scan = _fast_scan(raw, beams, last_t, block, fill)
         if scan is None:
             scan = _checked_scan(raw, path, number, beams, last_t, block, fill)
