@@ -182,7 +182,7 @@ def _deep(depth):
 
 # Lines on which orjson and Python's json disagree (refuse one and read the
 # other, or read different values).  The expected messages were produced by
-# the reader as it was before the orjson path (main at d93398d) on these very
+# the reader as it was before the orjson path (main; closurecheck/io as at d93398d) on these very
 # lines, and are asserted literally.
 DISAGREEING = [
     ("nan_in_ranges", [_line(ranges="[1, NaN, 3, 4, 5, 6, 7, 8]")], 2,
