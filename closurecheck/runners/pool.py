@@ -3,12 +3,11 @@
 from __future__ import annotations
 
 import contextlib
-import multiprocessing
 import os
 from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
-from pathlib import Path
 
 from ..errors import InputError
+from .forkserver import pool_context
 from .lifeline import guard_worker
 from .serial import SerialRunner
 from .work import (
@@ -41,50 +40,6 @@ def _pool_batch(src, dst, seeds, options):
     before = cache.builds
     out = run_batch(cache, src, dst, seeds, options)
     return cache.builds - before, out
-
-
-def package_root() -> str:
-    """The folder holding the ``closurecheck`` package this process runs."""
-    return str(Path(__file__).resolve().parents[2])
-
-
-@contextlib.contextmanager
-def _child_environment():
-    # The fork server starts as ``python -c ...``, which puts the current
-    # folder first on its sys.path, and Python 3.11's fork server does not
-    # take the parent's sys.path: a folder named "closurecheck" in the
-    # current folder (the parent of a clone, say) would then shadow the
-    # package in every worker.  PYTHONSAFEPATH (Python >= 3.11) drops the
-    # current folder, and PYTHONPATH names the folder of the very package
-    # this process runs, so workers import the same code as their parent.
-    old = {k: os.environ.get(k) for k in ("PYTHONSAFEPATH", "PYTHONPATH")}
-    os.environ["PYTHONSAFEPATH"] = "1"
-    os.environ["PYTHONPATH"] = os.pathsep.join([package_root()] + ([old["PYTHONPATH"]] if old["PYTHONPATH"] else []))
-    try:
-        yield
-    finally:
-        for k, v in old.items():
-            if v is None:
-                os.environ.pop(k, None)
-            else:
-                os.environ[k] = v
-
-
-def _pool_context():
-    # A fork server (preloaded with this module) starts workers in
-    # milliseconds without forking a parent that may hold threads (progress
-    # bars, a Dask client); spawn where there is no fork server (spawn
-    # children take the parent's sys.path before importing anything).
-    methods = multiprocessing.get_all_start_methods()
-    if "forkserver" in methods:
-        from multiprocessing import forkserver
-
-        ctx = multiprocessing.get_context("forkserver")
-        ctx.set_forkserver_preload([f"{__package__}._forkserver_child", __name__])
-        with _child_environment():
-            forkserver.ensure_running()
-        return ctx
-    return multiprocessing.get_context("spawn")
 
 
 def _stop(pool: ProcessPoolExecutor) -> None:
@@ -160,7 +115,7 @@ class PoolRunner:
         self.cache_scans = cache_scans
         self.last_builds = 0
         self._serial = SerialRunner(cache_scans)
-        self._context = _pool_context() if self.workers > 1 else None
+        self._context = pool_context() if self.workers > 1 else None
 
     def hold(self, points, options) -> HeldScans:
         """Keep these scans, and the pool started for them, from one ``register`` call to the next."""
