@@ -138,9 +138,12 @@ def child_run(args) -> None:
     t_wall0 = time.time()
     spawned = float(os.environ.get(SPAWNED_ENV, t_wall0))
     t_start0 = time.perf_counter() - (t_wall0 - spawned)
-    from closurecheck.runners.forkserver import start_early
-
-    start_early(args.jobs, None)
+    try:
+        from closurecheck.runners.forkserver import start_early
+    except ImportError:     # an older tree, run side by side: its PoolRunner starts the fork server
+        start_early = None
+    if start_early is not None:
+        start_early(args.jobs, None)
     from closurecheck.config import RunConfig
     from closurecheck.io.inputs import load_input
     from closurecheck.pipeline import run_log
