@@ -102,3 +102,48 @@ def test_a_worker_only_where_a_core_is_idle(monkeypatch, cores, busy, expected):
 def test_busy_elsewhere_is_a_count():
     busy = picture_worker.busy_elsewhere()
     assert busy >= 0 and busy == int(busy)
+
+
+# A worker started in advance (picture_worker.standby_pictures / Standby).
+
+
+def _ready_standby(timeout_s: float = 120.0):
+    """A standby worker that has had time to get ready (its ready byte is waiting on the pipe)."""
+    import select
+
+    standby = picture_worker.standby_pictures(2)
+    assert standby is not None
+    select.select([standby.proc.stdout], [], [], timeout_s)
+    return standby
+
+
+def test_a_standby_worker_draws_the_main_process_pictures(tmp_path):
+    data = _data()
+    build_report(tmp_path / "alone", data)
+    with _ready_standby() as standby:
+        job = standby.take(data)
+        assert job is not None and job.names == picture_worker.STANDBY_PICTURES
+        with job:
+            build_report(tmp_path / "standby", data, pictures=job)
+    assert _tree(tmp_path / "standby") == _tree(tmp_path / "alone")
+    assert "figures/checks.png" in _tree(tmp_path / "alone")
+
+
+def test_a_standby_worker_that_is_not_ready_is_ended_and_declined():
+    # A "worker" that never says it is ready.
+    proc = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(60)"], stdin=subprocess.PIPE,
+                            stdout=subprocess.PIPE)
+    standby = picture_worker.Standby(proc)
+    assert standby.take(_data()) is None
+    assert proc.poll() is not None
+
+
+def test_an_unused_standby_worker_ends_with_its_block():
+    with _ready_standby() as standby:
+        pass
+    assert standby.proc.poll() is not None
+    assert standby.take(_data()) is None
+
+
+def test_no_standby_worker_for_one_process():
+    assert picture_worker.standby_pictures(1) is None
