@@ -844,6 +844,17 @@ def _failed(x, it, merged: int = -1) -> _Solution:
 
 _NO_POSES = np.zeros((0, 3))
 
+# A hypothesis refined after one has converged gets this many iterations first; if it is still
+# moving then and its fit score is below _RIVAL_BAR times the best converged one's, it stops: its
+# score only says how close a look-alike comes (second_fit_score), and one that is still creeping
+# along a weak direction or circling between two sets of correspondences after 12 iterations
+# rarely ends anywhere better.  On 1,000 candidate pairs of the 5,000-scan warehouse log such
+# hypotheses ran to the 30-iteration cap and spent 37% of all ICP iterations; with the rule, 20%
+# fewer iterations, the returned hypothesis changed on 3 pairs and no ambiguity decision (at 0.95)
+# changed.
+_RIVAL_PROBE_ITERATIONS = 12
+_RIVAL_BAR = 0.8
+
 
 def _reached_found(x, found, src: PreparedScan, opt: RegistrationOptions) -> int:
     """Row of ``found`` (m, 3) that pose x is within ``reassociate_m`` of (_kernels.reached), or -1.
@@ -948,7 +959,7 @@ def _robust(r, v, opt, kernel, z=None):
 
 
 def _icp_line(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions, kernel,
-              found=_NO_POSES) -> _Solution:
+              found=_NO_POSES, iterations: int | None = None) -> _Solution:
     cos_max = np.cos(opt.max_normal_angle_rad) if opt.max_normal_angle_rad < np.pi else None
     lscale = np.array([1.0, 1.0, src.length_m ** 2])
     if kernel.name == "huber":
@@ -962,7 +973,8 @@ def _icp_line(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions
         (x, converged, it, status, i, j, r, v, w, jac, s_al, phi2, sc, scale,
          m_src, m_ends, pr, pv, pw, pjac, psc, ptc) = _kernels.icp_line(
             *target_index, tgt.line, cand, cand_pts, cand_normals if cos_max is not None else cand_pts,
-            src.points, src.beams, np.array(x0, dtype=float), lscale, opt.max_iterations, opt.reassociate_m,
+            src.points, src.beams, np.array(x0, dtype=float), lscale,
+            opt.max_iterations if iterations is None else iterations, opt.reassociate_m,
             opt.max_correspondence_m, opt.max_extrapolation_m, -np.inf if cos_max is None else cos_max,
             cos_max is not None, opt.min_incidence_cos, src.point_noise == "range", kernel.scale, _MAD_TO_SIGMA,
             opt.min_noise_m, opt.damping, opt.tolerance_m, opt.tolerance_rad, src.radius_m,
@@ -976,11 +988,11 @@ def _icp_line(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions
                 return _failed(x, it - 1, int(scale))
             rows = _PointRows(m_src, m_ends, pr, pv, pw, pjac, psc, ptc) if len(m_src) else None
             return _Solution(x, converged, it, i, j, r, v, w, jac, np.stack((s_al, phi2), axis=1), sc, scale, rows)
-    return _icp_line_loop(src, tgt, x0, opt, kernel, cos_max, lscale, found)
+    return _icp_line_loop(src, tgt, x0, opt, kernel, cos_max, lscale, found, iterations)
 
 
 def _icp_line_loop(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions, kernel, cos_max,
-                   lscale, found=_NO_POSES) -> _Solution:
+                   lscale, found=_NO_POSES, iterations: int | None = None) -> _Solution:
     """Point-to-line ICP as a Python loop: any kernel, small objects, ties between nearest points."""
     x = np.array(x0, dtype=float)
     range_noise = src.point_noise == "range"
@@ -992,7 +1004,7 @@ def _icp_line_loop(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOp
     cands = _candidates(src, cos_max)
     matches = prow = None
     has_points = len(src.point_index) > 0 and tgt.point_tree is not None
-    for it in range(1, opt.max_iterations + 1):
+    for it in range(1, (opt.max_iterations if iterations is None else iterations) + 1):
         hit = _reached_found(x, found, src, opt)
         if hit >= 0:
             x[2] = np.pi - np.mod(np.pi - x[2], 2 * np.pi)
@@ -1044,13 +1056,13 @@ def _icp_line_loop(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOp
 
 
 def _icp_point(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions, kernel,
-               found=_NO_POSES) -> _Solution:
+               found=_NO_POSES, iterations: int | None = None) -> _Solution:
     """Point-to-point ICP with the closed-form weighted 2D Procrustes step."""
     x = np.array(x0, dtype=float)
     tpts = tgt.points[tgt.line_index]
     converged = False
     it = 0
-    for it in range(1, opt.max_iterations + 1):
+    for it in range(1, (opt.max_iterations if iterations is None else iterations) + 1):
         hit = _reached_found(x, found, src, opt)
         if hit >= 0:
             x[2] = np.pi - np.mod(np.pi - x[2], 2 * np.pi)
@@ -1254,10 +1266,24 @@ def _register_prepared(source: PreparedScan, target: PreparedScan, seeds, option
     # stopped one counts as the same hypothesis, as it would after converging there.
     sols: list[_Solution] = []
     fits = np.empty(len(starts))
+    probe = _RIVAL_PROBE_ITERATIONS
     for k, x0 in enumerate(starts):
         done = [i for i in range(k) if sols[i].converged]
         found = np.array([sols[i].x for i in done]) if done else _NO_POSES
-        sol = refine(source, target, x0, options, kernel, found)
+        if done and options.max_iterations > probe:
+            # A converged hypothesis sets the bar (_RIVAL_BAR): one still moving after the probe's
+            # iterations with a fit well below it stops there, a rival.
+            sol = refine(source, target, x0, options, kernel, found, probe)
+            if sol.merged < 0 and not sol.converged and sol.iterations == probe:
+                fit_now = _fit_score(source, target, sol.x, options)
+                if fit_now < _RIVAL_BAR * max(fits[i] for i in done):
+                    fits[k] = fit_now
+                    sols.append(sol)
+                    continue
+                more = refine(source, target, sol.x, options, kernel, found, options.max_iterations - probe)
+                sol = replace(more, iterations=probe + more.iterations)
+        else:
+            sol = refine(source, target, x0, options, kernel, found)
         if sol.merged >= 0:
             sol = replace(sol, x=sols[done[sol.merged]].x)
             fits[k] = fits[done[sol.merged]]
