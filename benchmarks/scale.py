@@ -52,6 +52,7 @@ names the output file.  For example:
 from __future__ import annotations
 
 import argparse
+import inspect
 import json
 import os
 import platform
@@ -179,7 +180,9 @@ def child_run(args) -> None:
     memory = _MemoryByStage()
     memory.peaks["read"] = _rusage_mb()
     try:
-        outcome = run_log(log, config, runner=runner, progress=memory)
+        # An older tree's run_log, run side by side, loads nothing ahead (no ``report`` keyword).
+        ahead = {"report": not args.no_report} if "report" in inspect.signature(run_log).parameters else {}
+        outcome = run_log(log, config, runner=runner, progress=memory, **ahead)
     except BaseException:
         if standby is not None:
             standby.close()
