@@ -191,13 +191,17 @@ def start_pictures(data, names: tuple | None = None) -> PictureJob | None:
                                 stdout=subprocess.PIPE, stderr=subprocess.DEVNULL)
     except OSError:
         return None
-    job = PictureJob(proc, tuple(names))
+    # The worker reads everything before it imports anything, so this
+    # waits only for the interpreter to start (tens of milliseconds).
+    return _hand_over(PictureJob(proc, tuple(names)), payload)
+
+
+def _hand_over(job: PictureJob, payload: bytes) -> PictureJob:
+    """Write the worker's whole input and close its stdin; a worker already gone is left to result() to say."""
     try:
-        # The worker reads everything before it imports anything, so this
-        # waits only for the interpreter to start (tens of milliseconds).
-        proc.stdin.write(payload)
-        proc.stdin.close()
-    except OSError:  # the worker is gone; result() says so
+        job.proc.stdin.write(payload)
+        job.proc.stdin.close()
+    except OSError:
         pass
     except BaseException:
         job.close()
@@ -236,16 +240,8 @@ class Standby:
             self.close()
             return None
         self._taken = True
-        job = PictureJob(self.proc, tuple(names))
-        try:
-            job.proc.stdin.write(_payload(data, names))
-            job.proc.stdin.close()
-        except OSError:  # the worker is gone; result() says so
-            pass
-        except BaseException:
-            job.close()
-            raise
-        return job
+        # Ready, the worker is reading: the input streams as it is written.
+        return _hand_over(PictureJob(self.proc, tuple(names)), _payload(data, names))
 
     def close(self) -> None:
         """End the worker unless :meth:`take` handed it on (idempotent)."""
