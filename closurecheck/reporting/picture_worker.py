@@ -191,17 +191,13 @@ def start_pictures(data, names: tuple | None = None) -> PictureJob | None:
                                 stdout=subprocess.PIPE, stderr=subprocess.DEVNULL)
     except OSError:
         return None
-    # The worker reads everything before it imports anything, so this
-    # waits only for the interpreter to start (tens of milliseconds).
-    return _hand_over(PictureJob(proc, tuple(names)), payload)
-
-
-def _hand_over(job: PictureJob, payload: bytes) -> PictureJob:
-    """Write the worker's whole input and close its stdin; a worker already gone is left to result() to say."""
+    job = PictureJob(proc, tuple(names))
     try:
-        job.proc.stdin.write(payload)
-        job.proc.stdin.close()
-    except OSError:
+        # The worker reads everything before it imports anything, so this
+        # waits only for the interpreter to start (tens of milliseconds).
+        proc.stdin.write(payload)
+        proc.stdin.close()
+    except OSError:  # the worker is gone; result() says so
         pass
     except BaseException:
         job.close()
@@ -240,8 +236,16 @@ class Standby:
             self.close()
             return None
         self._taken = True
-        # Ready, the worker is reading: the input streams as it is written.
-        return _hand_over(PictureJob(self.proc, tuple(names)), _payload(data, names))
+        job = PictureJob(self.proc, tuple(names))
+        try:
+            job.proc.stdin.write(_payload(data, names))
+            job.proc.stdin.close()
+        except OSError:  # the worker is gone; result() says so
+            pass
+        except BaseException:
+            job.close()
+            raise
+        return job
 
     def close(self) -> None:
         """End the worker unless :meth:`take` handed it on (idempotent)."""
