@@ -170,23 +170,12 @@ def child_run(args) -> None:
     runner = make_runner(config.jobs)
     log, _ = load_input(args.log)
     t_read = time.perf_counter() - t0
-    # The report's picture worker, started after the read as `closurecheck run` starts it (an older
-    # tree, run side by side, has none).
-    try:
-        from closurecheck.reporting.picture_worker import standby_pictures
-    except ImportError:
-        standby_pictures = None
-    standby = standby_pictures(config.jobs) if standby_pictures is not None and not args.no_report else None
     memory = _MemoryByStage()
     memory.peaks["read"] = _rusage_mb()
     try:
         # An older tree's run_log, run side by side, loads nothing ahead (no ``report`` keyword).
         ahead = {"report": not args.no_report} if "report" in inspect.signature(run_log).parameters else {}
         outcome = run_log(log, config, runner=runner, progress=memory, **ahead)
-    except BaseException:
-        if standby is not None:
-            standby.close()
-        raise
     finally:
         runner.close()
     memory.close()
@@ -195,8 +184,7 @@ def child_run(args) -> None:
     score = score_closures(log, outcome.keyframes, v.src, v.dst, v.accepted, v.delta, v.covariance, outcome.poses)
     t_score = time.perf_counter() - t1
     t2 = time.perf_counter()
-    write_outputs(outcome, args.out, report=not args.no_report, score=score, log_path=Path(args.log),
-                  **({"standby": standby} if standby is not None else {}))
+    write_outputs(outcome, args.out, report=not args.no_report, score=score, log_path=Path(args.log))
     t_write = time.perf_counter() - t2
     memory.peaks["write"] = _rusage_mb()
     total = time.perf_counter() - t_start0

@@ -7,7 +7,6 @@ summary.json, report.html)
 
 from __future__ import annotations
 
-import contextlib
 import dataclasses
 import threading
 import time
@@ -419,7 +418,7 @@ def open_log(path, choice: RecordingChoice | None = None) -> tuple[ScanLog, list
     return log, notes
 
 
-def _write(outcome, log: ScanLog, out_dir, *, report: bool, progress, log_path: Path | None, standby=None):
+def _write(outcome, log: ScanLog, out_dir, *, report: bool, progress, log_path: Path | None):
     """Score (against the log's truth, or a front-end's pairs against the verdicts), then write the outputs."""
     from .reporting.scoring import score_outcome
 
@@ -428,8 +427,7 @@ def _write(outcome, log: ScanLog, out_dir, *, report: bool, progress, log_path: 
         progress.stage("writing outputs")
         if len(outcome.candidates) == 0:
             progress.note(outcome.notes[-1])
-    return write_outputs(outcome, out_dir, report=report, score=score, log_path=log_path, progress=progress,
-                         standby=standby)
+    return write_outputs(outcome, out_dir, report=report, score=score, log_path=log_path, progress=progress)
 
 
 def run_one(path, out_dir, config: RunConfig, *, candidates=None, choice=None, runner=None, report=True,
@@ -447,19 +445,11 @@ def run_one(path, out_dir, config: RunConfig, *, candidates=None, choice=None, r
         if progress is not None:
             progress.info(note)
     external = read_pairs(candidates, len(log), max_pairs=config.max_pairs) if candidates else None
-    # The report's picture worker starts now, at the lowest priority, so that its start and matplotlib's
-    # import (about 0.85 s) run on a core the run leaves idle rather than at the write.
-    from .reporting.picture_worker import standby_pictures
-
-    with contextlib.ExitStack() as ends:
-        standby = standby_pictures(config.jobs) if report else None
-        if standby is not None:
-            ends.enter_context(standby)
-        outcome = run_log(log, config, external=external, runner=runner, progress=progress,
-                          also_propose=also_propose, decisions=decisions, report=report)
-        if load_notes:
-            outcome = dataclasses.replace(outcome, notes=tuple(load_notes) + outcome.notes)
-        paths = _write(outcome, log, out_dir, report=report, progress=progress, log_path=Path(path), standby=standby)
+    outcome = run_log(log, config, external=external, runner=runner, progress=progress, also_propose=also_propose,
+                      decisions=decisions, report=report)
+    if load_notes:
+        outcome = dataclasses.replace(outcome, notes=tuple(load_notes) + outcome.notes)
+    paths = _write(outcome, log, out_dir, report=report, progress=progress, log_path=Path(path))
     return outcome, paths, summary(outcome)
 
 

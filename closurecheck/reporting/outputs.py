@@ -210,7 +210,7 @@ def _collector_paused():
 
 
 def write_outputs(outcome: RunOutcome, out_dir, *, report: bool = True, score: dict | None = None,
-                  log_path: Path | None = None, progress=None, standby=None) -> dict:
+                  log_path: Path | None = None, progress=None) -> dict:
     """Write graph.json, candidates.csv, config.toml, summary.json and the report into ``out_dir``.
 
     Everything is written into a hidden staging folder beside ``out_dir``
@@ -219,10 +219,7 @@ def write_outputs(outcome: RunOutcome, out_dir, *, report: bool = True, score: d
     its previous complete content or the new one, never a mix, and a rerun
     with ``report=False`` leaves no old report behind.  ``out_dir`` must
     pass :func:`check_run_folder`.  ``progress`` (optional) is told each
-    step.  ``standby`` (optional) is a picture worker started in advance
-    (:func:`closurecheck.reporting.picture_worker.standby_pictures`), used
-    if it is ready and a core is free for it, else ended.  Returns the
-    final paths written.
+    step.  Returns the final paths written.
     """
     out_dir = Path(out_dir)
     check_run_folder(out_dir)
@@ -239,9 +236,6 @@ def write_outputs(outcome: RunOutcome, out_dir, *, report: bool = True, score: d
              "summary": "summary.json"}
     with _collector_paused(), staged_folder(out_dir, check=check_run_folder) as stage, \
             contextlib.ExitStack() as pictures:
-        if standby is not None:
-            # Ends it unless take() below hands it the pictures.
-            pictures.callback(standby.close)
         d = stage.path
         v = outcome.verdicts
         info = summary(outcome)
@@ -266,9 +260,7 @@ def write_outputs(outcome: RunOutcome, out_dir, *, report: bool = True, score: d
             # writes the files below (closurecheck.reporting.picture_worker);
             # --jobs 1 keeps the run in one process.
             if worth_a_worker(outcome.config.jobs):
-                job = standby.take(data) if standby is not None else None
-                if job is None:
-                    job = start_pictures(data)
+                job = start_pictures(data)
                 if job is not None:
                     pictures.enter_context(job)
         extra = {"origin": v.origin, **v.optional_columns()}

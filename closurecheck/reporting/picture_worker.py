@@ -19,7 +19,6 @@ is raised there, as without a worker, and the outputs are the same bytes.
 
 from __future__ import annotations
 
-import contextlib
 import dataclasses
 import json
 import os
@@ -38,19 +37,11 @@ import sys
 # the worker too the write took 2.7 and 4.2 s, without 2.5 and 2.2 s
 # (wall time, load average 1.3-1.6 on 2 cores).
 WORKER_PICTURES = ("map", "loops", "agreement", "truth")
-# Drawn by a worker started in advance (:func:`standby_pictures`): its start and
-# import are done by the write, so it also takes the histograms (0.6 s), and the
-# two processes' shares become about 1.6 s each.
-STANDBY_PICTURES = ("map", "loops", "checks", "agreement", "truth")
 
 # The worker's program: the main process' import path first, so that it
 # imports the same closurecheck.
 _BOOT = ("import sys, json; sys.path[:0] = json.loads(sys.argv[1]); "
          "from closurecheck.reporting.picture_worker import serve; serve()")
-_BOOT_STANDBY = ("import sys, json; sys.path[:0] = json.loads(sys.argv[1]); "
-                 "from closurecheck.reporting.picture_worker import serve; serve(standby=True)")
-# What a worker started in advance writes once it has imported matplotlib and is reading its input.
-_READY = b"R"
 
 
 class PictureJob:
@@ -114,17 +105,13 @@ def worth_a_worker(jobs: int) -> bool:
     """
     if jobs == 1:
         return False
-    cores = _cores()
+    try:
+        cores = len(os.sched_getaffinity(0))
+    except AttributeError:  # no sched_getaffinity (macOS, Windows)
+        cores = os.cpu_count() or 1
     if cores < 2:
         return False
     return busy_elsewhere() <= cores - 2
-
-
-def _cores() -> int:
-    try:
-        return len(os.sched_getaffinity(0))
-    except AttributeError:  # no sched_getaffinity (macOS, Windows)
-        return os.cpu_count() or 1
 
 
 def busy_elsewhere() -> float:
@@ -152,18 +139,6 @@ def busy_elsewhere() -> float:
     return float(max(sorted(counts)[2] - 1, 0))
 
 
-def _payload(data, names) -> bytes:
-    """The worker's input: (names, data) pickled, the free-space result reduced to what the pictures read."""
-    from .report import AgreementPairs
-
-    fs = data.free_space
-    if fs is not None:
-        # The worker need not import the free-space module (and scipy) to read four arrays.
-        data = dataclasses.replace(data, free_space=AgreementPairs(a=fs.a, b=fs.b, contradicts=fs.contradicts,
-                                                                   length_m=fs.length_m))
-    return pickle.dumps((tuple(names), data), protocol=pickle.HIGHEST_PROTOCOL)
-
-
 def start_pictures(data, names: tuple | None = None) -> PictureJob | None:
     """Start a worker drawing the pictures ``names`` of ``data`` (a
     :class:`closurecheck.reporting.report.ReportData`; default :data:`WORKER_PICTURES`); None if it cannot start.
@@ -184,8 +159,15 @@ def start_pictures(data, names: tuple | None = None) -> PictureJob | None:
     >>> pngs["map"][:8], pngs["checks"]
     (b'\\x89PNG\\r\\n\\x1a\\n', None)
     """
+    from .report import AgreementPairs
+
     names = WORKER_PICTURES if names is None else names
-    payload = _payload(data, names)
+    fs = data.free_space
+    if fs is not None:
+        # The worker need not import the free-space module (and scipy) to read four arrays.
+        data = dataclasses.replace(data, free_space=AgreementPairs(a=fs.a, b=fs.b, contradicts=fs.contradicts,
+                                                                   length_m=fs.length_m))
+    payload = pickle.dumps((tuple(names), data), protocol=pickle.HIGHEST_PROTOCOL)
     try:
         proc = subprocess.Popen([sys.executable, "-c", _BOOT, json.dumps(sys.path)], stdin=subprocess.PIPE,
                                 stdout=subprocess.PIPE, stderr=subprocess.DEVNULL)
@@ -205,93 +187,8 @@ def start_pictures(data, names: tuple | None = None) -> PictureJob | None:
     return job
 
 
-class Standby:
-    """A picture worker started before the run's data exists (:func:`standby_pictures`).
-
-    It imports matplotlib at the lowest priority while the run goes on, so
-    it takes only time no other process wants (the idle core during the
-    descriptors, candidates and verification stages), and at the write
-    :meth:`take` hands it the report's data if it is ready by then.  Use it
-    as a context manager so that an unused or failed worker ends with the run.
-    """
-
-    def __init__(self, proc: subprocess.Popen):
-        self.proc = proc
-        self._taken = False
-
-    def ready(self) -> bool:
-        """Whether the worker has imported matplotlib and waits for its data (never blocks)."""
-        import select
-
-        try:
-            readable, _, _ = select.select([self.proc.stdout], [], [], 0.0)
-            return bool(readable) and self.proc.stdout.read(len(_READY)) == _READY
-        except (OSError, ValueError):
-            return False
-
-    def take(self, data, names: tuple = STANDBY_PICTURES) -> PictureJob | None:
-        """Hand the worker ``data`` (a ReportData) to draw ``names``; None (and the worker ended) if it
-        is not ready, so that the caller draws them another way."""
-        if self._taken or not self.ready():
-            self.close()
-            return None
-        self._taken = True
-        job = PictureJob(self.proc, tuple(names))
-        try:
-            job.proc.stdin.write(_payload(data, names))
-            job.proc.stdin.close()
-        except OSError:  # the worker is gone; result() says so
-            pass
-        except BaseException:
-            job.close()
-            raise
-        return job
-
-    def close(self) -> None:
-        """End the worker unless :meth:`take` handed it on (idempotent)."""
-        if not self._taken:
-            self._taken = True
-            PictureJob(self.proc, ()).close()
-
-    def __enter__(self):
-        return self
-
-    def __exit__(self, *exc):
-        self.close()
-
-
-def standby_pictures(jobs: int) -> Standby | None:
-    """Start a picture worker now, for a report written later (see :class:`Standby`); None where
-    ``jobs`` (the run's worker setting, 0 = all cores) asks for one process, there is one core, or it
-    cannot start.
-
-    Measured on the 5,000-scan warehouse log: the write stage's worker
-    started at the write spent about 0.85 s starting and importing
-    matplotlib before its first picture, on the write's critical path.
-
-    Examples
-    --------
-    >>> from closurecheck.reporting.picture_worker import standby_pictures
-    >>> standby_pictures(1) is None
-    True
-    """
-    if jobs == 1 or _cores() < 2:
-        return None
-    try:
-        proc = subprocess.Popen([sys.executable, "-c", _BOOT_STANDBY, json.dumps(sys.path)], stdin=subprocess.PIPE,
-                                stdout=subprocess.PIPE, stderr=subprocess.DEVNULL)
-    except OSError:
-        return None
-    return Standby(proc)
-
-
-def serve(standby: bool = False) -> None:
-    """The worker's main: read (names, data) from stdin, write {name: PNG bytes or None} to stdout.
-
-    With ``standby`` (:func:`standby_pictures`) it first lowers its priority
-    to the least, imports matplotlib and the report's module, and writes
-    :data:`_READY` before it reads.
-    """
+def serve() -> None:
+    """The worker's main: read (names, data) from stdin, write {name: PNG bytes or None} to stdout."""
     import signal
 
     # Ctrl-C reaches the whole process group; the main process handles it
@@ -300,13 +197,6 @@ def serve(standby: bool = False) -> None:
     out = sys.stdout.buffer
     sys.stdout = sys.stderr  # nothing but the result may reach the result pipe
     try:
-        if standby:
-            with contextlib.suppress(OSError, AttributeError):     # no nice() on Windows
-                os.nice(19)
-            from .report import draw_picture
-
-            out.write(_READY)
-            out.flush()
         raw = sys.stdin.buffer.read()
         from .report import draw_picture
 
