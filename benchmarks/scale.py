@@ -52,7 +52,6 @@ names the output file.  For example:
 from __future__ import annotations
 
 import argparse
-import inspect
 import json
 import os
 import platform
@@ -173,9 +172,7 @@ def child_run(args) -> None:
     memory = _MemoryByStage()
     memory.peaks["read"] = _rusage_mb()
     try:
-        # An older tree's run_log, run side by side, loads nothing ahead (no ``report`` keyword).
-        ahead = {"report": not args.no_report} if "report" in inspect.signature(run_log).parameters else {}
-        outcome = run_log(log, config, runner=runner, progress=memory, **ahead)
+        outcome = run_log(log, config, runner=runner, progress=memory)
     finally:
         runner.close()
     memory.close()

@@ -8,7 +8,6 @@ summary.json, report.html)
 from __future__ import annotations
 
 import dataclasses
-import threading
 import time
 from dataclasses import dataclass
 from pathlib import Path
@@ -243,29 +242,9 @@ def _refuse_too_many(log: ScanLog, cands: CandidateSet, config: RunConfig) -> No
                          f"the exact one, docs/verification.md)", log.source or None)
 
 
-def _load_ahead(report: bool) -> None:
-    """Load the verification's compiled kernels and, for a report, the drawing code; only a head start.
-
-    Measured in a fresh process on the 2-core machine of docs/performance.md:
-    0.36-0.43 s for the pair test's kernel, about 0.5 s for matplotlib.  A
-    failure here is not reported: the stage that needs the code loads it
-    again and raises its own error.
-    """
-    try:
-        from .verification.warm import warm_kernels
-
-        warm_kernels()
-        if report:
-            from .reporting.report import load_drawing
-
-            load_drawing()
-    except Exception:  # noqa: BLE001
-        pass
-
-
 def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPairs | None = None,
             runner=None, progress=None, also_propose: bool = False,
-            decisions: ReviewDecisions | None = None, report: bool = False) -> RunOutcome:
+            decisions: ReviewDecisions | None = None) -> RunOutcome:
     """Run the pipeline on a scan log held in memory.
 
     ``external`` replaces the proposed candidates with the pairs of a CSV
@@ -275,9 +254,7 @@ def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPai
     ``decisions`` (default: the configuration's ``[review] decisions``)
     overrule the verifier for the pairs they name (docs/verification.md,
     "Reviewer decisions"); their pairs join the candidates when the run did
-    not propose them.  ``report``: a report will be drawn from the outcome,
-    so its drawing code is loaded while the workers register (as the
-    verification's compiled kernels are; :func:`_load_ahead`).
+    not propose them.
     """
     if len(log) < 2:
         raise InputError("the log needs at least two scans", log.source or None)
@@ -313,17 +290,7 @@ def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPai
             cands = _reviewed_candidates(cands, decisions, data, config)
 
         _refuse_too_many(log, cands, config)
-        # This process only waits while workers register: it loads what the later stages need meanwhile.
-        ahead = None
-        if runner is not None and getattr(runner, "workers", 1) != 1:
-            ahead = threading.Thread(target=_load_ahead, args=(report,), name="closurecheck-load-ahead",
-                                     daemon=True)
-            ahead.start()
-        try:
-            regs = st.run("registration", _register_candidates, scans, cands, config, progress)
-        finally:
-            if ahead is not None:
-                ahead.join()
+        regs = st.run("registration", _register_candidates, scans, cands, config, progress)
 
     review = notes_review = verifier_reason = None
     if decisions is not None:
@@ -446,7 +413,7 @@ def run_one(path, out_dir, config: RunConfig, *, candidates=None, choice=None, r
             progress.info(note)
     external = read_pairs(candidates, len(log), max_pairs=config.max_pairs) if candidates else None
     outcome = run_log(log, config, external=external, runner=runner, progress=progress, also_propose=also_propose,
-                      decisions=decisions, report=report)
+                      decisions=decisions)
     if load_notes:
         outcome = dataclasses.replace(outcome, notes=tuple(load_notes) + outcome.notes)
     paths = _write(outcome, log, out_dir, report=report, progress=progress, log_path=Path(path))
@@ -517,8 +484,7 @@ def run(log, out=None, *, config: RunConfig | None = None, candidates=None, jobs
     external = read_pairs(candidates, len(log), max_pairs=config.max_pairs) if candidates else None
     runner = make_runner(config.jobs)
     try:
-        outcome = run_log(log, config, external=external, runner=runner, decisions=review,
-                          report=report and out is not None)
+        outcome = run_log(log, config, external=external, runner=runner, decisions=review)
     finally:
         runner.close()
     if out is not None:

@@ -160,28 +160,6 @@ _PNG_LEVEL = 1
 _TITLE_Y = 1.0
 
 
-def load_drawing() -> None:
-    """Import what drawing the pictures needs (matplotlib's Agg canvas and figure, Pillow).
-
-    About 0.5 s in a fresh process on the 2-core machine of
-    docs/performance.md; the pipeline calls it in a thread while the
-    registration runs in worker processes (closurecheck.pipeline.run_log's
-    ``report``), so that the write starts drawing at once.
-
-    Examples
-    --------
-    >>> from closurecheck.reporting.report import load_drawing
-    >>> load_drawing()
-    """
-    import matplotlib
-    from matplotlib.backends.backend_agg import FigureCanvasAgg  # noqa: F401
-    from matplotlib.figure import Figure  # noqa: F401
-    from matplotlib.ticker import Formatter, LogLocator  # noqa: F401
-    from PIL import Image  # noqa: F401
-
-    matplotlib.use("Agg", force=False)
-
-
 def _figure(width: float, height: float, rows: int = 1, cols: int = 1, *, left: float = 0.8,
             right: float = 0.2, bottom: float = 0.6, top: float = 0.4, wgap: float = 0.8, hgap: float = 0.8,
             **subplot_kw):
