@@ -21,13 +21,13 @@ from __future__ import annotations
 
 import contextlib
 import logging
-import os
 import threading
 import uuid
 from collections import OrderedDict
 
 from .._version import __version__
 from ..errors import InputError, one_line
+from .forkserver import local_workers
 from .work import (
     CACHE_SCANS,
     HeldScans,
@@ -126,7 +126,7 @@ class DaskRunner:
         self.cluster = None
         self.last_builds = 0
         if address == "local":
-            n = workers or os.cpu_count() or 1
+            n = local_workers(workers)
             self.cluster = distributed.LocalCluster(
                 n_workers=n, threads_per_worker=1, processes=True, host="127.0.0.1", dashboard_address=None,
                 silence_logs=logging.ERROR)

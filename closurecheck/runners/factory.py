@@ -2,9 +2,8 @@
 
 from __future__ import annotations
 
-import os
-
 from ..errors import InputError
+from .forkserver import local_workers
 from .pool import PoolRunner
 from .serial import SerialRunner
 
@@ -23,5 +22,5 @@ def make_runner(jobs: int = 0, dask: str | None = None):
         from .dask_cluster import DaskRunner
 
         return DaskRunner(dask, workers=jobs)
-    workers = jobs or os.cpu_count() or 1
+    workers = local_workers(jobs)
     return SerialRunner() if workers == 1 else PoolRunner(workers)

@@ -48,6 +48,19 @@ def _child_environment():
                 os.environ[k] = v
 
 
+def local_workers(jobs: int) -> int:
+    """Worker processes for a ``jobs`` setting of at least 0: the count itself, or all cores for 0.
+
+    Examples
+    --------
+    >>> local_workers(3)
+    3
+    >>> local_workers(0) >= 1
+    True
+    """
+    return jobs or os.cpu_count() or 1
+
+
 def pool_context():
     """The multiprocessing context of the local pool, its fork server started (once per process).
 
@@ -80,7 +93,7 @@ def start_early(jobs: int | None, dask: str | None) -> bool:
     >>> start_early(1, None), start_early(2, "local")
     (False, False)
     """
-    if dask or jobs == 1 or (jobs is not None and jobs < 0) or (not jobs and (os.cpu_count() or 1) == 1):
+    if dask or (jobs is not None and jobs < 0) or local_workers(jobs or 0) == 1:
         return False
     pool_context()
     return True

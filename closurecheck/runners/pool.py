@@ -3,11 +3,10 @@
 from __future__ import annotations
 
 import contextlib
-import os
 from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 
 from ..errors import InputError
-from .forkserver import pool_context
+from .forkserver import local_workers, pool_context
 from .lifeline import guard_worker
 from .serial import SerialRunner
 from .work import (
@@ -111,7 +110,7 @@ class PoolRunner:
     def __init__(self, workers: int = 0, cache_scans: int = CACHE_SCANS):
         if workers < 0:
             raise InputError(f"workers must be >= 0 (0 = all cores), got {workers}")
-        self.workers = workers or os.cpu_count() or 1
+        self.workers = local_workers(workers)
         self.cache_scans = cache_scans
         self.last_builds = 0
         self._serial = SerialRunner(cache_scans)
