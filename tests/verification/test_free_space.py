@@ -126,3 +126,85 @@ def test_the_compiled_comparison_matches_the_numpy_expressions():
         compared += want[3] > 0
         contradicting += want[2] > 0
     assert compared > 250 and 30 < contradicting < 280      # both outcomes are exercised
+
+
+def _room_ranges(pose, sensor, rng, width=12.0, height=8.0):
+    """Ranges (beams,) float32 from a sensor pose inside a width x height room, with a pillar, dropouts and a person."""
+    x, y, t = pose
+    phi = t + sensor.bearings()
+    dx, dy = np.cos(phi), np.sin(phi)
+    with np.errstate(divide="ignore"):
+        hits = np.stack([np.where(dx > 0, (width - x) / dx, np.where(dx < 0, -x / dx, np.inf)),
+                         np.where(dy > 0, (height - y) / dy, np.where(dy < 0, -y / dy, np.inf))])
+    r = hits.min(axis=0)
+    # A round pillar of radius 0.4 m at (6, 4): the nearer root of |p + r d - c| = 0.4.
+    ox, oy = x - 6.0, y - 4.0
+    along = ox * dx + oy * dy
+    disc = along * along - (ox * ox + oy * oy - 0.16)
+    near = -along - np.sqrt(np.maximum(disc, 0.0))
+    r = np.where((disc > 0) & (near > 0), np.minimum(r, near), r)
+    r = r + rng.normal(0.0, 0.01, r.shape)
+    r[rng.random(r.shape) < 0.05] = np.nan                  # dropouts
+    r[r > sensor.max_range] = np.nan
+    start = rng.integers(0, sensor.beams - 15)
+    r[start:start + 15] = np.minimum(r[start:start + 15], rng.uniform(0.5, 3.0))     # a person close by
+    return r.astype(np.float32)
+
+
+def _per_pair_reference(poses, scans, options, a, b):
+    # The check as it was before its pairs were compiled into one loop: per pair se2.between and
+    # se2.inverse on single poses, KeyframeScans.points and the compiled comparison of one direction.
+    from closurecheck.core import se2
+    from closurecheck.verification.free_space import _against, _sensor_poses
+
+    poses = _sensor_poses(np.asarray(poses, dtype=float), scans.sensor)
+    share, length, judged = np.zeros(len(a)), np.zeros(len(a)), np.zeros(len(a))
+    for n, (i, j) in enumerate(zip(a.tolist(), b.tolist())):
+        t_ij = se2.between(poses[i], poses[j])
+        bad_b, seen_b = _against(scans.points(j), t_ij, scans.ranges[i], scans.sensor, options)
+        bad_a, seen_a = _against(scans.points(i), se2.inverse(t_ij), scans.ranges[j], scans.sensor, options)
+        judged[n] = seen_a + seen_b
+        length[n] = bad_a + bad_b
+        share[n] = max(bad_b / max(seen_b, 1e-9), bad_a / max(seen_a, 1e-9))
+    return share, length, judged
+
+
+def test_all_pairs_at_once_give_the_per_pair_loops_bits():
+    # Twelve keyframes in one room (two visits), with a mounted sensor: some keyframes are misplaced in
+    # the "optimised" poses so that both outcomes occur.  Every pair is compared, both through the
+    # check's own pair choice and through all 66 pairs given explicitly; share, length and judged must
+    # equal the per-pair loop's to the last bit (not only to rounding).
+    from closurecheck.core import se2
+
+    rng = np.random.default_rng(21)
+    sensor = Sensor(first_angle=-2.0, angle_step=4.0 / 359, beams=360, min_range=0.1, max_range=15.0,
+                    mount=(0.2, -0.05, 0.1))
+    k = 12
+    truth = np.column_stack([rng.uniform(2.0, 10.0, k), rng.uniform(1.5, 6.5, k), rng.uniform(-np.pi, np.pi, k)])
+    mount = np.asarray(sensor.mount)
+    ranges = np.stack([_room_ranges(se2.compose(p, mount), sensor, rng) for p in truth])
+    scans = KeyframeScans(ranges, sensor)
+    placed = truth.copy()
+    placed[[3, 8]] += [[1.5, -0.8, 0.3], [-1.0, 1.2, -0.25]]          # two misplaced visits
+    travel = np.r_[np.arange(6) * 1.0, 100.0 + np.arange(6) * 1.0]
+    options = FreeSpaceOptions(max_distance_m=12.0, max_heading_rad=3.5, min_gap_m=5.0, pairs_per_keyframe=6)
+
+    a, b = np.triu_indices(k, 1)
+    a, b = a.astype(np.int64), b.astype(np.int64)
+    got = check_free_space(placed, travel, scans, options, pairs=(a, b))
+    want = _per_pair_reference(placed, scans, options, a, b)
+    for g, w in zip((got.share, got.length_m, got.judged_m), want):
+        assert np.array_equal(g, w)
+    assert 5 < got.count < len(a) - 5 and np.all(got.judged_m > 0)      # both outcomes, every pair judged
+
+    chosen = check_free_space(placed, travel, scans, options)
+    assert len(chosen.a) > 10
+    want = _per_pair_reference(placed, scans, options, chosen.a, chosen.b)
+    for g, w in zip((chosen.share, chosen.length_m, chosen.judged_m), want):
+        assert np.array_equal(g, w)
+
+
+def test_no_pairs_give_an_empty_check():
+    scans = KeyframeScans(np.stack([wall(5.0), wall(4.0)]), SENSOR)
+    res = check_free_space(np.zeros((2, 3)), np.array([0.0, 1.0]), scans, FreeSpaceOptions())
+    assert len(res.a) == len(res.share) == 0 and res.count == 0
