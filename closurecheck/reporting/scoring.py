@@ -58,7 +58,7 @@ from ..core.options import options, setting
 from ..errors import InputError
 from ..frontend.candidates import CandidateOptions, excluded
 from ..frontend.keyframes import odometry_travel
-from .ground_truth import RevisitOptions, candidate_recall
+from .ground_truth import RevisitOptions, candidate_recall, revisit_truth
 from .trajectory import ate_rmse, rpe
 
 REFERENCE_TRUTH = "truth"
@@ -283,9 +283,12 @@ def _truth_figures(log, keyframes, rows, covariance, poses, options: ScoreOption
     tp = int((accepted & correct).sum())
     travel, _ = odometry_travel(log.odom)
     kf_truth = truth[keyframes]
+    # The true revisits once for both recalls (half of the 100,000-scan log's score stage).
+    revisits = revisit_truth(kf_truth, log.t[keyframes], travel[keyframes], gap)
     rec = candidate_recall(keyframes, kf_truth, log.t[keyframes], travel[keyframes], src[accepted], dst[accepted],
-                           gap)
-    cand = candidate_recall(keyframes, kf_truth, log.t[keyframes], travel[keyframes], src, dst, gap)
+                           gap, revisits=revisits)
+    cand = candidate_recall(keyframes, kf_truth, log.t[keyframes], travel[keyframes], src, dst, gap,
+                            revisits=revisits)
     n_correct = int(correct.sum())
     out = {
         "candidates": int(len(src)),

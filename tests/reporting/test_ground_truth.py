@@ -16,6 +16,7 @@ from closurecheck.reporting.ground_truth import (
     descriptor_pair_labels,
     precision_recall,
     revisit_events,
+    revisit_truth,
     true_revisits,
 )
 
@@ -101,6 +102,54 @@ def test_events_are_runs_cut_into_spans():
     assert len(np.unique(lb)) == 1 and len(np.unique(lc)) == 1
     assert len(np.unique(ld)) == 2
     assert len(np.unique(labels)) == 3 + 1 + 1 + 2
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_events_match_connected_components_of_networkx(seed):
+    # Reference: networkx.connected_components over every link found by brute force (both pairs'
+    # coordinates within event_link_keyframes), each component cut into spans of its later pass,
+    # labels numbered in the order of (component's first pair, span), as the module docstring
+    # defines events.  Dense random pairs make long chains of links and many ties.
+    import networkx as nx
+
+    rng = np.random.default_rng(seed)
+    count, m = 400, 1500
+    opts = RevisitOptions(event_link_keyframes=2, event_span_keyframes=10)
+    raw = np.sort(rng.integers(0, count, (m, 2)), axis=1)
+    raw = raw[raw[:, 0] < raw[:, 1]]
+    pairs = np.unique(raw, axis=0)
+    got = revisit_events(pairs, count, opts)
+    near = ((np.abs(pairs[:, None, 0] - pairs[None, :, 0]) <= 2)
+            & (np.abs(pairs[:, None, 1] - pairs[None, :, 1]) <= 2))
+    g = nx.Graph()
+    g.add_nodes_from(range(len(pairs)))
+    g.add_edges_from(zip(*np.nonzero(np.triu(near, 1))))
+    comp = np.empty(len(pairs), dtype=np.int64)
+    for members in nx.connected_components(g):
+        members = sorted(members)
+        comp[members] = members[0]
+    start = {c: pairs[comp == c, 1].min() for c in np.unique(comp)}
+    piece = np.array([(pairs[k, 1] - start[comp[k]]) // 10 for k in range(len(pairs))])
+    # Labels rank (component, span) with components numbered by their first pair, as
+    # scipy's connected_components numbers them.
+    _, ref = np.unique(comp * count + piece, return_inverse=True)
+    assert np.array_equal(got, ref.ravel())
+    assert len(np.unique(got)) > 10 and np.bincount(got).max() > 5
+
+
+def test_shared_revisits_give_the_same_recall():
+    k = 120
+    x = np.tile(np.arange(40) * 0.5, 3)
+    truth = np.column_stack([x, np.zeros(k), np.zeros(k)])
+    ids = np.arange(k) * 2
+    t = np.arange(k, dtype=float) * 2
+    travel = np.arange(k, dtype=float) * 0.5
+    gap = CandidateOptions(exclude_time_s=20.0, exclude_travel_m=5.0)
+    rev = revisit_truth(truth, t, travel, gap)
+    src, dst = ids[[45, 65, 100]], ids[[5, 25, 61]]
+    assert candidate_recall(ids, truth, t, travel, src, dst, gap, revisits=rev) == \
+        candidate_recall(ids, truth, t, travel, src, dst, gap)
+    assert rev.event_count == len(np.unique(rev.events)) > 0
 
 
 def test_coverage_uses_the_index_neighbourhood_in_either_order():
