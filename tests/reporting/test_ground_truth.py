@@ -137,14 +137,19 @@ def test_events_match_connected_components_of_networkx(seed):
     assert len(np.unique(got)) > 10 and np.bincount(got).max() > 5
 
 
-def test_shared_revisits_give_the_same_recall():
-    k = 120
-    x = np.tile(np.arange(40) * 0.5, 3)
+def _corridor(passes, id_step):
+    """Keyframes 0.5 m apart on a 20 m line driven ``passes`` times in the same direction (invented):
+    keyframe k and k + 40 are the same place.  Returns (truth, scan ids, t, travel, gap)."""
+    k = 40 * passes
+    x = np.tile(np.arange(40) * 0.5, passes)
     truth = np.column_stack([x, np.zeros(k), np.zeros(k)])
-    ids = np.arange(k) * 2
     t = np.arange(k, dtype=float) * 2
     travel = np.arange(k, dtype=float) * 0.5
-    gap = CandidateOptions(exclude_time_s=20.0, exclude_travel_m=5.0)
+    return truth, np.arange(k) * id_step, t, travel, CandidateOptions(exclude_time_s=20.0, exclude_travel_m=5.0)
+
+
+def test_shared_revisits_give_the_same_recall():
+    truth, ids, t, travel, gap = _corridor(3, 2)
     rev = revisit_truth(truth, t, travel, gap)
     src, dst = ids[[45, 65, 100]], ids[[5, 25, 61]]
     assert candidate_recall(ids, truth, t, travel, src, dst, gap, revisits=rev) == \
@@ -162,15 +167,8 @@ def test_coverage_uses_the_index_neighbourhood_in_either_order():
 
 
 def test_candidate_recall_counts_events_and_proposals():
-    # Keyframes on a line, driven out and back twice in the same direction:
-    # keyframe k and k + 40 are the same place.
-    k = 80
-    x = np.tile(np.arange(40) * 0.5, 2)
-    truth = np.column_stack([x, np.zeros(k), np.zeros(k)])
-    ids = np.arange(k) * 3
-    t = np.arange(k, dtype=float) * 2
-    travel = np.arange(k, dtype=float) * 0.5
-    gap = CandidateOptions(exclude_time_s=20.0, exclude_travel_m=5.0)
+    # Keyframes on a line, driven twice in the same direction.
+    truth, ids, t, travel, gap = _corridor(2, 3)
     opts = RevisitOptions(event_span_keyframes=10)
     # One proposal in the first and third stretches of the re-drive.
     src, dst = ids[[45, 65]], ids[[5, 25]]
