@@ -648,8 +648,9 @@ def _resolve_contradictions(reason, poses, src, dst, delta, covariance, odom_pos
         best = None
         for g in suspects:
             keep = np.union1d(acc[groups != g], np.flatnonzero(fixed))
-            kept, trial, _, _ = optimise_closures(keep, src, dst, delta, covariance, odom_poses, scaled, quick, fixed,
-                                                  start=poses)
+            # From the odometry, not from the final map: the trial asks what the map is without the
+            # group, and a start the group has bent could keep it bent.
+            kept, trial, _, _ = optimise_closures(keep, src, dst, delta, covariance, odom_poses, scaled, quick, fixed)
             after = check_free_space(trial, travel, scans, fs_opts)
             if after.count < check.count and (best is None or after.count < best[2].count):
                 best = (g, trial, after, keep[~kept])
