@@ -1,5 +1,5 @@
-"""Compiled comparison of one scan's points against another's beams (free_space._against and
-free_space.check_free_space's loop over all pairs; numba, cached on disk).
+"""Compiled comparison of one scan's points against another's beams (:func:`against`) and
+free_space.check_free_space's loop over all pairs (:func:`pairs_against`); numba, cached on disk.
 
 Why compiled code here: the free-space check compares each keyframe with a
 few of other visits, in both directions (2,548 pairs, 5,096 comparisons of

@@ -154,25 +154,6 @@ def compared_pairs(poses, travel, options: FreeSpaceOptions = FreeSpaceOptions()
     return (pairs // k).astype(np.int64), (pairs % k).astype(np.int64)
 
 
-def _against(points_b, pose_ab, ranges_a, sensor: Sensor, options: FreeSpaceOptions):
-    """Contradicting and judged surface (metres) of b's points (b's sensor frame, in beam order) against a's beams.
-
-    A point stands for ``range * angle_step`` metres of surface, so a cart
-    a metre from the sensor weighs what it is, not the hundred beams it
-    covers.  Contradicting points count only in runs of at least
-    ``min_run`` consecutive points: a single beam through a gap a hand
-    wide is not a misplaced wall.
-    """
-    # One compiled loop over the points (_free_space_kernels.against: 182-190 -> 43-44 us a comparison).
-    x, y, t = (float(v) for v in pose_ab)
-    c, s = float(np.cos(t)), float(np.sin(t))
-    bad, judged = _kernels.against(np.ascontiguousarray(points_b, dtype=np.float64), x, y, c, s, ranges_a,
-                                   float(sensor.first_angle), float(sensor.angle_step), int(sensor.beams),
-                                   float(sensor.max_range), float(options.margin_m), float(options.margin_per_m),
-                                   int(options.min_run))
-    return float(bad), float(judged)
-
-
 def check_free_space(poses, travel, scans: KeyframeScans, options: FreeSpaceOptions = FreeSpaceOptions(),
                      pairs=None) -> FreeSpaceCheck:
     """Compare overlapping keyframes of different visits for scans that contradict each other.

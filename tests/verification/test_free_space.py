@@ -101,12 +101,22 @@ def _against_numpy(points_b, pose_ab, ranges_a, sensor, options):
     return float(arc[counted].sum()), float(arc[seen].sum()), int(counted.sum()), int(seen.sum())
 
 
+def _against(points_b, pose_ab, ranges_a, sensor, options):
+    """One direction of one pair through the compiled comparison (_free_space_kernels.against), the pose's
+    cosine and sine from numpy as the check computes them."""
+    from closurecheck.verification import _free_space_kernels as kernels
+
+    x, y, t = (float(v) for v in pose_ab)
+    return kernels.against(np.ascontiguousarray(points_b, dtype=np.float64), x, y, float(np.cos(t)),
+                           float(np.sin(t)), ranges_a, float(sensor.first_angle), float(sensor.angle_step),
+                           int(sensor.beams), float(sensor.max_range), float(options.margin_m),
+                           float(options.margin_per_m), int(options.min_run))
+
+
 def test_the_compiled_comparison_matches_the_numpy_expressions():
     # Rooms with clutter, dropouts and people, compared under poses near and far from the truth: the
     # compiled loop judges and counts the same points as the numpy expressions, and its surface
     # lengths agree to rounding (its sums run point by point, numpy's pairwise).
-    from closurecheck.verification.free_space import _against
-
     rng = np.random.default_rng(8)
     options = FreeSpaceOptions()
     compared = contradicting = 0
@@ -155,7 +165,7 @@ def _per_pair_reference(poses, scans, options, a, b):
     # The check as it was before its pairs were compiled into one loop: per pair se2.between and
     # se2.inverse on single poses, KeyframeScans.points and the compiled comparison of one direction.
     from closurecheck.core import se2
-    from closurecheck.verification.free_space import _against, _sensor_poses
+    from closurecheck.verification.free_space import _sensor_poses
 
     poses = _sensor_poses(np.asarray(poses, dtype=float), scans.sensor)
     share, length, judged = np.zeros(len(a)), np.zeros(len(a)), np.zeros(len(a))
