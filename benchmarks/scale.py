@@ -12,7 +12,9 @@
    Stage times are ``RunOutcome.timings`` plus reading, scoring and writing,
    and the process's start ("start": from the parent starting it to the
    log's read, interpreter and imports included, as a user's
-   ``closurecheck run`` pays them); the total runs from that start.
+   ``closurecheck run`` pays them) and its end ("exit": from the outputs
+   written to the process's end, ended as ``closurecheck run`` ends it); the
+   total runs from that start to that end.
 2. Registration speed-up: the same contiguous block of candidate pairs of
    one log registered by the serial runner and by a pool of 2 workers in one
    process, in the order serial, pool, pool, serial (drift in the machine's
@@ -192,7 +194,14 @@ def child_run(args) -> None:
     _emit({"scans": len(log), "keyframes": len(outcome.keyframes), "candidates": len(v),
            "accepted": int(v.accepted.sum()), "false_closures": score.get("false_closures"),
            "timings": timings, "total": total, "main_cpu": time.process_time() - cpu0,
-           "main_maxrss_mb": _rusage_mb(), "main_peak_by_stage": memory.peaks})
+           "main_maxrss_mb": _rusage_mb(), "main_peak_by_stage": memory.peaks, "ended": time.time()})
+    # The process ends as `closurecheck run` ends (cli.finish: Python's exit without its teardown);
+    # the parent times it from "ended" ("exit" in the table).
+    try:
+        from closurecheck.cli import finish
+    except ImportError:     # an older tree, run side by side: Python's whole exit
+        return
+    finish(0)
 
 
 def _candidate_block(log, pairs: int):
@@ -327,7 +336,7 @@ def _run_child(argv: list, sample_s: float = 1.0) -> dict:
     proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=str(ROOT), env=env)
     root = psutil.Process(proc.pid)
     peak_tree, peak_proc, cpu_seen = 0, 0, {}
-    while proc.poll() is None:
+    while True:
         total = 0
         try:
             procs = [root, *root.children(recursive=True)]
@@ -343,12 +352,22 @@ def _run_child(argv: list, sample_s: float = 1.0) -> dict:
             peak_proc = max(peak_proc, rss)
             cpu_seen[p.pid] = max(cpu_seen.get(p.pid, 0.0), ct.user + ct.system)
         peak_tree = max(peak_tree, total)
-        time.sleep(sample_s)
+        try:
+            # Returns as the child ends (not up to a sample later), so that its exit is timed.
+            proc.wait(timeout=sample_s)
+            break
+        except subprocess.TimeoutExpired:
+            pass
+    ended = time.time()
     stdout, stderr = proc.communicate()
     wall = time.perf_counter() - t0
     if proc.returncode != 0:
         raise RuntimeError(f"child {' '.join(cmd)} failed ({proc.returncode}):\n{stderr[-3000:]}")
     result = next(json.loads(line[len("RESULT "):]) for line in stdout.splitlines() if line.startswith("RESULT "))
+    if "ended" in result:
+        # The interpreter's exit after the outputs are written: the user waits for it too.
+        result["timings"]["exit"] = max(0.0, ended - result["ended"])
+        result["total"] += result["timings"]["exit"]
     result.update({"tree_peak_mb": peak_tree / 2**20, "proc_peak_mb": peak_proc / 2**20,
                    "tree_cpu_s": sum(cpu_seen.values()), "child_wall_s": wall, "load_before": load_before,
                    "load_after": _load()})
@@ -396,7 +415,7 @@ def _fmt(x, nd=1):
 
 
 STAGES = ("start", "read", "keyframes", "calibration", "descriptors", "candidates", "registration", "verification",
-          "score", "write")
+          "score", "write", "exit")
 
 
 def render(args, runs: dict, speed: dict | None, icp: dict | None, profiles: dict, elapsed: float) -> str:
@@ -421,7 +440,8 @@ def render(args, runs: dict, speed: dict | None, icp: dict | None, profiles: dic
         "`closurecheck run` does: 'start'), read the .jsonl.gz log, run every stage, score against the truth, "
         "write graph.json, "
         "candidates.csv, summary.json" + ("" if args.no_report else " and report.html") +
-        "; one fresh process per size.  Times in seconds (wall).  'CPU s' is the CPU time of the "
+        ", end the process as `closurecheck run` ends ('exit', timed by the parent); one fresh process per "
+        "size.  Times in seconds (wall).  'CPU s' is the CPU time of the "
         "whole process tree (main, fork server, workers); CPU / (wall x cores) below 1 means the run "
         "waited for the machine, not for itself.  Peak memory: the main process's ru_maxrss, and the "
         "peak of the summed RSS of the process tree (sampled every second; shared pages counted once per "

@@ -292,6 +292,55 @@ def test_broken_stdout_pipe_is_quiet(small_run):
     assert res.stderr == ""
 
 
+def _python(code: str, **kwargs):
+    import os
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parents[1]
+    # Without PYTHONUNBUFFERED (set in some shells and CI images), so that stdout is buffered until
+    # the exit, as a user's command's is.
+    env = {k: v for k, v in os.environ.items() if k != "PYTHONUNBUFFERED"}
+    return subprocess.run([sys.executable, "-c", code], env=dict(env, PYTHONPATH=str(root)), timeout=120,
+                          **kwargs)
+
+
+def test_finish_keeps_status_output_and_other_exit_handlers(tmp_path):
+    # cli.finish skips only the interpreter's teardown: handlers registered after the command's
+    # module still run, the status gets through, and buffered output (more than a pipe holds)
+    # reaches the reader in full.
+    mark = tmp_path / "handler_ran"
+    code = ("import atexit, pathlib, sys\n"
+            "from closurecheck.cli import finish\n"
+            f"atexit.register(pathlib.Path({str(mark)!r}).write_text, 'yes')\n"
+            "sys.stdout.write('x' * 300000)\n"
+            "finish(3)\n")
+    res = _python(code, capture_output=True, text=True)
+    assert res.returncode == 3, res.stderr
+    assert res.stdout == "x" * 300000
+    assert mark.read_text() == "yes"
+
+
+def test_finish_reports_a_failed_flush_as_python_does():
+    # Python's own exit turns a failed flush of stdout into status 120 (CPython's Py_Main; the
+    # reference here is the interpreter itself, run the same way without finish).
+    import os
+    import subprocess
+
+    statuses = []
+    for tail in ("", "from closurecheck.cli import finish; finish(0)"):
+        read_end, write_end = os.pipe()
+        os.close(read_end)
+        try:
+            res = _python(f"import sys; sys.stdout.write('x' * 100); {tail}", stdout=write_end,
+                          stderr=subprocess.DEVNULL)
+        finally:
+            os.close(write_end)
+        statuses.append(res.returncode)
+    assert statuses == [120, 120]
+
+
 # --- what run reads, info reads -----------------------------------------------------------------------
 
 def test_info_refuses_a_malformed_odometry_noise_header_like_run(tmp_path, capsys):
