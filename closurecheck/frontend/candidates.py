@@ -68,7 +68,6 @@ from dataclasses import dataclass
 
 import numpy as np
 import scipy.spatial
-import scipy.stats
 from sklearn.decomposition import PCA
 from sklearn.neighbors import NearestNeighbors
 

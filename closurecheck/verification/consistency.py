@@ -37,7 +37,6 @@ from dataclasses import dataclass
 
 import numpy as np
 import scipy.sparse
-import scipy.stats
 
 from ..core import se2
 from ..core.odometry import odometry_travel

@@ -1,5 +1,6 @@
 """Chi-square bounds: the one helper every gate uses, against published tables and scipy."""
 
+import numpy as np
 import pytest
 import scipy.stats
 
@@ -28,3 +29,42 @@ def test_chi2_median_of_three_degrees_of_freedom():
     # The median of chi-square(3) is 2.366 (published tables, e.g. the 0.50
     # column of the NIST table above).
     assert chi2_median() == pytest.approx(2.366, abs=5e-4)
+
+
+def _grid_probabilities():
+    # Linear steps over [0, 1] (the ends included), both tails down to 1e-15, the
+    # probabilities the options use, and a few outside the domain (nan expected).
+    tails = np.logspace(-15, -1, 141)
+    return np.unique(np.concatenate([np.linspace(0.0, 1.0, 2001), tails, 1.0 - tails,
+                                     [0.9, 0.95, 0.99, 0.997, 0.999, 0.9999], [-0.5, 1.5, np.nan]]))
+
+
+# Integer degrees of freedom up to 60, a few half-integer and large ones, and
+# invalid ones (0, negative, infinite: nan expected).
+_GRID_DOFS = np.concatenate([np.arange(1, 61), [0.5, 1.5, 2.5, 7.5, 100.0, 1000.0, 0.0, -1.0, np.inf]])
+
+
+def test_chi2_threshold_is_bit_identical_to_scipy_stats_chi2_ppf_on_a_dense_grid():
+    # Reference: scipy.stats.chi2.ppf (scipy's own chi-square distribution).  The helper calls the
+    # special function scipy.stats does, so every value must be the same bits, nan where scipy's is.
+    p = _grid_probabilities()
+    for dof in _GRID_DOFS:
+        ours = np.array([chi2_threshold(float(q), dof) for q in p])
+        ref = scipy.stats.chi2.ppf(p, dof)
+        assert np.array_equal(np.isnan(ours), np.isnan(ref)), dof
+        ok = ~np.isnan(ref)
+        assert np.array_equal(ours[ok].view(np.int64), ref[ok].view(np.int64)), dof
+
+
+@pytest.mark.parametrize("dof", [1, 2, 3, 4, 6, 10, 2.5])
+@pytest.mark.parametrize("p", [0.5, 0.95, 0.99, 0.999])
+def test_chi2_threshold_scalar_calls_match_scipy_scalar_calls(dof, p):
+    # The pipeline calls with Python scalars; scipy.stats.chi2.ppf on scalars as the reference.
+    assert chi2_threshold(p, dof) == float(scipy.stats.chi2.ppf(p, dof))
+
+
+@pytest.mark.parametrize("dof", [1, 2, 3, 4, 5, 6, 10, 30, 0.5, 7.5])
+def test_chi2_median_is_bit_identical_to_scipy_stats_chi2_median(dof):
+    # Reference: scipy.stats.chi2.median.
+    assert chi2_median(dof) == float(scipy.stats.chi2.median(dof))
+
