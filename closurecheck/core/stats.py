@@ -5,16 +5,19 @@ The quantile comes from ``scipy.special.gammaincinv``, the very call
 ``2*sc.gammaincinv(df/2, p)``, which ``rv_continuous.ppf`` multiplies by
 scale 1 and adds loc 0; ``median`` is ``ppf(0.5)``), so the bounds are the
 same bits (tests/core/test_stats.py checks a dense grid against
-scipy.stats.chi2).  Importing scipy.stats cost about 0.5 s of every run's
-start (scipy.stats with the scipy.optimize it pulls in, measured with
-``python -X importtime``); scipy.special is loaded anyway by scipy.spatial.
+scipy.stats.chi2); the distribution function likewise is
+``scipy.special.chdtr``, which ``chi2_gen._cdf`` returns.  A run imports
+scipy.stats anyway (scikit-learn does), but the report's picture workers
+need only these: without scipy.stats (about 0.8 s to import in a fresh
+process) they are ready sooner (closurecheck.reporting.picture_worker).
 """
 
 from __future__ import annotations
 
 import math
 
-from scipy.special import gammaincinv
+import numpy as np
+from scipy.special import chdtr, gammaincinv
 
 # A pose (x, y, theta) has three degrees of freedom: the squared Mahalanobis
 # distance of a consistent pose error follows chi-square(3).
@@ -64,3 +67,49 @@ def chi2_median(dof: int = POSE_DOF) -> float:
     2.366
     """
     return chi2_threshold(0.5, dof)
+
+
+def chi2_quantiles(probabilities, dof: int = POSE_DOF) -> np.ndarray:
+    """Quantiles of chi-square(``dof``) at an array of probabilities, as :func:`chi2_threshold` gives one.
+
+    Parameters
+    ----------
+    probabilities : array_like in [0, 1] (outside: nan, as scipy.stats.chi2.ppf).
+    dof : degrees of freedom, positive.
+
+    Returns
+    -------
+    ndarray of the same shape: squared Mahalanobis distances, no unit.
+
+    Examples
+    --------
+    The quartiles of chi-square(3) (NIST/SEMATECH e-Handbook of Statistical
+    Methods, table 1.3.6.7.4, gives 1.213 and 4.108):
+
+    >>> from closurecheck.core.stats import chi2_quantiles
+    >>> chi2_quantiles([0.25, 0.75]).round(3)
+    array([1.213, 4.108])
+    """
+    return 2 * gammaincinv(dof / 2, np.asarray(probabilities, dtype=float))
+
+
+def chi2_cdf(values, dof: int = POSE_DOF) -> np.ndarray:
+    """The probability that chi-square(``dof``) stays below each of ``values`` (the distribution function).
+
+    Parameters
+    ----------
+    values : array_like of squared Mahalanobis distances (no unit); below 0 gives 0.
+    dof : degrees of freedom, positive.
+
+    Returns
+    -------
+    ndarray of the same shape, in [0, 1].
+
+    Examples
+    --------
+    >>> from closurecheck.core.stats import chi2_cdf, chi2_threshold
+    >>> float(chi2_cdf(chi2_threshold(0.99)).round(6))
+    0.99
+    """
+    # Below the support scipy.stats gives 0 where chdtr gives nan; np.maximum keeps a nan a nan.
+    return chdtr(dof, np.maximum(np.asarray(values, dtype=float), 0.0))

@@ -59,13 +59,8 @@ from ..errors import InputError
 from ..frontend.candidates import CandidateOptions, excluded
 from ..frontend.keyframes import odometry_travel
 from .ground_truth import RevisitOptions, candidate_recall, revisit_truth
+from .references import REFERENCE_NOTE, REFERENCE_TRUTH, REFERENCE_VERDICTS
 from .trajectory import ate_rmse, rpe
-
-REFERENCE_TRUTH = "truth"
-REFERENCE_VERDICTS = "verdicts"
-REFERENCE_NOTE = ("The log has no ground truth: the proposals are scored against this run's own verdicts "
-                  "(verified = right). That is a reference, not the truth: the figures measure agreement with "
-                  "the verifier, whose verdicts are statistical decisions and can be wrong.")
 
 # The labels people read, by JSON key, in the order the terminal and the
 # report show them (one home for both).

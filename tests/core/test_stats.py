@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 import scipy.stats
 
-from closurecheck.core.stats import chi2_median, chi2_threshold
+from closurecheck.core.stats import chi2_cdf, chi2_median, chi2_quantiles, chi2_threshold
 
 
 def test_chi2_threshold_matches_published_table():
@@ -68,3 +68,14 @@ def test_chi2_median_is_bit_identical_to_scipy_stats_chi2_median(dof):
     # Reference: scipy.stats.chi2.median.
     assert chi2_median(dof) == float(scipy.stats.chi2.median(dof))
 
+
+@pytest.mark.parametrize("dof", [1, 2, 3, 4, 6, 10, 2.5, 30])
+def test_chi2_quantiles_and_cdf_are_bit_identical_to_scipy_stats_chi2(dof):
+    # Reference: scipy.stats.chi2.ppf and .cdf on arrays (what the report's NEES picture drew with);
+    # the helpers call the special functions scipy.stats calls, so the same bits are expected.
+    p = _grid_probabilities()
+    ours, ref = chi2_quantiles(p, dof), scipy.stats.chi2.ppf(p, dof)
+    assert np.array_equal(ours, ref, equal_nan=True)
+    x = np.concatenate([[-1.0, 0.0, np.nan], np.geomspace(1e-6, 1e4, 2001), [np.inf]])
+    ours, ref = chi2_cdf(x, dof), scipy.stats.chi2.cdf(x, dof)
+    assert np.array_equal(ours, ref, equal_nan=True)
