@@ -54,6 +54,7 @@ names the output file.  For example:
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import os
 import platform
@@ -174,17 +175,29 @@ def child_run(args) -> None:
     memory = _MemoryByStage()
     memory.peaks["read"] = _rusage_mb()
     try:
-        outcome = run_log(log, config, runner=runner, progress=memory)
-    finally:
-        runner.close()
-    memory.close()
-    t1 = time.perf_counter()
-    v = outcome.verdicts
-    score = score_closures(log, outcome.keyframes, v.src, v.dst, v.accepted, v.delta, v.covariance, outcome.poses)
-    t_score = time.perf_counter() - t1
-    t2 = time.perf_counter()
-    write_outputs(outcome, args.out, report=not args.no_report, score=score, log_path=Path(args.log))
-    t_write = time.perf_counter() - t2
+        # The report's picture worker started before the verification, as `closurecheck run` starts it.
+        from closurecheck.pipeline import _PicturesAhead
+    except ImportError:     # an older tree, run side by side: the worker starts at the write
+        _PicturesAhead = None
+    with contextlib.ExitStack() as stack:
+        hook, ahead = {}, None
+        if _PicturesAhead is not None:
+            ahead = stack.enter_context(_PicturesAhead(not args.no_report, config.jobs))
+            hook = {"before_verification": ahead.start}
+        try:
+            outcome = run_log(log, config, runner=runner, progress=memory, **hook)
+        finally:
+            runner.close()
+        memory.close()
+        t1 = time.perf_counter()
+        v = outcome.verdicts
+        score = score_closures(log, outcome.keyframes, v.src, v.dst, v.accepted, v.delta, v.covariance,
+                               outcome.poses)
+        t_score = time.perf_counter() - t1
+        t2 = time.perf_counter()
+        write_outputs(outcome, args.out, report=not args.no_report, score=score, log_path=Path(args.log),
+                      **({} if ahead is None else {"pictures": ahead.job}))
+        t_write = time.perf_counter() - t2
     memory.peaks["write"] = _rusage_mb()
     total = time.perf_counter() - t_start0
     if profiler is not None:

@@ -37,6 +37,7 @@ from .io.pairs_csv import ExternalPairs
 from .io.scanlog import ScanLog
 from .registration.batch import RegisteredClosures, collect, seeds_for
 from .reporting.outputs import LogRun, RunOutcome, check_run_folder, summary, write_index, write_outputs
+from .reporting.picture_worker import WARM_GROUPS, launch, worth_a_worker
 from .reporting.terminal import format_summary
 from .verification.free_space import KeyframeScans
 from .verification.reasons import Reason
@@ -244,7 +245,7 @@ def _refuse_too_many(log: ScanLog, cands: CandidateSet, config: RunConfig) -> No
 
 def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPairs | None = None,
             runner=None, progress=None, also_propose: bool = False,
-            decisions: ReviewDecisions | None = None) -> RunOutcome:
+            decisions: ReviewDecisions | None = None, before_verification=None) -> RunOutcome:
     """Run the pipeline on a scan log held in memory.
 
     ``external`` replaces the proposed candidates with the pairs of a CSV
@@ -254,7 +255,10 @@ def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPai
     ``decisions`` (default: the configuration's ``[review] decisions``)
     overrule the verifier for the pairs they name (docs/verification.md,
     "Reviewer decisions"); their pairs join the candidates when the run did
-    not propose them.
+    not propose them.  ``before_verification`` (optional, no arguments) is
+    called once the candidates are registered and the runner's workers
+    released, before the verification: :func:`run_one` starts the report's
+    picture worker there (:class:`_PicturesAhead`).
     """
     if len(log) < 2:
         raise InputError("the log needs at least two scans", log.source or None)
@@ -292,6 +296,8 @@ def run_log(log: ScanLog, config: RunConfig = RunConfig(), external: ExternalPai
         _refuse_too_many(log, cands, config)
         regs = st.run("registration", _register_candidates, scans, cands, config, progress)
 
+    if before_verification is not None:
+        before_verification()
     review = notes_review = verifier_reason = None
     if decisions is not None:
         review, notes_review = _review_verdicts(cands, regs, decisions)
@@ -385,7 +391,43 @@ def open_log(path, choice: RecordingChoice | None = None) -> tuple[ScanLog, list
     return log, notes
 
 
-def _write(outcome, log: ScanLog, out_dir, *, report: bool, progress, log_path: Path | None):
+class _PicturesAhead:
+    """The report's picture worker, started before the verification and handed the data at the write.
+
+    :meth:`start` is :func:`run_log`'s ``before_verification``: the worker
+    (:func:`closurecheck.reporting.picture_worker.launch`, warm) starts and
+    imports matplotlib and scipy.stats while this process verifies, with
+    one core mostly idle, instead of after the files are written.  Not
+    started without a report, with ``--jobs 1`` or with both cores busy
+    (:func:`~closurecheck.reporting.picture_worker.worth_a_worker`); ended
+    on leaving the ``with`` block whatever happened.
+    """
+
+    def __init__(self, report: bool, jobs: int):
+        self.report, self.jobs = report, jobs
+        self.workers: list = []
+
+    @property
+    def job(self):
+        """The started workers (a list for write_outputs' ``pictures``), or None."""
+        return self.workers or None
+
+    def start(self) -> None:
+        if self.report and not self.workers and worth_a_worker(self.jobs):
+            for names in WARM_GROUPS:
+                job = launch(names, warm=True)
+                if job is not None:
+                    self.workers.append(job)
+
+    def __enter__(self) -> _PicturesAhead:
+        return self
+
+    def __exit__(self, *exc) -> None:
+        for job in self.workers:
+            job.close()
+
+
+def _write(outcome, log: ScanLog, out_dir, *, report: bool, progress, log_path: Path | None, pictures=None):
     """Score (against the log's truth, or a front-end's pairs against the verdicts), then write the outputs."""
     from .reporting.scoring import score_outcome
 
@@ -394,7 +436,8 @@ def _write(outcome, log: ScanLog, out_dir, *, report: bool, progress, log_path: 
         progress.stage("writing outputs")
         if len(outcome.candidates) == 0:
             progress.note(outcome.notes[-1])
-    return write_outputs(outcome, out_dir, report=report, score=score, log_path=log_path, progress=progress)
+    return write_outputs(outcome, out_dir, report=report, score=score, log_path=log_path, progress=progress,
+                         pictures=pictures)
 
 
 def run_one(path, out_dir, config: RunConfig, *, candidates=None, choice=None, runner=None, report=True,
@@ -412,11 +455,13 @@ def run_one(path, out_dir, config: RunConfig, *, candidates=None, choice=None, r
         if progress is not None:
             progress.info(note)
     external = read_pairs(candidates, len(log), max_pairs=config.max_pairs) if candidates else None
-    outcome = run_log(log, config, external=external, runner=runner, progress=progress, also_propose=also_propose,
-                      decisions=decisions)
-    if load_notes:
-        outcome = dataclasses.replace(outcome, notes=tuple(load_notes) + outcome.notes)
-    paths = _write(outcome, log, out_dir, report=report, progress=progress, log_path=Path(path))
+    with _PicturesAhead(report, config.jobs) as ahead:
+        outcome = run_log(log, config, external=external, runner=runner, progress=progress,
+                          also_propose=also_propose, decisions=decisions, before_verification=ahead.start)
+        if load_notes:
+            outcome = dataclasses.replace(outcome, notes=tuple(load_notes) + outcome.notes)
+        paths = _write(outcome, log, out_dir, report=report, progress=progress, log_path=Path(path),
+                       pictures=ahead.job)
     return outcome, paths, summary(outcome)
 
 

@@ -210,7 +210,7 @@ def _collector_paused():
 
 
 def write_outputs(outcome: RunOutcome, out_dir, *, report: bool = True, score: dict | None = None,
-                  log_path: Path | None = None, progress=None) -> dict:
+                  log_path: Path | None = None, progress=None, pictures=None) -> dict:
     """Write graph.json, candidates.csv, config.toml, summary.json and the report into ``out_dir``.
 
     Everything is written into a hidden staging folder beside ``out_dir``
@@ -219,7 +219,10 @@ def write_outputs(outcome: RunOutcome, out_dir, *, report: bool = True, score: d
     its previous complete content or the new one, never a mix, and a rerun
     with ``report=False`` leaves no old report behind.  ``out_dir`` must
     pass :func:`check_run_folder`.  ``progress`` (optional) is told each
-    step.  Returns the final paths written.
+    step.  Returns the final paths written.  ``pictures`` (optional) is a
+    list of picture workers started ahead for this report
+    (:func:`closurecheck.reporting.picture_worker.launch`); they are handed
+    the report's data here, and ended with the write.
     """
     out_dir = Path(out_dir)
     check_run_folder(out_dir)
@@ -235,7 +238,9 @@ def write_outputs(outcome: RunOutcome, out_dir, *, report: bool = True, score: d
     names = {"candidates": "candidates.csv", "graph": "graph.json", "config": "config.toml",
              "summary": "summary.json"}
     with _collector_paused(), staged_folder(out_dir, check=check_run_folder) as stage, \
-            contextlib.ExitStack() as pictures:
+            contextlib.ExitStack() as workers:
+        for job in pictures or ():
+            workers.enter_context(job)
         d = stage.path
         v = outcome.verdicts
         info = summary(outcome)
@@ -259,10 +264,14 @@ def write_outputs(outcome: RunOutcome, out_dir, *, report: bool = True, score: d
             # Most pictures are drawn by a second process while this one
             # writes the files below (closurecheck.reporting.picture_worker);
             # --jobs 1 keeps the run in one process.
-            if worth_a_worker(outcome.config.jobs):
+            if pictures:
+                job = list(pictures)
+                for one in job:
+                    one.send(data)
+            elif worth_a_worker(outcome.config.jobs):
                 job = start_pictures(data)
                 if job is not None:
-                    pictures.enter_context(job)
+                    workers.enter_context(job)
         extra = {"origin": v.origin, **v.optional_columns()}
         extra.update(v.figures)
         cov = v.covariance

@@ -36,6 +36,7 @@ from ..core import se2
 from ..io.atomic import write_bytes, write_text
 from ..verification.reasons import GROUPS, Reason
 from ..verification.verdicts import VerdictTable
+from .references import REFERENCE_NOTE, REFERENCE_VERDICTS
 from .report_script import VIEWER_CSS, VIEWER_JS
 
 # margins and scoring (and free_space) import scipy, about 2 s in a fresh
@@ -609,29 +610,28 @@ def figure_nees(score: dict) -> bytes | None:
     """The verified closures' NEES against chi-square(3): histogram and quantile-quantile plot.
 
     Left: NEES on logarithmic bins with the counts chi-square(3)
-    (scipy.stats.chi2) predicts for that many closures.  Right: sorted NEES
-    against chi-square(3) quantiles at (i - 0.5) / n; points on the diagonal
-    are honest covariances, below it too large, above it too small.
+    (closurecheck.core.stats) predicts for that many closures.  Right: sorted
+    NEES against chi-square(3) quantiles at (i - 0.5) / n; points on the
+    diagonal are honest covariances, below it too large, above it too small.
     """
-    from scipy.stats import chi2
+    from ..core.stats import chi2_cdf, chi2_quantiles, chi2_threshold
 
     x = np.asarray(score.get("nees_values") or [], float)
     x = np.sort(x[np.isfinite(x) & (x > 0)])
     if len(x) < 2:
         return None
-    dist = chi2(3)
     # Two-line title on the left panel.
     fig, ((ax, aq),) = _figure(12, 4.0, 1, 2, top=0.45, bottom=0.5, left=0.7, wgap=0.8)
-    lo = min(float(x[0]), float(dist.ppf(0.001))) / 1.5
-    hi = max(float(x[-1]), float(dist.ppf(0.999))) * 1.5
+    lo = min(float(x[0]), chi2_threshold(0.001, 3)) / 1.5
+    hi = max(float(x[-1]), chi2_threshold(0.999, 3)) * 1.5
     edges = np.geomspace(lo, hi, 31)
     ax.stairs(np.histogram(x, bins=edges)[0], edges, fill=True, color=ACCEPT_COLOUR, alpha=0.7,
               label=f"verified closures ({len(x)})")
-    expected = len(x) * np.diff(dist.cdf(edges))
+    expected = len(x) * np.diff(chi2_cdf(edges, 3))
     ax.step(edges, np.r_[expected, expected[-1]], where="post", color="#1d2733", lw=1.2,
             label="chi-square(3), expected count")
     for q, style in ((0.5, ":"), (0.025, "--"), (0.975, "--")):
-        ax.axvline(dist.ppf(q), color="#5b6b7c", ls=style, lw=0.9)
+        ax.axvline(chi2_threshold(q, 3), color="#5b6b7c", ls=style, lw=0.9)
     ax.set_xscale("log")
     _log_ticks(ax.xaxis)
     ax.set_xlabel("NEES (squared Mahalanobis error against truth)")
@@ -642,7 +642,7 @@ def figure_nees(score: dict) -> bytes | None:
                  f"(honest: 3, 2.37)\ninside the central 50%: {_num(inside50, 2)} (0.5), 95%: "
                  f"{_num(inside95, 2)} (0.95); dashed: the 95% bounds", fontsize=9, y=_TITLE_Y)
     ax.legend(fontsize=8)
-    q = dist.ppf((np.arange(1, len(x) + 1) - 0.5) / len(x))
+    q = chi2_quantiles((np.arange(1, len(x) + 1) - 0.5) / len(x), 3)
     aq.loglog(q, x, ".", color=ACCEPT_COLOUR, ms=3, label="sorted NEES")
     span = np.array([min(q[0], x[0]), max(q[-1], x[-1])])
     aq.loglog(span, span, "-", color="#1d2733", lw=1.0, label="honest (y = x)")
@@ -656,7 +656,6 @@ def figure_nees(score: dict) -> bytes | None:
 
 def figure_precision_recall(score: dict) -> bytes | None:
     """Precision against recall over the front-end's score, with the best recall at precision 1 marked."""
-    from .scoring import REFERENCE_VERDICTS
 
     curve = score.get("frontend_pr_curve")
     if not curve or len(curve.get("recall", [])) < 2:
@@ -978,7 +977,6 @@ def _score_section(score: dict) -> str:
 
 def _score_cards(score: dict) -> list:
     """(label, value, state) cards for the top of the page."""
-    from .scoring import REFERENCE_VERDICTS
 
     cards = []
     if score.get("reference") == REFERENCE_VERDICTS:
@@ -1182,13 +1180,12 @@ def build_report(out_dir, data: ReportData, *, table_limit: int = 5000, progress
     every candidate's overlay is in the page.  ``progress`` (optional,
     :class:`closurecheck.reporting.terminal.Progress`) is told each picture
     as it is drawn.  ``pictures`` (optional) is a
-    :class:`closurecheck.reporting.picture_worker.PictureJob` drawing some
-    of the pictures in a second process, started on the same ``data``; the
-    others are drawn here meanwhile, and the job's are drawn here too if it
-    fails.
+    :class:`closurecheck.reporting.picture_worker.PictureJob`, or a list of
+    them, drawing some of the pictures in other processes, started on the
+    same ``data``; the others are drawn here meanwhile, and a job's are
+    drawn here too if it fails.
     """
     from ..verification.margins import decision_margins
-    from .scoring import REFERENCE_NOTE, REFERENCE_VERDICTS
 
     out_dir = Path(out_dir)
     fig_dir = out_dir / "figures"
@@ -1201,7 +1198,8 @@ def build_report(out_dir, data: ReportData, *, table_limit: int = 5000, progress
     v = data.verdicts
     scale = ellipse_magnification(data)
     margins = decision_margins(v.reason, v.figures, data.thresholds)
-    remote = set(pictures.names) if pictures is not None else set()
+    jobs = [] if pictures is None else [pictures] if hasattr(pictures, "names") else list(pictures)
+    remote = {name for job in jobs for name in job.names}
 
     def page():
         step("page")
@@ -1230,13 +1228,17 @@ def build_report(out_dir, data: ReportData, *, table_limit: int = 5000, progress
 
     draw({name for name, _ in PICTURES} - remote, remote)
     if remote:
-        got = pictures.result()
-        if got is None:
-            # The second process failed: its pictures are drawn here, where an error is raised as it is.
+        failed = set()
+        for job in jobs:
+            got = job.result()
+            if got is None:
+                failed.update(job.names)
+            else:
+                pngs.update(got)
+        if failed:
+            # A second process failed: its pictures are drawn here, where an error is raised as it is.
             told.clear()
-            draw(remote)
-        else:
-            pngs.update(got)
+            draw(failed)
     else:
         table, page_data = page()
     # Static maps for documents and mail; the page draws its own, zoomable.

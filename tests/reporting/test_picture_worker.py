@@ -102,3 +102,81 @@ def test_a_worker_only_where_a_core_is_idle(monkeypatch, cores, busy, expected):
 def test_busy_elsewhere_is_a_count():
     busy = picture_worker.busy_elsewhere()
     assert busy >= 0 and busy == int(busy)
+
+
+def test_warm_workers_draw_their_pictures_as_the_main_process(tmp_path):
+    # Started ahead (launch(warm=True)), one per group, given the data later: the same report.
+    data = _data()
+    build_report(tmp_path / "alone", data)
+    groups = picture_worker.WARM_GROUPS + (("checks",),)
+    assert sorted(name for group in groups for name in group) == sorted(name for name, _ in PICTURES)
+    jobs = [picture_worker.launch(names, warm=True) for names in groups]
+    try:
+        for job in jobs:
+            job.send(data)
+        build_report(tmp_path / "warm", data, pictures=jobs)
+    finally:
+        for job in jobs:
+            job.close()
+    assert [job.proc.returncode for job in jobs] == [0] * len(groups)
+    assert _tree(tmp_path / "warm") == _tree(tmp_path / "alone")
+
+
+def test_one_failed_worker_of_two_leaves_its_pictures_to_the_main_process(tmp_path):
+    data = _data()
+    build_report(tmp_path / "alone", data)
+    good = picture_worker.launch(("map", "loops"), warm=True)
+    bad = PictureJob(subprocess.Popen([sys.executable, "-c", "import sys; sys.exit(1)"], stdin=subprocess.PIPE,
+                                      stdout=subprocess.PIPE), ("checks", "nees"))
+    with good, bad:
+        good.send(data)
+        bad.send(data)
+        build_report(tmp_path / "fallback", data, pictures=[good, bad])
+    assert _tree(tmp_path / "fallback") == _tree(tmp_path / "alone")
+
+
+def test_a_warm_worker_never_given_data_ends_with_its_job():
+    with picture_worker.launch(warm=True) as job:
+        pass
+    assert job.proc.poll() is not None and job.result() is None
+
+
+def test_a_run_starts_its_worker_after_registering_and_draws_the_same_pictures(tmp_path, monkeypatch):
+    # run_one starts the worker from run_log's before_verification hook: once the candidates are
+    # registered, before the verification, and hands it the report's data at the write.
+    from closurecheck import pipeline
+    from closurecheck.config import RunConfig
+    from closurecheck.io.scanlog import write_scanlog
+    from closurecheck.simulation.simulate import simulate_log
+
+    log_path = tmp_path / "ring.jsonl"
+    write_scanlog(log_path, simulate_log("ring", seed=4, scans=120))
+    stages, started = [], []
+
+    class Progress:
+        def stage(self, name):
+            stages.append(name)
+
+        def __getattr__(self, name):
+            return lambda *args, **kwargs: None
+
+    jobs = []
+
+    def launch(*args, **kwargs):
+        started.append(list(stages))
+        jobs.append(picture_worker.launch(*args, **kwargs))
+        return jobs[-1]
+
+    monkeypatch.setattr(pipeline, "launch", launch)
+    monkeypatch.setattr(pipeline, "worth_a_worker", lambda jobs: True)
+    pipeline.run_one(log_path, tmp_path / "warm", RunConfig(jobs=1), progress=Progress())
+    assert len(started) == len(picture_worker.WARM_GROUPS)
+    assert all("registration" in seen and "verification" not in seen for seen in started)
+    # Each was handed the data and drew (a job never used is killed).
+    assert [job.proc.returncode for job in jobs] == [0] * len(jobs)
+    monkeypatch.setattr(pipeline, "worth_a_worker", lambda jobs: False)
+    monkeypatch.setattr(picture_worker, "worth_a_worker", lambda jobs: False)
+    pipeline.run_one(log_path, tmp_path / "alone", RunConfig(jobs=1))
+    assert len(started) == len(picture_worker.WARM_GROUPS)
+    warm, alone = _tree(tmp_path / "warm" / "figures"), _tree(tmp_path / "alone" / "figures")
+    assert "map.png" in alone and warm == alone
