@@ -528,12 +528,14 @@ def run(log, out=None, *, config: RunConfig | None = None, candidates=None, jobs
         log, _ = open_log(log_path)
     external = read_pairs(candidates, len(log), max_pairs=config.max_pairs) if candidates else None
     runner = make_runner(config.jobs)
-    try:
-        outcome = run_log(log, config, external=external, runner=runner, decisions=review)
-    finally:
-        runner.close()
-    if out is not None:
-        _write(outcome, log, out, report=report, progress=None, log_path=log_path)
+    with _PicturesAhead(report and out is not None, config.jobs) as ahead:
+        try:
+            outcome = run_log(log, config, external=external, runner=runner, decisions=review,
+                              before_verification=ahead.start)
+        finally:
+            runner.close()
+        if out is not None:
+            _write(outcome, log, out, report=report, progress=None, log_path=log_path, pictures=ahead.job)
     return outcome
 
 
