@@ -196,7 +196,7 @@ def child_run(args) -> None:
         t_score = time.perf_counter() - t1
         t2 = time.perf_counter()
         write_outputs(outcome, args.out, report=not args.no_report, score=score, log_path=Path(args.log),
-                      **({} if ahead is None else {"pictures": ahead.job}))
+                      **({} if ahead is None else {"pictures": ahead.started}))
         t_write = time.perf_counter() - t2
     memory.peaks["write"] = _rusage_mb()
     total = time.perf_counter() - t_start0

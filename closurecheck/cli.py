@@ -407,9 +407,10 @@ def finish(status: int):
     Python's exit first waits for other threads and runs the ``atexit``
     handlers (multiprocessing's, logging's, a Dask client's); then it tears
     every module down and frees every object, which after a run's imports
-    (scipy, scikit-learn, numba's compiled kernels) took 0.65-0.8 s of the
-    5,000-scan warehouse run on the 2-core machine of docs/performance.md,
-    time in which the outputs are long written and the user only waits.
+    (scipy, scikit-learn, numba's compiled kernels) took 0.55-1.06 s of the
+    5,000-scan runs on the 2-core machine of docs/performance.md (0.05-0.10
+    s without), time in which the outputs are long written and the user
+    only waits.
     The handler of :func:`_exit_without_teardown`, registered when this
     module is imported and so before any other (it runs last), flushes
     stdout and stderr and leaves there.  Every output file is closed and

@@ -396,8 +396,8 @@ class _PicturesAhead:
 
     :meth:`start` is :func:`run_log`'s ``before_verification``: the worker
     (:func:`closurecheck.reporting.picture_worker.launch`, warm) starts and
-    imports matplotlib and scipy.stats while this process verifies, with
-    one core mostly idle, instead of after the files are written.  Not
+    imports matplotlib while this process verifies, with one core mostly
+    idle, instead of after the files are written.  Not
     started without a report, with ``--jobs 1`` or with both cores busy
     (:func:`~closurecheck.reporting.picture_worker.worth_a_worker`); ended
     on leaving the ``with`` block whatever happened.
@@ -408,8 +408,8 @@ class _PicturesAhead:
         self.workers: list = []
 
     @property
-    def job(self):
-        """The started workers (a list for write_outputs' ``pictures``), or None."""
+    def started(self):
+        """The started workers (a list, write_outputs' ``pictures``), or None."""
         return self.workers or None
 
     def start(self) -> None:
@@ -461,7 +461,7 @@ def run_one(path, out_dir, config: RunConfig, *, candidates=None, choice=None, r
         if load_notes:
             outcome = dataclasses.replace(outcome, notes=tuple(load_notes) + outcome.notes)
         paths = _write(outcome, log, out_dir, report=report, progress=progress, log_path=Path(path),
-                       pictures=ahead.job)
+                       pictures=ahead.started)
     return outcome, paths, summary(outcome)
 
 
@@ -535,7 +535,7 @@ def run(log, out=None, *, config: RunConfig | None = None, candidates=None, jobs
         finally:
             runner.close()
         if out is not None:
-            _write(outcome, log, out, report=report, progress=None, log_path=log_path, pictures=ahead.job)
+            _write(outcome, log, out, report=report, progress=None, log_path=log_path, pictures=ahead.started)
     return outcome
 
 
