@@ -85,16 +85,16 @@ class PictureJob:
 
         A worker that is gone is not an error here: :meth:`result` says so.
         """
-        from .report import AgreementPairs
+        from .report import AgreementPairs, map_points_only
 
         fs = data.free_space
         if fs is not None:
             # The worker need not import the free-space module (and scipy) to read four arrays.
             data = dataclasses.replace(data, free_space=AgreementPairs(a=fs.a, b=fs.b, contradicts=fs.contradicts,
                                                                        length_m=fs.length_m))
-        if "map" not in self.names:
-            # Only the maps draw the scans' points: most of the data (about 370 MB at 100,000 scans).
-            data = dataclasses.replace(data, scan_points=[])
+        # Only the maps draw the scans' points, and only every MAP_STRIDE-th: the points are most of
+        # the data (about 370 MB at 100,000 scans), held twice in the worker while it unpickles them.
+        data = map_points_only(data) if "map" in self.names else dataclasses.replace(data, scan_points=[])
         payload = pickle.dumps((self.names, data), protocol=pickle.HIGHEST_PROTOCOL)
         # Written by a thread (the pipe's write releases the GIL): a worker still importing takes
         # the data only when its imports are done, and this process writes its files meanwhile.

@@ -19,6 +19,7 @@ buttons write rows for ``closurecheck run --decisions``.
 from __future__ import annotations
 
 import base64
+import dataclasses
 import functools
 import gc
 import html
@@ -100,6 +101,11 @@ THRESHOLD_LABEL = {
 }
 
 
+# The map pictures draw every third point of each scan: the walls stay continuous at the pictures'
+# scale, and the 100,000-scan log's 33,333 keyframes hold about 370 MB of points.
+MAP_STRIDE = 3
+
+
 @dataclass(frozen=True, eq=False)
 class ReportData:
     """What the report shows; all poses (K, 3) in metres/radians.
@@ -107,7 +113,8 @@ class ReportData:
     ``ids`` are the keyframe scan ids in node order; ``odom`` their odometry
     poses and ``poses`` the optimised ones (one fixed frame each);
     ``scan_points`` the keyframes' valid returns (N_k, 2) in the robot frame
-    (m); ``truth`` (K, 3) or None.  ``thresholds`` maps a check figure's
+    (m), of which the map pictures draw every ``map_stride``-th (a picture
+    worker is sent only those, with ``map_stride`` 1); ``truth`` (K, 3) or None.  ``thresholds`` maps a check figure's
     name to the bound the verification used (same units as the figure;
     :func:`check_thresholds`), drawn on its histogram.
     """
@@ -128,6 +135,7 @@ class ReportData:
     trust: str = ""  # "sound" or "doubtful"; "" when the run did not judge itself
     trust_reasons: tuple = ()
     free_space: FreeSpaceCheck | None = None
+    map_stride: int = MAP_STRIDE
 
 
 def check_thresholds(verify_options) -> dict:
@@ -298,12 +306,35 @@ def _anchor(poses: np.ndarray) -> np.ndarray:
     return se2.compose(se2.inverse(poses[0]), poses) if len(poses) else poses
 
 
-def _map_points(scan_points, stride=3):
+def _map_points(scan_points, stride=MAP_STRIDE):
     """Every ``stride``-th point of each scan, (M, 2) in its robot frame, and the index of its scan (M,)."""
     parts = [np.asarray(p, dtype=float).reshape(-1, 2)[::stride] for p in scan_points]
     if not parts:
         return np.zeros((0, 2)), np.zeros(0, dtype=np.int64)
     return np.concatenate(parts), np.repeat(np.arange(len(parts)), [len(p) for p in parts])
+
+
+def map_points_only(data: ReportData) -> ReportData:
+    """``data`` with each scan cut to the points the map pictures draw (``map_stride`` becomes 1).
+
+    The map pictures of the result are the same bytes as those of ``data``.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from closurecheck.reporting.report import ReportData, map_points_only
+    >>> from closurecheck.verification.verdicts import VerdictTable
+    >>> none = np.zeros(0, int)
+    >>> table = VerdictTable(src=none, dst=none, origin=np.zeros(0, object), accepted=np.zeros(0, bool),
+    ...                      reason=np.zeros(0, object), delta=np.zeros((0, 3)), covariance=np.zeros((0, 3, 3)))
+    >>> data = ReportData(log_name="one scan", ids=np.arange(1), odom=np.zeros((1, 3)), poses=np.zeros((1, 3)),
+    ...                   scan_points=[np.ones((7, 2))], verdicts=table)
+    >>> cut = map_points_only(data)
+    >>> cut.scan_points[0].shape, cut.map_stride
+    ((3, 2), 1)
+    """
+    points = [np.asarray(p, dtype=float).reshape(-1, 2)[::data.map_stride] for p in data.scan_points]
+    return dataclasses.replace(data, scan_points=points, map_stride=1)
 
 
 def _draw_map(ax, poses, points, owner, colour, title):
@@ -322,7 +353,7 @@ def _draw_map(ax, poses, points, owner, colour, title):
 def figure_maps(data: ReportData) -> bytes:
     """Odometry-only map next to the optimised one, both anchored at the first keyframe."""
     fig, (axes,) = _figure(13, 6.2, 1, 2, top=0.35, bottom=0.55, left=0.75, wgap=0.75)
-    points, owner = _map_points(data.scan_points)
+    points, owner = _map_points(data.scan_points, data.map_stride)
     _draw_map(axes[0], _anchor(data.odom), points, owner, ODOM_COLOUR, "Odometry only")
     _draw_map(axes[1], _anchor(data.poses), points, owner, MAP_COLOUR, "With verified loop closures")
     return _png(fig)

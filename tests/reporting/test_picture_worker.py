@@ -180,3 +180,14 @@ def test_a_run_starts_its_worker_after_registering_and_draws_the_same_pictures(t
     assert len(started) == len(picture_worker.WARM_GROUPS)
     warm, alone = _tree(tmp_path / "warm" / "figures"), _tree(tmp_path / "alone" / "figures")
     assert "map.png" in alone and warm == alone
+
+
+def test_the_worker_gets_only_the_points_the_maps_draw():
+    # The points are most of the data a worker is sent: cut to the maps' stride, the same map.
+    from closurecheck.reporting.report import map_points_only
+
+    data = _data()
+    cut = map_points_only(data)
+    assert data.map_stride > 1 and cut.map_stride == 1
+    assert sum(len(p) for p in cut.scan_points) < sum(len(p) for p in data.scan_points)
+    assert draw_picture("map", cut) == draw_picture("map", data)
