@@ -52,9 +52,7 @@ def chi2_threshold(probability: float, dof: int = POSE_DOF) -> float:
         # scipy.stats.chi2's shape check (rv_continuous._argcheck: df > 0) gives nan even at
         # probability 0 or 1, where gammaincinv alone would give 0 or inf.
         return math.nan
-    # chi-square(k) is gamma(k/2, scale 2): its quantile is twice the regularised
-    # lower incomplete gamma function's inverse, written as scipy.stats writes it.
-    return float(2 * gammaincinv(dof / 2, probability))
+    return float(chi2_quantiles(probability, dof))
 
 
 def chi2_median(dof: int = POSE_DOF) -> float:
@@ -90,6 +88,8 @@ def chi2_quantiles(probabilities, dof: int = POSE_DOF) -> np.ndarray:
     >>> chi2_quantiles([0.25, 0.75]).round(3)
     array([1.213, 4.108])
     """
+    # chi-square(k) is gamma(k/2, scale 2): its quantile is twice the regularised
+    # lower incomplete gamma function's inverse, written as scipy.stats writes it.
     return 2 * gammaincinv(dof / 2, np.asarray(probabilities, dtype=float))
 
 
