@@ -3,8 +3,8 @@
 Three sources, merged and deduplicated:
 
 * **descriptor**: the ``descriptor_neighbours`` nearest keyframes in
-  descriptor space (scikit-learn tree search, Euclidean metric), per
-  keyframe, among keyframes outside the exclusion gap;
+  descriptor space (a kd-tree search, Euclidean metric), per keyframe,
+  among keyframes outside the exclusion gap;
 * **proximity**: keyframes whose odometry-predicted relative pose is close,
   under the odometry uncertainty accumulated along the chain between them;
 * **external**: pairs read from a CSV file (:mod:`closurecheck.io.pairs_csv`).
@@ -67,9 +67,8 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
+import scipy.linalg
 import scipy.spatial
-from sklearn.decomposition import PCA
-from sklearn.neighbors import NearestNeighbors
 
 from ..core import se2
 from ..core.odometry import OdometryChain, OdometryNoise, noise_from_header
@@ -130,7 +129,8 @@ class CandidateOptions:
     suppress_keyframes : candidates of one keyframe closer than this many
         chain positions to a better one are skipped.
     yaw_hypotheses : yaw hypotheses kept per candidate.
-    tree : scikit-learn tree for descriptor search ("kd_tree" or "ball_tree").
+    tree : tree for descriptor search: "kd_tree" (scipy's, :func:`nearest_exact`)
+        or "ball_tree" (scikit-learn's); the same neighbours, at another speed.
     search_dims : principal components of the descriptors searched by the
         tree (:func:`search_space`); 0 searches the full descriptors.
     block_keyframes : keyframes processed together (bounds the working
@@ -288,12 +288,90 @@ def descriptor_neighbours(vectors, t, travel, options: CandidateOptions = Candid
     k = options.descriptor_neighbours
     if count < 2 or k == 0:
         return np.full((count, k), np.inf), np.full((count, k), -1, dtype=np.int64)
-    nn = NearestNeighbors(algorithm=options.tree).fit(vectors)
+    if options.tree == "ball_tree":
+        # Imported here: scikit-learn (with the scipy.stats it imports) takes about 1.1 s to import, a
+        # fifth of a 5,000-scan run's serial part (docs/performance.md); the default tree needs none of it.
+        from sklearn.neighbors import NearestNeighbors
 
-    def query(rows, n):
-        return nn.kneighbors(vectors[rows], n_neighbors=n)
+        nn = NearestNeighbors(algorithm="ball_tree").fit(vectors)
+
+        def query(rows, n):
+            return nn.kneighbors(vectors[rows], n_neighbors=n)
+    else:
+        tree = scipy.spatial.cKDTree(vectors)
+
+        def query(rows, n):
+            return nearest_exact(tree, vectors, rows, n)
 
     return _knn_outside_gap(query, k, count, t, travel, options)
+
+
+# Relative error bound of scipy's kd-tree distances against the dimension-order sums: a sum of D
+# squares in another order differs by at most about D ulps (D <= a few hundred here), far below this.
+_TREE_DISTANCE_SLACK = 1e-12
+
+
+def nearest_exact(tree, vectors, rows, n: int):
+    """The n nearest of ``vectors`` to each of ``vectors[rows]``, distances summed in dimension order.
+
+    scipy's kd-tree sums the squared differences of the coordinates four at a
+    time, scikit-learn's trees one after the other; the two differ in the
+    last bits, which reach the candidates' ranking (``descriptor_distance``).
+    The tree proposes a few more neighbours than asked; their distances are
+    summed again in dimension order (scikit-learn's
+    ``EuclideanDistance.rdist``, then the square root) and sorted, ties by
+    index.  A row whose n-th distance comes within the rounding slack of
+    the furthest proposed one asks the tree for twice as many, so no point
+    outside the proposals can belong to the n nearest.
+
+    Parameters
+    ----------
+    tree : ``scipy.spatial.cKDTree`` built on ``vectors``.
+    vectors : (K, D) float64 points.
+    rows : (m,) int positions of the query points (each finds itself, at 0).
+    n : neighbours wanted, 1 <= n <= K.
+
+    Returns
+    -------
+    dist : (m, n) Euclidean distances, ascending.
+    idx : (m, n) int64 positions in ``vectors``.
+
+    Examples
+    --------
+    Four points on a line: the nearest two to the second point are itself
+    and the first (ties broken by index).
+
+    >>> import numpy as np, scipy.spatial
+    >>> from closurecheck.frontend.candidates import nearest_exact
+    >>> v = np.array([[0.0], [1.0], [2.0], [4.0]])
+    >>> d, i = nearest_exact(scipy.spatial.cKDTree(v), v, np.array([1]), 2)
+    >>> d.tolist(), i.tolist()
+    ([[0.0, 1.0]], [[1, 0]])
+    """
+    rows = np.asarray(rows, dtype=np.int64)
+    count = len(vectors)
+    dist = np.empty((len(rows), n))
+    idx = np.empty((len(rows), n), dtype=np.int64)
+    todo = np.arange(len(rows))
+    asked = min(count, n + 4)
+    while len(todo):
+        ck_d, ck_i = tree.query(vectors[rows[todo]], k=np.arange(1, asked + 1))
+        ck_i = np.asarray(ck_i, dtype=np.int64)
+        diff = vectors[ck_i] - vectors[rows[todo]][:, None, :]
+        sq = np.zeros(ck_i.shape)
+        for j in range(vectors.shape[1]):
+            sq += diff[:, :, j] * diff[:, :, j]
+        exact = np.sqrt(sq)
+        order = np.lexsort((ck_i, exact), axis=-1)[:, :n]
+        got_d = np.take_along_axis(exact, order, 1)
+        # Safe when every point left out (tree distance >= the last proposal's) is further than the
+        # n-th kept one even after the rounding of both.
+        safe = (asked >= count) | (got_d[:, -1] < ck_d[:, -1] * (1.0 - _TREE_DISTANCE_SLACK))
+        dist[todo[safe]] = got_d[safe]
+        idx[todo[safe]] = np.take_along_axis(ck_i, order, 1)[safe]
+        todo = todo[~safe]
+        asked = min(count, 2 * asked)
+    return dist, idx
 
 
 def search_space(vectors, options: CandidateOptions = CandidateOptions()) -> np.ndarray:
@@ -302,15 +380,28 @@ def search_space(vectors, options: CandidateOptions = CandidateOptions()) -> np.
     Tree search is only faster than brute force in few dimensions; the
     descriptors' variance sits in a few directions, so searching the
     leading principal components (computed from these descriptors with
-    scikit-learn's PCA) keeps the neighbours while the search stays near
+    a principal component analysis) keeps the neighbours while the search stays near
     O(K log K).  ``search_dims = 0`` (or at least the descriptor length)
     searches the full vectors.
+
+    The projection is scikit-learn's ``PCA(svd_solver="full").fit_transform``
+    step for step (mean, centring, ``scipy.linalg.svd``, the signs of
+    ``svd_flip`` from the rows of V^T, then ``U * S``), so the same bits
+    (tests/frontend/test_candidates.py holds the two against each other),
+    without importing scikit-learn for it.
     """
     vectors = np.asarray(vectors, dtype=np.float64)
     dims = options.search_dims
     if dims == 0 or dims >= vectors.shape[1] or len(vectors) <= dims:
         return vectors
-    return PCA(n_components=dims, svd_solver="full").fit_transform(vectors)
+    centred = vectors - np.mean(vectors, axis=0)
+    u, s, vt = scipy.linalg.svd(centred, full_matrices=False)
+    # svd_flip(u_based_decision=False): each component's largest |entry| in V^T made positive.
+    signs = np.sign(vt[np.arange(len(vt)), np.argmax(np.abs(vt), axis=1)])
+    u *= signs[np.newaxis, :]
+    u = u[:, :dims]
+    u *= s[:dims]
+    return u
 
 
 def _mahalanobis_sq3(e, c):

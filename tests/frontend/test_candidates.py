@@ -4,7 +4,9 @@ import math
 
 import numpy as np
 import pytest
+import scipy.spatial
 import scipy.stats
+from sklearn.decomposition import PCA
 from sklearn.neighbors import NearestNeighbors
 
 from closurecheck.core import se2
@@ -67,6 +69,60 @@ def test_retrieval_matches_brute_force_search(tree):
     ref_d, ref_i = _brute_reference(x, t, travel, 7, opts)
     np.testing.assert_array_equal(idx, ref_i)
     np.testing.assert_allclose(dist, ref_d, rtol=1e-12)
+
+
+def test_kd_tree_distances_are_scikit_learns_to_the_bit():
+    # The reference library: scikit-learn's KDTree (NearestNeighbors(algorithm="kd_tree")), whose
+    # distances the candidates used before and whose bits reach the ranking (descriptor_distance).
+    # scipy's kd-tree alone sums the squares in another order and differs in the last bits.
+    rng = np.random.default_rng(7)
+    for dims in (1, 5, 12, 30):
+        centres = rng.normal(size=(30, dims))
+        x = centres[rng.integers(0, 30, 500)] + 0.2 * rng.normal(size=(500, dims))
+        rows = rng.choice(500, 200, replace=False)
+        ref_d, ref_i = NearestNeighbors(algorithm="kd_tree").fit(x).kneighbors(x[rows], n_neighbors=9)
+        d, i = cand.nearest_exact(scipy.spatial.cKDTree(x), x, rows, 9)
+        np.testing.assert_array_equal(i, ref_i)
+        assert np.array_equal(d, ref_d)
+
+
+def test_nearest_exact_breaks_ties_by_index_and_widens_past_them():
+    # Points of an integer lattice: many neighbours at exactly the same distance, so the n-th
+    # distance often equals the last proposed one and the query must widen. Reference: an
+    # exhaustive search, sorted by distance then index.
+    g = np.arange(9.0)
+    x = np.stack(np.meshgrid(g, g, indexing="ij"), axis=-1).reshape(-1, 2)
+    full = np.sqrt(((x[:, None, :] - x[None, :, :]) ** 2).sum(-1))
+    tree = scipy.spatial.cKDTree(x)
+    rows = np.arange(len(x))
+    for n in (1, 2, 5, 9, 13, 40, len(x)):
+        d, i = cand.nearest_exact(tree, x, rows, n)
+        order = np.lexsort((np.broadcast_to(np.arange(len(x)), full.shape), full), axis=-1)[:, :n]
+        np.testing.assert_array_equal(i, order)
+        np.testing.assert_array_equal(d, np.take_along_axis(full, order, 1))
+
+
+def test_search_space_is_scikit_learns_pca_to_the_bit(loop):
+    # The reference library: PCA(svd_solver="full").fit_transform, which search_space follows step
+    # for step without importing scikit-learn.
+    _, _, data = loop
+    rng = np.random.default_rng(3)
+    for x, dims in ((data.descriptors.vectors, 12), (rng.normal(size=(300, 40)) @ rng.normal(size=(40, 40)), 5),
+                    (rng.normal(size=(50, 8)), 7)):
+        ours = cand.search_space(x, CandidateOptions(search_dims=dims))
+        ref = PCA(n_components=dims, svd_solver="full").fit_transform(x)
+        assert ours.shape == ref.shape and np.array_equal(ours, ref)
+
+
+def test_a_run_imports_neither_scikit_learn_nor_scipy_stats():
+    # Both took about 1.1 s of a run's start (docs/performance.md); the default run needs neither.
+    import subprocess
+    import sys
+
+    code = ("import sys, closurecheck.cli, closurecheck.pipeline, closurecheck.reporting.scoring\n"
+            "print(sorted(m for m in ('scipy.stats', 'sklearn') if m in sys.modules))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True, timeout=300)
+    assert out.stdout.strip() == "[]"
 
 
 def test_retrieval_pads_rows_without_enough_partners():
