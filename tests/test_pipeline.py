@@ -118,3 +118,22 @@ def test_odometry_noise_options_raise_the_calibrated_steps(run, tmp_path):
     steps = got.calibration.chain.steps
     assert np.all(steps[:, 0, 0] >= want - 1e-15) and np.all(steps[:, 1, 1] >= want - 1e-15)
     assert np.all(np.linalg.eigvalsh(steps) > 0)
+
+
+def test_descriptors_made_beside_the_calibration_are_describes_own(tmp_path):
+    # pipeline._AlongCalibration makes the keyframes' descriptors in a thread while the workers
+    # calibrate; they must be describe's arrays for the same scans, and an error in the thread must
+    # reach the caller rather than vanish with it.
+    from closurecheck import pipeline
+    from closurecheck.frontend.descriptors import describe
+    from closurecheck.io.inputs import DEMO_LOG
+
+    log, _ = pipeline.open_log(DEMO_LOG)
+    keyframes = np.arange(0, len(log), 7)
+    config = RunConfig()
+    got = pipeline._AlongCalibration(log, keyframes, config).descriptors()
+    ref = describe(log.ranges[keyframes], log.sensor, config.descriptors)
+    assert np.array_equal(got.vectors, ref.vectors)
+    assert np.array_equal(got.sectors, ref.sectors, equal_nan=True)
+    with pytest.raises(IndexError):
+        pipeline._AlongCalibration(log, np.array([len(log) + 5]), config).descriptors()

@@ -772,13 +772,15 @@ def proposal_noise(log_noise: OdometryNoise) -> OdometryNoise:
 
 def prepare(log, keyframe_ids, noise: OdometryNoise | None = None,
             descriptor_options: DescriptorOptions = DescriptorOptions(),
-            chain: OdometryChain | None = None) -> KeyframeData:
+            chain: OdometryChain | None = None, descriptors: ScanDescriptors | None = None) -> KeyframeData:
     """Describe the keyframes of a :class:`closurecheck.io.scanlog.ScanLog`.
 
     ``chain`` is the keyframes' odometry the proximity gate uses (the
     pipeline passes the calibrated one); without it, the log's odometry with
     ``noise``, by default :func:`proposal_noise` of the model in the log's
-    header.
+    header.  ``descriptors``: the keyframes' descriptors when already made
+    (``describe(log.ranges[keyframe_ids], log.sensor, descriptor_options)``;
+    the pipeline makes them while the odometry is calibrated).
     """
     ids = np.asarray(keyframe_ids, dtype=np.int64)
     if chain is None:
@@ -786,7 +788,7 @@ def prepare(log, keyframe_ids, noise: OdometryNoise | None = None,
             noise = proposal_noise(noise_from_header(log.header, log.source or None))
         chain = OdometryChain.build(log.odom, ids, noise)
     travel, _ = odometry_travel(log.odom)
-    desc = describe(log.ranges[ids], log.sensor, descriptor_options)
+    desc = describe(log.ranges[ids], log.sensor, descriptor_options) if descriptors is None else descriptors
     return KeyframeData(ids, np.asarray(log.t)[ids], travel[ids], desc, chain)
 
 
