@@ -137,3 +137,30 @@ def test_descriptors_made_beside_the_calibration_are_describes_own(tmp_path):
     assert np.array_equal(got.sectors, ref.sectors, equal_nan=True)
     with pytest.raises(IndexError):
         pipeline._AlongCalibration(log, np.array([len(log) + 5]), config).descriptors()
+
+
+def test_the_run_holds_blas_to_one_thread_and_gives_it_back(monkeypatch):
+    # A second BLAS thread waits for a core the run's other process holds (docs/architecture.md);
+    # run_log limits BLAS to one thread while it runs, and the caller's setting comes back after.
+    from threadpoolctl import threadpool_info, threadpool_limits
+
+    from closurecheck import pipeline
+    from closurecheck.io.inputs import DEMO_LOG
+
+    seen = []
+
+    class Stop(Exception):
+        pass
+
+    def spy(*args, **kwargs):
+        seen.extend(i["num_threads"] for i in threadpool_info() if i["user_api"] == "blas")
+        raise Stop
+
+    monkeypatch.setattr(pipeline, "select_keyframes", spy)
+    log, _ = pipeline.open_log(DEMO_LOG)
+    with threadpool_limits(limits=2, user_api="blas"):
+        with pytest.raises(Stop):
+            pipeline.run_log(log, RunConfig(jobs=1))
+        after = [i["num_threads"] for i in threadpool_info() if i["user_api"] == "blas"]
+    assert seen and set(seen) == {1}
+    assert set(after) == {2}

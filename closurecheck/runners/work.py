@@ -317,13 +317,16 @@ class Regions:
         return largest.pop() if largest else None
 
 
-def single_thread_blas():
-    """Context manager limiting BLAS/OpenMP pools to one thread (no-op without threadpoolctl)."""
+def single_thread_blas(blas_only: bool = False):
+    """Context manager limiting BLAS/OpenMP pools to one thread (no-op without threadpoolctl).
+
+    ``blas_only`` leaves OpenMP alone (the main process: the PCM pair test's threads, numba's own).
+    """
     try:
         from threadpoolctl import threadpool_limits
     except ImportError:  # pragma: no cover - threadpoolctl comes with scikit-learn
         return contextlib.nullcontext()
-    return threadpool_limits(limits=1)
+    return threadpool_limits(limits=1, user_api="blas" if blas_only else None)
 
 
 def batch_slices(n: int, workers: int, batch_pairs: int) -> list[slice]:
