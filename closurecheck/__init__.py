@@ -33,8 +33,8 @@ from ._version import __version__
 from .errors import InputError
 
 # Each public name and the module that defines it, imported on first use (PEP 562): the whole
-# package takes about 2 s to import (scipy.stats, scipy.optimize, scikit-learn), while a pool
-# worker needs only registration (about 0.5 s), and the pool's fork server imports this package
+# package takes about 1.1 s to import (scipy.optimize, scipy.sparse, numba and the kernels), while a
+# pool worker needs only registration (about 0.5 s), and the pool's fork server imports this package
 # before it can start one (runners/pool.py).
 _HOMES = {
     "run": ".pipeline",

@@ -167,8 +167,8 @@ def _run_config(args):
 def _cmd_run(args) -> int:
     from .runners.forkserver import start_early
 
-    # Before the pipeline's imports (about 2 s: scipy.stats, scipy.optimize, scikit-learn), so that
-    # the pool's fork server imports and loads the registration kernels on the other core meanwhile.
+    # Before the pipeline's imports (about 1.1 s: scipy.optimize, scipy.sparse, numba), so that the
+    # pool's fork server imports and loads the registration kernels on the other core meanwhile.
     start_early(args.jobs, args.dask)
     from .pipeline import run_paths
     from .reporting.terminal import Progress

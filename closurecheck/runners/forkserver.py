@@ -5,8 +5,8 @@ kernels (:mod:`closurecheck.runners._forkserver_child`) before it forks any
 worker, about 1-2.6 s on the 2-core machine of docs/performance.md.  This
 module needs only the standard library, so ``closurecheck run`` starts the
 fork server (:func:`start_early`) before importing the pipeline, whose own
-imports (scipy.stats, scipy.optimize, scikit-learn) then run on the other
-core at the same time.
+imports (scipy.optimize, scipy.sparse, numba; scipy.stats and scikit-learn
+before the eighth round) then run on the other core at the same time.
 """
 
 from __future__ import annotations
