@@ -395,3 +395,21 @@ def test_scan_cache_bounds_and_dropped_grids_come_back_the_same(case):
     # A fresh preparation of the scan gives the same grid as the rebuilt one.
     again = prepare_scan(log.points(ids[0]), options).grid
     assert all(a.tobytes() == b.tobytes() for a, b in zip(again.levels, first[ids[0]].levels))
+
+
+def test_scan_cache_keeps_a_leased_grid_until_the_batch_ends(case):
+    # A Dask worker runs batches in threads: another batch's fetch must not
+    # drop a grid a running batch may still search (it would be rebuilt and
+    # kept outside the grid tier); the grid goes when that batch ends.
+    log = case["log"]
+    cache = ScanCache(PointsTable.from_dict({i: log.points(i) for i in range(4)}), CONFIG.registration,
+                      max_scans=4, grid_scans=1)
+    with cache.lease([0]) as running:
+        _ = running[0].grid
+        with cache.lease([1]) as other:
+            _ = other[1].grid
+            assert "grid" in running[0]._lazy and list(cache.gridded) == [1]
+        assert "grid" in other[1]._lazy  # still in the grid tier
+        assert "grid" in running[0]._lazy
+    assert "grid" not in cache.prepared[0]._lazy and "grid" in cache.prepared[1]._lazy
+    assert list(cache.prepared) == [0, 1] and cache.grids_dropped == 1
