@@ -54,20 +54,26 @@ from ..registration.icp import RegistrationOptions, prepare_scan
 # models, kd-tree), 553 kB with its grid too; yard 91, 174 and 1,158 kB (an open yard's grids are
 # large; the largest, 1.55 MB).  Worst case per worker, every scan with its target side and the
 # grid tier full (sizes averaged over the 1,024 scans):
-#   warehouse 1,024 x 283 kB + 256 x 270 kB = 359 MB (was 256 x 553 kB = 142 MB: +217 MB),
-#   yard      1,024 x 174 kB + 256 x 984 kB = 430 MB (was 256 x 1,158 kB = 296 MB: +134 MB);
-# CACHE_SCANS = 1,280 would add 289 MB on the warehouse log, past the 250 MB a worker may add to a
-# 100,000-scan log's 2,967 MB peak (2 workers, 4 GB; 1,024 adds 2 x 217 MB: 3.4 GB).  Scans prepared
-# by the candidate stage (2 workers, after the calibration's 1,668-1,669 in every case; the grids
-# built in brackets; the counts vary by about 1% from run to run with the batches' order):
-#   warehouse  256/256: 1,706 (1,169)   768/256: 1,302 (1,146)   1,024/256: 1,001 (1,157)
-#              unbounded/256: 877 (1,151)   unbounded/unbounded: 857 (1,128)
-#   yard       256/256: 1,676 (1,019)   1,024/256: 952 (1,016)
-# At about 2 ms a scan and 0.26 ms a grid, 1,024/256 saves about 1.4 s of CPU on the warehouse log
-# and grids cost what they did: a grid is searched by the pairs of one scan, which lie close
-# together in locality order, so the grid tier rarely drops one that is needed again.
+#   warehouse 1,024 x 283 kB + 128 x 270 kB = 325 MB (was 256 x 553 kB = 142 MB: +183 MB),
+#   yard      1,024 x 174 kB + 128 x 984 kB = 304 MB (was 256 x 1,158 kB = 296 MB: +8 MB);
+# a GRID_SCANS of 256 would add 217 and 134 MB; a CACHE_SCANS of 1,280, 255 MB on the warehouse
+# log, more than the 250 MB a worker may add to a 100,000-scan log's 2,967 MB peak (2 workers,
+# 4 GB; these bounds add 2 x 183 MB: 3.3 GB).  A worker's peak resident memory over a whole run
+# (2 workers): warehouse 244-298 MB before, 418-479 now (443-517 with 256 grids); yard 356-406
+# before, 406-433 now (505-518 with 256 grids).  Scans prepared by the candidate stage, after the
+# calibration's 1,668-1,669 (2 workers; grids built in brackets; counts vary by a few percent
+# from run to run with the order in which the workers finish batches), as CACHE_SCANS/GRID_SCANS:
+#   warehouse  256/256 (before): 1,692-1,740 (1,146-1,169)   768/256: 1,302 (1,146)
+#              1,024/256: 1,001-1,085 (1,146-1,169)   1,024/128: 1,025-1,044 (1,209-1,253)
+#              1,024/64: 1,027 (1,362)   unbounded/256: 877 (1,151)   unbounded: 857 (1,128)
+#   yard       256/256 (before): 1,672-1,677 (1,019-1,031)   1,024/256: 952-976 (1,016-1,019)
+#              1,024/128: 903-1,030 (1,033-1,043)
+# A scan takes 2.2-2.5 ms of CPU to prepare, a grid 0.4 ms (warehouse) to 1.5 ms (yard): 1,024
+# scans save 650-770 preparations (1.5-1.8 s of CPU) on these logs, and 128 grids instead of 256
+# cost 15-105 more grids (under 0.05 s) for 35-125 MB less.  Few grids are rebuilt because a scan's
+# pairs, the searches of its grid, lie close together in locality order.
 CACHE_SCANS = 1024
-GRID_SCANS = 256
+GRID_SCANS = 128
 
 # Batches per worker: enough that a worker finishing early finds more work
 # while the slowest batch runs, few enough that per-batch overhead is small.
@@ -117,8 +123,8 @@ class ScanCache:
     of them keep their coarse grid (``PreparedScan.grid``, the largest part
     of a prepared scan once built).  A scan that falls out of the grid tier
     keeps everything else; its grid is dropped and, should a coarse search
-    need it again, rebuilt from the same points with the same bits (about
-    0.26 ms, against about 2 ms to prepare the whole scan again).  Neither
+    need it again, rebuilt from the same points with the same bits (0.4 to
+    1.5 ms, against 2.2-2.5 ms to prepare the whole scan again).  Neither
     bound drops a scan or a grid of the batch being fetched: a batch needs
     all its scans at once.
 
