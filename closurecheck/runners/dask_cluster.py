@@ -46,7 +46,8 @@ MISSING_EXTRA = "running on Dask needs the optional extra: pip install 'closurec
 CONNECT_TIMEOUT_S = 5.0
 
 # Runs whose prepared scans a worker keeps at once (several clients may
-# share one cluster); each cache is bounded by CACHE_SCANS scans.
+# share one cluster); each cache is bounded by CACHE_SCANS scans, GRID_SCANS of them with
+# their coarse grids (work.py gives the memory this takes).
 MAX_RUNS_PER_WORKER = 4
 
 # Worker-side state (lives in the Dask worker processes).

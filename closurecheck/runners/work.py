@@ -11,7 +11,8 @@ Scans are sent to each worker once, packed into one array (:class:`PointsTable`)
 the pool's initializer receives it, Dask scatters it to every worker.  Each
 worker prepares a scan (kd-tree, line fits, coarse grid) the first time one
 of its batches needs it and keeps the most recently used ones for later
-batches (:class:`ScanCache`, bounded so memory does not grow with the log).
+batches (:class:`ScanCache`, bounded so memory does not grow with the log:
+many scans, the fewer most recent of them with their coarse grids).
 The runners register the pairs in an order that keeps pairs sharing scans
 together (:func:`locality_order`), so the cache rarely prepares a scan twice,
 and hand the results back in the input order.
@@ -46,12 +47,33 @@ from ..errors import InputError
 from ..registration.batch import MIN_POINTS, register_batch
 from ..registration.icp import RegistrationOptions, prepare_scan
 
-# Prepared scans kept per worker.  A prepared scan with its coarse grid takes
-# about 0.5 MB, so the cache holds about 130 MB per worker at most; the reuse
-# of a scan by pairs that are far apart in the candidate order is the only
-# thing lost by a bound, and preparing a scan costs a few ms against tens of
-# ms for registering one pair.
-CACHE_SCANS = 256
+# Prepared scans kept per worker (CACHE_SCANS), and how many of the most recently used of them
+# keep their coarse grid (GRID_SCANS); the others' grids are dropped and rebuilt, with the same
+# bits, if a coarse search needs them again.  Resident memory per scan, 1,024 scans of each
+# 5,000-scan log prepared in one process: warehouse 145 kB bare, 283 kB with its target side (line
+# models, kd-tree), 553 kB with its grid too; yard 91, 174 and 1,158 kB (an open yard's grids are
+# large; the largest, 1.55 MB).  Worst case per worker, every scan with its target side and the
+# grid tier full (sizes averaged over the 1,024 scans):
+#   warehouse 1,024 x 283 kB + 128 x 270 kB = 325 MB (was 256 x 553 kB = 142 MB: +183 MB),
+#   yard      1,024 x 174 kB + 128 x 984 kB = 304 MB (was 256 x 1,158 kB = 296 MB: +8 MB);
+# a GRID_SCANS of 256 would add 217 and 134 MB; a CACHE_SCANS of 1,280, 255 MB on the warehouse
+# log, more than the 250 MB a worker may add to a 100,000-scan log's 2,967 MB peak (2 workers,
+# 4 GB; these bounds add 2 x 183 MB: 3.3 GB).  A worker's peak resident memory over a whole run
+# (2 workers): warehouse 244-298 MB before, 418-479 now (443-517 with 256 grids); yard 356-406
+# before, 406-433 now (505-518 with 256 grids).  Scans prepared by the candidate stage, after the
+# calibration's 1,668-1,669 (2 workers; grids built in brackets; counts vary by a few percent
+# from run to run with the order in which the workers finish batches), as CACHE_SCANS/GRID_SCANS:
+#   warehouse  256/256 (before): 1,692-1,740 (1,146-1,169)   768/256: 1,302 (1,146)
+#              1,024/256: 1,001-1,085 (1,146-1,169)   1,024/128: 1,025-1,044 (1,209-1,253)
+#              1,024/64: 1,027 (1,362)   unbounded/256: 877 (1,151)   unbounded: 857 (1,128)
+#   yard       256/256 (before): 1,672-1,677 (1,019-1,031)   1,024/256: 952-976 (1,016-1,019)
+#              1,024/128: 903-1,030 (1,033-1,043)
+# A scan takes 2.2-2.5 ms of CPU to prepare, a grid 0.4 ms (warehouse) to 1.5 ms (yard): 1,024
+# scans save 650-770 preparations (1.5-1.8 s of CPU) on these logs, and 128 grids instead of 256
+# cost 15-105 more grids (under 0.05 s) for 35-125 MB less.  Few grids are rebuilt because a scan's
+# pairs, the searches of its grid, lie close together in locality order.
+CACHE_SCANS = 1024
+GRID_SCANS = 128
 
 # Batches per worker: enough that a worker finishing early finds more work
 # while the slowest batch runs, few enough that per-batch overhead is small.
@@ -96,17 +118,60 @@ def as_table(points) -> PointsTable:
 class ScanCache:
     """Prepared scans of one process, built on first use, least recently used dropped.
 
+    Two bounds, both by recency of use: the cache keeps the ``max_scans``
+    most recently used scans, and only the ``grid_scans`` most recently used
+    of them keep their coarse grid (``PreparedScan.grid``, the largest part
+    of a prepared scan once built).  A scan that falls out of the grid tier
+    keeps everything else; its grid is dropped and, should a coarse search
+    need it again, rebuilt from the same points with the same bits (0.4 to
+    1.5 ms, against 2.2-2.5 ms to prepare the whole scan again).  Neither
+    bound drops a scan or a grid of the batch being fetched: a batch needs
+    all its scans at once.
+
     A scan with fewer than MIN_POINTS points, or one that cannot be prepared
     (no straight structure to register against), is None: its pairs get no
     registration result (verdict ``no_points``) instead of failing the log.
+
+    Parameters
+    ----------
+    table : the scans' points.
+    options : the preparation settings.
+    max_scans : scans kept (at least 1).
+    grid_scans : of those, the most recently used ones that keep their grid
+        (at least 1, at most ``max_scans``).
+
+    Examples
+    --------
+    >>> import closurecheck
+    >>> from closurecheck.registration.icp import RegistrationOptions
+    >>> log = closurecheck.simulate_log("ring", seed=4, scans=40)
+    >>> cache = ScanCache(PointsTable.from_dict({i: log.points(i) for i in range(4)}), RegistrationOptions(),
+    ...                   max_scans=3, grid_scans=1)
+    >>> with cache.lease([0]) as got:
+    ...     first = got[0].grid.fine.copy()
+    >>> with cache.lease([1]) as got:
+    ...     _ = got[1].grid
+    >>> list(cache.prepared), "grid" in cache.prepared[0]._lazy, cache.grids_dropped
+    ([0, 1], False, 1)
+    >>> with cache.lease([0]) as got:
+    ...     bool((got[0].grid.fine == first).all()), cache.builds
+    (True, 2)
     """
 
-    def __init__(self, table: PointsTable, options: RegistrationOptions, max_scans: int = CACHE_SCANS):
+    def __init__(self, table: PointsTable, options: RegistrationOptions, max_scans: int = CACHE_SCANS,
+                 grid_scans: int = GRID_SCANS):
         self.table = table
         self.options = options
         self.max_scans = max(1, int(max_scans))
+        self.grid_scans = min(self.max_scans, max(1, int(grid_scans)))
         self.prepared: OrderedDict = OrderedDict()
+        # The ids of the grid tier (prepared scans only), least recently used first.
+        self.gridded: OrderedDict = OrderedDict()
         self.builds = 0
+        self.grids_dropped = 0
+        # Batches running now, by scan id: a grid is not dropped under a batch that may search it
+        # (it would be rebuilt and kept outside the tier); it is dropped when the last one ends.
+        self._leased: dict = {}
         # A Dask worker may run several batches at once in threads.
         self._lock = threading.Lock()
 
@@ -125,10 +190,36 @@ class ScanCache:
         except InputError:
             return None
 
+    def _drop_grid(self, scan) -> None:
+        if scan is not None and scan._lazy.pop("grid", None) is not None:
+            self.grids_dropped += 1
+
     def get(self, ids) -> dict:
-        """PreparedScan by id for the given ids (those that could be prepared)."""
+        """PreparedScan by id for the given ids (those that could be prepared).
+
+        Their grids may be dropped by any later fetch (and rebuilt on use);
+        :meth:`lease` keeps them while a batch runs in another thread.
+        """
         with self._lock:
             return self._get(ids)
+
+    @contextlib.contextmanager
+    def lease(self, ids):
+        """``with cache.lease(ids) as prepared``: :meth:`get`, the grids kept until the block ends."""
+        with self._lock:
+            got = self._get(ids)
+            for i in got:
+                self._leased[i] = self._leased.get(i, 0) + 1
+        try:
+            yield got
+        finally:
+            with self._lock:
+                for i, scan in got.items():
+                    left = self._leased.pop(i) - 1
+                    if left:
+                        self._leased[i] = left
+                    elif i not in self.gridded:
+                        self._drop_grid(scan)
 
     def _get(self, ids) -> dict:
         out = {}
@@ -141,9 +232,17 @@ class ScanCache:
                 self.prepared[i] = p
                 # A batch needs all its scans at once, so the bound never drops one of them.
                 while len(self.prepared) > max(self.max_scans, len(out) + 1):
-                    self.prepared.popitem(last=False)
+                    gone, _ = self.prepared.popitem(last=False)
+                    self.gridded.pop(gone, None)
             if p is not None:
                 out[i] = p
+                self.gridded[i] = None
+                self.gridded.move_to_end(i)
+                # Nor does the grid bound drop the grid of one of them.
+                while len(self.gridded) > max(self.grid_scans, len(out)):
+                    gone, _ = self.gridded.popitem(last=False)
+                    if gone not in self._leased:
+                        self._drop_grid(self.prepared.get(gone))
         return out
 
 
@@ -156,8 +255,8 @@ def run_batch(cache: ScanCache, src, dst, seeds, options: RegistrationOptions | 
     one cache, without and with the coarse stage.
     """
     options = cache.options if options is None else options
-    prepared = cache.get(np.unique(np.concatenate([np.asarray(src), np.asarray(dst)])))
-    return register_batch(prepared, src, dst, seeds, options)
+    with cache.lease(np.unique(np.concatenate([np.asarray(src), np.asarray(dst)]))) as prepared:
+        return register_batch(prepared, src, dst, seeds, options)
 
 
 def locality_order(src, dst) -> np.ndarray:

@@ -357,3 +357,61 @@ def test_regions_hand_out_every_batch_once_and_keep_each_workers_run_contiguous(
     regions = Regions(10, 2)
     assert [regions.next(0) for _ in range(5)] == [0, 1, 2, 3, 4]
     assert regions.next(0) == 9 and regions.next(1) == 5 and regions.next(0) == 8
+
+
+def test_scan_cache_bounds_and_dropped_grids_come_back_the_same(case):
+    # Batches of overlapping scans, each target's grid searched as the coarse
+    # stage would: at every step the cache holds at most max_scans scans
+    # (the current batch excepted), only the grid_scans most recently used
+    # hold a grid, and a scan whose grid was dropped gets the same grid back.
+    log = case["log"]
+    ids = list(range(0, 60, 3))
+    options = CONFIG.registration
+    cache = ScanCache(PointsTable.from_dict({i: log.points(i) for i in ids}), options, max_scans=7, grid_scans=3)
+    first, owner, regrown = {}, {}, 0
+    rng = np.random.default_rng(5)
+    batches = [rng.choice(ids, size=rng.integers(1, 5), replace=False).tolist() for _ in range(60)]
+    batches.append(ids[:9])  # larger than both bounds: none of its scans or grids is dropped while it runs
+    used = []
+    for batch in batches:
+        with cache.lease(batch) as got:
+            assert set(got) == set(batch)
+            for i, scan in got.items():
+                grid = scan.grid
+                if i in first:
+                    # The same prepared scan with a new grid: dropped by the grid tier alone.
+                    regrown += owner[i] is scan and grid is not first[i]
+                    assert grid.origin.tobytes() == first[i].origin.tobytes()
+                    assert len(grid.levels) == len(first[i].levels)
+                    assert all(a.dtype == b.dtype and a.tobytes() == b.tobytes()
+                               for a, b in zip(grid.levels, first[i].levels))
+                else:
+                    first[i], owner[i] = grid, scan
+            assert all("grid" in scan._lazy for scan in got.values())
+        used = [i for i in used if i not in batch] + list(batch)
+        kept = [i for i, scan in cache.prepared.items() if scan is not None]
+        with_grid = [i for i in kept if "grid" in cache.prepared[i]._lazy]
+        assert kept == used[-len(kept):] and len(kept) == min(len(used), max(7, len(batch)))
+        assert with_grid == used[-len(with_grid):] and len(with_grid) == min(len(used), max(3, len(batch)))
+    assert regrown > 0 and cache.grids_dropped > 0 and cache.builds > len(ids)
+    # A fresh preparation of the scan gives the same grid as the rebuilt one.
+    again = prepare_scan(log.points(ids[0]), options).grid
+    assert all(a.tobytes() == b.tobytes() for a, b in zip(again.levels, first[ids[0]].levels))
+
+
+def test_scan_cache_keeps_a_leased_grid_until_the_batch_ends(case):
+    # A Dask worker runs batches in threads: another batch's fetch must not
+    # drop a grid a running batch may still search (it would be rebuilt and
+    # kept outside the grid tier); the grid goes when that batch ends.
+    log = case["log"]
+    cache = ScanCache(PointsTable.from_dict({i: log.points(i) for i in range(4)}), CONFIG.registration,
+                      max_scans=4, grid_scans=1)
+    with cache.lease([0]) as running:
+        _ = running[0].grid
+        with cache.lease([1]) as other:
+            _ = other[1].grid
+            assert "grid" in running[0]._lazy and list(cache.gridded) == [1]
+        assert "grid" in other[1]._lazy  # still in the grid tier
+        assert "grid" in running[0]._lazy
+    assert "grid" not in cache.prepared[0]._lazy and "grid" in cache.prepared[1]._lazy
+    assert list(cache.prepared) == [0, 1] and cache.grids_dropped == 1
