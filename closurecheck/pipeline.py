@@ -142,8 +142,10 @@ class _AlongCalibration:
     releasing the interpreter lock) and numba's first call of the process
     (verification/warm.py, about 0.6 s, until then paid at the start of the
     verification).  Made here, they share the cores with the two workers for
-    a second instead of running alone later with one core idle.  The
-    descriptors are the same arrays (``describe`` of the same scans).
+    a second instead of running alone later with one core idle.  So does
+    the import of scipy.optimize (the calibration's noise fit, 0.1-0.35 s),
+    which the pipeline's own import no longer pays.  The descriptors are the
+    same arrays (``describe`` of the same scans).
     """
 
     def __init__(self, log: ScanLog, keyframes, config: RunConfig):
@@ -156,6 +158,9 @@ class _AlongCalibration:
         try:
             self._out["descriptors"] = describe(log.ranges[keyframes], log.sensor, config.descriptors)
             warm_compiler()
+            # The calibration's noise fit (scipy.optimize.nnls) imports it once the steps are
+            # registered; imported here, the main process does not wait for it then.
+            import scipy.optimize  # noqa: F401
         except BaseException as exc:  # noqa: BLE001 - raised again in the main thread by descriptors()
             self._out["error"] = exc
 
