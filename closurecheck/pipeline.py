@@ -75,6 +75,9 @@ def _one_blas_thread(fn):
     on one, and verify() on the 5,000-scan warehouse log 1.71-1.86 s
     against 1.23-1.29 s, the same verdicts and covariances (md5).  The
     registration workers already run on one thread each (runners/work.py).
+    On one thread the sums no longer depend on the machine's core count; the
+    last bits of large ones move (the 100,000-scan log's calibrated chain by
+    up to 7e-13 m, docs/performance.md, eighth round).
     """
     @functools.wraps(fn)
     def wrapper(*args, **kwargs):
@@ -157,12 +160,16 @@ class _AlongCalibration:
     def _work(self, log: ScanLog, keyframes, config: RunConfig) -> None:
         try:
             self._out["descriptors"] = describe(log.ranges[keyframes], log.sensor, config.descriptors)
+        except BaseException as exc:  # noqa: BLE001 - raised again in the main thread by descriptors()
+            self._out["error"] = exc
+            return
+        try:
             warm_compiler()
             # The calibration's noise fit (scipy.optimize.nnls) imports it once the steps are
             # registered; imported here, the main process does not wait for it then.
             import scipy.optimize  # noqa: F401
-        except BaseException as exc:  # noqa: BLE001 - raised again in the main thread by descriptors()
-            self._out["error"] = exc
+        except Exception:  # noqa: BLE001 - only a head start: the verification meets the same error itself
+            pass
 
     def descriptors(self):
         """The keyframes' descriptors (closurecheck.frontend.descriptors.ScanDescriptors), once made."""

@@ -357,10 +357,13 @@ def nearest_exact(tree, vectors, rows, n: int):
     while len(todo):
         ck_d, ck_i = tree.query(vectors[rows[todo]], k=np.arange(1, asked + 1))
         ck_i = np.asarray(ck_i, dtype=np.int64)
-        diff = vectors[ck_i] - vectors[rows[todo]][:, None, :]
+        # One coordinate at a time: the working memory stays that of the (rows, asked) distances
+        # (a row short of partners outside the exclusion gap may ask for every point).
+        query = vectors[rows[todo]]
         sq = np.zeros(ck_i.shape)
         for j in range(vectors.shape[1]):
-            sq += diff[:, :, j] * diff[:, :, j]
+            t = vectors[ck_i, j] - query[:, j, None]
+            sq += t * t
         exact = np.sqrt(sq)
         order = np.lexsort((ck_i, exact), axis=-1)[:, :n]
         got_d = np.take_along_axis(exact, order, 1)
