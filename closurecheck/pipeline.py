@@ -25,13 +25,13 @@ from .errors import InputError
 from .frontend.candidates import (
     SOURCE_REVIEW,
     CandidateSet,
-    describe,
     external_candidates,
     merge_candidates,
     prepare,
     proposal_noise,
     propose_for,
 )
+from .frontend.descriptors import describe
 from .frontend.keyframes import merge_keyframes, select_keyframes
 from .io.decisions_csv import ReviewDecisions, decision_rows, read_decisions
 from .io.graph_file import PoseGraph

@@ -362,6 +362,23 @@ class PreparedScan:
             self._lazy["grid"] = got
         return got
 
+    def drop_grid(self) -> bool:
+        """Forget the coarse grid (the largest part once built); True if there was one.
+
+        The next use of :attr:`grid` builds it again, with the same bits
+        (runners.work.ScanCache keeps grids for its most recent scans only).
+
+        Examples
+        --------
+        >>> from closurecheck.registration.icp import RegistrationOptions, prepare_scan
+        >>> from closurecheck.registration.warm import room_scan
+        >>> scan = prepare_scan(room_scan((0.0, 0.0, 0.0)), RegistrationOptions())
+        >>> _ = scan.grid
+        >>> scan.drop_grid(), scan.drop_grid()
+        (True, False)
+        """
+        return self._lazy.pop("grid", None) is not None
+
 
 @dataclass(frozen=True, eq=False)
 class Registration:

@@ -191,7 +191,7 @@ class ScanCache:
             return None
 
     def _drop_grid(self, scan) -> None:
-        if scan is not None and scan._lazy.pop("grid", None) is not None:
+        if scan is not None and scan.drop_grid():
             self.grids_dropped += 1
 
     def get(self, ids) -> dict:
@@ -417,14 +417,12 @@ class Regions:
 
 
 def single_thread_blas(blas_only: bool = False):
-    """Context manager limiting BLAS/OpenMP pools to one thread (no-op without threadpoolctl).
+    """Context manager limiting BLAS/OpenMP pools to one thread.
 
     ``blas_only`` leaves OpenMP alone (the main process: the PCM pair test's threads, numba's own).
     """
-    try:
-        from threadpoolctl import threadpool_limits
-    except ImportError:  # pragma: no cover - threadpoolctl comes with scikit-learn
-        return contextlib.nullcontext()
+    from threadpoolctl import threadpool_limits
+
     return threadpool_limits(limits=1, user_api="blas" if blas_only else None)
 
 
