@@ -54,6 +54,7 @@ from scipy.spatial import cKDTree
 from ..core import se2
 from ..core.kernels import KERNEL_CHOICES, kernel_from_name
 from ..core.options import fail, options, setting
+from ..core.stats import chi2_threshold
 from ..errors import InputError
 from . import _kernels
 from . import correlative as _coarse
@@ -152,7 +153,12 @@ class RegistrationOptions:
             with a fit score below 0.8 of a converged one's stops as a
             rival).
         hypothesis_separation_m, hypothesis_separation_rad: two poses closer
-            than both count as the same hypothesis.
+            than both count as the same hypothesis, unless the winner's
+            covariance rules the other out (``rival_probability``).
+        rival_probability: a converged hypothesis whose offset from the
+            winner lies beyond this chi-square(3) bound of the winner's
+            covariance is a distinct alternative even inside the separation:
+            the covariance claims the registration could not have ended there.
     """
 
     line_neighbours: int = setting(16, at_least=3)
@@ -194,6 +200,7 @@ class RegistrationOptions:
     hypotheses: int = setting(3, at_least=1)
     hypothesis_separation_m: float = setting(0.5, above=0.0)
     hypothesis_separation_rad: float = setting(0.15, above=0.0)
+    rival_probability: float = setting(0.999, above=0.0, below=1.0)
 
     def __post_init__(self):
         if self.min_line_points > self.line_neighbours:
@@ -1155,11 +1162,13 @@ def _same(a, b, opt) -> bool:
     return np.hypot(a[0] - b[0], a[1] - b[1]) < opt.hypothesis_separation_m and dt < opt.hypothesis_separation_rad
 
 
-def _finish(src: PreparedScan, tgt: PreparedScan, sol: _Solution, opt: RegistrationOptions, **extra) -> Registration:
+def _finish(src: PreparedScan, tgt: PreparedScan, sol: _Solution, opt: RegistrationOptions, ranking,
+            **extra) -> Registration:
+    """The Registration of solution ``sol``; ``ranking(covariance)`` gives its fit-score figures (_ranking)."""
     pr = sol.points
     n = len(sol.r) if pr is None else len(sol.r) + len(pr.src)        # matches
     if n < 3:
-        return _no_overlap(src, sol, opt, **extra)
+        return _no_overlap(src, sol, opt, ranking, **extra)
     om = sol.w / sol.v
     r_all, om_all, jac_all, v_all = sol.r, om, sol.jac, sol.v
     if pr is not None:
@@ -1193,11 +1202,11 @@ def _finish(src: PreparedScan, tgt: PreparedScan, sol: _Solution, opt: Registrat
         delta=delta, covariance=cov, rmse=rmse, overlap=n / len(src.points), converged=sol.converged,
         iterations=sol.iterations, inlier_fraction=float(inl.mean()), correspondences=n,
         sigma_m=est.sigma_m, eigenvalues=evals, weakest_direction=weak, degeneracy=est.degeneracy,
-        degenerate=est.degenerate, **extra,
+        degenerate=est.degenerate, **ranking(cov), **extra,
     )
 
 
-def _no_overlap(src: PreparedScan, sol: _Solution, opt: RegistrationOptions, **extra) -> Registration:
+def _no_overlap(src: PreparedScan, sol: _Solution, opt: RegistrationOptions, ranking, **extra) -> Registration:
     """Result for a start from which fewer than 3 correspondences were found.
 
     Not an input error: two valid scans simply do not overlap there.  The
@@ -1213,7 +1222,7 @@ def _no_overlap(src: PreparedScan, sol: _Solution, opt: RegistrationOptions, **e
     return Registration(
         delta=delta, covariance=cov, rmse=float("nan"), overlap=len(sol.r) / len(src.points), converged=False,
         iterations=sol.iterations, inlier_fraction=0.0, correspondences=len(sol.r), sigma_m=float("nan"),
-        eigenvalues=evals, weakest_direction=weak, degeneracy=0.0, degenerate=True, **extra,
+        eigenvalues=evals, weakest_direction=weak, degeneracy=0.0, degenerate=True, **ranking(cov), **extra,
     )
 
 
@@ -1313,16 +1322,42 @@ def _register_prepared(source: PreparedScan, target: PreparedScan, seeds, option
             fits[k] = _fit_score(source, target, sol.x, options)
         sols.append(sol)
     best = int(np.argmax(fits))
+    return _finish(source, target, sols[best], options, lambda cov: _ranking(sols, fits, best, cov, options),
+                   coarse_ran=bool(options.coarse), coarse_score=coarse_best, coarse_second_score=coarse_second)
+
+
+def _ranking(sols: list, fits, best: int, covariance, options: RegistrationOptions) -> dict:
+    """The fit-score figures of a Registration: the winner's, its best distinct rival's, their gap and ratio.
+
+    A rival is distinct when it lies outside the separation box (_same) or, given the winner's
+    ``covariance`` (3, 3), when it converged outside that covariance's chi-square bound at
+    ``rival_probability``: a covariance of a few millimetres along an aisle is a claim that a
+    second alignment 0.3 m along it, fitting as well, does not exist.
+    """
     second = float("nan")
     if len(sols) > 1:
-        rivals = [fits[k] for k in range(len(sols)) if k != best and not _same(sols[k].x, sols[best].x, options)]
-        second = max(rivals) if rivals else 0.0
+        x_best = sols[best].x
+        gate = chi2_threshold(options.rival_probability) if covariance is not None else np.inf
+        second = 0.0
+        for k in range(len(sols)):
+            if k == best or fits[k] <= second:
+                continue
+            if not _same(sols[k].x, x_best, options) or (sols[k].converged and _outside(sols[k].x, x_best,
+                                                                                        covariance, gate)):
+                second = fits[k]
     fit = float(fits[best])
     gap = fit - second if np.isfinite(second) else float("nan")
     amb = (second / fit if fit > 0 else 1.0) if np.isfinite(second) else float("nan")
-    return _finish(source, target, sols[best], options, fit_score=fit, second_fit_score=second, score_gap=gap,
-                   ambiguity=amb, coarse_ran=bool(options.coarse), coarse_score=coarse_best,
-                   coarse_second_score=coarse_second, hypotheses=len(sols))
+    return dict(fit_score=fit, second_fit_score=second, score_gap=gap, ambiguity=amb, hypotheses=len(sols))
+
+
+def _outside(x, x_best, covariance, gate: float) -> bool:
+    """Squared Mahalanobis distance of pose x from x_best under ``covariance`` exceeds ``gate``."""
+    if not np.isfinite(gate):
+        return False
+    d = np.asarray(x, dtype=float) - x_best
+    d[2] = se2.wrap(d[2])
+    return float(d @ np.linalg.solve(covariance, d)) > gate
 
 
 # Options records built from keyword overrides, by (record, overrides with their types): checking
