@@ -416,7 +416,10 @@ class Registration:
         distance to the nearest target point; used to rank hypotheses.
     second_fit_score : fit score of the best distinct competing hypothesis
         (0 when every hypothesis converged to the winner; NaN when only one
-        hypothesis was tried).
+        hypothesis was tried).  Distinct: outside the separation box
+        (``hypothesis_separation_m``, ``hypothesis_separation_rad``), or
+        converged outside the chi-square bound of ``covariance`` at
+        ``rival_probability``.
     score_gap : ``fit_score - second_fit_score`` (NaN when only one hypothesis).
     ambiguity : ``second_fit_score / fit_score`` in [0, 1]; near 1 means a
         look-alike alternative fits about as well (NaN when only one hypothesis).
@@ -1329,15 +1332,15 @@ def _register_prepared(source: PreparedScan, target: PreparedScan, seeds, option
 def _ranking(sols: list, fits, best: int, covariance, options: RegistrationOptions) -> dict:
     """The fit-score figures of a Registration: the winner's, its best distinct rival's, their gap and ratio.
 
-    A rival is distinct when it lies outside the separation box (_same) or, given the winner's
-    ``covariance`` (3, 3), when it converged outside that covariance's chi-square bound at
-    ``rival_probability``: a covariance of a few millimetres along an aisle is a claim that a
-    second alignment 0.3 m along it, fitting as well, does not exist.
+    A rival is distinct when it lies outside the separation box (_same) or when it converged
+    outside the chi-square bound at ``rival_probability`` of the winner's ``covariance`` (3, 3):
+    a covariance of a few millimetres along an aisle is a claim that a second alignment 0.3 m
+    along it, fitting as well, does not exist.
     """
     second = float("nan")
     if len(sols) > 1:
         x_best = sols[best].x
-        gate = chi2_threshold(options.rival_probability) if covariance is not None else np.inf
+        gate = chi2_threshold(options.rival_probability)
         second = 0.0
         for k in range(len(sols)):
             if k == best or fits[k] <= second:
@@ -1353,8 +1356,6 @@ def _ranking(sols: list, fits, best: int, covariance, options: RegistrationOptio
 
 def _outside(x, x_best, covariance, gate: float) -> bool:
     """Squared Mahalanobis distance of pose x from x_best under ``covariance`` exceeds ``gate``."""
-    if not np.isfinite(gate):
-        return False
     d = np.asarray(x, dtype=float) - x_best
     d[2] = se2.wrap(d[2])
     return float(d @ np.linalg.solve(covariance, d)) > gate
