@@ -73,6 +73,7 @@ BAD = [
     ("[candidates]\nodometry_revisit_first = \"yes\"", "candidates.odometry_revisit_first: must be true or false"),
     ("[registration]\nmin_line_points = 40", "min_line_points: must not exceed line_neighbours"),
     ("[registration]\npoint_features = 2", "registration.point_features: must be true or false"),
+    ("[registration]\nrival_probability = 1.5", "registration.rival_probability: must be < 1"),
     ("verify = 3", "verify: must be a table"),
     ("[review]\ndecisions = [[1, 2, \"maybe\"]]",
      "review.decisions: row 1: column \"decision\": must be accept or reject"),
