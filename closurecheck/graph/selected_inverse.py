@@ -6,12 +6,11 @@ blocks of arbitrary node pairs.  Solving for whole block columns costs O(N)
 per needed node, so O(N^2) when most nodes are needed.  Here instead:
 
 1. the nodes are ordered by nested dissection (George, "Nested dissection of
-   a regular finite element mesh", SIAM J. Numer. Anal. 10(2), 1973; the
-   separators are middle levels of a breadth-first level structure from a
-   pseudo-peripheral node, as in George and Liu, "Computer Solution of Large
-   Sparse Positive Definite Systems", 1981).  Pose graphs are an odometry
-   chain plus closures between nearby places, so separators stay small and
-   the elimination tree stays shallow;
+   a regular finite element mesh", SIAM J. Numer. Anal. 10(2), 1973), the
+   separators found by METIS's multilevel scheme
+   (:func:`nested_dissection_order`).  Pose graphs are an odometry chain
+   plus closures between nearby places, so separators stay small and the
+   elimination tree stays shallow;
 2. a block LDL^T factorisation ``H = L D L^T`` (L unit lower block
    triangular, D block diagonal) runs on the symbolic pattern of L, stored
    column by column without padding, in one compiled right-looking loop;
@@ -41,7 +40,8 @@ blocks and 39.8 M path blocks (9.1 GB of the verify() process) and took
 451.5 s for one call; stored unpadded, 2.3 M and 26.3 M (1.9 GB) and 30 s;
 with the depth-first walk 2.3 M factor blocks, 0.71 M ancestor blocks and
 the kept columns, freed after their last pair (the call's process at
-0.80 GB instead of 2.38 GB), in 29 s.  Depth
+0.80 GB instead of 2.38 GB), in 29 s (all with the former level-structure
+ordering; with METIS's: depth 627 and 1.44 M factor blocks).  Depth
 and fronts grow slowly for the locally
 connected graphs of a mapping run (measured on the graphs of
 benchmarks/verification_scaling.py: depth 29 at 1,667 nodes, 64 at 6,667).
@@ -57,14 +57,10 @@ from __future__ import annotations
 
 import numpy as np
 import scipy.sparse as sp
-from scipy.sparse import csgraph
 
 from ._inverse_kernels import block_ldl, selected_path_products
-
-# Subgraphs of at most this many nodes are not dissected further (their
-# elimination-tree paths are at most this long).
-_LEAF_NODES = 16
-
+from .ordering import nested_dissection_order
+from .ordering import node_graph as _node_graph
 
 def _find_slots(colptr, rows, row, col):
     """Slots of the blocks (row, col) of the ragged pattern (positions, row > col); -1 where absent."""
@@ -76,89 +72,6 @@ def _find_slots(colptr, rows, row, col):
     at_c = np.minimum(at, max(len(keys) - 1, 0))
     found = (at < len(keys)) & (keys[at_c] == want) if len(keys) else np.zeros(len(want), dtype=bool)
     return np.where(found, at, -1)
-
-
-def _node_graph(h, b):
-    """Symmetric node adjacency (CSR, no diagonal) of a ``b``-block matrix."""
-    coo = h.tocoo()
-    n = h.shape[0] // b
-    i, j = coo.row // b, coo.col // b
-    off = i != j
-    a = sp.csr_matrix((np.ones(np.count_nonzero(off)), (i[off], j[off])), shape=(n, n))
-    a = ((a + a.T) > 0).astype(np.int8).tocsr()
-    a.sort_indices()
-    return a
-
-
-def _subgraph(indptr, indices, nodes, local):
-    """CSR adjacency among ``nodes`` (local numbering); ``local`` is a scratch array of -1 over all nodes."""
-    local[nodes] = np.arange(len(nodes))
-    starts = indptr[nodes]
-    lens = indptr[nodes + 1] - starts
-    total = int(lens.sum())
-    offsets = np.repeat(starts - np.concatenate(([0], np.cumsum(lens)[:-1])), lens)
-    cols = local[indices[offsets + np.arange(total)]]
-    keep = cols >= 0
-    row = np.repeat(np.arange(len(nodes)), lens)[keep]
-    ptr = np.zeros(len(nodes) + 1, dtype=np.int64)
-    np.cumsum(np.bincount(row, minlength=len(nodes)), out=ptr[1:])
-    local[nodes] = -1
-    return sp.csr_matrix((np.ones(len(row)), cols[keep], ptr), shape=(len(nodes), len(nodes)))
-
-
-def nested_dissection_order(adjacency, leaf_nodes: int = _LEAF_NODES) -> np.ndarray:
-    """Elimination order (node indices, first eliminated first) by nested dissection.
-
-    ``adjacency`` is a symmetric sparse matrix (its pattern is the graph).
-    Each connected subgraph larger than ``leaf_nodes`` is split by the
-    middle level of a breadth-first level structure (shrunk to the nodes
-    touching the next level); both halves are ordered first, the separator
-    last.  The level structure is rooted at a node of the outermost level of
-    the parent's structure (a far end of the subgraph), found by one more
-    breadth-first sweep at the top.
-    """
-    adjacency = sp.csr_matrix(adjacency)
-    n = adjacency.shape[0]
-    indptr, indices = adjacency.indptr.astype(np.int64), adjacency.indices.astype(np.int64)
-    local = np.full(n, -1, dtype=np.int64)
-    order: list[np.ndarray] = []
-    # Work items, last in first out: ("split", nodes, root) orders a subgraph from a local root (None: find
-    # one), ("emit", nodes, None) appends a separator.
-    pending: list = [("split", np.arange(n), None)]
-    while pending:
-        kind, nodes, root = pending.pop()
-        if kind == "emit" or len(nodes) <= leaf_nodes:
-            order.append(nodes)
-            continue
-        sub = _subgraph(indptr, indices, nodes, local)
-        if root is None:
-            first_sweep = csgraph.shortest_path(sub, method="D", unweighted=True, indices=0)
-            root = int(np.argmax(np.where(np.isfinite(first_sweep), first_sweep, -1.0)))
-        dist = csgraph.shortest_path(sub, method="D", unweighted=True, indices=root)
-        reached = np.isfinite(dist)
-        if not reached.all():
-            # Another connected component: ordered on its own.
-            pending.append(("split", nodes[~reached], None))
-        dist = np.where(reached, dist, -1).astype(np.int64)
-        counts = np.bincount(dist[reached])
-        if len(counts) < 3:
-            order.append(nodes[reached])
-            continue
-        k = int(np.searchsorted(np.cumsum(counts), np.count_nonzero(reached) / 2))
-        k = min(max(k, 1), len(counts) - 2)
-        level = dist == k
-        touches_next = np.asarray(sub @ (dist == k + 1).astype(float)).ravel() > 0
-        sep = level & touches_next
-        first = reached & ((dist < k) | (level & ~touches_next))
-        second = dist > k
-        # Roots of the halves: their nodes farthest from this root (the far end, the rim of the ball).
-        root_second = int(np.argmax(dist[second]))
-        root_first = int(np.argmax(dist[first]))
-        # Popped last in first out: first half, then second half, then the separator.
-        pending.append(("emit", nodes[sep], None))
-        pending.append(("split", nodes[second], root_second))
-        pending.append(("split", nodes[first], root_first))
-    return np.concatenate(order) if order else np.zeros(0, dtype=np.int64)
 
 
 def _symbolic(adjacency, order):

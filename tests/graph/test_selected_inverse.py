@@ -77,7 +77,7 @@ def test_blocks_do_not_depend_on_which_others_are_asked_for():
 
 def test_nested_dissection_keeps_a_long_chain_shallow():
     # A path of 3000 nodes: eliminating it end to end gives an elimination tree 3000 deep, nested
-    # dissection about log2(3000 / leaf) separators of one node plus one leaf.
+    # dissection about log2(3000) separators of one node each (plus what METIS leaves to its small parts).
     n = 3000
     adj = sp.diags([np.ones(n - 1), np.ones(n - 1)], [-1, 1], format="csr")
     order = nested_dissection_order(adj)
