@@ -13,7 +13,11 @@ way: on an AMD EPYC machine without AVX-512 (2026-12-03), two of the 2,712
 demo candidates went from not_converged to odometry_gate against the record
 made on the previous machine (their ICP met its step tolerance on one and
 not on the other), and the poses rounded to a micrometre hashed
-differently, though the accepted set was the same.  So the record holds every verdict and every
+differently, though the accepted set was the same.  On another AMD EPYC
+machine (2026-12-04) the record's own commit gave five such flips among
+rejection reasons (not_converged, ambiguous, degenerate, pair_inconsistent;
+the second-best fit of the ninth round's rival rule sits near its bound
+for a few pairs), the same accepted set and poses within the tolerance.  So the record holds every verdict and every
 pose, and the test allows what such bits can do and nothing more: the same
 accepted pairs, at most ``MAX_REASON_FLIPS`` rejected candidates with
 another rejection reason, poses within ``POSE_TOLERANCE``.
@@ -35,8 +39,8 @@ from closurecheck.runners.factory import make_runner
 RECORD = Path(__file__).parent / "data" / "demo_record.json"
 
 
-# Rejected candidates whose reason may differ between machines (0.15% of the demo's).
-MAX_REASON_FLIPS = 4
+# Rejected candidates whose reason may differ between machines (0.3% of the demo's; 5 seen).
+MAX_REASON_FLIPS = 8
 # Metres and radians; the optimiser stops at 1e-10 relative change, far below this.
 POSE_TOLERANCE = 1e-5
 
