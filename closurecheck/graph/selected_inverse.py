@@ -62,6 +62,7 @@ from ._inverse_kernels import block_ldl, selected_path_products
 from .ordering import nested_dissection_order
 from .ordering import node_graph as _node_graph
 
+
 def _find_slots(colptr, rows, row, col):
     """Slots of the blocks (row, col) of the ragged pattern (positions, row > col); -1 where absent."""
     n = len(colptr) - 1
