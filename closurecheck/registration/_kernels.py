@@ -97,40 +97,17 @@ def _offer(points, order, lo, hi, px, py, r2, k, best_d, best_i, m, out):
 
 
 @njit(cache=True, nogil=True)
-def _block_in_beam_order(ci, cj, c0, c1, p, start, order, nj, ni, walk):
-    """The points of the 3 x 3 cells around cell (c0, c1) of point p, those of beams next to p first.
+def _block_rest(start, order, nj, ni, c0, c1, a, b, walk):
+    """The points of the 3 x 3 cells around (c0, c1) of beams q <= a or q >= b, in cell order.
 
-    Fills ``walk`` from beam p outwards, alternately on either side, while
-    the beams stay in the block, then the block's other points in cell
-    order; returns their count.
+    Fills ``walk``; returns their count.
     """
-    n = len(ci)
-    c = 0
-    a = p
-    b = p + 1
-    down = True
-    up = True
-    while down or up:
-        if down:
-            if a >= 0 and abs(ci[a] - c0) <= 1 and abs(cj[a] - c1) <= 1:
-                walk[c] = a
-                c += 1
-                a -= 1
-            else:
-                down = False
-        if up:
-            if b < n and abs(ci[b] - c0) <= 1 and abs(cj[b] - c1) <= 1:
-                walk[c] = b
-                c += 1
-                b += 1
-            else:
-                up = False
     lo1, hi1 = max(c1 - 1, 0), min(c1 + 1, nj - 1)
     block = 0
     for i in range(max(c0 - 1, 0), min(c0 + 1, ni - 1) + 1):
         block += start[i * nj + hi1 + 1] - start[i * nj + lo1]
-    if c < block:
-        # Beams a < q < b are in already.
+    c = 0
+    if b - a - 1 < block:
         for i in range(max(c0 - 1, 0), min(c0 + 1, ni - 1) + 1):
             for s in range(start[i * nj + lo1], start[i * nj + hi1 + 1]):
                 q = order[s]
@@ -189,14 +166,57 @@ def neighbourhoods(points, k, radius):
         # First the 3 x 3 cells around the point: near the sensor they already hold k neighbours
         # closer than anything outside them, and the outer ring (16 more cells) is skipped
         # (0.44 -> 0.3 ms per 721-point scan).  The same neighbours either way.
-        # Offered from the point outwards along the beams: on a scan in beam order the distances
-        # then come nearly in increasing order, so insertions seldom shift the list and, once it
-        # is full, most candidates are turned away by one comparison (on the office scans of
-        # benchmarks/registration.py, 160 shifts and 25 insertions a point in cell order, 10 and
-        # 15 so; 0.35 -> 0.31 ms per 721-point scan, benchmarks/neighbourhoods.py).  The
-        # neighbours do not depend on the order (_offer).
+        # Offered from the point outwards along the beams, alternately on either side, while they
+        # stay in the block: on a scan in beam order the distances then come nearly in increasing
+        # order, so insertions seldom shift the list and, once it is full, most candidates are
+        # turned away by one comparison (on the office scans of benchmarks/registration.py, 160
+        # shifts and 25 insertions a point in cell order, 10 and 15 so).  The block's points the
+        # walk does not reach follow in cell order.  The neighbours do not depend on the order
+        # (_offer).  _offer's body is repeated inline in the walk: called for each point, it cost
+        # more than the shifts saved.  0.35 -> 0.28-0.29 ms per 721-point scan
+        # (benchmarks/neighbourhoods.py; 0.31 with the walk's points offered through _offer).
         c0, c1 = ci[p], cj[p]
-        c = _block_in_beam_order(ci, cj, c0, c1, p, start, order, nj, ni, walk)
+        a = p
+        b = p + 1
+        down = True
+        up = True
+        turn = True
+        while down or up:
+            go_down = (turn and down) or not up
+            turn = not turn
+            q = a if go_down else b
+            if q < 0 or q >= n or abs(ci[q] - c0) > 1 or abs(cj[q] - c1) > 1:
+                if go_down:
+                    down = False
+                else:
+                    up = False
+                continue
+            if go_down:
+                a -= 1
+            else:
+                b += 1
+            # As _offer, for beam q.
+            ex = points[q, 0] - px
+            ey = points[q, 1] - py
+            d = ex * ex + ey * ey
+            if d >= r2:
+                continue
+            if m == k and (d > best_d[k - 1] or (d == best_d[k - 1] and q > best_i[k - 1])):
+                out = min(out, d)
+                continue
+            if m == k:
+                out = min(out, best_d[k - 1])
+            pos = m if m < k else k - 1
+            while pos > 0 and (best_d[pos - 1] > d or (best_d[pos - 1] == d and best_i[pos - 1] > q)):
+                if pos < k:
+                    best_d[pos] = best_d[pos - 1]
+                    best_i[pos] = best_i[pos - 1]
+                pos -= 1
+            best_d[pos] = d
+            best_i[pos] = q
+            if m < k:
+                m += 1
+        c = _block_rest(start, order, nj, ni, c0, c1, a, b, walk)
         m, out = _offer(points, walk, 0, c, px, py, r2, k, best_d, best_i, m, out)
         # Distance from the point to the edge of those cells, with a margin for rounding.
         gap = min(fi - (c0 - 1), (c0 + 2) - fi, fj - (c1 - 1), (c1 + 2) - fj) * cell
