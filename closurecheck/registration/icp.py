@@ -243,7 +243,6 @@ class PreparedScan:
         than ``min_line_points`` readings, matched point to segment
         (:func:`_point_like`; empty when ``point_features`` is off).
     point_object : (P,) label of the object (connected neighbours) each belongs to.
-    coarse_points : (K, 2) downsampled points for the coarse search.
     length_m : root-mean-square range of the points (metres).
     radius_m : largest range of the points (metres).
     point_noise : the noise model the line coefficients were built for.
@@ -251,6 +250,8 @@ class PreparedScan:
 
     Built on first use (properties):
 
+    coarse_points : (K, 2) downsampled points for the coarse search and the
+        fit score (one per cell of twice the coarse resolution).
     tree : cKDTree over ``points[line_index]``.
     line : (M, 14) per line point: centroid x, y, normal x, y, the local
         model's coefficients b0, b1, b2 (offset across the line at along-line
@@ -277,7 +278,6 @@ class PreparedScan:
     line_index: np.ndarray
     point_index: np.ndarray
     point_object: np.ndarray
-    coarse_points: np.ndarray
     length_m: float
     radius_m: float
     point_noise: str
@@ -299,7 +299,8 @@ class PreparedScan:
                 # Another thread (a Dask worker runs batches in threads) built it and dropped "fit"
                 # in between; it stores "target" before dropping "fit".
                 return self._lazy["target"]
-            got = _target_side(self, *fit)
+            idx, used, normal, tangent, centroid, li, opt = fit
+            got = _target_side(self, idx[li], used[li], normal[li], tangent[li], centroid[li], opt)
             self._lazy["target"] = got
             self._lazy.pop("fit", None)
         return got
@@ -358,6 +359,15 @@ class PreparedScan:
             got = self.tree if not len(self.point_index) else cKDTree(
                 self.points[np.union1d(self.line_index, self.point_index)])
             self._lazy["fit_tree"] = got
+        return got
+
+    @property
+    def coarse_points(self) -> np.ndarray:
+        got = self._lazy.get("coarse_points")
+        if got is None:
+            cell, most = self._lazy["coarse_settings"]
+            got = _coarse.downsample(self.points, cell, most)
+            self._lazy["coarse_points"] = got
         return got
 
     @property
@@ -674,16 +684,19 @@ def _prepare(pts, opt: RegistrationOptions, with_grid: bool) -> PreparedScan:
     line_index = np.flatnonzero(has_line)
     if len(line_index) < 3 and len(point_index) < 3:
         raise InputError("scan has fewer than 3 points on straight structure or small objects; cannot register it")
-    li = line_index
-    fit = (idx[li], used[li], normal[li], tangent[li], centroid[li], opt)
+    # Rows of the line points are taken when the target side is built (PreparedScan._target_side),
+    # and the coarse points when first asked for: a scan that is only ever a source, or a single
+    # register call's target with the coarse stage off, never needs them (0.04 and 0.05 ms a
+    # 721-point scan, about 4% of register(..., coarse=False); benchmarks/registration.py).
+    fit = (idx, used, normal, tangent, centroid, line_index, opt)
     normals = np.where(has_line[:, None], normal, 0.0)
-    coarse_pts = _coarse.downsample(pts, 2.0 * opt.coarse_resolution_m, opt.coarse_max_points)
     scan = PreparedScan(
         points=pts, beams=beams, normals=normals, thickness=thickness, has_line=has_line,
-        line_index=line_index, point_index=point_index, point_object=point_object, coarse_points=coarse_pts,
+        line_index=line_index, point_index=point_index, point_object=point_object,
         length_m=float(np.sqrt(np.mean(rng * rng))), radius_m=float(rng.max()), point_noise=opt.point_noise,
         key=opt.preparation_key(),
-        _lazy={"fit": fit, "grid_settings": (opt.coarse_resolution_m, opt.coarse_sigma_m, opt.coarse_block_cells)},
+        _lazy={"fit": fit, "grid_settings": (opt.coarse_resolution_m, opt.coarse_sigma_m, opt.coarse_block_cells),
+               "coarse_settings": (2.0 * opt.coarse_resolution_m, opt.coarse_max_points)},
     )
     if with_grid:
         scan.grid  # noqa: B018 -- built now, as asked

@@ -309,7 +309,8 @@ def test_line_models_match_the_numpy_expressions(model, noise):
     opt = RegistrationOptions(line_model=model, point_noise=noise)
     pts = scan(PAIRS[3][0], np.random.default_rng(9))
     prepared = _prepare(pts, opt, False)
-    nidx, used_l, n_l, t_l, c_l, _ = prepared._lazy["fit"]
+    idx, used, normal, tangent, centroid, li, _ = prepared._lazy["fit"]
+    nidx, used_l, n_l, t_l, c_l = idx[li], used[li], normal[li], tangent[li], centroid[li]
     _, line, _, coef, _ = _target_side(prepared, nidx, used_l, n_l, t_l, c_l, opt)
     nused = used_l.astype(float)
     dx = pts[:, 0][nidx] - c_l[:, :1]
