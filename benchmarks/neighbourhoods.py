@@ -1,10 +1,14 @@
-"""Benchmark: the line fits' neighbour search (_kernels.neighbourhoods) against the one it replaced.
+"""Benchmark: the line fits' neighbour search (_kernels.neighbourhoods) against the ones it replaced.
 
-The kernel before candidates were offered along the beams is loaded from
-commit 27692d5 (``git show``, as benchmarks/optimizer.py loads an earlier
-solver) beside the current one; both are timed here on the office scans of benchmarks/registration.py (60 scans of 721
-beams: 30 pairs), with the default options (16 neighbours, 0.3 m), after a
-warm-up call, alternately, per round; the median of the rounds is printed.
+The kernels of two earlier commits are loaded (``git show``, as
+benchmarks/optimizer.py loads an earlier solver) beside the current one:
+27692d5, a hash grid offering each 3 x 3 block in cell order, and 11b2158,
+the same grid offering the block along the beams first.  The current one
+walks along the beams with a bound from the bearing separation, no grid.
+All three must give the same answer on every scan; they are timed on the
+office scans of benchmarks/registration.py (60 scans of 721 beams: 30
+pairs), with the default options (16 neighbours, 0.3 m), after a warm-up
+call, alternately, per round; the median of the rounds is printed.
 
 Run from the repository root:  python benchmarks/neighbourhoods.py [--rounds N]
 """
@@ -32,7 +36,7 @@ from closurecheck.registration import _kernels  # noqa: E402
 from closurecheck.registration.icp import DEFAULT_OPTIONS  # noqa: E402
 
 
-BEFORE = "27692d5"
+BEFORE = ("27692d5", "11b2158")
 
 
 def kernels_at(commit):
@@ -57,7 +61,13 @@ def main(argv=None):
     pairs = bench.make_pairs(30, rng, segs, circ)
     scans = [np.ascontiguousarray(bench.to_points(r, rng)) for pair in pairs for r in pair[:2]]
     k, radius = DEFAULT_OPTIONS.line_neighbours, DEFAULT_OPTIONS.line_radius_m
-    kernels = {"before": kernels_at(BEFORE).neighbourhoods, "now": _kernels.neighbourhoods}
+    kernels = {commit: kernels_at(commit).neighbourhoods for commit in BEFORE}
+    kernels["now"] = _kernels.neighbourhoods
+    for pts in scans:       # the same answer, or the comparison means nothing
+        ref = kernels["now"](pts, k, radius)
+        for commit in BEFORE:
+            got = kernels[commit](pts, k, radius)
+            assert np.array_equal(got[0], ref[0]) and np.array_equal(got[1], ref[1]), commit
     times = {name: [] for name in kernels}
     for f in kernels.values():
         f(scans[0], k, radius)
@@ -67,9 +77,11 @@ def main(argv=None):
             for pts in scans:
                 f(pts, k, radius)
             times[name].append((time.perf_counter() - t0) / len(scans) * 1e3)
-    before, now = statistics.median(times["before"]), statistics.median(times["now"])
-    print(f"{len(scans)} scans, k {k}, radius {radius} m, median of {args.rounds} rounds: "
-          f"before {before:.3f} ms, now {now:.3f} ms per scan, {before / now:.2f}x")
+    now = statistics.median(times["now"])
+    print(f"{len(scans)} scans, k {k}, radius {radius} m, median of {args.rounds} rounds, ms per scan:")
+    for commit in BEFORE:
+        before = statistics.median(times[commit])
+        print(f"  {commit}: {before:.3f} ms, now {now:.3f} ms, {before / now:.2f}x")
 
 
 if __name__ == "__main__":

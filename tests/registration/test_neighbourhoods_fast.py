@@ -1,14 +1,17 @@
 """The neighbour search of the line fits (_kernels.neighbourhoods) against a brute force and cKDTree.
 
-The kernel offers a point's candidates along the beams first (fast on scans
-in beam order) and must give the answer its definition gives, bit for bit,
-in any order of the points: the k nearest within the radius sorted by
+On a scan in beam order the kernel walks along the beams, stopping on a
+bound from the bearing separation; on other clouds it searches a hash
+grid.  Either way it must give the answer its definition gives, bit for
+bit, in any order of the points: the k nearest within the radius sorted by
 (distance, index), and the tie flags.  The reference is a brute force over
 every pair; where no tie is flagged the neighbours must also be
 scipy.spatial.cKDTree's (a general-purpose library).  Inputs: scans in beam
 order, the same scans shuffled and reversed, random clouds, quantised lines
 and repeated points (exact ties), tiny scans, wide scans (cells widened,
-reach 1) and simulated logs.
+reach 1) and simulated logs; for the walk itself, points sorted by bearing
+at random ranges (true neighbours far along the array), both ways round,
+with the array's seam anywhere.
 """
 
 import numpy as np
@@ -139,3 +142,75 @@ def test_the_kept_neighbours_are_the_nearest_within_the_radius():
         expect[:len(near)] = near
         np.testing.assert_array_equal(idx[p], expect)
     assert tied.any()
+
+
+def _walk(pts, k, radius):
+    """The walk along the beams itself, on points that must qualify for it (bearings once round, one way)."""
+    pts = np.ascontiguousarray(pts, dtype=np.float64)
+    phi = np.arctan2(pts[:, 1], pts[:, 0])
+    assert _kernels._unwrap_bearings(phi)
+    r = np.hypot(pts[:, 0], pts[:, 1])
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ux, uy = np.where(r > 0, pts[:, 0] / r, 0.0), np.where(r > 0, pts[:, 1] / r, 0.0)
+    return _kernels._bearing_walk(pts, k, radius, phi, ux, uy)
+
+
+def _by_bearing(pts):
+    return pts[np.argsort(np.arctan2(pts[:, 1], pts[:, 0]), kind="stable")]
+
+
+def _bearing_ordered(rng):
+    """Points sorted by bearing whose nearest neighbours are far apart in the array, and beam-ordered scans."""
+    for lo in (0.05, 0.31, 1.0):
+        # Random points in an annulus: neighbours come from any bearing within the bound.
+        r = rng.uniform(lo, 4.0, 600)
+        a = rng.uniform(-np.pi, np.pi, 600)
+        yield _by_bearing(np.column_stack([r * np.cos(a), r * np.sin(a)]))
+    # A quarter turn only, and a fan of radial lines (many points at one bearing, exact ties once quantised).
+    a = rng.uniform(0.2, 0.2 + np.pi / 2, 400)
+    r = rng.uniform(0.4, 3.0, 400)
+    yield _by_bearing(np.column_stack([r * np.cos(a), r * np.sin(a)]))
+    ranges = np.linspace(0.4, 3.0, 60)
+    fan = np.concatenate([np.column_stack([ranges * np.cos(t), ranges * np.sin(t)])
+                          for t in np.linspace(-3.0, 3.0, 12)])
+    yield _by_bearing(np.round(fan, 2))
+    for pose, _ in PAIRS[:3]:
+        pts = scan(pose, rng)
+        yield pts
+        yield _by_bearing(np.round(pts * 100.0) / 100.0)    # rounding the coordinates swaps a few bearings
+
+
+@pytest.mark.parametrize("k, radius", [(16, 0.3), (5, 0.3), (21, 0.5), (40, 2.0), (3, 0.3)])
+def test_the_walk_along_the_beams_is_the_definition(k, radius):
+    # The walk stops each side on a bound of the distance from the bearing separation; points sorted
+    # by bearing but at random ranges put true neighbours far along the array, so a bound that is
+    # not one (|p| times the separation, or no wrap at a half turn) drops some of them.
+    rng = np.random.default_rng(100 + k)
+    tied = 0
+    for pts in _bearing_ordered(rng):
+        n = len(pts)
+        # Counter-clockwise, clockwise, and with the seam of the array inside the scan.
+        for cloud in (pts, pts[::-1], np.roll(pts, n // 3, axis=0), np.roll(pts[::-1], n // 5, axis=0)):
+            idx, t = _walk(cloud, min(k, n), radius)
+            ref_idx, ref_tied, _ = _brute_force(np.ascontiguousarray(cloud), min(k, n), radius)
+            np.testing.assert_array_equal(idx, ref_idx)
+            np.testing.assert_array_equal(t, ref_tied)
+            tied += t.sum()
+    assert tied > 0
+
+
+def test_clouds_the_walk_cannot_bound_take_the_grid():
+    rng = np.random.default_rng(7)
+    ring = _by_bearing(rng.uniform(-3.0, 3.0, (500, 2)))
+    phi = np.arctan2(ring[:, 1], ring[:, 0])
+    assert _kernels._unwrap_bearings(phi.copy())
+    assert not _kernels._unwrap_bearings(phi[rng.permutation(len(phi))].copy())    # not in bearing order
+    assert not _kernels._unwrap_bearings(np.concatenate([phi, phi]))                # twice round
+    # Sorted by bearing, but a quarter of the points within the radius of the sensor, or one at the
+    # sensor itself: the answer is the definition's whichever search gives it.
+    near = _by_bearing(np.concatenate([ring, rng.uniform(-0.2, 0.2, (170, 2))]))
+    for pts in (near, np.concatenate([ring[:200], np.zeros((1, 2)), ring[200:]])):
+        idx, tied = _kernels.neighbourhoods(np.ascontiguousarray(pts), 16, 0.3)
+        ref_idx, ref_tied, edge = _brute_force(pts, 16, 0.3)
+        np.testing.assert_array_equal(idx[~edge], ref_idx[~edge])
+        np.testing.assert_array_equal(tied[~edge], ref_tied[~edge])
