@@ -476,6 +476,56 @@ def scatter(points, idx):
 
 
 @njit(cache=True, nogil=True)
+def line_frames(idx, count, cx, cy, sxx, syy, rad, sin_phi, cos_phi, min_points, max_thickness):
+    """Each neighbourhood's line from its scatter (icp._line_features): the numpy steps after the angle, fused.
+
+    ``rad`` = hypot((sxx - syy) / 2, sxy) and ``sin_phi, cos_phi`` of the
+    principal axis' angle phi come from numpy (its hypot, sin and cos are
+    kept to the bit); the rest is the numpy code it replaced, operation for
+    operation: eigenvalues ``half_tr -+ rad`` (the smaller clipped at 0 as
+    np.maximum does, -0.0 and NaN passed through), the normal ``(-sin, cos)``
+    turned to face the sensor, the tangent ``rot(-90 deg) n``, thickness
+    ``sqrt(lam_min / lam_max)`` (NaN without enough points or spread), and
+    whether the point has a line.  Also marks the used neighbour slots and
+    sets the empty ones (``idx == N``) to 0, in place.  About 25 numpy calls
+    on (N,) arrays before: 0.07 -> 0.03 ms per 721-point scan.
+    Returns used (N, k) bool, normal, centroid, tangent (N, 2), thickness (N,), has_line (N,) bool.
+    """
+    n, k = idx.shape
+    used = np.empty((n, k), np.bool_)
+    for p in range(n):
+        for j in range(k):
+            used[p, j] = idx[p, j] < n
+            if not used[p, j]:
+                idx[p, j] = 0
+    normal = np.empty((n, 2))
+    centroid = np.empty((n, 2))
+    tangent = np.empty((n, 2))
+    thickness = np.empty(n)
+    has_line = np.empty(n, np.bool_)
+    for p in range(n):
+        half_tr = 0.5 * (sxx[p] + syy[p])
+        v = half_tr - rad[p]
+        lam_min = v if (v >= 0.0 or v != v) else 0.0
+        lam_max = half_tr + rad[p]
+        nx = -sin_phi[p]
+        ny = cos_phi[p]
+        if nx * cx[p] + ny * cy[p] > 0:
+            nx *= -1.0
+            ny *= -1.0
+        normal[p, 0] = nx
+        normal[p, 1] = ny
+        centroid[p, 0] = cx[p]
+        centroid[p, 1] = cy[p]
+        tangent[p, 0] = ny
+        tangent[p, 1] = -nx
+        ok = count[p] >= min_points and lam_max > 0
+        thickness[p] = math.sqrt(lam_min / lam_max) if ok else np.nan
+        has_line[p] = ok and thickness[p] <= max_thickness
+    return used, normal, centroid, tangent, thickness, has_line
+
+
+@njit(cache=True, nogil=True)
 def cell_index(points, cell):
     """Points bucketed in square cells, for :func:`nearest`.
 

@@ -583,26 +583,14 @@ def _line_features(points, opt: RegistrationOptions):
         _, ref = cKDTree(points).query(points[tied], k=k, distance_upper_bound=opt.line_radius_m)
         idx[tied] = ref.reshape(-1, k)
     count, cx, cy, sxx, syy, sxy = _kernels.scatter(points, idx)
-    used = idx < n
-    idx[~used] = 0
-    # Closed-form eigen-decomposition of the 2x2 scatter matrix, in numpy: its sin and cos differ
-    # from the compiled ones in the last bit now and then, and results are kept to the bit.
-    half_tr = 0.5 * (sxx + syy)
-    rad = np.hypot(0.5 * (sxx - syy), sxy)
-    phi = 0.5 * np.arctan2(2.0 * sxy, sxx - syy)
-    nx, ny = -np.sin(phi), np.cos(phi)
-    lam_min, lam_max = np.maximum(half_tr - rad, 0.0), half_tr + rad
-    flip = nx * cx + ny * cy > 0
-    nx[flip] *= -1.0
-    ny[flip] *= -1.0
-    normal = np.column_stack([nx, ny])
-    centroid = np.column_stack([cx, cy])
-    tangent = np.column_stack([ny, -nx])  # fixed handedness: t = rot(-90°) n
-    with np.errstate(invalid="ignore", divide="ignore"):
-        thickness = np.sqrt(lam_min / lam_max)
-    enough = count >= opt.min_line_points
-    thickness = np.where(enough & (lam_max > 0), thickness, np.nan)
-    has_line = enough & (lam_max > 0) & (thickness <= opt.max_line_thickness)
+    # Closed-form eigen-decomposition of the 2x2 scatter matrix: the angle, its sin and cos and the
+    # radius in numpy (the compiled ones differ from them in the last bit now and then, and results
+    # are kept to the bit), the rest in one compiled pass (_kernels.line_frames).
+    diff = sxx - syy
+    phi = 0.5 * np.arctan2(2.0 * sxy, diff)
+    rad = np.hypot(0.5 * diff, sxy)
+    used, normal, centroid, tangent, thickness, has_line = _kernels.line_frames(
+        idx, count, cx, cy, sxx, syy, rad, np.sin(phi), np.cos(phi), opt.min_line_points, opt.max_line_thickness)
     return idx, used, count, centroid, normal, tangent, thickness, has_line
 
 

@@ -447,3 +447,44 @@ def test_stamp_grid_matches_maximum_at():
     got = _kernels.stamp_grid(occupied, rows, cols, di, dj, value)
     np.testing.assert_array_equal(got, ref)
     assert (~inside).any() and value.max() == 255 and len(np.unique(ref)) > 5
+
+
+def test_line_frames_match_the_numpy_expressions():
+    # Reference: the eigen-decomposition steps of icp._line_features as numpy expressions (the numpy
+    # version the compiled pass replaced); equal to the bit, NaN and the sign of zero included.
+    rng = np.random.default_rng(5)
+    clouds = [np.ascontiguousarray(scan(pose, rng)) for pose, _ in PAIRS[:3]]
+    clouds.append(np.repeat(rng.uniform(-2.0, 2.0, (30, 2)), 4, axis=0))    # no spread: lam_max 0
+    clouds.append(np.column_stack([np.arange(40) * 0.05, np.zeros(40)]))      # exact line: lam_min 0
+    seen = set()
+    for pts in clouds:
+        n = len(pts)
+        idx, _ = _kernels.neighbourhoods(pts, 16, 0.3)
+        count, cx, cy, sxx, syy, sxy = _kernels.scatter(pts, idx)
+        ref_used = idx < n
+        ref_idx = np.where(ref_used, idx, 0)
+        half_tr = 0.5 * (sxx + syy)
+        rad = np.hypot(0.5 * (sxx - syy), sxy)
+        phi = 0.5 * np.arctan2(2.0 * sxy, sxx - syy)
+        nx, ny = -np.sin(phi), np.cos(phi)
+        lam_min, lam_max = np.maximum(half_tr - rad, 0.0), half_tr + rad
+        flip = nx * cx + ny * cy > 0
+        nx[flip] *= -1.0
+        ny[flip] *= -1.0
+        with np.errstate(invalid="ignore", divide="ignore"):
+            thick = np.sqrt(lam_min / lam_max)
+        enough = count >= 5
+        thick = np.where(enough & (lam_max > 0), thick, np.nan)
+        ref_line = enough & (lam_max > 0) & (thick <= 0.3)
+        used, normal, centroid, tangent, thickness, has_line = _kernels.line_frames(
+            idx, count, cx, cy, sxx, syy, rad, np.sin(phi), np.cos(phi), 5, 0.3)
+        refs = ((idx, ref_idx), (used, ref_used), (normal, np.column_stack([nx, ny])),
+                (centroid, np.column_stack([cx, cy])), (tangent, np.column_stack([ny, -nx])),
+                (thickness, thick), (has_line, ref_line))
+        for got, ref in refs:
+            np.testing.assert_array_equal(got, ref)
+            if got.dtype.kind == "f":
+                np.testing.assert_array_equal(np.signbit(got[~np.isnan(got)]), np.signbit(ref[~np.isnan(ref)]))
+        seen.update({"line"} if has_line.any() else set(), {"none"} if not has_line.all() else set(),
+                    {"nan"} if np.isnan(thickness).any() else set(), {"zero"} if (thickness == 0).any() else set())
+    assert seen == {"line", "none", "nan", "zero"}      # every branch of the pass was taken
