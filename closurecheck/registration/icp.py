@@ -678,10 +678,12 @@ def _prepare(pts, opt: RegistrationOptions, with_grid: bool) -> PreparedScan:
     # 721-point scan, about 4% of register(..., coarse=False); benchmarks/registration.py).
     fit = (idx, used, normal, tangent, centroid, line_index, opt)
     normals = np.where(has_line[:, None], normal, 0.0)
+    # np.add.reduce is np.mean's own pairwise sum without its dispatch (8 -> 3 µs; the same bits).
+    length_m = float(np.sqrt(np.add.reduce(rng * rng) / len(rng)))
     scan = PreparedScan(
         points=pts, beams=beams, normals=normals, thickness=thickness, has_line=has_line,
         line_index=line_index, point_index=point_index, point_object=point_object,
-        length_m=float(np.sqrt(np.mean(rng * rng))), radius_m=float(rng.max()), point_noise=opt.point_noise,
+        length_m=length_m, radius_m=float(rng.max()), point_noise=opt.point_noise,
         key=opt.preparation_key(),
         _lazy={"fit": fit, "grid_settings": (opt.coarse_resolution_m, opt.coarse_sigma_m, opt.coarse_block_cells),
                "coarse_settings": (2.0 * opt.coarse_resolution_m, opt.coarse_max_points)},
