@@ -1336,14 +1336,20 @@ def top_blocks(n_rows, starts, level):
 def stamp_grid(occupied, rows, cols, di, dj, value):
     """The fine likelihood grid (correlative.build_grid): the maximum of the stamp around each occupied cell.
 
-    ``occupied`` flat indices ``i * cols + j`` of the cells holding points;
-    the stamp adds ``value[s]`` at offsets ``(di[s], dj[s])``, kept inside the
-    grid.  A maximum does not depend on the order it is taken in, so this is
-    numpy's ``np.maximum.at`` to the bit, without its (cells, stamp) index
-    arrays.  Returns (rows, cols) uint8.
+    ``occupied`` flat indices ``i * cols + j`` of the cells holding points,
+    in any order and repeated (a cell is stamped once: np.unique before
+    the call was 0.05 of a grid's 0.12 ms); the stamp adds ``value[s]`` at
+    offsets ``(di[s], dj[s])``, kept inside the grid.  A maximum does not
+    depend on the order it is taken in, so this is numpy's
+    ``np.maximum.at`` to the bit, without its (cells, stamp) index arrays.
+    Returns (rows, cols) uint8.
     """
     fine = np.zeros((rows, cols), np.uint8)
+    done = np.zeros(rows * cols, np.bool_)
     for o in range(len(occupied)):
+        if done[occupied[o]]:
+            continue
+        done[occupied[o]] = True
         oi = occupied[o] // cols
         oj = occupied[o] % cols
         for s in range(len(value)):

@@ -447,6 +447,9 @@ def test_stamp_grid_matches_maximum_at():
     got = _kernels.stamp_grid(occupied, rows, cols, di, dj, value)
     np.testing.assert_array_equal(got, ref)
     assert (~inside).any() and value.max() == 255 and len(np.unique(ref)) > 5
+    # Cells repeated and out of order (a scan's points, several to a cell): the same grid.
+    repeated = rng.permutation(np.concatenate([occupied, occupied[::3], occupied[:7]]))
+    np.testing.assert_array_equal(_kernels.stamp_grid(repeated, rows, cols, di, dj, value), ref)
 
 
 def test_line_frames_match_the_numpy_expressions():
