@@ -75,10 +75,9 @@ def build_grid(points, resolution_m: float, sigma_m: float, top_block_cells: int
     # the occupied cells of a small kernel stamped around each: the same
     # values as a distance transform of the whole grid, at a fraction of the cost.
     di, dj, value = _stamp(float(resolution_m), float(sigma_m))
-    occupied = np.unique(cells[:, 0] * shape[1] + cells[:, 1])
-    # Compiled (_kernels.stamp_grid): np.maximum.at over (cells, stamp) index arrays cost about
-    # half of building a grid; a maximum is the same whatever order it is taken in.
-    fine = _kernels.stamp_grid(occupied, int(shape[0]), int(shape[1]), di, dj, value)
+    # Compiled (_kernels.stamp_grid, which skips repeated cells): np.maximum.at over (cells, stamp)
+    # index arrays cost about half of building a grid; a maximum is the same whatever order it is taken in.
+    fine = _kernels.stamp_grid(cells[:, 0] * shape[1] + cells[:, 1], int(shape[0]), int(shape[1]), di, dj, value)
     levels = [fine]
     for lvl in range(1, n_levels):
         # max over [i, i + 2^l) = max of two level l-1 blocks, at i and i + 2^(l-1).
@@ -118,9 +117,39 @@ def downsample(points, cell_m: float, max_points: int) -> np.ndarray:
 
 
 def auto_angle_step(points, resolution_m: float) -> float:
-    """Angle step (radians) that moves the 90th-percentile-range point by one cell."""
-    far = float(np.percentile(np.hypot(points[:, 0], points[:, 1]), 90))
+    """Angle step (radians) that moves the 90th-percentile-range point by one cell.
+
+    ``points`` (N, 2), N >= 1, finite (metres, scan frame).
+
+    >>> import numpy as np
+    >>> round(auto_angle_step(np.array([[float(r), 0.0] for r in range(1, 12)]), 0.1), 4)
+    0.01
+    """
+    far = _percentile(np.hypot(points[:, 0], points[:, 1]), 90)
     return resolution_m / max(far, resolution_m)
+
+
+def _percentile(values, q: float) -> float:
+    """``np.percentile(values, q)`` of a non-empty finite 1-D array, the same bits, without its overhead.
+
+    numpy's default method (Hyndman and Fan's 7th) for 0 <= q <= 100: the
+    virtual index ``(n - 1) q'`` with q' = q / 100, as numpy computes it, and
+    numpy's interpolation between the two order statistics around it (from
+    the upper one when the weight is at least 0.5).  np.percentile took 29
+    of the angle step's 32 µs on a 100-point scan, this takes 3
+    (tests/registration/test_correlative.py compares the two).
+    """
+    n = len(values)
+    qq = q / 100
+    virtual = (n - 1) * qq
+    if virtual >= n - 1:
+        return float(values.max())
+    lo = int(np.floor(virtual))
+    part = np.partition(values, [lo, lo + 1])
+    a, b = part[lo], part[lo + 1]
+    t = virtual - lo
+    diff = b - a
+    return float(b - diff * (1 - t)) if t >= 0.5 else float(a + diff * t)
 
 
 def distinct(records, k: int, sep_m: float, sep_rad: float) -> np.ndarray:
