@@ -765,39 +765,45 @@ def components(points, idx, used):
     them (it starts a new group at the first point not yet reached), so the
     labels are the same, not only the groups.  Union-find with path halving
     replaces building a sparse matrix (0.4 ms of a 721-point scan's 1 ms of
-    preparation went into scipy.sparse's conversions).
+    preparation went into scipy.sparse's conversions); each point's root is
+    found once for all its neighbours, not once per neighbour (0.051 ->
+    0.033 ms a scan; any union-find gives the same groups, and the labels
+    and boxes depend only on those).
     Returns label (N,) int64, lo (C, 2) and hi (C, 2): each group's smallest
     and largest x and y.
     """
     n, k = idx.shape
     parent = np.arange(n)
     for p in range(n):
+        a = p
+        while parent[a] != a:
+            parent[a] = parent[parent[a]]
+            a = parent[a]
         for j in range(k):
             if not used[p, j]:
                 continue
-            a = p
-            while parent[a] != a:
-                parent[a] = parent[parent[a]]
-                a = parent[a]
             b = idx[p, j]
+            if b == p:
+                continue
             while parent[b] != b:
                 parent[b] = parent[parent[b]]
                 b = parent[b]
+            # The larger root goes under the smaller, so a stays p's root.
             if a < b:
                 parent[b] = a
             elif b < a:
                 parent[a] = b
+                a = b
+    # Every link points to a smaller index (parent[x] < x off the roots, path halving keeps it), so
+    # in index order a point's parent is labelled before it.
     label = np.empty(n, np.int64)
-    lab_of_root = np.full(n, -1, np.int64)
     m = 0
     for p in range(n):
-        a = p
-        while parent[a] != a:
-            a = parent[a]
-        if lab_of_root[a] < 0:
-            lab_of_root[a] = m
+        if parent[p] == p:
+            label[p] = m
             m += 1
-        label[p] = lab_of_root[a]
+        else:
+            label[p] = label[parent[p]]
     lo = np.empty((m, 2))
     hi = np.empty((m, 2))
     seen = np.zeros(m, np.bool_)
