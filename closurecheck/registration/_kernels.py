@@ -819,47 +819,6 @@ def huber_rows(z, v, jac, c, mad_to_sigma, min_noise):
     return w, scale, jw
 
 
-@njit(cache=True, nogil=True)
-def line_offsets(points, beams, nidx, used, c_l, n_l, t_l, quadratic, range_noise, min_incidence_cos):
-    """The element-by-element part of the local line models' fits (icp._target_side).
-
-    For each line m and neighbour slot l (``used[m, l]``, reading
-    ``nidx[m, l]``): the offset a along the line and h across it from the
-    centroid ``c_l[m]``, the design row x = [1, a, a^2] (or [1, a, 0]), the
-    extent max |a| and the noise factor nu (|cos| of the beam against the
-    normal, floored; 1 for isotropic noise), each multiplied by 0 or 1 for
-    unused slots, in the numpy version's order of operations, so the bits
-    agree.  The least-squares products that follow stay numpy's (BLAS).
-    Returns x (M, k, 3), h (M, k), extent (M,), nu (M, k).
-    """
-    nl, k = nidx.shape
-    x = np.empty((nl, k, 3))
-    h = np.empty((nl, k))
-    extent = np.empty(nl)
-    nu = np.empty((nl, k))
-    for m in range(nl):
-        e = 0.0
-        for q in range(k):
-            u = 1.0 if used[m, q] else 0.0
-            p = nidx[m, q]
-            dx = points[p, 0] - c_l[m, 0]
-            dy = points[p, 1] - c_l[m, 1]
-            a = (dx * t_l[m, 0] + dy * t_l[m, 1]) * u
-            h[m, q] = (dx * n_l[m, 0] + dy * n_l[m, 1]) * u
-            x[m, q, 0] = u
-            x[m, q, 1] = a
-            x[m, q, 2] = a * a if quadratic else 0.0
-            e = max(e, abs(a)) if q else abs(a)
-            if range_noise:
-                c = abs(beams[p, 0] * n_l[m, 0] + beams[p, 1] * n_l[m, 1])
-                c = c if c >= min_incidence_cos else min_incidence_cos
-            else:
-                c = 1.0
-            nu[m, q] = c * u
-        extent[m] = e
-    return x, h, extent, nu
-
-
 @njit(cache=True, nogil=True, inline="always")
 def _lu3(lu, perm):
     """Factor the (3, 3) matrix in ``lu`` in place by Gaussian elimination with partial pivoting (LAPACK's method).
@@ -904,7 +863,7 @@ def _inverse3(a, lu, perm, unit, inv):
     """inv = a^-1 for a (3, 3) matrix: one factorisation (_lu3) for the three columns, in place.
 
     ``lu``, ``perm`` (3,) int and ``unit`` (3,) are scratch space, so that
-    line_fits, which calls it once per line, allocates nothing; a is left
+    line_models, which calls it once per line, allocates nothing; a is left
     as it was.
     """
     for i in range(3):
@@ -919,64 +878,152 @@ def _inverse3(a, lu, perm, unit, inv):
 
 
 @njit(cache=True, nogil=True)
-def line_fits(x, h, nu, c_l, n_l, extent, quadratic):
-    """The least-squares part of the local line models' fits (icp._target_side), per line.
+def line_models(points, beams, idx, used, normal, tangent, centroid, rows, quadratic, range_noise, min_incidence_cos):
+    """The local line models of a scan's line points (icp._target_side), one line at a time.
 
-    With X = x[m] (k, 3) the design rows and A = X^T X plus a relative
-    ridge (1e-12 trace(A) on the diagonal; A[2, 2] = 1 for straight
-    lines): wts = X A^-1 (k, 3), the model coefficients beta = h^T wts and
-    Q = sum_l nu_l^2 wts_l wts_l^T, the model's variance in units of
-    sigma^2.  A^-1 comes from Gaussian elimination with partial pivoting
-    (LAPACK's dgesv method, as numpy's inv).  Returns the (M, 14) line
-    rows [centroid (2), normal (2), beta (3), Q00, Q01, Q02, Q11, Q12,
-    Q22, extent] and the (M, k, 3) reading sensitivities nu * wts as float32.
+    For the line of point ``rows[m]``, fitted to its neighbour slots l
+    (``used``, readings ``idx``; unused slots hold reading 0): the offset a
+    along the line and h across it from the centroid, the design row
+    x = [1, a, a^2] (or [1, a, 0]), the extent e = max |a| and the noise
+    factor nu (|cos| of the beam against the normal, floored; 1 for
+    isotropic noise), each multiplied by 0 or 1 for unused slots.  Then, with
+    A = X^T X plus a relative ridge (1e-12 trace(A) on the diagonal;
+    A[2, 2] = 1 for straight lines): wts = X A^-1 (k, 3), the coefficients
+    beta = h^T wts and Q = sum_l nu_l^2 wts_l wts_l^T, the model's variance
+    in units of sigma^2.  A^-1 comes from Gaussian elimination with partial
+    pivoting (_inverse3: LAPACK's dgesv method, as numpy's inv).
+
+    Each sum runs over the slots in order from 0.0, so the values are those
+    of the numpy expressions where they have no sums, and otherwise fixed
+    (tests/registration/test_compiled_kernels.py compares them with
+    numpy's products and inverses to rounding).  The six sums of A, the
+    three of beta and the six of Q each advance together in one pass over
+    the slots (the same additions in the same order per sum) rather than
+    one sum after another, each chain of 16 dependent additions waiting on
+    the one before, and the slots' values live in per-line scratch rather
+    than (M, k, 3) arrays between two kernels: 253 -> 126 µs a 721-point
+    scan of benchmarks/registration.py, the gathers of the line points'
+    rows and their int32 copy included.
+
+    Returns the line points (M, 2), the (M, 14) line rows [centroid (2),
+    normal (2), beta (3), Q00, Q01, Q02, Q11, Q12, Q22, extent], the
+    readings of each line (M, k) int32 and their sensitivities nu * wts
+    (M, k, 3) float32.
     """
-    nl, k = h.shape
+    nl = len(rows)
+    k = idx.shape[1]
+    lp = np.empty((nl, 2))
     line = np.empty((nl, 14))
+    nbr = np.empty((nl, k), np.int32)
     sens = np.empty((nl, k, 3), np.float32)
+    xs = np.empty((k, 3))
+    hs = np.empty(k)
+    nus = np.empty(k)
     a = np.empty((3, 3))
     lu = np.empty((3, 3))
     perm = np.empty(3, np.int64)
     unit = np.empty(3)
     inv = np.empty((3, 3))
-    w = np.empty((k, 3))
     for m in range(nl):
-        for i in range(3):
-            for j in range(i, 3):
-                acc = 0.0
-                for q in range(k):
-                    acc += x[m, q, i] * x[m, q, j]
-                a[i, j] = acc
-                a[j, i] = acc
-        if not quadratic:
-            a[2, 2] = 1.0
-        ridge = 1e-12 * (a[0, 0] + a[1, 1] + a[2, 2])
-        for i in range(3):
-            a[i, i] += ridge
-        _inverse3(a, lu, perm, unit, inv)
+        row = rows[m]
+        cx = centroid[row, 0]
+        cy = centroid[row, 1]
+        nx = normal[row, 0]
+        ny = normal[row, 1]
+        tx = tangent[row, 0]
+        ty = tangent[row, 1]
+        lp[m, 0] = points[row, 0]
+        lp[m, 1] = points[row, 1]
+        e = 0.0
+        a00 = 0.0
+        a01 = 0.0
+        a02 = 0.0
+        a11 = 0.0
+        a12 = 0.0
+        a22 = 0.0
         for q in range(k):
-            for j in range(3):
-                w[q, j] = x[m, q, 0] * inv[0, j] + x[m, q, 1] * inv[1, j] + x[m, q, 2] * inv[2, j]
-                sens[m, q, j] = nu[m, q] * w[q, j]
-        line[m, 0] = c_l[m, 0]
-        line[m, 1] = c_l[m, 1]
-        line[m, 2] = n_l[m, 0]
-        line[m, 3] = n_l[m, 1]
-        for j in range(3):
-            acc = 0.0
-            for q in range(k):
-                acc += h[m, q] * w[q, j]
-            line[m, 4 + j] = acc
-        slot = 7
-        for i in range(3):
-            for j in range(i, 3):
-                acc = 0.0
-                for q in range(k):
-                    acc += nu[m, q] * nu[m, q] * w[q, i] * w[q, j]
-                line[m, slot] = acc
-                slot += 1
-        line[m, 13] = extent[m]
-    return line, sens
+            u = 1.0 if used[row, q] else 0.0
+            p = idx[row, q]
+            nbr[m, q] = p
+            dx = points[p, 0] - cx
+            dy = points[p, 1] - cy
+            al = (dx * tx + dy * ty) * u
+            hs[q] = (dx * nx + dy * ny) * u
+            x2 = al * al if quadratic else 0.0
+            xs[q, 0] = u
+            xs[q, 1] = al
+            xs[q, 2] = x2
+            e = max(e, abs(al)) if q else abs(al)
+            if range_noise:
+                c = abs(beams[p, 0] * nx + beams[p, 1] * ny)
+                c = c if c >= min_incidence_cos else min_incidence_cos
+            else:
+                c = 1.0
+            nus[q] = c * u
+            a00 += u * u
+            a01 += u * al
+            a02 += u * x2
+            a11 += al * al
+            a12 += al * x2
+            a22 += x2 * x2
+        if not quadratic:
+            a22 = 1.0
+        ridge = 1e-12 * (a00 + a11 + a22)
+        a[0, 0] = a00 + ridge
+        a[0, 1] = a01
+        a[0, 2] = a02
+        a[1, 0] = a01
+        a[1, 1] = a11 + ridge
+        a[1, 2] = a12
+        a[2, 0] = a02
+        a[2, 1] = a12
+        a[2, 2] = a22 + ridge
+        _inverse3(a, lu, perm, unit, inv)
+        b0 = 0.0
+        b1 = 0.0
+        b2 = 0.0
+        q00 = 0.0
+        q01 = 0.0
+        q02 = 0.0
+        q11 = 0.0
+        q12 = 0.0
+        q22 = 0.0
+        for q in range(k):
+            x0 = xs[q, 0]
+            x1 = xs[q, 1]
+            x2 = xs[q, 2]
+            w0 = x0 * inv[0, 0] + x1 * inv[1, 0] + x2 * inv[2, 0]
+            w1 = x0 * inv[0, 1] + x1 * inv[1, 1] + x2 * inv[2, 1]
+            w2 = x0 * inv[0, 2] + x1 * inv[1, 2] + x2 * inv[2, 2]
+            nu = nus[q]
+            sens[m, q, 0] = nu * w0
+            sens[m, q, 1] = nu * w1
+            sens[m, q, 2] = nu * w2
+            hq = hs[q]
+            b0 += hq * w0
+            b1 += hq * w1
+            b2 += hq * w2
+            q00 += nu * nu * w0 * w0
+            q01 += nu * nu * w0 * w1
+            q02 += nu * nu * w0 * w2
+            q11 += nu * nu * w1 * w1
+            q12 += nu * nu * w1 * w2
+            q22 += nu * nu * w2 * w2
+        line[m, 0] = cx
+        line[m, 1] = cy
+        line[m, 2] = nx
+        line[m, 3] = ny
+        line[m, 4] = b0
+        line[m, 5] = b1
+        line[m, 6] = b2
+        line[m, 7] = q00
+        line[m, 8] = q01
+        line[m, 9] = q02
+        line[m, 10] = q11
+        line[m, 11] = q12
+        line[m, 12] = q22
+        line[m, 13] = e
+    return lp, line, nbr, sens
 
 
 @njit(cache=True, nogil=True)

@@ -299,8 +299,7 @@ class PreparedScan:
                 # Another thread (a Dask worker runs batches in threads) built it and dropped "fit"
                 # in between; it stores "target" before dropping "fit".
                 return self._lazy["target"]
-            idx, used, normal, tangent, centroid, li, opt = fit
-            got = _target_side(self, idx[li], used[li], normal[li], tangent[li], centroid[li], opt)
+            got = _target_side(self, *fit)
             self._lazy["target"] = got
             self._lazy.pop("fit", None)
         return got
@@ -704,9 +703,12 @@ def _prepare(pts, opt: RegistrationOptions, with_grid: bool) -> PreparedScan:
     return scan
 
 
-def _target_side(scan: PreparedScan, nidx, used_l, n_l, t_l, c_l, opt: RegistrationOptions):
-    """Line points, line models and reading sensitivities of a scan's line points (its role as a target)."""
-    pts, beams = scan.points, scan.beams
+def _target_side(scan: PreparedScan, idx, used, normal, tangent, centroid, rows, opt: RegistrationOptions):
+    """Line points, line models and reading sensitivities of a scan's line points (its role as a target).
+
+    ``idx, used, normal, tangent, centroid`` are :func:`_line_features`' arrays over all the scan's
+    points and ``rows`` the line points among them (``scan.line_index``).
+    """
     # Local model h = f(a) fitted by least squares, a the offset of a neighbour along the line
     # and h across it: a straight line
     # [1, a] or, by default, a parabola [1, a, a^2] so that a curved surface
@@ -716,19 +718,19 @@ def _target_side(scan: PreparedScan, nidx, used_l, n_l, t_l, c_l, opt: Registrat
     # phi(s) = [1, s, 2 m s - m^2].  wts[l] = (X^T X)^-1 x_l gives
     # f(s) = sum_l h_l (wts_l . phi(s)), the fit's linear dependence on each
     # reading, which the covariance needs.
-    quadratic = opt.line_model == "quadratic"
-    # The offsets, design rows (M, k, 3), extents and noise factors (_kernels.line_offsets), then
-    # the least-squares solve and products per line (_kernels.line_fits): 1.05 -> 0.38 ms a scan on
-    # the 5,000-scan warehouse log, against batched numpy products and 3 x 3 inverses, whose BLAS
-    # and LAPACK orders of additions the loops do not reproduce (the last bits differ).
-    x, h, extent, nu = _kernels.line_offsets(pts, beams, nidx, used_l, c_l, n_l, t_l, quadratic,
-                                             opt.point_noise == "range", opt.min_incidence_cos)
-    line, sens = _kernels.line_fits(x, h, nu, c_l, n_l, extent, quadratic)
-    lp = np.ascontiguousarray(pts[scan.line_index])
+    # The offsets, the least-squares solve and products per line in one compiled call
+    # (_kernels.line_models, which also takes the line points' rows of the arrays): 1.05 -> 0.38 ms a
+    # scan on the 5,000-scan warehouse log against batched numpy products and 3 x 3 inverses, whose
+    # BLAS and LAPACK orders of additions the loops do not reproduce (the last bits differ); then
+    # 0.25 -> 0.13 ms a 721-point scan of benchmarks/registration.py against two kernels with
+    # (M, k, 3) arrays in between and the rows gathered in numpy.
+    lp, line, nbr, sens = _kernels.line_models(scan.points, scan.beams, idx, used, normal, tangent, centroid, rows,
+                                               opt.line_model == "quadratic", opt.point_noise == "range",
+                                               opt.min_incidence_cos)
     # The compiled cell index answers ICP's nearest-line queries in about a twentieth of the
     # kd-tree's time (0.02 against 0.5 ms for 600 queries); the kd-tree (PreparedScan.tree) is
     # built from lp only when something asks for it.
-    return lp, line, nidx.astype(np.int32), sens, (lp, *_kernels.cell_index(lp, _CELL_M))
+    return lp, line, nbr, sens, (lp, *_kernels.cell_index(lp, _CELL_M))
 
 
 # Cell width (metres) of a target's nearest-line index: about half the correspondence distance, so

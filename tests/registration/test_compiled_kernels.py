@@ -311,7 +311,10 @@ def test_line_models_match_the_numpy_expressions(model, noise):
     prepared = _prepare(pts, opt, False)
     idx, used, normal, tangent, centroid, li, _ = prepared._lazy["fit"]
     nidx, used_l, n_l, t_l, c_l = idx[li], used[li], normal[li], tangent[li], centroid[li]
-    _, line, _, coef, _ = _target_side(prepared, nidx, used_l, n_l, t_l, c_l, opt)
+    lp, line, nbr, coef, _ = _target_side(prepared, idx, used, normal, tangent, centroid, li, opt)
+    np.testing.assert_array_equal(lp, pts[li])
+    np.testing.assert_array_equal(nbr, nidx)
+    assert nbr.dtype == np.int32 and coef.dtype == np.float32
     nused = used_l.astype(float)
     dx = pts[:, 0][nidx] - c_l[:, :1]
     dy = pts[:, 1][nidx] - c_l[:, 1:]
