@@ -339,12 +339,19 @@ def cell_index(points, cell):
     key = np.empty(n, np.int64)
     for i in range(n):
         key[i] = min(int((points[i, 0] - x0) / cell), ni - 1) * nj + min(int((points[i, 1] - y0) / cell), nj - 1)
-    order = np.argsort(key, kind="mergesort").astype(np.int32)
     start = np.zeros(ni * nj + 1, np.int32)
     for i in range(n):
         start[key[i] + 1] += 1
     for c in range(ni * nj):
         start[c + 1] += start[c]
+    # Each point to the next free place of its cell, in index order: the order of a stable sort by
+    # cell, as np.argsort(key, kind="mergesort") gave it, without the sort (17 -> 6 µs for the 590
+    # line points of a 721-point scan of benchmarks/registration.py).
+    order = np.empty(n, np.int32)
+    fill = start[:-1].copy()
+    for i in range(n):
+        order[fill[key[i]]] = i
+        fill[key[i]] += 1
     origin = np.empty(2)
     origin[0] = x0
     origin[1] = y0

@@ -41,6 +41,19 @@ def test_nearest_matches_ckdtree_with_upper_bound(name, pts, spread, upper):
     np.testing.assert_array_equal(d, ref_d)
 
 
+@pytest.mark.parametrize("name, pts, spread", list(_clouds()), ids=lambda v: v if isinstance(v, str) else "")
+def test_cell_index_orders_points_by_cell_as_a_stable_sort(name, pts, spread):
+    # Reference: np.argsort of each point's cell number with a stable sort (what the index used).
+    origin, cell, columns, start, order = _kernels.cell_index(pts, _CELL_M)
+    rows = (len(start) - 1) // columns
+    ci = np.minimum(((pts[:, 0] - origin[0]) / cell).astype(np.int64), rows - 1)
+    cj = np.minimum(((pts[:, 1] - origin[1]) / cell).astype(np.int64), columns - 1)
+    key = ci * columns + cj
+    np.testing.assert_array_equal(order, np.argsort(key, kind="stable"))
+    np.testing.assert_array_equal(start, np.concatenate([[0], np.cumsum(np.bincount(key, minlength=len(start) - 1))]))
+    assert order.dtype == start.dtype == np.int32
+
+
 @pytest.mark.parametrize("k, radius", [(16, 0.3), (5, 0.3), (21, 0.5), (40, 2.0)])
 def test_neighbourhoods_match_ckdtree(k, radius):
     rng = np.random.default_rng(k)
