@@ -1034,6 +1034,40 @@ def line_models(points, beams, idx, used, normal, tangent, centroid, rows, quadr
 
 
 @njit(cache=True, nogil=True)
+def first_in_cells(points, cell):
+    """Indices, ascending, of the points that come first in their square cell of ``cell`` metres (correlative.downsample).
+
+    A point's cell is ``floor(p / cell)`` per axis, told apart by the key
+    ``i * 1_000_003 + j`` (int64, as numpy computes it): the first point of
+    each distinct key, as ``np.unique(key, return_index=True)`` (a stable
+    sort) and ``sort`` gave them.  An open-addressing table of the keys
+    seen replaces the sort: 21.5 -> 5.5 µs for a 721-point scan of
+    benchmarks/registration.py.
+    """
+    n = len(points)
+    bits = 4
+    while (1 << bits) < 2 * n:
+        bits += 1
+    mask = (1 << bits) - 1
+    keys = np.empty(1 << bits, np.int64)
+    taken = np.zeros(1 << bits, np.bool_)
+    out = np.empty(n, np.int64)
+    m = 0
+    for p in range(n):
+        key = np.int64(math.floor(points[p, 0] / cell)) * 1_000_003 + np.int64(math.floor(points[p, 1] / cell))
+        # Fibonacci hashing of the key's bits; linear probing.
+        slot = np.int64((np.uint64(key) * np.uint64(11400714819323198485)) >> np.uint64(64 - bits))
+        while taken[slot] and keys[slot] != key:
+            slot = (slot + 1) & mask
+        if not taken[slot]:
+            taken[slot] = True
+            keys[slot] = key
+            out[m] = p
+            m += 1
+    return out[:m]
+
+
+@njit(cache=True, nogil=True)
 def point_candidates(idx, used, has_line, min_neighbours):
     """Points with no line, at least ``min_neighbours`` neighbours and no neighbour on a line (icp._point_like).
 

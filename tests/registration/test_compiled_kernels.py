@@ -54,6 +54,19 @@ def test_cell_index_orders_points_by_cell_as_a_stable_sort(name, pts, spread):
     assert order.dtype == start.dtype == np.int32
 
 
+@pytest.mark.parametrize("cell", [0.05, 0.2, 1.0])
+@pytest.mark.parametrize("name, pts, spread", list(_clouds()), ids=lambda v: v if isinstance(v, str) else "")
+def test_first_in_cells_match_numpy_unique(name, pts, spread, cell):
+    # Reference: the first point of each cell key as np.unique(..., return_index=True) gives it
+    # (the code correlative.downsample used), for clouds whose keys collide in the hash table.
+    keys = np.floor(pts / cell).astype(np.int64)
+    _, ref = np.unique(keys[:, 0] * 1_000_003 + keys[:, 1], return_index=True)
+    got = _kernels.first_in_cells(np.ascontiguousarray(pts), cell)
+    np.testing.assert_array_equal(got, np.sort(ref))
+    if cell >= 0.2 and name != "wide":
+        assert 1 < len(got) < len(pts)          # cells shared, so the table's lookups take part
+
+
 @pytest.mark.parametrize("k, radius", [(16, 0.3), (5, 0.3), (21, 0.5), (40, 2.0)])
 def test_neighbourhoods_match_ckdtree(k, radius):
     rng = np.random.default_rng(k)
