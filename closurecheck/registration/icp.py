@@ -1013,14 +1013,13 @@ def _icp_line(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions
         # The default kernel: the whole loop in one compiled call (_kernels.icp_line, the same
         # iterations in a fixed order of additions).  Measured on a 5,000-scan warehouse log: 230 µs
         # per iteration as a Python loop of numpy and kernel calls, 480 µs with small objects.
-        cand, cand_pts, cand_normals = _candidates(src, cos_max)
+        cand = src.line_index if cos_max is not None else np.arange(len(src.points))
         has_points = len(src.point_index) > 0 and len(tgt.point_index) >= 2
         target_index = tgt._target_side()[4]
         pp_index = tgt._point_cells() if has_points else target_index
-        (x, converged, it, status, i, j, r, v, w, jac, s_al, phi2, sc, scale,
+        (x, converged, it, status, i, j, r, v, w, jac, s_along, sc, scale,
          m_src, m_ends, pr, pv, pw, pjac, psc, ptc) = _kernels.icp_line(
-            *target_index, tgt.line, cand, cand_pts, cand_normals if cos_max is not None else cand_pts,
-            src.points, src.beams, np.array(x0, dtype=float), lscale,
+            *target_index, tgt.line, cand, src.normals, src.points, src.beams, np.array(x0, dtype=float), lscale,
             opt.max_iterations if iterations is None else iterations, opt.reassociate_m,
             opt.max_correspondence_m, opt.max_extrapolation_m, -np.inf if cos_max is None else cos_max,
             cos_max is not None, opt.min_incidence_cos, src.point_noise == "range", kernel.scale, _MAD_TO_SIGMA,
@@ -1034,7 +1033,7 @@ def _icp_line(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions
             if status == 3:     # reached found[scale] at the start of iteration it
                 return _failed(x, it - 1, int(scale))
             rows = _PointRows(m_src, m_ends, pr, pv, pw, pjac, psc, ptc) if len(m_src) else None
-            return _Solution(x, converged, it, i, j, r, v, w, jac, np.stack((s_al, phi2), axis=1), sc, scale, rows)
+            return _Solution(x, converged, it, i, j, r, v, w, jac, s_along, sc, scale, rows)
     return _icp_line_loop(src, tgt, x0, opt, kernel, cos_max, lscale, found, iterations)
 
 
