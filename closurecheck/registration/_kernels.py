@@ -733,6 +733,86 @@ def target_sums(wj, rows, nbr_index, nbr_coef, basis, n_target):
 
 
 @njit(cache=True, nogil=True)
+def scale_both(h, middle, inv_length, per):
+    """``h * s[:, None] * s[None, :] * per`` and ``middle * s[:, None] * s[None, :]`` (3, 3) with s = (1, 1, inv_length).
+
+    covariance.analyse's scaled coordinates, element by element in numpy's
+    order of operations (the same bits; no sums).
+    """
+    s = np.empty(3)
+    s[0] = 1.0
+    s[1] = 1.0
+    s[2] = inv_length
+    a = np.empty((3, 3))
+    m = np.empty((3, 3))
+    for i in range(3):
+        for j in range(3):
+            a[i, j] = h[i, j] * s[i] * s[j] * per
+            m[i, j] = middle[i, j] * s[i] * s[j]
+    return a, m
+
+
+@njit(cache=True, nogil=True)
+def eigen_floor(evals, evecs, threshold):
+    """The eigenvalue tests of covariance.analyse, element by element as numpy evaluates them.
+
+    ``evals = np.maximum(evals, 0.0)``; ``top`` the largest, or 1 when it is
+    not positive; ``degeneracy = evals[0] / top``; ``weak = evals <
+    threshold * top``; ``d = evecs / np.maximum(evals, 1e-12 * top)``
+    (np.maximum keeps its first argument when it is NaN or not smaller).
+    Returns (evals, top, degeneracy, weak, d).
+    """
+    ev = np.empty(3)
+    for i in range(3):
+        e = evals[i]
+        ev[i] = e if (e >= 0.0 or e != e) else 0.0
+    top = ev[2] if ev[2] > 0 else 1.0
+    degeneracy = ev[0] / top
+    bar = threshold * top
+    weak = np.empty(3, np.bool_)
+    for i in range(3):
+        weak[i] = ev[i] < bar
+    low = 1e-12 * top
+    d = np.empty((3, 3))
+    for j in range(3):
+        e = ev[j]
+        den = e if (e >= low or e != e) else low
+        for i in range(3):
+            d[i, j] = evecs[i, j] / den
+    return ev, top, degeneracy, weak, d
+
+
+@njit(cache=True, nogil=True)
+def times_two(p, per, factor):
+    """``inv = p * per`` and ``factor * inv`` (3, 3): covariance.analyse's inverse and its multiple, as numpy's products."""
+    inv = np.empty((3, 3))
+    first = np.empty((3, 3))
+    for i in range(3):
+        for j in range(3):
+            inv[i, j] = p[i, j] * per
+            first[i, j] = factor * inv[i, j]
+    return inv, first
+
+
+@njit(cache=True, nogil=True)
+def unscale_symmetric(c, inv_length):
+    """``0.5 * (cov + cov.T)`` with ``cov = c * s[:, None] * s[None, :]``, s = (1, 1, inv_length) (covariance.analyse)."""
+    s = np.empty(3)
+    s[0] = 1.0
+    s[1] = 1.0
+    s[2] = inv_length
+    cov = np.empty((3, 3))
+    for i in range(3):
+        for j in range(3):
+            cov[i, j] = c[i, j] * s[i] * s[j]
+    out = np.empty((3, 3))
+    for i in range(3):
+        for j in range(3):
+            out[i, j] = 0.5 * (cov[i, j] + cov[j, i])
+    return out
+
+
+@njit(cache=True, nogil=True)
 def live_blocks(nodes, score, bar, row_seed):
     """The blocks (rows [angle row, ox, oy, level]) whose bound beats their seed's bar, in their order.
 

@@ -476,3 +476,61 @@ def test_stamp_grid_matches_maximum_at():
     got = _kernels.stamp_grid(occupied, rows, cols, di, dj, value)
     np.testing.assert_array_equal(got, ref)
     assert (~inside).any() and value.max() == 255 and len(np.unique(ref)) > 5
+
+
+def _analyse_in_numpy(h, middle, sigma2, n_corr, length_m, method, degeneracy_threshold, unobservable_sigma_m, kappa,
+                      points_per_normal):
+    # covariance.analyse as numpy code, before its element-by-element steps were compiled.
+    scale = np.array([1.0, 1.0, 1.0 / length_m])
+    per = 1.0 / max(n_corr, 1)
+    evals, evecs = np.linalg.eigh(h * scale[:, None] * scale[None, :] * per)
+    evals = np.maximum(evals, 0.0)
+    top = evals[-1] if evals[-1] > 0 else 1.0
+    degeneracy = float(evals[0] / top)
+    weak = evals < degeneracy_threshold * top
+    inv_s = (evecs / np.maximum(evals, 1e-12 * top)) @ evecs.T * per
+    if method == "censi":
+        ms = middle * scale[:, None] * scale[None, :]
+        cov_s = kappa * sigma2 * inv_s @ ms @ inv_s
+    else:
+        cov_s = kappa * sigma2 * inv_s
+    if weak.any():
+        big = unobservable_sigma_m ** 2
+        for w in np.flatnonzero(weak):
+            cov_s = cov_s + big * np.outer(evecs[:, w], evecs[:, w])
+            for k in np.flatnonzero(~weak):
+                tau2 = evals[w] / evals[k] * points_per_normal * per
+                cov_s = cov_s + big * tau2 * np.outer(evecs[:, k], evecs[:, k])
+    cov = cov_s * scale[:, None] * scale[None, :]
+    return 0.5 * (cov + cov.T), evals, evecs, degeneracy, bool(weak.any())
+
+
+@pytest.mark.parametrize("method", ["censi", "hessian"])
+def test_covariance_analysis_matches_the_numpy_version(method):
+    # Reference: the numpy code above, to the bit, on well-posed, degenerate (a corridor: one
+    # direction nearly free, or exactly free) and rank-two Hessians.
+    from closurecheck.registration.covariance import analyse
+
+    rng = np.random.default_rng(21)
+    cases = 0
+    for trial in range(300):
+        jac = rng.normal(size=(rng.integers(3, 400), 3)) * [1.0, 1.0, rng.uniform(0.5, 20.0)]
+        kind = trial % 3
+        if kind == 1:
+            jac[:, 0] *= 10.0 ** rng.uniform(-6, -1)        # nearly unconstrained along x
+        elif kind == 2:
+            jac[:, 1] = 0.0                                  # exactly unconstrained along y
+        h = jac.T @ jac
+        g = rng.normal(size=(3, 3))
+        middle = h + g @ g.T
+        args = (rng.uniform(1e-6, 1e-3), len(jac), rng.uniform(0.5, 30.0))
+        opts = dict(degeneracy_threshold=0.01, unobservable_sigma_m=5.0, kappa=1.04, points_per_normal=16.0)
+        got = analyse(h, middle if method == "censi" else None, *args, method=method, **opts)
+        ref = _analyse_in_numpy(h, middle, *args, method, *opts.values())
+        np.testing.assert_array_equal(got.covariance, ref[0])
+        np.testing.assert_array_equal(got.eigenvalues, ref[1])
+        np.testing.assert_array_equal(got.eigenvectors, ref[2])
+        assert got.degeneracy == ref[3] and got.degenerate == ref[4]
+        assert np.signbit(got.eigenvalues).tolist() == np.signbit(ref[1]).tolist()
+        cases += ref[4]
+    assert 100 <= cases < 300          # both sides of the degeneracy test
