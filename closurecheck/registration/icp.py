@@ -46,6 +46,7 @@ estimated from the residuals.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field, fields, replace
 
 import numpy as np
@@ -1193,7 +1194,7 @@ def _finish(src: PreparedScan, tgt: PreparedScan, sol: _Solution, opt: Registrat
         om_all = np.concatenate([om, pr.w / pr.v])
         jac_all = np.concatenate([sol.jac, pr.jac])
     h = _cov.hessian(jac_all, om_all)
-    e_wu2, kappa = _cov.kernel_moments(kernel_from_name(opt.kernel, opt.kernel_scale))
+    e_wu2, kappa = _kernel_of(opt)[1]
     sigma2 = _cov.noise_variance(r_all, om_all, e_wu2)
     middle = None
     if opt.covariance == "censi":
@@ -1208,7 +1209,10 @@ def _finish(src: PreparedScan, tgt: PreparedScan, sol: _Solution, opt: Registrat
                        points_per_normal=float(opt.line_neighbours))
     z = np.abs(r_all / np.sqrt(v_all))
     inl = z <= opt.inlier_sigmas * sol.scale
-    rmse = float(np.sqrt(np.mean(r_all[inl] ** 2))) if inl.any() else float("nan")
+    # np.mean's sum (add.reduce) over its count and np.count_nonzero for the mean of a mask, the
+    # same values without np.mean's Python layers (8.4 -> 2.5 µs a registration).
+    r_in = r_all[inl]
+    rmse = math.sqrt(float(np.add.reduce(r_in * r_in)) / len(r_in)) if len(r_in) else float("nan")
     delta = sol.x.copy()
     cov = est.covariance
     evals = est.eigenvalues.copy()
@@ -1217,7 +1221,7 @@ def _finish(src: PreparedScan, tgt: PreparedScan, sol: _Solution, opt: Registrat
         arr.flags.writeable = False
     return Registration(
         delta=delta, covariance=cov, rmse=rmse, overlap=n / len(src.points), converged=sol.converged,
-        iterations=sol.iterations, inlier_fraction=float(inl.mean()), correspondences=n,
+        iterations=sol.iterations, inlier_fraction=np.count_nonzero(inl) / len(inl), correspondences=n,
         sigma_m=est.sigma_m, eigenvalues=evals, weakest_direction=weak, degeneracy=est.degeneracy,
         degenerate=est.degenerate, **ranking(cov), **extra,
     )
@@ -1289,7 +1293,7 @@ def register_prepared(source: PreparedScan, target: PreparedScan, guess=(0.0, 0.
 
 def _register_prepared(source: PreparedScan, target: PreparedScan, seeds, options: RegistrationOptions,
                        guess_cov) -> Registration:
-    kernel = kernel_from_name(options.kernel, options.kernel_scale)
+    kernel = _kernel_of(options)[0]
     refine = _icp_point if options.method == "point_to_point" else _icp_line
 
     coarse_best = coarse_second = float("nan")
@@ -1341,6 +1345,22 @@ def _register_prepared(source: PreparedScan, target: PreparedScan, seeds, option
     best = int(np.argmax(fits))
     return _finish(source, target, sols[best], options, lambda cov: _ranking(sols, fits, best, cov, options),
                    coarse_ran=bool(options.coarse), coarse_score=coarse_best, coarse_second_score=coarse_second)
+
+
+# The robust kernel of each (name, scale) with its Gaussian moments (covariance.kernel_moments), built
+# once: building a Kernel checks its settings and the moments' cache hashes it, 3.3 µs a registration.
+_KERNELS: dict = {}
+
+
+def _kernel_of(opt: RegistrationOptions):
+    """(kernel, (E[w u^2], kappa)) of ``opt.kernel`` at ``opt.kernel_scale``."""
+    key = (opt.kernel, opt.kernel_scale)
+    got = _KERNELS.get(key)
+    if got is None:
+        kernel = kernel_from_name(*key)
+        got = (kernel, _cov.kernel_moments(kernel))
+        _KERNELS[key] = got
+    return got
 
 
 def _ranking(sols: list, fits, best: int, covariance, options: RegistrationOptions) -> dict:
