@@ -1359,6 +1359,8 @@ def _kernel_of(opt: RegistrationOptions):
     if got is None:
         kernel = kernel_from_name(*key)
         got = (kernel, _cov.kernel_moments(kernel))
+        if len(_KERNELS) >= 64:     # a caller sweeping kernel scales does not grow it without bound
+            _KERNELS.clear()
         _KERNELS[key] = got
     return got
 
