@@ -744,7 +744,7 @@ def target_sums(wj, rows, nbr_index, nbr_coef, basis, n_target):
 
 @njit(cache=True, nogil=True)
 def scale_both(h, middle, inv_length, per):
-    """``h * s[:, None] * s[None, :] * per`` and ``middle * s[:, None] * s[None, :]`` (3, 3) with s = (1, 1, inv_length).
+    """``h * s[:, None] * s[None, :] * per`` and ``middle * s[:, None] * s[None, :]``, s = (1, 1, inv_length).
 
     covariance.analyse's scaled coordinates, element by element in numpy's
     order of operations (the same bits; no sums).
@@ -794,7 +794,7 @@ def eigen_floor(evals, evecs, threshold):
 
 @njit(cache=True, nogil=True)
 def times_two(p, per, factor):
-    """``inv = p * per`` and ``factor * inv`` (3, 3): covariance.analyse's inverse and its multiple, as numpy's products."""
+    """``inv = p * per`` and ``factor * inv`` (3, 3): covariance.analyse's inverse and its multiple, as numpy's."""
     inv = np.empty((3, 3))
     first = np.empty((3, 3))
     for i in range(3):
@@ -806,7 +806,7 @@ def times_two(p, per, factor):
 
 @njit(cache=True, nogil=True)
 def unscale_symmetric(c, inv_length):
-    """``0.5 * (cov + cov.T)`` with ``cov = c * s[:, None] * s[None, :]``, s = (1, 1, inv_length) (covariance.analyse)."""
+    """``0.5 * (cov + cov.T)``, ``cov = c * s[:, None] * s[None, :]``, s = (1, 1, inv_length): covariance.analyse."""
     s = np.empty(3)
     s[0] = 1.0
     s[1] = 1.0
@@ -1125,7 +1125,7 @@ def line_models(points, beams, idx, used, normal, tangent, centroid, rows, quadr
 
 @njit(cache=True, nogil=True)
 def first_in_cells(points, cell):
-    """Indices, ascending, of the points that come first in their square cell of ``cell`` metres (correlative.downsample).
+    """Indices, ascending, of the points that come first in their square cell of ``cell`` metres (downsample).
 
     A point's cell is ``floor(p / cell)`` per axis, told apart by the key
     ``i * 1_000_003 + j`` (int64, as numpy computes it): the first point of
