@@ -554,12 +554,19 @@ def cell_index(points, cell):
     key = np.empty(n, np.int64)
     for i in range(n):
         key[i] = min(int((points[i, 0] - x0) / cell), ni - 1) * nj + min(int((points[i, 1] - y0) / cell), nj - 1)
-    order = np.argsort(key, kind="mergesort").astype(np.int32)
     start = np.zeros(ni * nj + 1, np.int32)
     for i in range(n):
         start[key[i] + 1] += 1
     for c in range(ni * nj):
         start[c + 1] += start[c]
+    # Each point to the next free place of its cell, in index order: the order of a stable sort by
+    # cell, as np.argsort(key, kind="mergesort") gave it, without the sort (17 -> 6 µs for the 590
+    # line points of a 721-point scan of benchmarks/registration.py).
+    order = np.empty(n, np.int32)
+    fill = start[:-1].copy()
+    for i in range(n):
+        order[fill[key[i]]] = i
+        fill[key[i]] += 1
     origin = np.empty(2)
     origin[0] = x0
     origin[1] = y0
@@ -652,15 +659,25 @@ def nearest(points, origin, cell, columns, start, order, queries, upper):
                 break
             for i in range(max(ci - ring, i0), min(ci + ring, i1) + 1):
                 gx = max(i - fi, 0.0, fi - (i + 1)) * cell
+                if gx * gx > best:      # every cell of the row lies farther (queries below: 40 -> 38 µs)
+                    continue
                 step = 1 if i == ci - ring or i == ci + ring else 2 * ring
                 for j in range(cj - ring, cj + ring + 1, step):
                     if j < j0 or j > j1:
                         continue
+                    # An empty cell is passed over before its gap is worked out: most cells of the
+                    # rings are empty (a scan's points lie along its walls), and the test comes first
+                    # (ICP's queries 54 -> 40 µs at the converged pose, 90 -> 63 at the guess, for
+                    # the 560 candidates of a benchmarks/registration.py pair).
+                    c = i * nj + j
+                    lo = start[c]
+                    hi = start[c + 1]
+                    if lo == hi:
+                        continue
                     gy = max(j - fj, 0.0, fj - (j + 1)) * cell
                     if gx * gx + gy * gy > best:
                         continue
-                    c = i * nj + j
-                    best, bi, tie = _scan_cell(points, order, start[c], start[c + 1], qx, qy, n, best, bi, tie)
+                    best, bi, tie = _scan_cell(points, order, lo, hi, qx, qy, n, best, bi, tie)
         if bi < n:
             dist[p] = math.sqrt(best)
             idx[p] = bi
@@ -947,6 +964,86 @@ def target_sums(wj, rows, nbr_index, nbr_coef, basis, n_target):
 
 
 @njit(cache=True, nogil=True)
+def scale_both(h, middle, inv_length, per):
+    """``h * s[:, None] * s[None, :] * per`` and ``middle * s[:, None] * s[None, :]``, s = (1, 1, inv_length).
+
+    covariance.analyse's scaled coordinates, element by element in numpy's
+    order of operations (the same bits; no sums).
+    """
+    s = np.empty(3)
+    s[0] = 1.0
+    s[1] = 1.0
+    s[2] = inv_length
+    a = np.empty((3, 3))
+    m = np.empty((3, 3))
+    for i in range(3):
+        for j in range(3):
+            a[i, j] = h[i, j] * s[i] * s[j] * per
+            m[i, j] = middle[i, j] * s[i] * s[j]
+    return a, m
+
+
+@njit(cache=True, nogil=True)
+def eigen_floor(evals, evecs, threshold):
+    """The eigenvalue tests of covariance.analyse, element by element as numpy evaluates them.
+
+    ``evals = np.maximum(evals, 0.0)``; ``top`` the largest, or 1 when it is
+    not positive; ``degeneracy = evals[0] / top``; ``weak = evals <
+    threshold * top``; ``d = evecs / np.maximum(evals, 1e-12 * top)``
+    (np.maximum keeps its first argument when it is NaN or not smaller).
+    Returns (evals, top, degeneracy, weak, d).
+    """
+    ev = np.empty(3)
+    for i in range(3):
+        e = evals[i]
+        ev[i] = e if (e >= 0.0 or e != e) else 0.0
+    top = ev[2] if ev[2] > 0 else 1.0
+    degeneracy = ev[0] / top
+    bar = threshold * top
+    weak = np.empty(3, np.bool_)
+    for i in range(3):
+        weak[i] = ev[i] < bar
+    low = 1e-12 * top
+    d = np.empty((3, 3))
+    for j in range(3):
+        e = ev[j]
+        den = e if (e >= low or e != e) else low
+        for i in range(3):
+            d[i, j] = evecs[i, j] / den
+    return ev, top, degeneracy, weak, d
+
+
+@njit(cache=True, nogil=True)
+def times_two(p, per, factor):
+    """``inv = p * per`` and ``factor * inv`` (3, 3): covariance.analyse's inverse and its multiple, as numpy's."""
+    inv = np.empty((3, 3))
+    first = np.empty((3, 3))
+    for i in range(3):
+        for j in range(3):
+            inv[i, j] = p[i, j] * per
+            first[i, j] = factor * inv[i, j]
+    return inv, first
+
+
+@njit(cache=True, nogil=True)
+def unscale_symmetric(c, inv_length):
+    """``0.5 * (cov + cov.T)``, ``cov = c * s[:, None] * s[None, :]``, s = (1, 1, inv_length): covariance.analyse."""
+    s = np.empty(3)
+    s[0] = 1.0
+    s[1] = 1.0
+    s[2] = inv_length
+    cov = np.empty((3, 3))
+    for i in range(3):
+        for j in range(3):
+            cov[i, j] = c[i, j] * s[i] * s[j]
+    out = np.empty((3, 3))
+    for i in range(3):
+        for j in range(3):
+            out[i, j] = 0.5 * (cov[i, j] + cov[j, i])
+    return out
+
+
+@njit(cache=True, nogil=True)
 def live_blocks(nodes, score, bar, row_seed):
     """The blocks (rows [angle row, ox, oy, level]) whose bound beats their seed's bar, in their order.
 
@@ -1040,47 +1137,6 @@ def huber_rows(z, v, jac, c, mad_to_sigma, min_noise):
     return w, scale, jw
 
 
-@njit(cache=True, nogil=True)
-def line_offsets(points, beams, nidx, used, c_l, n_l, t_l, quadratic, range_noise, min_incidence_cos):
-    """The element-by-element part of the local line models' fits (icp._target_side).
-
-    For each line m and neighbour slot l (``used[m, l]``, reading
-    ``nidx[m, l]``): the offset a along the line and h across it from the
-    centroid ``c_l[m]``, the design row x = [1, a, a^2] (or [1, a, 0]), the
-    extent max |a| and the noise factor nu (|cos| of the beam against the
-    normal, floored; 1 for isotropic noise), each multiplied by 0 or 1 for
-    unused slots, in the numpy version's order of operations, so the bits
-    agree.  The least-squares products that follow stay numpy's (BLAS).
-    Returns x (M, k, 3), h (M, k), extent (M,), nu (M, k).
-    """
-    nl, k = nidx.shape
-    x = np.empty((nl, k, 3))
-    h = np.empty((nl, k))
-    extent = np.empty(nl)
-    nu = np.empty((nl, k))
-    for m in range(nl):
-        e = 0.0
-        for q in range(k):
-            u = 1.0 if used[m, q] else 0.0
-            p = nidx[m, q]
-            dx = points[p, 0] - c_l[m, 0]
-            dy = points[p, 1] - c_l[m, 1]
-            a = (dx * t_l[m, 0] + dy * t_l[m, 1]) * u
-            h[m, q] = (dx * n_l[m, 0] + dy * n_l[m, 1]) * u
-            x[m, q, 0] = u
-            x[m, q, 1] = a
-            x[m, q, 2] = a * a if quadratic else 0.0
-            e = max(e, abs(a)) if q else abs(a)
-            if range_noise:
-                c = abs(beams[p, 0] * n_l[m, 0] + beams[p, 1] * n_l[m, 1])
-                c = c if c >= min_incidence_cos else min_incidence_cos
-            else:
-                c = 1.0
-            nu[m, q] = c * u
-        extent[m] = e
-    return x, h, extent, nu
-
-
 @njit(cache=True, nogil=True, inline="always")
 def _lu3(lu, perm):
     """Factor the (3, 3) matrix in ``lu`` in place by Gaussian elimination with partial pivoting (LAPACK's method).
@@ -1125,7 +1181,7 @@ def _inverse3(a, lu, perm, unit, inv):
     """inv = a^-1 for a (3, 3) matrix: one factorisation (_lu3) for the three columns, in place.
 
     ``lu``, ``perm`` (3,) int and ``unit`` (3,) are scratch space, so that
-    line_fits, which calls it once per line, allocates nothing; a is left
+    line_models, which calls it once per line, allocates nothing; a is left
     as it was.
     """
     for i in range(3):
@@ -1140,64 +1196,186 @@ def _inverse3(a, lu, perm, unit, inv):
 
 
 @njit(cache=True, nogil=True)
-def line_fits(x, h, nu, c_l, n_l, extent, quadratic):
-    """The least-squares part of the local line models' fits (icp._target_side), per line.
+def line_models(points, beams, idx, used, normal, tangent, centroid, rows, quadratic, range_noise, min_incidence_cos):
+    """The local line models of a scan's line points (icp._target_side), one line at a time.
 
-    With X = x[m] (k, 3) the design rows and A = X^T X plus a relative
-    ridge (1e-12 trace(A) on the diagonal; A[2, 2] = 1 for straight
-    lines): wts = X A^-1 (k, 3), the model coefficients beta = h^T wts and
-    Q = sum_l nu_l^2 wts_l wts_l^T, the model's variance in units of
-    sigma^2.  A^-1 comes from Gaussian elimination with partial pivoting
-    (LAPACK's dgesv method, as numpy's inv).  Returns the (M, 14) line
-    rows [centroid (2), normal (2), beta (3), Q00, Q01, Q02, Q11, Q12,
-    Q22, extent] and the (M, k, 3) reading sensitivities nu * wts as float32.
+    For the line of point ``rows[m]``, fitted to its neighbour slots l
+    (``used``, readings ``idx``; unused slots hold reading 0): the offset a
+    along the line and h across it from the centroid, the design row
+    x = [1, a, a^2] (or [1, a, 0]), the extent e = max |a| and the noise
+    factor nu (|cos| of the beam against the normal, floored; 1 for
+    isotropic noise), each multiplied by 0 or 1 for unused slots.  Then, with
+    A = X^T X plus a relative ridge (1e-12 trace(A) on the diagonal;
+    A[2, 2] = 1 for straight lines): wts = X A^-1 (k, 3), the coefficients
+    beta = h^T wts and Q = sum_l nu_l^2 wts_l wts_l^T, the model's variance
+    in units of sigma^2.  A^-1 comes from Gaussian elimination with partial
+    pivoting (_inverse3: LAPACK's dgesv method, as numpy's inv).
+
+    Each sum runs over the slots in order from 0.0, so the values are those
+    of the numpy expressions where they have no sums, and otherwise fixed
+    (tests/registration/test_compiled_kernels.py compares them with
+    numpy's products and inverses to rounding).  The six sums of A, the
+    three of beta and the six of Q each advance together in one pass over
+    the slots (the same additions in the same order per sum) rather than
+    one sum after another, each chain of 16 dependent additions waiting on
+    the one before, and the slots' values live in per-line scratch rather
+    than (M, k, 3) arrays between two kernels: 253 -> 126 µs a 721-point
+    scan of benchmarks/registration.py, the gathers of the line points'
+    rows and their int32 copy included.
+
+    Returns the line points (M, 2), the (M, 14) line rows [centroid (2),
+    normal (2), beta (3), Q00, Q01, Q02, Q11, Q12, Q22, extent], the
+    readings of each line (M, k) int32 and their sensitivities nu * wts
+    (M, k, 3) float32.
     """
-    nl, k = h.shape
+    nl = len(rows)
+    k = idx.shape[1]
+    lp = np.empty((nl, 2))
     line = np.empty((nl, 14))
+    nbr = np.empty((nl, k), np.int32)
     sens = np.empty((nl, k, 3), np.float32)
+    xs = np.empty((k, 3))
+    hs = np.empty(k)
+    nus = np.empty(k)
     a = np.empty((3, 3))
     lu = np.empty((3, 3))
     perm = np.empty(3, np.int64)
     unit = np.empty(3)
     inv = np.empty((3, 3))
-    w = np.empty((k, 3))
     for m in range(nl):
-        for i in range(3):
-            for j in range(i, 3):
-                acc = 0.0
-                for q in range(k):
-                    acc += x[m, q, i] * x[m, q, j]
-                a[i, j] = acc
-                a[j, i] = acc
-        if not quadratic:
-            a[2, 2] = 1.0
-        ridge = 1e-12 * (a[0, 0] + a[1, 1] + a[2, 2])
-        for i in range(3):
-            a[i, i] += ridge
-        _inverse3(a, lu, perm, unit, inv)
+        row = rows[m]
+        cx = centroid[row, 0]
+        cy = centroid[row, 1]
+        nx = normal[row, 0]
+        ny = normal[row, 1]
+        tx = tangent[row, 0]
+        ty = tangent[row, 1]
+        lp[m, 0] = points[row, 0]
+        lp[m, 1] = points[row, 1]
+        e = 0.0
+        a00 = 0.0
+        a01 = 0.0
+        a02 = 0.0
+        a11 = 0.0
+        a12 = 0.0
+        a22 = 0.0
         for q in range(k):
-            for j in range(3):
-                w[q, j] = x[m, q, 0] * inv[0, j] + x[m, q, 1] * inv[1, j] + x[m, q, 2] * inv[2, j]
-                sens[m, q, j] = nu[m, q] * w[q, j]
-        line[m, 0] = c_l[m, 0]
-        line[m, 1] = c_l[m, 1]
-        line[m, 2] = n_l[m, 0]
-        line[m, 3] = n_l[m, 1]
-        for j in range(3):
-            acc = 0.0
-            for q in range(k):
-                acc += h[m, q] * w[q, j]
-            line[m, 4 + j] = acc
-        slot = 7
-        for i in range(3):
-            for j in range(i, 3):
-                acc = 0.0
-                for q in range(k):
-                    acc += nu[m, q] * nu[m, q] * w[q, i] * w[q, j]
-                line[m, slot] = acc
-                slot += 1
-        line[m, 13] = extent[m]
-    return line, sens
+            u = 1.0 if used[row, q] else 0.0
+            p = idx[row, q]
+            nbr[m, q] = p
+            dx = points[p, 0] - cx
+            dy = points[p, 1] - cy
+            al = (dx * tx + dy * ty) * u
+            hs[q] = (dx * nx + dy * ny) * u
+            x2 = al * al if quadratic else 0.0
+            xs[q, 0] = u
+            xs[q, 1] = al
+            xs[q, 2] = x2
+            e = max(e, abs(al)) if q else abs(al)
+            if range_noise:
+                c = abs(beams[p, 0] * nx + beams[p, 1] * ny)
+                c = c if c >= min_incidence_cos else min_incidence_cos
+            else:
+                c = 1.0
+            nus[q] = c * u
+            a00 += u * u
+            a01 += u * al
+            a02 += u * x2
+            a11 += al * al
+            a12 += al * x2
+            a22 += x2 * x2
+        if not quadratic:
+            a22 = 1.0
+        ridge = 1e-12 * (a00 + a11 + a22)
+        a[0, 0] = a00 + ridge
+        a[0, 1] = a01
+        a[0, 2] = a02
+        a[1, 0] = a01
+        a[1, 1] = a11 + ridge
+        a[1, 2] = a12
+        a[2, 0] = a02
+        a[2, 1] = a12
+        a[2, 2] = a22 + ridge
+        _inverse3(a, lu, perm, unit, inv)
+        b0 = 0.0
+        b1 = 0.0
+        b2 = 0.0
+        q00 = 0.0
+        q01 = 0.0
+        q02 = 0.0
+        q11 = 0.0
+        q12 = 0.0
+        q22 = 0.0
+        for q in range(k):
+            x0 = xs[q, 0]
+            x1 = xs[q, 1]
+            x2 = xs[q, 2]
+            w0 = x0 * inv[0, 0] + x1 * inv[1, 0] + x2 * inv[2, 0]
+            w1 = x0 * inv[0, 1] + x1 * inv[1, 1] + x2 * inv[2, 1]
+            w2 = x0 * inv[0, 2] + x1 * inv[1, 2] + x2 * inv[2, 2]
+            nu = nus[q]
+            sens[m, q, 0] = nu * w0
+            sens[m, q, 1] = nu * w1
+            sens[m, q, 2] = nu * w2
+            hq = hs[q]
+            b0 += hq * w0
+            b1 += hq * w1
+            b2 += hq * w2
+            q00 += nu * nu * w0 * w0
+            q01 += nu * nu * w0 * w1
+            q02 += nu * nu * w0 * w2
+            q11 += nu * nu * w1 * w1
+            q12 += nu * nu * w1 * w2
+            q22 += nu * nu * w2 * w2
+        line[m, 0] = cx
+        line[m, 1] = cy
+        line[m, 2] = nx
+        line[m, 3] = ny
+        line[m, 4] = b0
+        line[m, 5] = b1
+        line[m, 6] = b2
+        line[m, 7] = q00
+        line[m, 8] = q01
+        line[m, 9] = q02
+        line[m, 10] = q11
+        line[m, 11] = q12
+        line[m, 12] = q22
+        line[m, 13] = e
+    return lp, line, nbr, sens
+
+
+@njit(cache=True, nogil=True)
+def first_in_cells(points, cell):
+    """Indices, ascending, of the points that come first in their square cell of ``cell`` metres (downsample).
+
+    A point's cell is ``floor(p / cell)`` per axis, told apart by the key
+    ``i * 1_000_003 + j`` (int64, as numpy computes it): the first point of
+    each distinct key, as ``np.unique(key, return_index=True)`` (a stable
+    sort) and ``sort`` gave them.  An open-addressing table of the keys
+    seen replaces the sort: 21.5 -> 5.5 µs for a 721-point scan of
+    benchmarks/registration.py.
+    """
+    n = len(points)
+    bits = 4
+    while (1 << bits) < 2 * n:
+        bits += 1
+    mask = (1 << bits) - 1
+    keys = np.empty(1 << bits, np.int64)
+    taken = np.zeros(1 << bits, np.bool_)
+    out = np.empty(n, np.int64)
+    m = 0
+    for p in range(n):
+        key = np.int64(math.floor(points[p, 0] / cell)) * 1_000_003 + np.int64(math.floor(points[p, 1] / cell))
+        # Fibonacci hashing of the key's bits; linear probing.
+        slot = np.int64((np.uint64(key) * np.uint64(11400714819323198485)) >> np.uint64(64 - bits))
+        while taken[slot] and keys[slot] != key:
+            slot = (slot + 1) & mask
+        if not taken[slot]:
+            taken[slot] = True
+            keys[slot] = key
+            out[m] = p
+            m += 1
+    return out[:m]
 
 
 @njit(cache=True, nogil=True)
@@ -1416,10 +1594,12 @@ def nearest_k(points, origin, cell, columns, start, order, queries, upper, k):
         for i in range(i0, i1 + 1):
             gx = max(i - fi, 0.0, fi - (i + 1)) * cell
             for j in range(j0, j1 + 1):
+                c = i * nj + j
+                if start[c] == start[c + 1]:    # empty: passed over before the gap test, as in nearest
+                    continue
                 gy = max(j - fj, 0.0, fj - (j + 1)) * cell
                 if gx * gx + gy * gy > best[k - 1]:
                     continue
-                c = i * nj + j
                 for s in range(start[c], start[c + 1]):
                     q = order[s]
                     ex = qx - points[q, 0]
@@ -1555,7 +1735,7 @@ def reached(x, found, radius_m, within_m):
 
 
 @njit(cache=True, nogil=True)
-def icp_line(points, origin, cell, columns, start, order, line, cand, cand_pts, cand_normals, src_points,
+def icp_line(points, origin, cell, columns, start, order, line, cand, src_normals, src_points,
              src_beams, x0, lscale, max_iterations, reassociate_m, upper, max_extra, cos_max, check_normals,
              min_incidence_cos, range_noise, huber_c, mad_to_sigma, min_noise, damping, tol_m, tol_rad,
              radius_m, has_points, pp, p_origin, p_cell, p_columns, p_start, p_order, p_obj, src_pidx, tgt_pidx,
@@ -1573,12 +1753,17 @@ def icp_line(points, origin, cell, columns, start, order, line, cand, cand_pts, 
     row order here, so results no longer depend on the BLAS kernel a
     machine picks (they differed between two x86 machines before).
 
-    ``pp`` (m, 2) the target's small-object readings with their cell
-    index, ``p_obj`` their object labels; ``src_pidx`` / ``tgt_pidx`` the
-    small-object reading indices of each scan.
+    ``cand`` the source points that may be matched (icp._candidates),
+    ``src_normals`` the source's normals (unused without ``check_normals``);
+    the candidates' points and normals are gathered here rather than by
+    numpy before the call (icp._candidates' two gathers cost 15 µs a pair
+    of benchmarks/registration.py in a single register call).  ``pp`` (m, 2) the target's small-object
+    readings with their cell index, ``p_obj`` their object labels;
+    ``src_pidx`` / ``tgt_pidx`` the small-object reading indices of each scan.
 
     Returns (x (3,), converged, iterations, status, i (K,) source indices,
-    j (K,) target line indices, r, v, w (K,), jac (K, 3), s, phi2, sc (K,),
+    j (K,) target line indices, r, v, w (K,), jac (K, 3), s_along (K, 2):
+    each row's along-line offset s and basis phi2 (icp._Solution), sc (K,),
     scale, and the small-object rows: src (P,), ends (P, 2), r, v, w (P,),
     jac (P, 3), src_coef (P,), tgt_coef (P, 2)).  status 0: done; 1: fewer
     than 3 correspondences (icp._failed); 2: a tie between nearest points,
@@ -1592,6 +1777,16 @@ def icp_line(points, origin, cell, columns, start, order, line, cand, cand_pts, 
     status = 0
     it = 0
     moved = np.inf
+    n_cand = len(cand)
+    cand_pts = np.empty((n_cand, 2))
+    cand_normals = np.empty((n_cand, 2) if check_normals else (0, 2))
+    for t in range(n_cand):
+        q = cand[t]
+        cand_pts[t, 0] = src_points[q, 0]
+        cand_pts[t, 1] = src_points[q, 1]
+        if check_normals:
+            cand_normals[t, 0] = src_normals[q, 0]
+            cand_normals[t, 1] = src_normals[q, 1]
     keep = np.zeros(0, np.int64)
     jj = np.zeros(0, np.int64)
     lt = np.zeros((line.shape[1], 0))
@@ -1652,17 +1847,11 @@ def icp_line(points, origin, cell, columns, start, order, line, cand, cand_pts, 
         r, v, w, jac, s_al, phi2, sc, scale, pr, pv, pwt, pjac, psc, ptc, jw = _icp_rows(
             kept_pts, kept_beams, lt, x, c, s, min_incidence_cos, range_noise, huber_c, mad_to_sigma, min_noise,
             m_src, m_ends, src_points, src_beams, tgt_points, tgt_beams)
-        # One pass over the rows, each sum accumulated in row order (lines, then small objects).
-        h[:, :] = 0.0
-        g[:] = 0.0
-        n_l = len(r)
-        for k in range(n_l + n_pts):
-            rk = r[k] if k < n_l else pr[k - n_l]
-            for a in range(3):
-                ja = jw[k, a]
-                g[a] += ja * rk
-                for b in range(3):
-                    h[a, b] += ja * (jac[k, b] if k < n_l else pjac[k - n_l, b])
+        # One pass over the rows, each sum accumulated in row order (lines, then small objects), in
+        # twelve scalars rather than in h and g, whose sums through memory waited on each other
+        # (_icp_rows_sums; icp_line 320 -> 314 µs a pair of benchmarks/registration.py, medians of
+        # three alternating runs).
+        _icp_rows_sums(r, jac, pr, pjac, jw, h, g)
         mu = damping * (h[0, 0] / lscale[0] + h[1, 1] / lscale[1] + h[2, 2] / lscale[2]) / 3.0
         for a in range(3):
             h[a, a] += mu * lscale[a]
@@ -1682,8 +1871,52 @@ def icp_line(points, origin, cell, columns, start, order, line, cand, cand_pts, 
     idx = np.empty(len(keep), np.int64)
     for t in range(len(keep)):
         idx[t] = cand[keep[t]]
-    return (x, converged, it, status, idx, jj, r, v, w, jac, s_al, phi2, sc, scale,
+    s_along = np.empty((len(s_al), 2))
+    for t in range(len(s_al)):
+        s_along[t, 0] = s_al[t]
+        s_along[t, 1] = phi2[t]
+    return (x, converged, it, status, idx, jj, r, v, w, jac, s_along, sc, scale,
             m_src, m_ends, pr, pv, pwt, pjac, psc, ptc)
+
+
+@njit(cache=True, nogil=True)
+def _icp_rows_sums(r, jac, pr, pjac, jw, h, g):
+    """h = jw^T [jac; pjac] and g = jw^T [r; pr] (3, 3) and (3,), each sum over the rows in order, into h and g."""
+    n_l = len(r)
+    g0 = g1 = g2 = 0.0
+    h00 = h01 = h02 = h10 = h11 = h12 = h20 = h21 = h22 = 0.0
+    for k in range(n_l + len(pr)):
+        if k < n_l:
+            rk, c0, c1, c2 = r[k], jac[k, 0], jac[k, 1], jac[k, 2]
+        else:
+            rk, c0, c1, c2 = pr[k - n_l], pjac[k - n_l, 0], pjac[k - n_l, 1], pjac[k - n_l, 2]
+        j0 = jw[k, 0]
+        j1 = jw[k, 1]
+        j2 = jw[k, 2]
+        g0 += j0 * rk
+        h00 += j0 * c0
+        h01 += j0 * c1
+        h02 += j0 * c2
+        g1 += j1 * rk
+        h10 += j1 * c0
+        h11 += j1 * c1
+        h12 += j1 * c2
+        g2 += j2 * rk
+        h20 += j2 * c0
+        h21 += j2 * c1
+        h22 += j2 * c2
+    g[0] = g0
+    g[1] = g1
+    g[2] = g2
+    h[0, 0] = h00
+    h[0, 1] = h01
+    h[0, 2] = h02
+    h[1, 0] = h10
+    h[1, 1] = h11
+    h[1, 2] = h12
+    h[2, 0] = h20
+    h[2, 1] = h21
+    h[2, 2] = h22
 
 
 @njit(cache=True, nogil=True)
@@ -1697,18 +1930,24 @@ def _icp_rows(kept_pts, kept_beams, lt, x, c, s, min_incidence_cos, range_noise,
                                          x[1], range_noise)
     n_l = len(r)
     n_p = len(pr)
-    z_all = np.empty(n_l + n_p)
-    v_all = np.empty(n_l + n_p)
-    jac_all = np.empty((n_l + n_p, 3))
-    z_all[:n_l] = z
-    v_all[:n_l] = v
-    jac_all[:n_l] = jac
-    for t in range(n_p):
-        z_all[n_l + t] = pr[t] / math.sqrt(pv[t])
-        v_all[n_l + t] = pv[t]
-        jac_all[n_l + t] = pjac[t]
+    # The line rows and small-object rows joined for one scale; without small objects (59 of the 60
+    # pairs of benchmarks/registration.py) the line rows as they are, not copies (icp_line 314 ->
+    # 310 µs a pair).
+    z_all, v_all, jac_all = z, v, jac
+    if n_p:
+        z_all = np.empty(n_l + n_p)
+        v_all = np.empty(n_l + n_p)
+        jac_all = np.empty((n_l + n_p, 3))
+        z_all[:n_l] = z
+        v_all[:n_l] = v
+        jac_all[:n_l] = jac
+        for t in range(n_p):
+            z_all[n_l + t] = pr[t] / math.sqrt(pv[t])
+            v_all[n_l + t] = pv[t]
+            jac_all[n_l + t] = pjac[t]
     w_all, scale, jw = huber_rows(z_all, v_all, jac_all, huber_c, mad_to_sigma, min_noise)
-    return (r, v, w_all[:n_l].copy(), jac, s_al, phi2, sc, scale, pr, pv, w_all[n_l:].copy(), pjac, psc, ptc, jw)
+    w_l = w_all[:n_l].copy() if n_p else w_all
+    return (r, v, w_l, jac, s_al, phi2, sc, scale, pr, pv, w_all[n_l:].copy(), pjac, psc, ptc, jw)
 
 
 @njit(cache=True, nogil=True)

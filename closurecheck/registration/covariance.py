@@ -223,39 +223,40 @@ def analyse(h, middle, sigma2: float, n_corr: int, length_m: float, *, method: s
     readings share each independent normal estimate), so each u_k also gains
     ``unobservable_sigma_m^2 tau_k^2``: a cone around v rather than a line.
     """
-    scale = np.array([1.0, 1.0, 1.0 / length_m])
+    # The element-by-element steps on (3, 3) arrays run compiled (scale_both, eigen_floor, times_two,
+    # unscale_symmetric in _kernels.py, numpy's order of operations in each), the eigen-decomposition
+    # and the products stay numpy's (LAPACK, BLAS): about twenty numpy calls of a microsecond each
+    # on 3 x 3 arrays made up most of this function's time (27 -> 16 µs a registration of
+    # benchmarks/registration.py).
+    inv_length = 1.0 / length_m
     per = 1.0 / max(n_corr, 1)
-    evals, evecs = np.linalg.eigh(h * scale[:, None] * scale[None, :] * per)
-    evals = np.maximum(evals, 0.0)
-    top = evals[-1] if evals[-1] > 0 else 1.0
-    degeneracy = float(evals[0] / top)
-    weak = evals < degeneracy_threshold * top
+    a, ms = _kernels.scale_both(h, middle if method == "censi" else h, inv_length, per)
+    evals, evecs = np.linalg.eigh(a)
+    evals, top, degeneracy, weak, d = _kernels.eigen_floor(evals, evecs, degeneracy_threshold)
+    degeneracy = float(degeneracy)
 
     # Invert in scaled, per-correspondence units, where a degenerate Hessian
     # has a tiny but well-defined eigenvalue; a floored eigen-inverse keeps
     # the computation finite when it is exactly zero, and the inflation
     # below then supplies the large variance.
-    inv_s = (evecs / np.maximum(evals, 1e-12 * top)) @ evecs.T * per      # (D H D)^-1
+    inv_s, cov_s = _kernels.times_two(d @ evecs.T, per, kappa * sigma2)      # (D H D)^-1, kappa sigma^2 times it
     if method == "censi":
-        ms = middle * scale[:, None] * scale[None, :]
-        cov_s = kappa * sigma2 * inv_s @ ms @ inv_s
-    else:
-        cov_s = kappa * sigma2 * inv_s
-    if weak.any():
+        cov_s = cov_s @ ms @ inv_s
+    degenerate = bool(weak[0] or weak[1] or weak[2])
+    if degenerate:
         big = unobservable_sigma_m ** 2
         for w in np.flatnonzero(weak):
             cov_s = cov_s + big * np.outer(evecs[:, w], evecs[:, w])
             for k in np.flatnonzero(~weak):
                 tau2 = evals[w] / evals[k] * points_per_normal * per
                 cov_s = cov_s + big * tau2 * np.outer(evecs[:, k], evecs[:, k])
-    cov = cov_s * scale[:, None] * scale[None, :]
-    cov = 0.5 * (cov + cov.T)
+    cov = _kernels.unscale_symmetric(cov_s, inv_length)
     return CovarianceEstimate(
         covariance=cov,
         sigma_m=float(np.sqrt(sigma2)),
         eigenvalues=evals,
         eigenvectors=evecs,
         degeneracy=degeneracy,
-        degenerate=bool(weak.any()),
+        degenerate=degenerate,
         length_m=float(length_m),
     )

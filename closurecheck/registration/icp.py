@@ -46,6 +46,7 @@ estimated from the residuals.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field, fields, replace
 
 import numpy as np
@@ -299,8 +300,7 @@ class PreparedScan:
                 # Another thread (a Dask worker runs batches in threads) built it and dropped "fit"
                 # in between; it stores "target" before dropping "fit".
                 return self._lazy["target"]
-            idx, used, normal, tangent, centroid, li, opt = fit
-            got = _target_side(self, idx[li], used[li], normal[li], tangent[li], centroid[li], opt)
+            got = _target_side(self, *fit)
             self._lazy["target"] = got
             self._lazy.pop("fit", None)
         return got
@@ -694,9 +694,12 @@ def _prepare(pts, opt: RegistrationOptions, with_grid: bool) -> PreparedScan:
     return scan
 
 
-def _target_side(scan: PreparedScan, nidx, used_l, n_l, t_l, c_l, opt: RegistrationOptions):
-    """Line points, line models and reading sensitivities of a scan's line points (its role as a target)."""
-    pts, beams = scan.points, scan.beams
+def _target_side(scan: PreparedScan, idx, used, normal, tangent, centroid, rows, opt: RegistrationOptions):
+    """Line points, line models and reading sensitivities of a scan's line points (its role as a target).
+
+    ``idx, used, normal, tangent, centroid`` are :func:`_line_features`' arrays over all the scan's
+    points and ``rows`` the line points among them (``scan.line_index``).
+    """
     # Local model h = f(a) fitted by least squares, a the offset of a neighbour along the line
     # and h across it: a straight line
     # [1, a] or, by default, a parabola [1, a, a^2] so that a curved surface
@@ -706,19 +709,19 @@ def _target_side(scan: PreparedScan, nidx, used_l, n_l, t_l, c_l, opt: Registrat
     # phi(s) = [1, s, 2 m s - m^2].  wts[l] = (X^T X)^-1 x_l gives
     # f(s) = sum_l h_l (wts_l . phi(s)), the fit's linear dependence on each
     # reading, which the covariance needs.
-    quadratic = opt.line_model == "quadratic"
-    # The offsets, design rows (M, k, 3), extents and noise factors (_kernels.line_offsets), then
-    # the least-squares solve and products per line (_kernels.line_fits): 1.05 -> 0.38 ms a scan on
-    # the 5,000-scan warehouse log, against batched numpy products and 3 x 3 inverses, whose BLAS
-    # and LAPACK orders of additions the loops do not reproduce (the last bits differ).
-    x, h, extent, nu = _kernels.line_offsets(pts, beams, nidx, used_l, c_l, n_l, t_l, quadratic,
-                                             opt.point_noise == "range", opt.min_incidence_cos)
-    line, sens = _kernels.line_fits(x, h, nu, c_l, n_l, extent, quadratic)
-    lp = np.ascontiguousarray(pts[scan.line_index])
+    # The offsets, the least-squares solve and products per line in one compiled call
+    # (_kernels.line_models, which also takes the line points' rows of the arrays): 1.05 -> 0.38 ms a
+    # scan on the 5,000-scan warehouse log against batched numpy products and 3 x 3 inverses, whose
+    # BLAS and LAPACK orders of additions the loops do not reproduce (the last bits differ); then
+    # 0.25 -> 0.13 ms a 721-point scan of benchmarks/registration.py against two kernels with
+    # (M, k, 3) arrays in between and the rows gathered in numpy.
+    lp, line, nbr, sens = _kernels.line_models(scan.points, scan.beams, idx, used, normal, tangent, centroid, rows,
+                                               opt.line_model == "quadratic", opt.point_noise == "range",
+                                               opt.min_incidence_cos)
     # The compiled cell index answers ICP's nearest-line queries in about a twentieth of the
     # kd-tree's time (0.02 against 0.5 ms for 600 queries); the kd-tree (PreparedScan.tree) is
     # built from lp only when something asks for it.
-    return lp, line, nidx.astype(np.int32), sens, (lp, *_kernels.cell_index(lp, _CELL_M))
+    return lp, line, nbr, sens, (lp, *_kernels.cell_index(lp, _CELL_M))
 
 
 # Cell width (metres) of a target's nearest-line index: about half the correspondence distance, so
@@ -1001,14 +1004,13 @@ def _icp_line(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions
         # The default kernel: the whole loop in one compiled call (_kernels.icp_line, the same
         # iterations in a fixed order of additions).  Measured on a 5,000-scan warehouse log: 230 µs
         # per iteration as a Python loop of numpy and kernel calls, 480 µs with small objects.
-        cand, cand_pts, cand_normals = _candidates(src, cos_max)
+        cand = src.line_index if cos_max is not None else np.arange(len(src.points))
         has_points = len(src.point_index) > 0 and len(tgt.point_index) >= 2
         target_index = tgt._target_side()[4]
         pp_index = tgt._point_cells() if has_points else target_index
-        (x, converged, it, status, i, j, r, v, w, jac, s_al, phi2, sc, scale,
+        (x, converged, it, status, i, j, r, v, w, jac, s_along, sc, scale,
          m_src, m_ends, pr, pv, pw, pjac, psc, ptc) = _kernels.icp_line(
-            *target_index, tgt.line, cand, cand_pts, cand_normals if cos_max is not None else cand_pts,
-            src.points, src.beams, np.array(x0, dtype=float), lscale,
+            *target_index, tgt.line, cand, src.normals, src.points, src.beams, np.array(x0, dtype=float), lscale,
             opt.max_iterations if iterations is None else iterations, opt.reassociate_m,
             opt.max_correspondence_m, opt.max_extrapolation_m, -np.inf if cos_max is None else cos_max,
             cos_max is not None, opt.min_incidence_cos, src.point_noise == "range", kernel.scale, _MAD_TO_SIGMA,
@@ -1022,7 +1024,7 @@ def _icp_line(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions
             if status == 3:     # reached found[scale] at the start of iteration it
                 return _failed(x, it - 1, int(scale))
             rows = _PointRows(m_src, m_ends, pr, pv, pw, pjac, psc, ptc) if len(m_src) else None
-            return _Solution(x, converged, it, i, j, r, v, w, jac, np.stack((s_al, phi2), axis=1), sc, scale, rows)
+            return _Solution(x, converged, it, i, j, r, v, w, jac, s_along, sc, scale, rows)
     return _icp_line_loop(src, tgt, x0, opt, kernel, cos_max, lscale, found, iterations)
 
 
@@ -1182,7 +1184,7 @@ def _finish(src: PreparedScan, tgt: PreparedScan, sol: _Solution, opt: Registrat
         om_all = np.concatenate([om, pr.w / pr.v])
         jac_all = np.concatenate([sol.jac, pr.jac])
     h = _cov.hessian(jac_all, om_all)
-    e_wu2, kappa = _cov.kernel_moments(kernel_from_name(opt.kernel, opt.kernel_scale))
+    e_wu2, kappa = _kernel_of(opt)[1]
     sigma2 = _cov.noise_variance(r_all, om_all, e_wu2)
     middle = None
     if opt.covariance == "censi":
@@ -1197,7 +1199,10 @@ def _finish(src: PreparedScan, tgt: PreparedScan, sol: _Solution, opt: Registrat
                        points_per_normal=float(opt.line_neighbours))
     z = np.abs(r_all / np.sqrt(v_all))
     inl = z <= opt.inlier_sigmas * sol.scale
-    rmse = float(np.sqrt(np.mean(r_all[inl] ** 2))) if inl.any() else float("nan")
+    # np.mean's sum (add.reduce) over its count and np.count_nonzero for the mean of a mask, the
+    # same values without np.mean's Python layers (8.4 -> 2.5 µs a registration).
+    r_in = r_all[inl]
+    rmse = math.sqrt(float(np.add.reduce(r_in * r_in)) / len(r_in)) if len(r_in) else float("nan")
     delta = sol.x.copy()
     cov = est.covariance
     evals = est.eigenvalues.copy()
@@ -1206,7 +1211,7 @@ def _finish(src: PreparedScan, tgt: PreparedScan, sol: _Solution, opt: Registrat
         arr.flags.writeable = False
     return Registration(
         delta=delta, covariance=cov, rmse=rmse, overlap=n / len(src.points), converged=sol.converged,
-        iterations=sol.iterations, inlier_fraction=float(inl.mean()), correspondences=n,
+        iterations=sol.iterations, inlier_fraction=np.count_nonzero(inl) / len(inl), correspondences=n,
         sigma_m=est.sigma_m, eigenvalues=evals, weakest_direction=weak, degeneracy=est.degeneracy,
         degenerate=est.degenerate, **ranking(cov), **extra,
     )
@@ -1278,7 +1283,7 @@ def register_prepared(source: PreparedScan, target: PreparedScan, guess=(0.0, 0.
 
 def _register_prepared(source: PreparedScan, target: PreparedScan, seeds, options: RegistrationOptions,
                        guess_cov) -> Registration:
-    kernel = kernel_from_name(options.kernel, options.kernel_scale)
+    kernel = _kernel_of(options)[0]
     refine = _icp_point if options.method == "point_to_point" else _icp_line
 
     coarse_best = coarse_second = float("nan")
@@ -1330,6 +1335,24 @@ def _register_prepared(source: PreparedScan, target: PreparedScan, seeds, option
     best = int(np.argmax(fits))
     return _finish(source, target, sols[best], options, lambda cov: _ranking(sols, fits, best, cov, options),
                    coarse_ran=bool(options.coarse), coarse_score=coarse_best, coarse_second_score=coarse_second)
+
+
+# The robust kernel of each (name, scale) with its Gaussian moments (covariance.kernel_moments), built
+# once: building a Kernel checks its settings and the moments' cache hashes it, 3.3 µs a registration.
+_KERNELS: dict = {}
+
+
+def _kernel_of(opt: RegistrationOptions):
+    """(kernel, (E[w u^2], kappa)) of ``opt.kernel`` at ``opt.kernel_scale``."""
+    key = (opt.kernel, opt.kernel_scale)
+    got = _KERNELS.get(key)
+    if got is None:
+        kernel = kernel_from_name(*key)
+        got = (kernel, _cov.kernel_moments(kernel))
+        if len(_KERNELS) >= 64:     # a caller sweeping kernel scales does not grow it without bound
+            _KERNELS.clear()
+        _KERNELS[key] = got
+    return got
 
 
 def _ranking(sols: list, fits, best: int, covariance, options: RegistrationOptions) -> dict:

@@ -93,7 +93,7 @@ def loaded_kernels() -> tuple[str, ...]:
     --------
     >>> from closurecheck.registration.warm import loaded_kernels, warm_kernels
     >>> warm_kernels()
-    >>> {"icp_line", "coarse_search", "line_offsets"} <= set(loaded_kernels())
+    >>> {"icp_line", "coarse_search", "line_models"} <= set(loaded_kernels())
     True
     """
     from . import _kernels

@@ -41,6 +41,32 @@ def test_nearest_matches_ckdtree_with_upper_bound(name, pts, spread, upper):
     np.testing.assert_array_equal(d, ref_d)
 
 
+@pytest.mark.parametrize("name, pts, spread", list(_clouds()), ids=lambda v: v if isinstance(v, str) else "")
+def test_cell_index_orders_points_by_cell_as_a_stable_sort(name, pts, spread):
+    # Reference: np.argsort of each point's cell number with a stable sort (what the index used).
+    origin, cell, columns, start, order = _kernels.cell_index(pts, _CELL_M)
+    rows = (len(start) - 1) // columns
+    ci = np.minimum(((pts[:, 0] - origin[0]) / cell).astype(np.int64), rows - 1)
+    cj = np.minimum(((pts[:, 1] - origin[1]) / cell).astype(np.int64), columns - 1)
+    key = ci * columns + cj
+    np.testing.assert_array_equal(order, np.argsort(key, kind="stable"))
+    np.testing.assert_array_equal(start, np.concatenate([[0], np.cumsum(np.bincount(key, minlength=len(start) - 1))]))
+    assert order.dtype == start.dtype == np.int32
+
+
+@pytest.mark.parametrize("cell", [0.05, 0.2, 1.0])
+@pytest.mark.parametrize("name, pts, spread", list(_clouds()), ids=lambda v: v if isinstance(v, str) else "")
+def test_first_in_cells_match_numpy_unique(name, pts, spread, cell):
+    # Reference: the first point of each cell key as np.unique(..., return_index=True) gives it
+    # (the code correlative.downsample used), for clouds whose keys collide in the hash table.
+    keys = np.floor(pts / cell).astype(np.int64)
+    _, ref = np.unique(keys[:, 0] * 1_000_003 + keys[:, 1], return_index=True)
+    got = _kernels.first_in_cells(np.ascontiguousarray(pts), cell)
+    np.testing.assert_array_equal(got, np.sort(ref))
+    if cell >= 0.2 and name != "wide":
+        assert 1 < len(got) < len(pts)          # cells shared, so the table's lookups take part
+
+
 @pytest.mark.parametrize("k, radius", [(16, 0.3), (5, 0.3), (21, 0.5), (40, 2.0)])
 def test_neighbourhoods_match_ckdtree(k, radius):
     rng = np.random.default_rng(k)
@@ -311,7 +337,10 @@ def test_line_models_match_the_numpy_expressions(model, noise):
     prepared = _prepare(pts, opt, False)
     idx, used, normal, tangent, centroid, li, _ = prepared._lazy["fit"]
     nidx, used_l, n_l, t_l, c_l = idx[li], used[li], normal[li], tangent[li], centroid[li]
-    _, line, _, coef, _ = _target_side(prepared, nidx, used_l, n_l, t_l, c_l, opt)
+    lp, line, nbr, coef, _ = _target_side(prepared, idx, used, normal, tangent, centroid, li, opt)
+    np.testing.assert_array_equal(lp, pts[li])
+    np.testing.assert_array_equal(nbr, nidx)
+    assert nbr.dtype == np.int32 and coef.dtype == np.float32
     nused = used_l.astype(float)
     dx = pts[:, 0][nidx] - c_l[:, :1]
     dy = pts[:, 1][nidx] - c_l[:, 1:]
@@ -491,3 +520,61 @@ def test_line_frames_match_the_numpy_expressions():
         seen.update({"line"} if has_line.any() else set(), {"none"} if not has_line.all() else set(),
                     {"nan"} if np.isnan(thickness).any() else set(), {"zero"} if (thickness == 0).any() else set())
     assert seen == {"line", "none", "nan", "zero"}      # every branch of the pass was taken
+
+
+def _analyse_in_numpy(h, middle, sigma2, n_corr, length_m, method, degeneracy_threshold, unobservable_sigma_m, kappa,
+                      points_per_normal):
+    # covariance.analyse as numpy code, before its element-by-element steps were compiled.
+    scale = np.array([1.0, 1.0, 1.0 / length_m])
+    per = 1.0 / max(n_corr, 1)
+    evals, evecs = np.linalg.eigh(h * scale[:, None] * scale[None, :] * per)
+    evals = np.maximum(evals, 0.0)
+    top = evals[-1] if evals[-1] > 0 else 1.0
+    degeneracy = float(evals[0] / top)
+    weak = evals < degeneracy_threshold * top
+    inv_s = (evecs / np.maximum(evals, 1e-12 * top)) @ evecs.T * per
+    if method == "censi":
+        ms = middle * scale[:, None] * scale[None, :]
+        cov_s = kappa * sigma2 * inv_s @ ms @ inv_s
+    else:
+        cov_s = kappa * sigma2 * inv_s
+    if weak.any():
+        big = unobservable_sigma_m ** 2
+        for w in np.flatnonzero(weak):
+            cov_s = cov_s + big * np.outer(evecs[:, w], evecs[:, w])
+            for k in np.flatnonzero(~weak):
+                tau2 = evals[w] / evals[k] * points_per_normal * per
+                cov_s = cov_s + big * tau2 * np.outer(evecs[:, k], evecs[:, k])
+    cov = cov_s * scale[:, None] * scale[None, :]
+    return 0.5 * (cov + cov.T), evals, evecs, degeneracy, bool(weak.any())
+
+
+@pytest.mark.parametrize("method", ["censi", "hessian"])
+def test_covariance_analysis_matches_the_numpy_version(method):
+    # Reference: the numpy code above, to the bit, on well-posed, degenerate (a corridor: one
+    # direction nearly free, or exactly free) and rank-two Hessians.
+    from closurecheck.registration.covariance import analyse
+
+    rng = np.random.default_rng(21)
+    cases = 0
+    for trial in range(300):
+        jac = rng.normal(size=(rng.integers(3, 400), 3)) * [1.0, 1.0, rng.uniform(0.5, 20.0)]
+        kind = trial % 3
+        if kind == 1:
+            jac[:, 0] *= 10.0 ** rng.uniform(-6, -1)        # nearly unconstrained along x
+        elif kind == 2:
+            jac[:, 1] = 0.0                                  # exactly unconstrained along y
+        h = jac.T @ jac
+        g = rng.normal(size=(3, 3))
+        middle = h + g @ g.T
+        args = (rng.uniform(1e-6, 1e-3), len(jac), rng.uniform(0.5, 30.0))
+        opts = dict(degeneracy_threshold=0.01, unobservable_sigma_m=5.0, kappa=1.04, points_per_normal=16.0)
+        got = analyse(h, middle if method == "censi" else None, *args, method=method, **opts)
+        ref = _analyse_in_numpy(h, middle, *args, method, *opts.values())
+        np.testing.assert_array_equal(got.covariance, ref[0])
+        np.testing.assert_array_equal(got.eigenvalues, ref[1])
+        np.testing.assert_array_equal(got.eigenvectors, ref[2])
+        assert got.degeneracy == ref[3] and got.degenerate == ref[4]
+        assert np.signbit(got.eigenvalues).tolist() == np.signbit(ref[1]).tolist()
+        cases += ref[4]
+    assert 100 <= cases < 300          # both sides of the degeneracy test

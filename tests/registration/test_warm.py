@@ -37,7 +37,7 @@ def test_a_new_process_has_no_kernel_loaded_and_warm_kernels_loads_those_icp_use
                  "print(' '.join(loaded_kernels()))")
     before, after = out.splitlines()
     assert before == "0"
-    assert {"icp_line", "coarse_search", "line_offsets", "neighbourhoods", "components", "cell_index",
+    assert {"icp_line", "coarse_search", "line_models", "neighbourhoods", "components", "cell_index",
             "associate", "linearise"} <= set(after.split())
 
 
@@ -48,7 +48,7 @@ def test_pool_workers_start_with_the_kernels_loaded():
                  "runner = PoolRunner(2)\n"
                  "with runner._context.Pool(1) as pool:\n"
                  "    print(' '.join(pool.apply(loaded_kernels)))")
-    assert {"icp_line", "coarse_search", "line_offsets"} <= set(out.split())
+    assert {"icp_line", "coarse_search", "line_models"} <= set(out.split())
 
 
 def test_the_pool_modules_import_without_the_rest_of_the_package():
