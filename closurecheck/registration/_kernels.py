@@ -270,7 +270,8 @@ def _bearing_walk(points, k, radius, phi, ux, uy):
                 taken_down += 1
             else:
                 taken_up += 1
-            # As _offer, for point q.
+            # As _offer, for point q, repeated inline: through a helper returning (m, out), inlined or
+            # not, the walk took 0.24-0.26 ms a scan instead of 0.17.
             ex = points[q, 0] - px
             ey = points[q, 1] - py
             d = ex * ex + ey * ey
