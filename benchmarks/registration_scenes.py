@@ -1,0 +1,127 @@
+"""Benchmark: one pair as a user calls it, against open3d, on every simulated scene (issue 14, target 1).
+
+benchmarks/registration.py measures target 1 on dense office scans (721
+beams, walls everywhere).  Our users' sites are also nearly empty: this
+script takes near pairs from each of our simulated scenes (warehouse, open
+yard, sparse hall, parking lot of posts, ring), where the scans hold from
+about 70 to 720 points, and times the same calls side by side with open3d's
+point-to-point ``registration_icp`` (planar points with z = 0, at most 50
+iterations, the same maximum correspondence distance as
+benchmarks/registration.py), interleaved, each call ``--repeats`` times per
+pair with the median kept.  A pair is two scans of one log whose true poses
+lie 0.4-0.6 m apart; the guess is the true relative pose off by 0.28 m in a
+random direction and 4 degrees either way, as in benchmarks/registration.py.
+The ratio is the total time over the pairs divided by open3d's.
+
+Prints a markdown table; ``--results FILE`` also writes it.
+
+Run from the repository root:  python benchmarks/registration_scenes.py [--pairs N] [--repeats N]
+"""
+
+from __future__ import annotations
+
+import os
+
+os.environ.setdefault("OMP_NUM_THREADS", "1")
+
+import argparse  # noqa: E402
+import statistics  # noqa: E402
+import sys  # noqa: E402
+import time  # noqa: E402
+from functools import partial  # noqa: E402
+from pathlib import Path  # noqa: E402
+
+import numpy as np  # noqa: E402
+
+HERE = Path(__file__).resolve().parent
+sys.path.insert(0, str(HERE.parent))
+sys.path.insert(0, str(HERE))
+
+import registration as bench  # noqa: E402  (open3d's call and clouds, the guess's error)
+
+import closurecheck  # noqa: E402
+from closurecheck.core import se2  # noqa: E402
+from closurecheck.simulation.simulate import simulate_log  # noqa: E402
+
+SCENES = ("warehouse", "yard", "hall", "lot", "ring")
+
+
+def near_pairs(log, rng, n, lo_m=0.4, hi_m=0.6):
+    """Up to n pairs (i, j, true pose of j in i's frame) with the true poses lo_m-hi_m apart."""
+    found = []
+    for i in range(0, len(log) - 1, 3):
+        for j in range(i + 1, min(i + 30, len(log))):
+            d = se2.between(log.truth[i], log.truth[j])
+            if lo_m <= np.hypot(d[0], d[1]) <= hi_m:
+                found.append((i, j, d))
+                break
+    pick = rng.choice(len(found), min(n, len(found)), replace=False)
+    return [found[k] for k in pick]
+
+
+def scene_row(scene, pairs_n, repeats, scans, seed):
+    log = simulate_log(scene, seed=seed, scans=scans)
+    rng = np.random.default_rng(seed)
+    names = ("open3d", "coarse_off", "default")
+    times = {k: [] for k in names}
+    errs = {k: [] for k in names}
+    points = []
+    for i, j, truth in near_pairs(log, rng, pairs_n):
+        pa, pb = np.ascontiguousarray(log.points(i)), np.ascontiguousarray(log.points(j))
+        points.append(0.5 * (len(pa) + len(pb)))
+        ang = rng.uniform(0.0, 2.0 * np.pi)
+        guess = truth + np.array([bench.GUESS_ERROR_M * np.cos(ang), bench.GUESS_ERROR_M * np.sin(ang),
+                                  np.radians(bench.GUESS_ERROR_DEG) * rng.choice([-1.0, 1.0])])
+        ca, cb = bench._cloud(pa), bench._cloud(pb)
+        calls = {"open3d": partial(bench.open3d_icp, cb, ca, guess),
+                 "coarse_off": partial(closurecheck.register, pb, pa, guess, coarse=False),
+                 "default": partial(closurecheck.register, pb, pa, guess)}
+        t = {k: [] for k in names}
+        out = {}
+        for _ in range(repeats):
+            for k, call in calls.items():
+                t0 = time.perf_counter()
+                out[k] = call()
+                t[k].append(time.perf_counter() - t0)
+        for k in names:
+            times[k].append(statistics.median(t[k]))
+            errs[k].append(bench.errors(getattr(out[k], "delta", out[k]), truth)[0])
+    ref = sum(times["open3d"])
+    return {"scene": scene, "pairs": len(points), "points": statistics.median(points),
+            "open3d_ms": 1e3 * statistics.median(times["open3d"]),
+            **{f"{k}_ms": 1e3 * statistics.median(times[k]) for k in names[1:]},
+            **{f"{k}_ratio": sum(times[k]) / ref for k in names[1:]},
+            **{f"{k}_err_mm": 1e3 * statistics.median(errs[k]) for k in names}}
+
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--pairs", type=int, default=40)
+    ap.add_argument("--repeats", type=int, default=5)
+    ap.add_argument("--scans", type=int, default=800, help="scans simulated per scene")
+    ap.add_argument("--seed", type=int, default=7)
+    ap.add_argument("--results", type=Path)
+    args = ap.parse_args(argv)
+    # Compile and warm up on one pair, outside the timing.
+    scene_row("ring", 1, 1, 60, args.seed)
+    lines = ["| scene | pairs | points a scan (median) | open3d, ms | `coarse=False`: ratio (ms) | default: ratio (ms) "
+             "| median error: ours / open3d, mm |",
+             "| --- | ---: | ---: | ---: | --- | --- | --- |"]
+    for scene in SCENES:
+        r = scene_row(scene, args.pairs, args.repeats, args.scans, args.seed)
+        lines.append(f"| {scene} | {r['pairs']} | {r['points']:.0f} | {r['open3d_ms']:.2f} "
+                     f"| {r['coarse_off_ratio']:.2f} ({r['coarse_off_ms']:.2f}) | {r['default_ratio']:.2f} "
+                     f"({r['default_ms']:.2f}) | {r['coarse_off_err_mm']:.1f} / {r['open3d_err_mm']:.1f} |")
+        print(lines[-1], flush=True)
+    text = ("# One pair as a user calls it, on every simulated scene\n\n"
+            f"`python benchmarks/registration_scenes.py --pairs {args.pairs} --repeats {args.repeats} "
+            f"--scans {args.scans} --seed {args.seed}`; targets (issue 14): `coarse=False` <= 1.0, "
+            "default <= 2.5 times open3d's point-to-point ICP.\n\n" + "\n".join(lines) + "\n")
+    if args.results:
+        args.results.write_text(text, encoding="utf-8")
+    print()
+    print(text)
+
+
+if __name__ == "__main__":
+    main()
