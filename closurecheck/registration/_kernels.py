@@ -1419,6 +1419,30 @@ def _stable_order(keys_sorted_by, order):
 
 
 @njit(cache=True, nogil=True)
+def _lex_order(rows):
+    """``np.lexsort((y, x, theta, -score))`` of leaf rows [score, x, y, theta, seed]: successive stable sorts."""
+    order = np.argsort(rows[:, 2], kind="mergesort")
+    order = _stable_order(rows[:, 1].copy(), order)
+    order = _stable_order(rows[:, 3].copy(), order)
+    return _stable_order(-rows[:, 0], order)
+
+
+@njit(cache=True, nogil=True)
+def _leaf_before(a, i, b, j):
+    """Whether leaf row ``a[i]`` comes strictly before ``b[j]`` in :func:`_lex_order`'s order.
+
+    Higher score first, then smaller theta, x, y; equal keys are not "before".
+    """
+    if a[i, 0] != b[j, 0]:
+        return -a[i, 0] < -b[j, 0]
+    if a[i, 3] != b[j, 3]:
+        return a[i, 3] < b[j, 3]
+    if a[i, 1] != b[j, 1]:
+        return a[i, 1] < b[j, 1]
+    return a[i, 2] < b[j, 2]
+
+
+@njit(cache=True, nogil=True)
 def seed_leaves(own, records, j, k, sep_m, sep_rad, max_records):
     """One seed's update of the coarse search's best leaves (its part of :func:`_add_leaves`).
 
@@ -1450,13 +1474,37 @@ def seed_leaves(own, records, j, k, sep_m, sep_rad, max_records):
     best = cat[:0]
     kth = -1.0
     if not over:
-        order = np.argsort(cat[:, 2], kind="mergesort")
-        order = _stable_order(cat[:, 1].copy(), order)
-        order = _stable_order(cat[:, 3].copy(), order)
-        order = _stable_order(-cat[:, 0], order)
+        ordered = True
+        for t in range(1, n_old):
+            if _leaf_before(own, t, own, t - 1):
+                ordered = False
+                break
+        # The kept leaves of the previous round come in order already: only the new ones are
+        # sorted, then the two merged, the old first where every key ties (where the stable sorts
+        # of the whole put them; the same rows as before on 4,444 chained calls with ties and signed
+        # zeros).  On the sparse hall scene the leaves' bookkeeping was about a third of a search
+        # (hundreds of kept leaves of equal integer scores sorted again every round): a default
+        # register call there 4.99 -> 3.81 ms, the yard and warehouse unchanged (one process,
+        # kernels swapped, 30 pairs each).
         srt = np.empty_like(cat)
-        for t in range(len(order)):
-            srt[t] = cat[order[t]]
+        if ordered:
+            new = cat[n_old:]
+            order = _lex_order(new)
+            a = 0
+            b = 0
+            for t in range(len(cat)):
+                take_new = b < cnt and (a == n_old or _leaf_before(new, order[b], own, a))
+                row = n_old + order[b] if take_new else a
+                for c in range(5):
+                    srt[t, c] = cat[row, c]
+                if take_new:
+                    b += 1
+                else:
+                    a += 1
+        else:
+            order = _lex_order(cat)
+            for t in range(len(order)):
+                srt[t] = cat[order[t]]
         keep = distinct(srt, k, sep_m, sep_rad)
         best = np.empty((len(keep), 5))
         for t in range(len(keep)):

@@ -578,3 +578,30 @@ def test_covariance_analysis_matches_the_numpy_version(method):
         assert np.signbit(got.eigenvalues).tolist() == np.signbit(ref[1]).tolist()
         cases += ref[4]
     assert 100 <= cases < 300          # both sides of the degeneracy test
+
+
+def test_seed_leaves_chained_rounds_match_lexsort():
+    # Reference: np.lexsort on (y, x, theta, -score) of the kept and the new leaves together, as in
+    # the test above, but round after round with the kept leaves fed back, as the coarse search does:
+    # then the kept leaves come in order and the kernel merges instead of sorting them again.
+    from closurecheck.registration.correlative import distinct
+
+    rng = np.random.default_rng(44)
+    merged_rounds = 0
+    for _ in range(40):
+        own = np.empty((0, 5))
+        for _ in range(int(rng.integers(2, 12))):
+            n = int(rng.integers(0, 120))
+            records = np.column_stack([rng.integers(0, 6, n) * 100.0, rng.integers(-3, 3, (n, 2)) * 0.1,
+                                       rng.integers(-2, 2, n) * 0.05, rng.integers(0, 2, n)]).astype(float)
+            kept, best, kth, over = _kernels.seed_leaves(own, records, 1, 3, 0.25, 0.1, 4096)
+            cat = np.concatenate([own, records[records[:, 4] == 1]])
+            srt = cat[np.lexsort((cat[:, 2], cat[:, 1], cat[:, 3], -cat[:, 0]))]
+            keep = distinct(srt, 3, 0.25, 0.1)
+            ref_kth = srt[keep[-1], 0] if len(keep) == 3 else -1.0
+            assert not over and kth == ref_kth
+            np.testing.assert_array_equal(best, srt[keep])
+            np.testing.assert_array_equal(kept, srt[srt[:, 0] >= ref_kth])
+            merged_rounds += len(own) > 1
+            own = kept
+    assert merged_rounds > 100        # the merge was taken, with ties among the kept leaves
