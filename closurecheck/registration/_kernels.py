@@ -96,6 +96,20 @@ def _offer(points, order, lo, hi, px, py, r2, k, best_d, best_i, m, out):
     return m, out
 
 
+@njit(cache=True, nogil=True, inline="always")
+def _keep_neighbours(idx, tied, p, best_d, best_i, m, k, out):
+    """Point p's row of :func:`neighbourhoods`: its m kept neighbours, and whether equal distances make it tied.
+
+    ``out`` is the nearest candidate left out (:func:`_offer`).
+    """
+    for s in range(m):
+        idx[p, s] = best_i[s]
+        if s > 0 and best_d[s] == best_d[s - 1]:
+            tied[p] = True
+    if m == k and out == best_d[k - 1]:
+        tied[p] = True      # a candidate left out at exactly the k-th distance
+
+
 @njit(cache=True, nogil=True)
 def _block_rest(start, order, nj, ni, c0, c1, a, b, walk):
     """The points of the 3 x 3 cells around (c0, c1) of beams q <= a or q >= b, in cell order.
@@ -292,12 +306,7 @@ def _bearing_walk(points, k, radius, phi, ux, uy):
             best_i[pos] = q
             if m < k:
                 m += 1
-        for s in range(m):
-            idx[p, s] = best_i[s]
-            if s > 0 and best_d[s] == best_d[s - 1]:
-                tied[p] = True
-        if m == k and out == best_d[k - 1]:
-            tied[p] = True      # a candidate left out at exactly the k-th distance
+        _keep_neighbours(idx, tied, p, best_d, best_i, m, k, out)
     return idx, tied
 
 
@@ -410,12 +419,7 @@ def _grid_neighbourhoods(points, k, radius):
                 else:
                     m, out = _offer(points, order, start[i * nj + lo], start[i * nj + hi + 1],
                                     px, py, r2, k, best_d, best_i, m, out)
-        for s in range(m):
-            idx[p, s] = best_i[s]
-            if s > 0 and best_d[s] == best_d[s - 1]:
-                tied[p] = True
-        if m == k and out == best_d[k - 1]:
-            tied[p] = True      # a candidate left out at exactly the k-th distance
+        _keep_neighbours(idx, tied, p, best_d, best_i, m, k, out)
     return idx, tied
 
 

@@ -918,12 +918,17 @@ def _reached_found(x, found, src: PreparedScan, opt: RegistrationOptions) -> int
     return int(_kernels.reached(np.asarray(x, dtype=float), found, src.radius_m, opt.reassociate_m))
 
 
+def _candidate_index(src: PreparedScan, cos_max) -> np.ndarray:
+    """Indices of the source points that may be matched: those with a line when normals are checked, else all."""
+    return src.line_index if cos_max is not None else np.arange(len(src.points))
+
+
 def _candidates(src: PreparedScan, cos_max):
     """Source points that may be matched: (indices, points, normals), gathered once per source scan."""
     key = ("cands", cos_max is not None)
     got = src._lazy.get(key)
     if got is None:
-        cand = src.line_index if cos_max is not None else np.arange(len(src.points))
+        cand = _candidate_index(src, cos_max)
         got = (cand, src.points[cand], src.normals[cand])
         src._lazy[key] = got
     return got
@@ -1013,7 +1018,7 @@ def _icp_line(src: PreparedScan, tgt: PreparedScan, x0, opt: RegistrationOptions
         # The default kernel: the whole loop in one compiled call (_kernels.icp_line, the same
         # iterations in a fixed order of additions).  Measured on a 5,000-scan warehouse log: 230 µs
         # per iteration as a Python loop of numpy and kernel calls, 480 µs with small objects.
-        cand = src.line_index if cos_max is not None else np.arange(len(src.points))
+        cand = _candidate_index(src, cos_max)
         has_points = len(src.point_index) > 0 and len(tgt.point_index) >= 2
         target_index = tgt._target_side()[4]
         pp_index = tgt._point_cells() if has_points else target_index
