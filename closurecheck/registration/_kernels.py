@@ -968,6 +968,7 @@ def target_sums(wj, rows, nbr_index, nbr_coef, basis, n_target):
     return mt
 
 
+
 @njit(cache=True, nogil=True)
 def scale_both(h, middle, inv_length, per):
     """``h * s[:, None] * s[None, :] * per`` and ``middle * s[:, None] * s[None, :]``, s = (1, 1, inv_length).
@@ -1407,6 +1408,83 @@ def point_candidates(idx, used, has_line, min_neighbours):
             pick[m] = p
             m += 1
     return pick[:m]
+
+
+@njit(cache=True, nogil=True)
+def small_objects(pick, label, span, limit):
+    """The candidates whose object spans at most ``limit`` and their labels (icp._point_like).
+
+    ``lab = label[pick]; small = span[lab] <= limit; pick[small], lab[small]``
+    in one call (four numpy calls before).
+    """
+    keep = np.empty(len(pick), np.int64)
+    lab = np.empty(len(pick), np.int64)
+    m = 0
+    for t in range(len(pick)):
+        c = label[pick[t]]
+        if span[c] <= limit:
+            keep[m] = pick[t]
+            lab[m] = c
+            m += 1
+    return keep[:m], lab[:m]
+
+
+@njit(cache=True, nogil=True)
+def scan_arrays(points, rng, normal, has_line, count, point_index, point_object, min_line_points):
+    """The arrays of a prepared scan after its line fits and small objects (icp._prepare), in one pass.
+
+    ``rng`` (N,) the points' ranges (numpy's hypot).  As the numpy steps
+    they replaced, element by element: the beams ``points / np.maximum(rng, 1e-12)[:, None]``;
+    small objects seen by ``min_line_points`` readings or more
+    (``count[point_index] >= min_line_points``) join the points with a line,
+    the rest stay point features; ``line_index = np.flatnonzero(has_line)``;
+    normals zeroed off the lines (``np.where``); the root-mean-square range
+    with its sum in np.add.reduce's pairwise order (:func:`_sum_slots`) and
+    the largest range.  About fifteen numpy calls before.
+    Returns beams (N, 2), normals (N, 2), has_line (N,) (a new array),
+    line_index, point_index, point_object, length, radius.
+    """
+    n = len(points)
+    beams = np.empty((n, 2))
+    sq = np.empty(n)
+    radius = rng[0]
+    for p in range(n):
+        e = rng[p]
+        den = e if (e >= 1e-12 or e != e) else 1e-12
+        beams[p, 0] = points[p, 0] / den
+        beams[p, 1] = points[p, 1] / den
+        sq[p] = e * e
+        if e > radius or e != e:
+            radius = e
+    line = has_line.copy()
+    keep = np.empty(len(point_index), np.int64)
+    m = 0
+    for t in range(len(point_index)):
+        q = point_index[t]
+        if count[q] >= min_line_points:
+            line[q] = True
+        else:
+            keep[m] = t
+            m += 1
+    p_index = np.empty(m, point_index.dtype)
+    p_object = np.empty(m, point_object.dtype)
+    for t in range(m):
+        p_index[t] = point_index[keep[t]]
+        p_object[t] = point_object[keep[t]]
+    normals = np.empty((n, 2))
+    line_index = np.empty(n, np.int64)
+    k = 0
+    for p in range(n):
+        if line[p]:
+            normals[p, 0] = normal[p, 0]
+            normals[p, 1] = normal[p, 1]
+            line_index[k] = p
+            k += 1
+        else:
+            normals[p, 0] = 0.0
+            normals[p, 1] = 0.0
+    length = math.sqrt(_sum_slots(sq, n) / n)
+    return beams, normals, line, line_index[:k], p_index, p_object, length, radius
 
 
 @njit(cache=True, nogil=True)

@@ -630,10 +630,7 @@ def _point_like(points, idx, used, has_line, opt: RegistrationOptions):
     # Compiled (_kernels.components): the same labels as scipy's connected_components on the
     # neighbour graph, without building a sparse matrix (0.42 -> 0.03 ms per 721-point scan).
     label, lo, hi = _kernels.components(points, idx, used)
-    span = np.hypot(*(hi - lo).T)
-    lab = label[pick]
-    small = span[lab] <= 2.0 * opt.line_radius_m
-    return pick[small], lab[small]
+    return _kernels.small_objects(pick, label, np.hypot(*(hi - lo).T), 2.0 * opt.line_radius_m)
 
 
 def prepare_scan(points_xy, options: RegistrationOptions = DEFAULT_OPTIONS, *, grid: bool = True) -> PreparedScan:
@@ -668,17 +665,16 @@ def prepare_scan(points_xy, options: RegistrationOptions = DEFAULT_OPTIONS, *, g
 
 def _prepare(pts, opt: RegistrationOptions, with_grid: bool) -> PreparedScan:
     rng = np.hypot(pts[:, 0], pts[:, 1])
-    beams = pts / np.maximum(rng, 1e-12)[:, None]
-    idx, used, _count, centroid, normal, tangent, thickness, has_line = _line_features(pts, opt)
+    idx, used, count, centroid, normal, tangent, thickness, has_line = _line_features(pts, opt)
     point_index, point_object = _point_like(pts, idx, used, has_line, opt)
-    if len(point_index):
-        # A small object seen by enough readings for a line takes the local model of a line: the
-        # quadratic model follows its outline (point-to-curve); the rest are matched to segments.
-        curve = _count[point_index] >= opt.min_line_points
-        has_line = has_line.copy()
-        has_line[point_index[curve]] = True
-        point_index, point_object = point_index[~curve], point_object[~curve]
-    line_index = np.flatnonzero(has_line)
+    # A small object seen by enough readings for a line takes the local model of a line: the
+    # quadratic model follows its outline (point-to-curve); the rest are matched to segments.  That,
+    # the beams, the line points, their normals and the ranges' root-mean-square and maximum in one
+    # compiled pass (_kernels.scan_arrays, the numpy steps' values): about fifteen numpy calls on
+    # (N,) arrays before; with _kernels.small_objects, register(..., coarse=False) 0.64 -> 0.60 ms
+    # a hall pair and 0.48 -> 0.45 ms a lot pair (benchmarks/registration_scenes.py pairs, medians).
+    beams, normals, has_line, line_index, point_index, point_object, length_m, radius_m = _kernels.scan_arrays(
+        pts, rng, normal, has_line, count, point_index, point_object, opt.min_line_points)
     if len(line_index) < 3 and len(point_index) < 3:
         raise InputError("scan has fewer than 3 points on straight structure or small objects; cannot register it")
     # Rows of the line points are taken when the target side is built (PreparedScan._target_side),
@@ -686,13 +682,10 @@ def _prepare(pts, opt: RegistrationOptions, with_grid: bool) -> PreparedScan:
     # register call's target with the coarse stage off, never needs them (0.04 and 0.05 ms a
     # 721-point scan, about 4% of register(..., coarse=False); benchmarks/registration.py).
     fit = (idx, used, normal, tangent, centroid, line_index, opt)
-    normals = np.where(has_line[:, None], normal, 0.0)
-    # np.add.reduce is np.mean's own pairwise sum without its dispatch (8 -> 3 µs; the same bits).
-    length_m = float(np.sqrt(np.add.reduce(rng * rng) / len(rng)))
     scan = PreparedScan(
         points=pts, beams=beams, normals=normals, thickness=thickness, has_line=has_line,
         line_index=line_index, point_index=point_index, point_object=point_object,
-        length_m=length_m, radius_m=float(rng.max()), point_noise=opt.point_noise,
+        length_m=length_m, radius_m=radius_m, point_noise=opt.point_noise,
         key=opt.preparation_key(),
         _lazy={"fit": fit, "grid_settings": (opt.coarse_resolution_m, opt.coarse_sigma_m, opt.coarse_block_cells),
                "coarse_settings": (2.0 * opt.coarse_resolution_m, opt.coarse_max_points)},

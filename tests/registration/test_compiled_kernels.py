@@ -605,3 +605,41 @@ def test_seed_leaves_chained_rounds_match_lexsort():
             merged_rounds += len(own) > 1
             own = kept
     assert merged_rounds > 100        # the merge was taken, with ties among the kept leaves
+
+
+def test_small_objects_and_scan_arrays_match_numpy():
+    # Reference: icp._point_like's and icp._prepare's numpy steps on a scan with posts: the small
+    # objects' selection, then the beams, the small objects that take a line, the line points, their
+    # normals, and the ranges' root-mean-square (np.add.reduce) and maximum.
+    from closurecheck.registration.icp import DEFAULT_OPTIONS, _line_features
+
+    rng = np.random.default_rng(13)
+    posts = rng.uniform(-8.0, 8.0, (30, 2))
+    big = (posts[:15, None, :] + rng.normal(0.0, 0.06, (15, 7, 2))).reshape(-1, 2)     # seen by enough for a line
+    few = (posts[15:, None, :] + rng.normal(0.0, 0.03, (15, 3, 2))).reshape(-1, 2)
+    spread = rng.normal(size=(200, 2)) * 10.0 ** rng.uniform(-3.0, 3.0, (200, 1))   # ranges whose sum rounds
+    pts = np.concatenate([scan(PAIRS[4][0], rng), big, few, spread, [[0.0, 0.0]]])      # a reading at the sensor
+    idx, used, count, _, normal, _, _, has_line = _line_features(pts, DEFAULT_OPTIONS)
+    pick = _kernels.point_candidates(idx, used, has_line, 3)
+    label, lo, hi = _kernels.components(pts, idx, used)
+    span = np.hypot(*(hi - lo).T)
+    spans = np.unique(span[label[pick]])
+    limit = float(spans[len(spans) // 2])        # some objects on either side
+    lab = label[pick]
+    small = span[lab] <= limit
+    point_index, point_object = _kernels.small_objects(pick, label, span, limit)
+    np.testing.assert_array_equal(point_index, pick[small])
+    np.testing.assert_array_equal(point_object, lab[small])
+    assert 0 < small.sum() < len(small)
+    rng_m = np.hypot(pts[:, 0], pts[:, 1])
+    curve = count[point_index] >= 5
+    ref_line = has_line.copy()
+    ref_line[point_index[curve]] = True
+    assert 0 < curve.sum() < len(curve)
+    got = _kernels.scan_arrays(pts, rng_m, normal, has_line, count, point_index, point_object, 5)
+    refs = (pts / np.maximum(rng_m, 1e-12)[:, None], np.where(ref_line[:, None], normal, 0.0), ref_line,
+            np.flatnonzero(ref_line), point_index[~curve], point_object[~curve])
+    for g, ref in zip(got[:6], refs):
+        np.testing.assert_array_equal(g, ref)
+    assert got[6] == float(np.sqrt(np.add.reduce(rng_m * rng_m) / len(rng_m)))
+    assert got[7] == float(rng_m.max())
