@@ -968,6 +968,81 @@ def target_sums(wj, rows, nbr_index, nbr_coef, basis, n_target):
     return mt
 
 
+@njit(cache=True, nogil=True)
+def point_target_sums(jac, om, src_coef, ends, tgt_coef, n_target):
+    """The rows and per-reading sums of the small objects' Censi middle term (icp._point_middle).
+
+    With ``wj = jac * om[:, None]``: ``wj * src_coef[:, None]`` twice, as two
+    arrays (the product of two distinct arrays goes through BLAS's general
+    product as the numpy expression's did; an array times its own transpose
+    would take the symmetric path, whose additions may differ), and
+    ``m[:, d] = np.bincount(ends.ravel(), weights=(tgt_coef * wj[:, d:d + 1]).ravel(),
+    minlength=n_target)``, added in bincount's order (rows, then the
+    segment's two ends, one after another), so the bits agree.
+    Returns a, b (P, 3) and m (n_target, 3).
+    """
+    n = len(om)
+    a = np.empty((n, 3))
+    b = np.empty((n, 3))
+    m = np.zeros((n_target, 3))
+    for i in range(n):
+        for d in range(3):
+            wj = jac[i, d] * om[i]
+            a[i, d] = wj * src_coef[i]
+            b[i, d] = wj * src_coef[i]
+            for e in range(2):
+                m[ends[i, e], d] += tgt_coef[i, e] * wj
+    return a, b, m
+
+
+@njit(cache=True, nogil=True)
+def stack_rows(r, v, w, jac, p_r, p_v, p_w, p_jac):
+    """The line rows and the small objects' rows of a solution stacked, with their weights (icp._finish).
+
+    ``np.concatenate([r, p_r])``, ``np.concatenate([v, p_v])``,
+    ``np.concatenate([w / v, p_w / p_v])`` and ``np.concatenate([jac, p_jac])``
+    in one call (six numpy calls before; element by element, the same bits).
+    Returns r_all, v_all, om_all (n + P,) and jac_all (n + P, 3).
+    """
+    n, m = len(r), len(p_r)
+    r_all = np.empty(n + m)
+    v_all = np.empty(n + m)
+    om_all = np.empty(n + m)
+    jac_all = np.empty((n + m, 3))
+    for i in range(n):
+        r_all[i] = r[i]
+        v_all[i] = v[i]
+        om_all[i] = w[i] / v[i]
+        for d in range(3):
+            jac_all[i, d] = jac[i, d]
+    for i in range(m):
+        r_all[n + i] = p_r[i]
+        v_all[n + i] = p_v[i]
+        om_all[n + i] = p_w[i] / p_v[i]
+        for d in range(3):
+            jac_all[n + i, d] = p_jac[i, d]
+    return r_all, v_all, om_all, jac_all
+
+
+@njit(cache=True, nogil=True)
+def inlier_rmse(r, v, bound):
+    """Root-mean-square residual of the inliers ``|r / sqrt(v)| <= bound`` and their count (icp._finish).
+
+    The numpy version's order of operations, its sum of the inliers' squares
+    in np.add.reduce's pairwise order (:func:`_sum_slots`), so the bits
+    agree; NaN when there is no inlier.  Five numpy calls before.
+    Returns (rmse, count).
+    """
+    n = len(r)
+    sq = np.empty(n)
+    k = 0
+    for i in range(n):
+        if abs(r[i] / math.sqrt(v[i])) <= bound:
+            sq[k] = r[i] * r[i]
+            k += 1
+    rmse = math.sqrt(_sum_slots(sq, k) / k) if k else np.nan
+    return rmse, k
+
 
 @njit(cache=True, nogil=True)
 def scale_both(h, middle, inv_length, per):

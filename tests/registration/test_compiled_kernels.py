@@ -607,6 +607,53 @@ def test_seed_leaves_chained_rounds_match_lexsort():
     assert merged_rounds > 100        # the merge was taken, with ties among the kept leaves
 
 
+@pytest.mark.parametrize("n", [1, 7, 40, 300])
+def test_point_target_sums_match_bincount(n):
+    # Reference: icp._point_middle's numpy version, weighted rows and three bincounts over the
+    # segments' ends (readings shared by several rows, as neighbouring segments share them).
+    rng = np.random.default_rng(n)
+    n_target = 50
+    jac = rng.normal(size=(n, 3))
+    om = rng.uniform(0.1, 10.0, n)
+    src_coef = rng.normal(size=n)
+    ends = rng.integers(0, n_target, (n, 2))
+    tgt_coef = rng.normal(size=(n, 2)) * 10.0 ** rng.uniform(-6, 6, (n, 2))
+    wj = jac * om[:, None]
+    ref_m = np.column_stack([np.bincount(ends.ravel(), weights=(tgt_coef * wj[:, d:d + 1]).ravel(),
+                                         minlength=n_target) for d in range(3)])
+    a, b, m = _kernels.point_target_sums(jac, om, src_coef, ends, tgt_coef, n_target)
+    np.testing.assert_array_equal(a, wj * src_coef[:, None])
+    np.testing.assert_array_equal(b, wj * src_coef[:, None])
+    assert a is not b
+    np.testing.assert_array_equal(m, ref_m)
+    np.testing.assert_array_equal(a.T @ b + m.T @ m, (wj * src_coef[:, None]).T @ (wj * src_coef[:, None])
+                                  + ref_m.T @ ref_m)
+
+
+@pytest.mark.parametrize("n, p", [(3, 0), (7, 2), (150, 9), (700, 40)])
+def test_stacked_rows_and_inlier_rmse_match_numpy(n, p):
+    # Reference: icp._finish's numpy steps: the concatenated rows and weights, then the inliers'
+    # root-mean-square residual (np.add.reduce's pairwise sum) and count.
+    rng = np.random.default_rng(n + p)
+    r, pr = rng.standard_t(2, n) * 0.01, rng.standard_t(2, p) * 0.01
+    v, pv = rng.uniform(0.3, 3.0, n), rng.uniform(0.3, 3.0, p)
+    w, pw = rng.uniform(0.2, 1.0, n), rng.uniform(0.2, 1.0, p)
+    jac, pjac = rng.normal(size=(n, 3)), rng.normal(size=(p, 3))
+    r_all, v_all, om_all, jac_all = _kernels.stack_rows(r, v, w, jac, pr, pv, pw, pjac)
+    np.testing.assert_array_equal(r_all, np.concatenate([r, pr]))
+    np.testing.assert_array_equal(v_all, np.concatenate([v, pv]))
+    np.testing.assert_array_equal(om_all, np.concatenate([w / v, pw / pv]))
+    np.testing.assert_array_equal(jac_all, np.concatenate([jac, pjac]))
+    z = np.abs(r_all / np.sqrt(v_all))
+    for bound in (0.0, np.median(z), 1.0):
+        inl = z <= bound
+        r_in = r_all[inl]
+        ref = np.sqrt(np.add.reduce(r_in * r_in) / len(r_in)) if len(r_in) else np.nan
+        rmse, count = _kernels.inlier_rmse(r_all, v_all, bound)
+        np.testing.assert_array_equal(rmse, ref)
+        assert count == np.count_nonzero(inl)
+
+
 def test_small_objects_and_scan_arrays_match_numpy():
     # Reference: icp._point_like's and icp._prepare's numpy steps on a scan with posts: the small
     # objects' selection, then the beams, the small objects that take a line, the line points, their
