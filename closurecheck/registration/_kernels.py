@@ -431,7 +431,10 @@ def scatter(points, idx):
     sums follow the numpy version they replaced (icp._line_features before
     2026-12): the centroid adds the neighbours one after another, the
     scatter sums add in numpy's pairwise order, so the bits do not move.
-    Returns count (N,) int64 and cx, cy, sxx, syy, sxy (N,) float64.
+    Also the first steps of the angle of each neighbourhood's principal axis
+    (icp._line_features), as numpy evaluates them: ``diff = sxx - syy``,
+    ``2.0 * sxy`` and ``0.5 * diff`` (three numpy calls on (N,) arrays before).
+    Returns count (N,) int64 and cx, cy, sxx, syy, sxy, diff, two_sxy, half_diff (N,) float64.
     """
     n, k = idx.shape
     count = np.zeros(n, np.int64)
@@ -443,6 +446,9 @@ def scatter(points, idx):
     vxx = np.empty(k)
     vyy = np.empty(k)
     vxy = np.empty(k)
+    diff = np.empty(n)
+    two_sxy = np.empty(n)
+    half_diff = np.empty(n)
     for p in range(n):
         c = 0
         sx = 0.0
@@ -477,7 +483,10 @@ def scatter(points, idx):
         sxxs[p] = _sum_slots(vxx, k)
         syys[p] = _sum_slots(vyy, k)
         sxys[p] = _sum_slots(vxy, k)
-    return count, cxs, cys, sxxs, syys, sxys
+        diff[p] = sxxs[p] - syys[p]
+        two_sxy[p] = 2.0 * sxys[p]
+        half_diff[p] = 0.5 * diff[p]
+    return count, cxs, cys, sxxs, syys, sxys, diff, two_sxy, half_diff
 
 
 @njit(cache=True, nogil=True)
@@ -1042,6 +1051,23 @@ def inlier_rmse(r, v, bound):
             k += 1
     rmse = math.sqrt(_sum_slots(sq, k) / k) if k else np.nan
     return rmse, k
+
+
+@njit(cache=True, nogil=True)
+def fit_exponents(d, sigma):
+    """``-0.5 * (d / sigma) ** 2`` of the finite distances ``d`` (icp._fit_score), in their order.
+
+    numpy's ``** 2`` squares by one multiplication, as here, so the bits
+    agree; the exponential stays numpy's.  Five numpy calls before.
+    """
+    out = np.empty(len(d))
+    m = 0
+    for i in range(len(d)):
+        if math.isfinite(d[i]):
+            t = d[i] / sigma
+            out[m] = -0.5 * (t * t)
+            m += 1
+    return out[:m]
 
 
 @njit(cache=True, nogil=True)

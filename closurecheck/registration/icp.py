@@ -590,13 +590,13 @@ def _line_features(points, opt: RegistrationOptions):
         # Equal distances (quantised ranges): the kd-tree's order of them, as before the kernel.
         _, ref = cKDTree(points).query(points[tied], k=k, distance_upper_bound=opt.line_radius_m)
         idx[tied] = ref.reshape(-1, k)
-    count, cx, cy, sxx, syy, sxy = _kernels.scatter(points, idx)
+    count, cx, cy, sxx, syy, sxy, diff, two_sxy, half_diff = _kernels.scatter(points, idx)
     # Closed-form eigen-decomposition of the 2x2 scatter matrix: the angle, its sin and cos and the
     # radius in numpy (the compiled ones differ from them in the last bit now and then, and results
-    # are kept to the bit), the rest in one compiled pass (_kernels.line_frames).
-    diff = sxx - syy
-    phi = 0.5 * np.arctan2(2.0 * sxy, diff)
-    rad = np.hypot(0.5 * diff, sxy)
+    # are kept to the bit), their arguments with the sums (_kernels.scatter), the rest in one
+    # compiled pass (_kernels.line_frames).
+    phi = 0.5 * np.arctan2(two_sxy, diff)
+    rad = np.hypot(half_diff, sxy)
     used, normal, centroid, tangent, thickness, has_line = _kernels.line_frames(
         idx, count, cx, cy, sxx, syy, rad, np.sin(phi), np.cos(phi), opt.min_line_points, opt.max_line_thickness)
     return idx, used, count, centroid, normal, tangent, thickness, has_line
@@ -1166,8 +1166,8 @@ def _fit_score(src: PreparedScan, tgt: PreparedScan, x, opt: RegistrationOptions
         d = _kernels.nearest(*tgt._fit_cells(), np.ascontiguousarray(pw), 4.0 * opt.fit_sigma_m)[0]
     else:   # fit_tree is the line tree: the compiled lookup gives its answers
         d, _ = _nearest_line(tgt, pw, 4.0 * opt.fit_sigma_m)
-    d = d[np.isfinite(d)]
-    return float(np.exp(-0.5 * (d / opt.fit_sigma_m) ** 2).sum() / len(pts))
+    # The finite distances' exponents in one compiled call (_kernels.fit_exponents), numpy's exp.
+    return float(np.exp(_kernels.fit_exponents(d, opt.fit_sigma_m)).sum() / len(pts))
 
 
 def _same(a, b, opt) -> bool:

@@ -492,7 +492,10 @@ def test_line_frames_match_the_numpy_expressions():
     for pts in clouds:
         n = len(pts)
         idx, _ = _kernels.neighbourhoods(pts, 16, 0.3)
-        count, cx, cy, sxx, syy, sxy = _kernels.scatter(pts, idx)
+        count, cx, cy, sxx, syy, sxy, diff, two_sxy, half_diff = _kernels.scatter(pts, idx)
+        np.testing.assert_array_equal(diff, sxx - syy)
+        np.testing.assert_array_equal(two_sxy, 2.0 * sxy)
+        np.testing.assert_array_equal(half_diff, 0.5 * (sxx - syy))
         ref_used = idx < n
         ref_idx = np.where(ref_used, idx, 0)
         half_tr = 0.5 * (sxx + syy)
@@ -690,3 +693,14 @@ def test_small_objects_and_scan_arrays_match_numpy():
         np.testing.assert_array_equal(g, ref)
     assert got[6] == float(np.sqrt(np.add.reduce(rng_m * rng_m) / len(rng_m)))
     assert got[7] == float(rng_m.max())
+
+
+def test_fit_exponents_match_numpy():
+    # Reference: icp._fit_score's numpy steps before the exponential, inf (no neighbour) dropped.
+    rng = np.random.default_rng(3)
+    d = rng.uniform(0.0, 0.4, 500) * 10.0 ** rng.uniform(-6, 0, 500)
+    d[rng.integers(0, 500, 60)] = np.inf
+    got = _kernels.fit_exponents(d, 0.1)
+    finite = d[np.isfinite(d)]
+    np.testing.assert_array_equal(got, -0.5 * (finite / 0.1) ** 2)
+    assert 0 < len(got) < len(d)
