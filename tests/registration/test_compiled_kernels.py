@@ -704,3 +704,31 @@ def test_fit_exponents_match_numpy():
     finite = d[np.isfinite(d)]
     np.testing.assert_array_equal(got, -0.5 * (finite / 0.1) ** 2)
     assert 0 < len(got) < len(d)
+
+
+@pytest.mark.parametrize("k, radius", [(5, 0.3), (16, 0.3), (40, 1.0), (150, 2.0)])
+def test_scatter_matches_numpy_sums(k, radius):
+    # Reference: the neighbourhood sums as numpy computes them (icp._line_features before they were
+    # compiled): the centroid adding the neighbours one after another, the scatter sums with
+    # np.add.reduce along each row (pairwise for 8 slots or more, in blocks beyond 128).
+    rng = np.random.default_rng(k)
+    pts = np.concatenate([rng.uniform(-3.0, 3.0, (400, 2)), rng.normal(0.0, 0.2, (200, 2))])
+    idx, _ = _kernels.neighbourhoods(pts, k, radius)
+    n = len(pts)
+    used = idx < n
+    safe = np.where(used, idx, 0)
+    count = used.sum(axis=1)
+    sx, sy = pts[safe[:, 0], 0].copy(), pts[safe[:, 0], 1].copy()
+    for j in range(1, k):
+        sx = np.where(used[:, j], sx + pts[safe[:, j], 0], sx)
+        sy = np.where(used[:, j], sy + pts[safe[:, j], 1], sy)
+    cnt = np.maximum(count, 1).astype(float)
+    cx, cy = sx / cnt, sy / cnt
+    dx = np.where(used, pts[safe, 0] - cx[:, None], 0.0)
+    dy = np.where(used, pts[safe, 1] - cy[:, None], 0.0)
+    got = _kernels.scatter(pts, idx)
+    refs = (count, cx, cy, np.add.reduce(dx * dx, axis=1), np.add.reduce(dy * dy, axis=1),
+            np.add.reduce(dx * dy, axis=1))
+    for g, ref in zip(got[:6], refs):
+        np.testing.assert_array_equal(g, ref)
+    assert (count > 1).any() and (count == k).any()
