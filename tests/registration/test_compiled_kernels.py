@@ -732,3 +732,19 @@ def test_scatter_matches_numpy_sums(k, radius):
     for g, ref in zip(got[:6], refs):
         np.testing.assert_array_equal(g, ref)
     assert (count > 1).any() and (count == k).any()
+
+
+@pytest.mark.parametrize("upper", [0.05, 0.4, 1.3])
+def test_nearest_of_a_union_is_the_nearer_of_its_parts(upper):
+    # Reference: the lookup over the union of two point sets (the fit score's targets, line points
+    # and small objects' readings), against the nearer of the lookups over each (icp._fit_score).
+    rng = np.random.default_rng(int(upper * 100))
+    lines = np.ascontiguousarray(scan(PAIRS[2][0], rng))
+    posts = np.ascontiguousarray(rng.uniform(-6.0, 6.0, (40, 2)))
+    union = np.concatenate([lines, posts])
+    queries = np.concatenate([union + rng.normal(0.0, 0.3, union.shape), rng.uniform(-30.0, 30.0, (50, 2))])
+    ref = _kernels.nearest(union, *_kernels.cell_index(union, _CELL_M), queries, upper)[0]
+    got = np.minimum(_kernels.nearest(lines, *_kernels.cell_index(lines, _CELL_M), queries, upper)[0],
+                     _kernels.nearest(posts, *_kernels.cell_index(posts, _CELL_M), queries, upper)[0])
+    np.testing.assert_array_equal(got, ref)
+    assert np.isinf(ref).any() and np.isfinite(ref).any()
