@@ -581,13 +581,12 @@ def _line_features(points, opt: RegistrationOptions):
         # Equal distances (quantised ranges): the kd-tree's order of them, as before the kernel.
         _, ref = cKDTree(points).query(points[tied], k=k, distance_upper_bound=opt.line_radius_m)
         idx[tied] = ref.reshape(-1, k)
-    count, cx, cy, sxx, syy, sxy, diff, two_sxy, half_diff = _kernels.scatter(points, idx)
-    # Closed-form eigen-decomposition of the 2x2 scatter matrix: the angle, its sin and cos and the
-    # radius in numpy (the compiled ones differ from them in the last bit now and then, and results
-    # are kept to the bit), their arguments with the sums (_kernels.scatter), the rest in one
-    # compiled pass (_kernels.line_frames).
+    count, cx, cy, sxx, syy, sxy, diff, two_sxy, rad = _kernels.scatter(points, idx)
+    # Closed-form eigen-decomposition of the 2x2 scatter matrix: the angle, its sin and cos in numpy
+    # (the compiled ones differ from them in the last bit now and then, and results are kept to the
+    # bit), their arguments and the radius (the C library's hypot, as numpy's) with the sums
+    # (_kernels.scatter), the rest in one compiled pass (_kernels.line_frames).
     phi = 0.5 * np.arctan2(two_sxy, diff)
-    rad = np.hypot(half_diff, sxy)
     used, normal, centroid, tangent, thickness, has_line = _kernels.line_frames(
         idx, count, cx, cy, sxx, syy, rad, np.sin(phi), np.cos(phi), opt.min_line_points, opt.max_line_thickness)
     return idx, used, count, centroid, normal, tangent, thickness, has_line
@@ -621,7 +620,7 @@ def _point_like(points, idx, used, has_line, opt: RegistrationOptions):
     # Compiled (_kernels.components): the same labels as scipy's connected_components on the
     # neighbour graph, without building a sparse matrix (0.42 -> 0.03 ms per 721-point scan).
     label, lo, hi = _kernels.components(points, idx, used)
-    return _kernels.small_objects(pick, label, np.hypot(*(hi - lo).T), 2.0 * opt.line_radius_m)
+    return _kernels.small_objects(pick, label, lo, hi, 2.0 * opt.line_radius_m)
 
 
 def prepare_scan(points_xy, options: RegistrationOptions = DEFAULT_OPTIONS, *, grid: bool = True) -> PreparedScan:
@@ -655,7 +654,6 @@ def prepare_scan(points_xy, options: RegistrationOptions = DEFAULT_OPTIONS, *, g
 
 
 def _prepare(pts, opt: RegistrationOptions, with_grid: bool) -> PreparedScan:
-    rng = np.hypot(pts[:, 0], pts[:, 1])
     idx, used, count, centroid, normal, tangent, thickness, has_line = _line_features(pts, opt)
     point_index, point_object = _point_like(pts, idx, used, has_line, opt)
     # A small object seen by enough readings for a line takes the local model of a line: the
@@ -665,7 +663,7 @@ def _prepare(pts, opt: RegistrationOptions, with_grid: bool) -> PreparedScan:
     # (N,) arrays before; with _kernels.small_objects, register(..., coarse=False) 0.64 -> 0.60 ms
     # a hall pair and 0.48 -> 0.45 ms a lot pair (benchmarks/registration_scenes.py pairs, medians).
     beams, normals, has_line, line_index, point_index, point_object, length_m, radius_m = _kernels.scan_arrays(
-        pts, rng, normal, has_line, count, point_index, point_object, opt.min_line_points)
+        pts, normal, has_line, count, point_index, point_object, opt.min_line_points)
     if len(line_index) < 3 and len(point_index) < 3:
         raise InputError("scan has fewer than 3 points on straight structure or small objects; cannot register it")
     # Rows of the line points are taken when the target side is built (PreparedScan._target_side),

@@ -492,10 +492,10 @@ def test_line_frames_match_the_numpy_expressions():
     for pts in clouds:
         n = len(pts)
         idx, _ = _kernels.neighbourhoods(pts, 16, 0.3)
-        count, cx, cy, sxx, syy, sxy, diff, two_sxy, half_diff = _kernels.scatter(pts, idx)
+        count, cx, cy, sxx, syy, sxy, diff, two_sxy, got_rad = _kernels.scatter(pts, idx)
         np.testing.assert_array_equal(diff, sxx - syy)
         np.testing.assert_array_equal(two_sxy, 2.0 * sxy)
-        np.testing.assert_array_equal(half_diff, 0.5 * (sxx - syy))
+        np.testing.assert_array_equal(got_rad, np.hypot(0.5 * (sxx - syy), sxy))
         ref_used = idx < n
         ref_idx = np.where(ref_used, idx, 0)
         half_tr = 0.5 * (sxx + syy)
@@ -677,7 +677,7 @@ def test_small_objects_and_scan_arrays_match_numpy():
     limit = float(spans[len(spans) // 2])        # some objects on either side
     lab = label[pick]
     small = span[lab] <= limit
-    point_index, point_object = _kernels.small_objects(pick, label, span, limit)
+    point_index, point_object = _kernels.small_objects(pick, label, lo, hi, limit)
     np.testing.assert_array_equal(point_index, pick[small])
     np.testing.assert_array_equal(point_object, lab[small])
     assert 0 < small.sum() < len(small)
@@ -686,7 +686,7 @@ def test_small_objects_and_scan_arrays_match_numpy():
     ref_line = has_line.copy()
     ref_line[point_index[curve]] = True
     assert 0 < curve.sum() < len(curve)
-    got = _kernels.scan_arrays(pts, rng_m, normal, has_line, count, point_index, point_object, 5)
+    got = _kernels.scan_arrays(pts, normal, has_line, count, point_index, point_object, 5)
     refs = (pts / np.maximum(rng_m, 1e-12)[:, None], np.where(ref_line[:, None], normal, 0.0), ref_line,
             np.flatnonzero(ref_line), point_index[~curve], point_object[~curve])
     for g, ref in zip(got[:6], refs):
