@@ -502,6 +502,27 @@ def scatter(points, idx):
 
 
 @njit(cache=True, nogil=True)
+def neighbourhood_sums(points, k, radius):
+    """:func:`neighbourhoods` and :func:`scatter` of them in one call (icp._line_features).
+
+    Where equal distances make a neighbourhood's order the kd-tree's to
+    decide (``any_tied``), the sums are left to the caller, after it has
+    taken that order: they come back empty.  Two kernel calls and a numpy
+    ``tied.any()`` before.
+    Returns idx, tied, any_tied and :func:`scatter`'s nine arrays.
+    """
+    idx, tied = neighbourhoods(points, k, radius)
+    any_tied = False
+    for p in range(len(tied)):
+        if tied[p]:
+            any_tied = True
+            break
+    rows = idx if not any_tied else idx[:0]
+    count, cx, cy, sxx, syy, sxy, diff, two_sxy, rad = scatter(points, rows)
+    return idx, tied, any_tied, count, cx, cy, sxx, syy, sxy, diff, two_sxy, rad
+
+
+@njit(cache=True, nogil=True)
 def line_frames(idx, count, cx, cy, sxx, syy, rad, sin_phi, cos_phi, min_points, max_thickness):
     """Each neighbourhood's line from its scatter (icp._line_features): the numpy steps after the angle, fused.
 
@@ -1524,22 +1545,27 @@ def point_candidates(idx, used, has_line, min_neighbours):
 
 
 @njit(cache=True, nogil=True)
-def small_objects(pick, label, lo, hi, limit):
-    """The candidates whose object spans at most ``limit`` and their labels (icp._point_like).
+def small_objects(points, idx, used, has_line, min_neighbours, limit):
+    """Points of small isolated objects and their object labels (icp._point_like), in one call.
 
-    ``span = np.hypot(*(hi - lo).T)`` of the objects' boxes (:func:`components`),
-    ``lab = label[pick]; small = span[lab] <= limit; pick[small], lab[small]``
-    in one call (seven numpy calls before).
+    :func:`point_candidates`, then, if there are any, :func:`components` and
+    the candidates whose object's box spans at most ``limit``
+    (``np.hypot(*(hi - lo).T)[label[pick]] <= limit``), in their order:
+    three kernel calls and seven numpy calls before.
+    Returns (indices, labels), int64.
     """
+    pick = point_candidates(idx, used, has_line, min_neighbours)
     keep = np.empty(len(pick), np.int64)
     lab = np.empty(len(pick), np.int64)
     m = 0
-    for t in range(len(pick)):
-        c = label[pick[t]]
-        if math.hypot(hi[c, 0] - lo[c, 0], hi[c, 1] - lo[c, 1]) <= limit:
-            keep[m] = pick[t]
-            lab[m] = c
-            m += 1
+    if len(pick):
+        label, lo, hi = components(points, idx, used)
+        for t in range(len(pick)):
+            c = label[pick[t]]
+            if math.hypot(hi[c, 0] - lo[c, 0], hi[c, 1] - lo[c, 1]) <= limit:
+                keep[m] = pick[t]
+                lab[m] = c
+                m += 1
     return keep[:m], lab[:m]
 
 

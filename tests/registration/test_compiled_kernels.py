@@ -658,8 +658,8 @@ def test_stacked_rows_and_inlier_rmse_match_numpy(n, p):
 
 
 def test_small_objects_and_scan_arrays_match_numpy():
-    # Reference: icp._point_like's and icp._prepare's numpy steps on a scan with posts: the small
-    # objects' selection, then the beams, the small objects that take a line, the line points, their
+    # Reference: icp._point_like's and icp._prepare's steps on a scan with posts: the candidates and
+    # groups (point_candidates, components) and the numpy selection of the small ones, then the beams, the small objects that take a line, the line points, their
     # normals, and the ranges' root-mean-square (np.add.reduce) and maximum.
     from closurecheck.registration.icp import DEFAULT_OPTIONS, _line_features
 
@@ -677,7 +677,7 @@ def test_small_objects_and_scan_arrays_match_numpy():
     limit = float(spans[len(spans) // 2])        # some objects on either side
     lab = label[pick]
     small = span[lab] <= limit
-    point_index, point_object = _kernels.small_objects(pick, label, lo, hi, limit)
+    point_index, point_object = _kernels.small_objects(pts, idx, used, has_line, 3, limit)
     np.testing.assert_array_equal(point_index, pick[small])
     np.testing.assert_array_equal(point_object, lab[small])
     assert 0 < small.sum() < len(small)
@@ -748,3 +748,22 @@ def test_nearest_of_a_union_is_the_nearer_of_its_parts(upper):
                      _kernels.nearest(posts, *_kernels.cell_index(posts, _CELL_M), queries, upper)[0])
     np.testing.assert_array_equal(got, ref)
     assert np.isinf(ref).any() and np.isfinite(ref).any()
+
+
+def test_neighbourhood_sums_match_their_two_kernels():
+    # Reference: neighbourhoods, then scatter of them; with equal distances (quantised ranges) the
+    # sums are left to the caller (empty), who first takes the kd-tree's order (icp._line_features).
+    rng = np.random.default_rng(9)
+    pts = np.ascontiguousarray(scan(PAIRS[3][0], rng))
+    quantised = np.round(pts / 0.02) * 0.02
+    for cloud, ties in ((pts, False), (quantised, True)):
+        idx, tied, any_tied, *sums = _kernels.neighbourhood_sums(cloud, 16, 0.3)
+        ref_idx, ref_tied = _kernels.neighbourhoods(cloud, 16, 0.3)
+        np.testing.assert_array_equal(idx, ref_idx)
+        np.testing.assert_array_equal(tied, ref_tied)
+        assert any_tied == ties == ref_tied.any()
+        refs = _kernels.scatter(cloud, ref_idx) if not ties else [a[:0] for a in _kernels.scatter(cloud, ref_idx)]
+        assert len(sums) == len(refs)
+        for got, ref in zip(sums, refs):
+            np.testing.assert_array_equal(got, ref)
+            assert got.dtype == ref.dtype

@@ -37,7 +37,7 @@ def test_a_new_process_has_no_kernel_loaded_and_warm_kernels_loads_those_icp_use
                  "print(' '.join(loaded_kernels()))")
     before, after = out.splitlines()
     assert before == "0"
-    assert {"icp_line", "coarse_search", "line_models", "neighbourhoods", "components", "cell_index",
+    assert {"icp_line", "coarse_search", "line_models", "neighbourhood_sums", "small_objects", "cell_index",
             "associate", "linearise"} <= set(after.split())
 
 
