@@ -1545,6 +1545,16 @@ def point_candidates(idx, used, has_line, min_neighbours):
 
 
 @njit(cache=True, nogil=True)
+def all_finite(a):
+    """``np.isfinite(a).all()`` of a 2-D array without the mask (icp._as_points)."""
+    for i in range(a.shape[0]):
+        for j in range(a.shape[1]):
+            if not math.isfinite(a[i, j]):
+                return False
+    return True
+
+
+@njit(cache=True, nogil=True)
 def small_objects(points, idx, used, has_line, min_neighbours, limit):
     """Points of small isolated objects and their object labels (icp._point_like), in one call.
 

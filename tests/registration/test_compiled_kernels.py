@@ -767,3 +767,16 @@ def test_neighbourhood_sums_match_their_two_kernels():
         for got, ref in zip(sums, refs):
             np.testing.assert_array_equal(got, ref)
             assert got.dtype == ref.dtype
+
+
+def test_all_finite_matches_numpy():
+    # Reference: np.isfinite(a).all(), on contiguous arrays and on views (icp._as_points takes the
+    # caller's array as it comes).
+    rng = np.random.default_rng(2)
+    a = rng.normal(size=(50, 2))
+    for bad in (None, np.nan, np.inf, -np.inf):
+        b = a.copy()
+        if bad is not None:
+            b[int(rng.integers(0, 50)), int(rng.integers(0, 2))] = bad
+        for v in (b, b[::2], np.asfortranarray(b), b[:, ::-1], b[:0]):
+            assert _kernels.all_finite(v) == bool(np.isfinite(v).all())
