@@ -983,18 +983,27 @@ def linearise(rp, ub, lt, x0, x1, min_incidence_cos, range_noise):
 
 
 @njit(cache=True, nogil=True)
-def target_sums(wj, rows, nbr_index, nbr_coef, basis, n_target):
-    """Per target reading, the sum over residuals of ``wj_i * d r_i / d eps`` (covariance.censi_middle_lines).
+def target_sums(jac, omega, src_coef, rows, nbr_index, nbr_coef, basis, n_target):
+    """The source rows ``wj * src_coef[:, None]`` and, per target reading, the sum over residuals of
+    ``wj_i * d r_i / d eps`` (covariance.censi_middle_lines), ``wj = jac * omega[:, None]``.
 
     Residual i lies on line ``rows[i]``, fitted by the readings
     ``nbr_index[rows[i]]`` whose influence on the line's coefficients is
     ``nbr_coef[rows[i]]`` (k, 3, float32); its sensitivity to reading l is
     ``-(c0 + s c1 + phi2 c2)`` with ``basis[i] = (s, phi2)``.  Sums are
     built in the order numpy's bincount adds them (residuals, then
-    readings, one after another), so the bits agree with the numpy version.
-    Returns (n_target, 3).
+    readings, one after another), so the bits agree with the numpy version;
+    the products element by element as numpy's (two numpy products and two
+    copies to contiguous arrays before the call, 2.5 µs).
+    Returns ms (n, 3) and mt (n_target, 3).
     """
     n, k = len(rows), nbr_index.shape[1]
+    wj = np.empty((n, 3))
+    ms = np.empty((n, 3))
+    for i in range(n):
+        for d in range(3):
+            wj[i, d] = jac[i, d] * omega[i]
+            ms[i, d] = wj[i, d] * src_coef[i]
     mt = np.zeros((n_target, 3))
     for i in range(n):
         line = rows[i]
@@ -1007,7 +1016,7 @@ def target_sums(wj, rows, nbr_index, nbr_coef, basis, n_target):
             mt[t, 0] += c * wj[i, 0]
             mt[t, 1] += c * wj[i, 1]
             mt[t, 2] += c * wj[i, 2]
-    return mt
+    return ms, mt
 
 
 @njit(cache=True, nogil=True)

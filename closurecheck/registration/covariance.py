@@ -44,6 +44,7 @@ squared so that it is never falsely small there.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from functools import lru_cache
 
@@ -193,11 +194,8 @@ def censi_middle_lines(jac, omega, src_coef, rows, nbr_index, nbr_coef, basis, n
     gathers and three bincounts of (n, k) arrays cost about 0.25 ms per
     registration in numpy.
     """
-    wj = jac * omega[:, None]
-    ms = wj * src_coef[:, None]
+    ms, mt = _kernels.target_sums(jac, omega, src_coef, rows, nbr_index, nbr_coef, basis, n_target)
     middle = ms.T @ ms
-    mt = _kernels.target_sums(wj, np.ascontiguousarray(rows), nbr_index, nbr_coef, np.ascontiguousarray(basis),
-                              n_target)
     middle += mt.T @ mt
     return middle
 
@@ -273,7 +271,7 @@ def analyse(h, middle, sigma2: float, n_corr: int, length_m: float, *, method: s
     cov = _kernels.unscale_symmetric(cov_s, inv_length)
     return CovarianceEstimate(
         covariance=cov,
-        sigma_m=float(np.sqrt(sigma2)),
+        sigma_m=math.sqrt(sigma2),      # IEEE square root, as np.sqrt's, without a numpy scalar
         eigenvalues=evals,
         eigenvectors=evecs,
         degeneracy=degeneracy,

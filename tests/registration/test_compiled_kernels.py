@@ -780,3 +780,25 @@ def test_all_finite_matches_numpy():
             b[int(rng.integers(0, 50)), int(rng.integers(0, 2))] = bad
         for v in (b, b[::2], np.asfortranarray(b), b[:, ::-1], b[:0]):
             assert _kernels.all_finite(v) == bool(np.isfinite(v).all())
+
+
+def test_target_sums_match_the_numpy_rows_and_bincounts():
+    # Reference: covariance.censi_middle's numpy steps on the gathered (n, k) sensitivities of a
+    # registered pair's line rows: the weighted source rows and three bincounts over the readings.
+    from closurecheck.registration.icp import _associate, _linearise
+
+    src, tgt, opt, poses = _pair_at(1)
+    pairs = _associate(src, tgt, poses[0], opt, np.cos(opt.max_normal_angle_rad))
+    r, v, jac, (s_al, phi2), sc, _ = _linearise(pairs, poses[0], opt, True)
+    om = np.random.default_rng(4).uniform(0.2, 1.0, len(r)) / v
+    rows = pairs[1]
+    ms, mt = _kernels.target_sums(jac, om, sc, rows, tgt.nbr_index, tgt.nbr_coef, np.column_stack([s_al, phi2]),
+                                  len(tgt.points))
+    wj = jac * om[:, None]
+    w = tgt.nbr_coef[rows]
+    coef_t = -(w[..., 0] + s_al[:, None] * w[..., 1] + phi2[:, None] * w[..., 2])
+    idx = tgt.nbr_index[rows].ravel()
+    ref_mt = np.column_stack([np.bincount(idx, weights=(coef_t * wj[:, d:d + 1]).ravel(), minlength=len(tgt.points))
+                              for d in range(3)])
+    np.testing.assert_array_equal(ms, wj * sc[:, None])
+    np.testing.assert_array_equal(mt, ref_mt)
