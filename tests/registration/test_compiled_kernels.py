@@ -302,6 +302,57 @@ def test_block_bookkeeping_matches_numpy_indexing():
     assert empty.shape == (0, 4) and empty_score.shape == (0,)
 
 
+def test_top_sums_match_numpy_gathers():
+    # Reference: numpy's fancy-indexed gather and sum over the points for each top block of
+    # top_blocks' rows, as block sums were taken before (correlative.search).
+    rng = np.random.default_rng(8)
+    hp, rows_n, level = 60, 50, 3
+    size = rows_n * hp
+    stack = rng.integers(0, 256, 5 * size).astype(np.uint8)
+    starts = np.array([-9, -1, 7])
+    base = rng.integers(12, 38, (6, 40))
+    base = (base * hp + rng.integers(12, 38, (6, 40))).astype(np.int32)
+    tops = _kernels.top_blocks(6, starts, level)
+    off = tops[:, 3] * size + tops[:, 1] * hp + tops[:, 2]
+    ref = stack[base[tops[:, 0]] + off[:, None]].astype(np.int64).sum(axis=1)
+    np.testing.assert_array_equal(_kernels.top_sums(base, stack, starts, level, size, hp), ref)
+
+
+def _take_by_lists(nodes, score, bar, row_seed, batch):
+    """The top level's visit as coarse_search made it before it kept the level ranked: live_blocks,
+    then _best_rows and take_rest (or everything)."""
+    live_nodes, live_score = _kernels.live_blocks(nodes, score, bar, row_seed)
+    if len(live_score) > batch:
+        parents, rest, rest_score = _kernels.take_rest(live_nodes, live_score,
+                                                       _kernels._best_rows(live_score, batch))
+        return parents, rest, rest_score
+    return live_nodes, live_nodes[:0], live_score[:0]
+
+
+@pytest.mark.parametrize("n_seeds", [1, 3])
+def test_ranked_top_level_takes_what_the_lists_took(n_seeds):
+    # Reference: the list bookkeeping above, visit after visit with bars that rise and sometimes fall
+    # again (a suppressed leaf lowers the k-th best); bounds from a small range, so ties are everywhere.
+    rng = np.random.default_rng(10 + n_seeds)
+    n_rows = 12 * n_seeds
+    row_seed = np.repeat(np.arange(n_seeds), 12)
+    tops = _kernels.top_blocks(n_rows, np.array([-5, 3, 11]), 4)
+    score = rng.integers(0, 40, len(tops))
+    order, head, tail = _kernels._rank_tops(score, row_seed[tops[:, 0]], n_seeds)
+    nodes, node_score = tops, score
+    bar = np.full(n_seeds, -1.0)
+    visits = 0
+    while True:
+        ref, nodes, node_score = _take_by_lists(nodes, node_score, bar, row_seed, 16)
+        got = _kernels._take_tops(tops, score, order, head, tail, bar, 16)
+        np.testing.assert_array_equal(got, ref)
+        if len(ref) == 0:
+            break
+        visits += 1
+        bar = bar + rng.choice([-3.0, 0.0, 2.0, 5.0], n_seeds)
+    assert visits >= 4
+
+
 @pytest.mark.parametrize("n", [1, 2, 7, 600, 601])
 def test_huber_rows_match_the_numpy_weights(n):
     # Reference: numpy's median and the Huber weight of closurecheck.core.kernels (the numpy path
