@@ -1548,27 +1548,31 @@ def seed_leaves(own, records, j, k, sep_m, sep_rad, max_records):
 
 
 @njit(cache=True, nogil=True)
-def cell_bases(cells, offset, reach, x_max, y_max, pad, hp):
-    """Flat pyramid index of each rotated source point at zero offset (correlative.search).
+def cell_bases(cells, offset, reach, x_max, y_max, pad, hp, out):
+    """Flat pyramid index of each rotated source point at zero offset (correlative.search), into ``out``.
 
     ``cells`` (N, 2, A) the points rotated by each angle row, in cells (a
     numpy product), ``offset`` (2, A) each row's seed position in cells:
     ``floor(cells + offset)`` clipped to ``[-reach, x_max]`` and
     ``[-reach, y_max]``, shifted by ``pad``, then ``x * hp + y``; the numpy
     version's steps one element at a time (0.4 ms of numpy temporaries per
-    search of the default window).  Returns (A, N) int64.
+    search of the default window).  ``out`` (A, N), int32 or int64, is
+    filled and returned: written a row at a time, in the gathers' type,
+    rather than into an int64 array a column at a time and converted after
+    (0.17-0.22 -> 0.05-0.09 ms for 331 angle rows of 106 points).
     """
     n, _, na = cells.shape
-    base = np.empty((na, n), np.int64)
     lo = -float(reach)
-    for i in range(n):
-        for a in range(na):
-            cx = math.floor(cells[i, 0, a] + offset[0, a])
-            cy = math.floor(cells[i, 1, a] + offset[1, a])
+    for a in range(na):
+        ox = offset[0, a]
+        oy = offset[1, a]
+        for i in range(n):
+            cx = math.floor(cells[i, 0, a] + ox)
+            cy = math.floor(cells[i, 1, a] + oy)
             cx = min(max(cx, lo), x_max) + pad
             cy = min(max(cy, lo), y_max) + pad
-            base[a, i] = int(cx * hp + cy)
-    return base
+            out[a, i] = int(cx * hp + cy)
+    return out
 
 
 @njit(cache=True, nogil=True)

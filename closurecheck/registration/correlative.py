@@ -227,7 +227,8 @@ def search(grid: LikelihoodGrid, points, seed, *, window_m: float, window_rad: f
     # Floor, clip, pad and flatten in one compiled pass (_kernels.cell_bases); the rotation stays a
     # numpy product.
     base = _kernels.cell_bases(cells, np.ascontiguousarray(((rows[:, :2] - grid.origin) / r).T), reach,
-                               float(w - 1 + reach), float(h - 1 + reach), float(pad), float(hp)).astype(index)
+                               float(w - 1 + reach), float(h - 1 + reach), float(pad), float(hp),
+                               np.empty((len(rows), len(pts)), index))
     # All pyramid levels, zero padded, in one flat array: level l starts at l * size.
     stack = np.zeros((len(grid.levels), w + 2 * pad, hp), dtype=np.uint8)
     stack[:, pad:pad + w, pad:pad + h] = grid.levels

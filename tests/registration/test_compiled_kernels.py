@@ -502,8 +502,10 @@ def test_cell_bases_and_top_blocks_match_numpy():
     np.clip(ref, -reach, np.array([[w - 1 + reach], [h - 1 + reach]]), out=ref)
     ref += pad
     ref = (ref[:, 0] * hp + ref[:, 1]).T.astype(np.int64)
-    got = _kernels.cell_bases(cells, offset, reach, float(w - 1 + reach), float(h - 1 + reach), float(pad), float(hp))
-    np.testing.assert_array_equal(got, ref)
+    for dtype in (np.int64, np.int32):
+        got = _kernels.cell_bases(cells, offset, reach, float(w - 1 + reach), float(h - 1 + reach), float(pad),
+                                  float(hp), np.empty((9, 50), dtype))
+        np.testing.assert_array_equal(got, ref)
     assert (ref == pad - reach + (pad - reach) * hp).any() or (ref < (pad - reach + 1) * hp).any()   # clipped
     starts = np.array([-35, -19, -3, 13, 29])
     ta, tx, ty = np.meshgrid(np.arange(4), starts, starts, indexing="ij")
