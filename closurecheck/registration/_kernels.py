@@ -735,30 +735,85 @@ def split_and_bound(parents, split, half, leaf, stack, base, size, hp, bar, row_
 
 @njit(cache=True, nogil=True)
 def distinct(records, k, sep_m, sep_rad):
-    """Greedy non-maximum suppression (correlative.distinct): indices of up to k rows, best first."""
+    """Greedy non-maximum suppression (correlative.distinct): indices of up to k rows, best first.
+
+    Each pick is the first alive row of the highest score; it then suppresses
+    the alive rows with ``hypot(dx, dy) < sep_m`` and wrapped angle
+    difference ``< sep_rad``.  Rows sorted best first (scores not
+    increasing, no NaN: the coarse search's lists always come so) make the
+    same picks with less work: the first alive row is the pick, and only
+    rows after it can still be alive.
+    """
     n = len(records)
     alive = np.ones(n, np.bool_)
     keep = np.empty(k, np.int64)
+    ordered = True
+    for r in range(1, n):
+        if not records[r, 0] <= records[r - 1, 0]:
+            ordered = False
+            break
+    # Most rows are decided without hypot and np.mod (libm calls, most of the cost: on the sparse hall
+    # scene a pick's neighbourhood is nearly every kept leaf).  A squared distance off sep_m^2 by more
+    # than 1e-12 relative, or an unwrapped angle difference off sep_rad by more than 1e-9 (and below
+    # pi), decides the test as hypot (error of an ulp or so) and the wrapped difference (exact to
+    # 5e-16 there, no wrap) would; the rest take the exact test.  The ranges keep the squares and
+    # the angles clear of overflow, underflow and wrapping.  With the sorted shortcuts: 0.16 -> 0.05 ms
+    # a search on hall pairs (benchmarks/registration_scenes.py scenes, the same picks on 2,400 searches).
+    box = 1e-100 < sep_m < 1e100
+    in2 = sep_m * sep_m * (1.0 - 1e-12)
+    out2 = sep_m * sep_m * (1.0 + 1e-12)
+    ang = 1e-6 < sep_rad < 1.0
+    in_rad = sep_rad - 1e-9
+    out_rad = sep_rad + 1e-9
+    wrap = np.pi - 1e-9
+    two_pi = 2.0 * np.pi
     m = 0
     left = n
-    two_pi = 2.0 * np.pi
+    first = 0
     while m < k and left > 0:
-        i = -1
-        for r in range(n):
-            if alive[r] and (i < 0 or records[r, 0] > records[i, 0]):
-                i = r
+        if ordered:
+            while not alive[first]:
+                first += 1
+            i = first
+        else:
+            i = -1
+            for r in range(n):
+                if alive[r] and (i < 0 or records[r, 0] > records[i, 0]):
+                    i = r
         keep[m] = i
         m += 1
-        for r in range(n):
+        if m == k:
+            break
+        alive[i] = False
+        left -= 1
+        xi = records[i, 1]
+        yi = records[i, 2]
+        ti = records[i, 3]
+        for r in range(i + 1 if ordered else 0, n):
             if not alive[r]:
                 continue
-            dt = abs(np.mod(records[r, 3] - records[i, 3] + np.pi, two_pi) - np.pi)
-            if math.hypot(records[r, 1] - records[i, 1], records[r, 2] - records[i, 2]) < sep_m and dt < sep_rad:
+            dx = records[r, 1] - xi
+            dy = records[r, 2] - yi
+            s = dx * dx + dy * dy
+            if box and s < in2:
+                near = True
+            elif box and s >= out2:
+                near = False
+            else:
+                near = math.hypot(dx, dy) < sep_m
+            if not near:
+                continue
+            d = records[r, 3] - ti
+            ad = abs(d)
+            if ang and ad < in_rad:
+                near = True
+            elif ang and out_rad <= ad <= wrap:
+                near = False
+            else:
+                near = abs(np.mod(d + np.pi, two_pi) - np.pi) < sep_rad
+            if near:
                 alive[r] = False
                 left -= 1
-        if alive[i]:
-            alive[i] = False
-            left -= 1
     return keep[:m]
 
 
