@@ -227,22 +227,25 @@ def search(grid: LikelihoodGrid, points, seed, *, window_m: float, window_rad: f
     # Floor, clip, pad and flatten in one compiled pass (_kernels.cell_bases); the rotation stays a
     # numpy product.
     base = _kernels.cell_bases(cells, np.ascontiguousarray(((rows[:, :2] - grid.origin) / r).T), reach,
-                               float(w - 1 + reach), float(h - 1 + reach), float(pad), float(hp)).astype(index)
+                               float(w - 1 + reach), float(h - 1 + reach), float(pad), float(hp),
+                               np.empty((len(rows), len(pts)), index))
     # All pyramid levels, zero padded, in one flat array: level l starts at l * size.
     stack = np.zeros((len(grid.levels), w + 2 * pad, hp), dtype=np.uint8)
     stack[:, pad:pad + w, pad:pad + h] = grid.levels
     stack = stack.ravel()
 
-    tops = _kernels.top_blocks(len(rows), starts.astype(np.int64), top_level)
+    starts = starts.astype(np.int64)
+    tops = _kernels.top_blocks(len(rows), starts, top_level)
+    # The top blocks' bounds: the sum over the points of each block's level at its offset (compiled,
+    # _kernels.top_sums: a wide window has thousands of top blocks of N gathers each, for which
+    # numpy's take built two (blocks, N) temporaries; 0.73 -> 0.21 ms per search of the default window).
+    top_score = _kernels.top_sums(base, stack, starts, top_level, size, hp)
     if top_level == 0:
-        tops = tops[(np.abs(tops[:, 1]) <= half) & (np.abs(tops[:, 2]) <= half)]
+        inside = (np.abs(tops[:, 1]) <= half) & (np.abs(tops[:, 2]) <= half)
+        tops, top_score = tops[inside], top_score[inside]
     split = _splits(top_level)
     # The rounds of splitting and the leaves' lists in one compiled call (_kernels.coarse_search;
     # as a Python loop of kernel calls, the loop's overhead was more than half of a search's time).
-    # The top blocks' bounds: the sum over the points of each block's level at its offset (compiled,
-    # _kernels.block_sums: a wide window has thousands of top blocks of N gathers each, for which
-    # numpy's take built two (blocks, N) temporaries; 0.73 -> 0.21 ms per search of the default window).
-    top_score = _kernels.block_sums(tops, stack, base, size, hp)
     out = _kernels.coarse_search(tops, top_score, top_level, split, half, stack, base, size, hp,
                                  np.ascontiguousarray(rows), float(r), len(seeds), int(n_best), float(separation_m),
                                  float(separation_rad), _BATCH_NODES, _MAX_RECORDS)

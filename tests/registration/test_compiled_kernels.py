@@ -302,6 +302,57 @@ def test_block_bookkeeping_matches_numpy_indexing():
     assert empty.shape == (0, 4) and empty_score.shape == (0,)
 
 
+def test_top_sums_match_numpy_gathers():
+    # Reference: numpy's fancy-indexed gather and sum over the points for each top block of
+    # top_blocks' rows, as block sums were taken before (correlative.search).
+    rng = np.random.default_rng(8)
+    hp, rows_n, level = 60, 50, 3
+    size = rows_n * hp
+    stack = rng.integers(0, 256, 5 * size).astype(np.uint8)
+    starts = np.array([-9, -1, 7])
+    base = rng.integers(12, 38, (6, 40))
+    base = (base * hp + rng.integers(12, 38, (6, 40))).astype(np.int32)
+    tops = _kernels.top_blocks(6, starts, level)
+    off = tops[:, 3] * size + tops[:, 1] * hp + tops[:, 2]
+    ref = stack[base[tops[:, 0]] + off[:, None]].astype(np.int64).sum(axis=1)
+    np.testing.assert_array_equal(_kernels.top_sums(base, stack, starts, level, size, hp), ref)
+
+
+def _take_by_lists(nodes, score, bar, row_seed, batch):
+    """The top level's visit as coarse_search made it before it kept the level ranked: live_blocks,
+    then _best_rows and take_rest (or everything)."""
+    live_nodes, live_score = _kernels.live_blocks(nodes, score, bar, row_seed)
+    if len(live_score) > batch:
+        parents, rest, rest_score = _kernels.take_rest(live_nodes, live_score,
+                                                       _kernels._best_rows(live_score, batch))
+        return parents, rest, rest_score
+    return live_nodes, live_nodes[:0], live_score[:0]
+
+
+@pytest.mark.parametrize("n_seeds", [1, 3])
+def test_ranked_top_level_takes_what_the_lists_took(n_seeds):
+    # Reference: the list bookkeeping above, visit after visit with bars that rise and sometimes fall
+    # again (a suppressed leaf lowers the k-th best); bounds from a small range, so ties are everywhere.
+    rng = np.random.default_rng(10 + n_seeds)
+    n_rows = 12 * n_seeds
+    row_seed = np.repeat(np.arange(n_seeds), 12)
+    tops = _kernels.top_blocks(n_rows, np.array([-5, 3, 11]), 4)
+    score = rng.integers(0, 40, len(tops))
+    order, head, tail = _kernels._rank_tops(score, row_seed[tops[:, 0]], n_seeds)
+    nodes, node_score = tops, score
+    bar = np.full(n_seeds, -1.0)
+    visits = 0
+    while True:
+        ref, nodes, node_score = _take_by_lists(nodes, node_score, bar, row_seed, 16)
+        got = _kernels._take_tops(tops, score, order, head, tail, bar, 16)
+        np.testing.assert_array_equal(got, ref)
+        if len(ref) == 0:
+            break
+        visits += 1
+        bar = bar + rng.choice([-3.0, 0.0, 2.0, 5.0], n_seeds)
+    assert visits >= 4
+
+
 @pytest.mark.parametrize("n", [1, 2, 7, 600, 601])
 def test_huber_rows_match_the_numpy_weights(n):
     # Reference: numpy's median and the Huber weight of closurecheck.core.kernels (the numpy path
@@ -451,8 +502,10 @@ def test_cell_bases_and_top_blocks_match_numpy():
     np.clip(ref, -reach, np.array([[w - 1 + reach], [h - 1 + reach]]), out=ref)
     ref += pad
     ref = (ref[:, 0] * hp + ref[:, 1]).T.astype(np.int64)
-    got = _kernels.cell_bases(cells, offset, reach, float(w - 1 + reach), float(h - 1 + reach), float(pad), float(hp))
-    np.testing.assert_array_equal(got, ref)
+    for dtype in (np.int64, np.int32):
+        got = _kernels.cell_bases(cells, offset, reach, float(w - 1 + reach), float(h - 1 + reach), float(pad),
+                                  float(hp), np.empty((9, 50), dtype))
+        np.testing.assert_array_equal(got, ref)
     assert (ref == pad - reach + (pad - reach) * hp).any() or (ref < (pad - reach + 1) * hp).any()   # clipped
     starts = np.array([-35, -19, -3, 13, 29])
     ta, tx, ty = np.meshgrid(np.arange(4), starts, starts, indexing="ij")
@@ -608,6 +661,100 @@ def test_seed_leaves_chained_rounds_match_lexsort():
             merged_rounds += len(own) > 1
             own = kept
     assert merged_rounds > 100        # the merge was taken, with ties among the kept leaves
+
+
+def _greedy_distinct(records, k, sep_m, sep_rad):
+    # The plain greedy loop: pick the first row of the highest alive score, drop the alive rows
+    # within both separations of it (np.hypot and np.mod: the same libm hypot and modulo as the kernel).
+    alive = np.ones(len(records), bool)
+    keep = []
+    while len(keep) < k and alive.any():
+        i = -1
+        for r in range(len(records)):
+            if alive[r] and (i < 0 or records[r, 0] > records[i, 0]):
+                i = r
+        keep.append(i)
+        for r in range(len(records)):
+            dt = abs(np.mod(records[r, 3] - records[i, 3] + np.pi, 2.0 * np.pi) - np.pi)
+            if alive[r] and np.hypot(records[r, 1] - records[i, 1], records[r, 2] - records[i, 2]) < sep_m \
+                    and dt < sep_rad:
+                alive[r] = False
+        alive[i] = False
+    return np.array(keep, np.int64)
+
+
+@pytest.mark.parametrize("ordered", [True, False])
+def test_distinct_matches_the_plain_greedy_loop_at_the_separations(ordered):
+    # Tie-heavy rows on lattices whose steps are the separations, halves and 0.6 / 0.8 of them (a
+    # 3-4-5 triangle), with one-ulp offsets: many distances and angle differences sit at or next to
+    # the separations, where the kernel's shortcuts must hand over to the exact test.  Angles also
+    # near +-pi (the wrap), and rows sorted best first or not (the kernel's two ways of picking).
+    rng = np.random.default_rng(3 + ordered)
+    cut = 0
+    for _ in range(1500):
+        n = int(rng.integers(0, 30))
+        sep_m = float(rng.choice([0.25, 0.1, 0.5]))
+        sep_rad = float(rng.choice([0.1, 0.15, 0.5]))
+        rows = np.empty((n, 4))
+        rows[:, 0] = rng.integers(0, 4, n) * 100.0
+        steps = rng.choice([sep_m, sep_m / 2, 0.6 * sep_m, 0.8 * sep_m], (n, 2))
+        ulps = rng.choice([0.0, 0.0, 1.0, -1.0], (n, 2)) * np.spacing(steps)
+        rows[:, 1:3] = rng.choice([0.0, 1.0, -3.0]) + rng.integers(-1, 2, (n, 2)) * steps + ulps
+        rows[:, 3] = (rng.choice([sep_rad, sep_rad / 2, np.pi], n) * rng.integers(-1, 2, n)
+                      + rng.choice([0.0, 0.0, 1e-16, -1e-16, -0.0], n))
+        if ordered:
+            rows = rows[np.argsort(-rows[:, 0], kind="stable")]
+        k = int(rng.integers(1, 6))
+        ref = _greedy_distinct(rows, k, sep_m, sep_rad)
+        np.testing.assert_array_equal(_kernels.distinct(rows, k, sep_m, sep_rad), ref)
+        cut += not np.array_equal(ref, np.argsort(-rows[:, 0], kind="stable")[:k])
+    assert cut > 500                  # suppression decided the outcome often
+
+
+@pytest.mark.parametrize("n", [0, 1, 7, 8, 9, 16, 17, 100, 1000])
+def test_lex_order_is_lexsort_on_tied_leaves(n):
+    # Reference: np.lexsort on (y, x, theta, -score).  Few values per key, with -0.0 beside 0.0,
+    # so that most rows tie on the first keys and many on all four (then the input order decides:
+    # the sort must be stable); lengths around the insertion-sort runs and the merges.
+    rng = np.random.default_rng(n)
+    for _ in range(20):
+        rows = np.column_stack([rng.integers(0, 4, n) * 255.0, rng.choice([-0.1, -0.0, 0.0, 0.1], (n, 2)),
+                                rng.choice([-0.05, -0.0, 0.0, 0.05], n), rng.integers(0, 2, n)]).astype(float)
+        ref = np.lexsort((rows[:, 2], rows[:, 1], rows[:, 3], -rows[:, 0]))
+        np.testing.assert_array_equal(_kernels._lex_order(rows), ref)
+
+
+def test_seed_leaves_chained_rounds_keep_signed_zeros_where_lexsort_puts_them():
+    # As the chained test above, with -0.0 and 0.0 among the keys: such leaves tie on every key yet
+    # differ in their bits, so the merge must put the old before the new exactly where the stable
+    # sorts of the whole do (compared bit for bit).  Up to 4 distinct leaves (k) and three seeds'
+    # records, a few rounds over the record limit (the caller thins those, as _add_leaves does).
+    from closurecheck.registration.correlative import distinct
+
+    rng = np.random.default_rng(45)
+    merged_rounds = 0
+    for _ in range(60):
+        own = np.empty((0, 5))
+        k = int(rng.integers(1, 5))
+        for _ in range(int(rng.integers(2, 10))):
+            n = int(rng.integers(0, 150))
+            records = np.column_stack([rng.integers(0, 4, n) * 255.0, rng.choice([-0.1, -0.0, 0.0, 0.1], (n, 2)),
+                                       rng.choice([-0.05, -0.0, 0.0], n), rng.integers(0, 3, n)]).astype(float)
+            kept, best, kth, over = _kernels.seed_leaves(own, records, 1, k, 0.25, 0.1, 400)
+            cat = np.concatenate([own, records[records[:, 4] == 1]])
+            if over:
+                np.testing.assert_array_equal(kept.view(np.int64), cat.view(np.int64))
+                cat = cat[np.argsort(-cat[:, 0], kind="stable")[:400]]
+                kept, best, kth, over = _kernels.seed_leaves(cat, cat[:0], 1, k, 0.25, 0.1, 400)
+            srt = cat[np.lexsort((cat[:, 2], cat[:, 1], cat[:, 3], -cat[:, 0]))]
+            keep = distinct(srt, k, 0.25, 0.1)
+            ref_kth = srt[keep[-1], 0] if len(keep) == k else -1.0
+            assert not over and kth == ref_kth
+            np.testing.assert_array_equal(best.view(np.int64), srt[keep].view(np.int64))
+            np.testing.assert_array_equal(kept.view(np.int64), srt[srt[:, 0] >= ref_kth].view(np.int64))
+            merged_rounds += len(own) > 1
+            own = kept
+    assert merged_rounds > 200
 
 
 @pytest.mark.parametrize("n", [1, 7, 40, 300])
