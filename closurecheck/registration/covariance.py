@@ -49,7 +49,6 @@ from dataclasses import dataclass
 from functools import lru_cache
 
 import numpy as np
-from numpy.linalg import _umath_linalg
 
 from . import _kernels
 
@@ -200,25 +199,6 @@ def censi_middle_lines(jac, omega, src_coef, rows, nbr_index, nbr_coef, basis, n
     return middle
 
 
-def _eigh(a):
-    """np.linalg.eigh(a) of a symmetric (3, 3) array: (eigenvalues ascending, eigenvectors as columns).
-
-    The LAPACK call of np.linalg.eigh itself (its gufunc, the same bits),
-    without the Python layers around it (checks of shape and type, an error
-    state context): 5.8 -> 2.2 µs a call alone, and register(..., coarse=False)
-    about 3% faster a hall or lot pair (median of 40 interleaved rounds of
-    benchmarks/registration_scenes.py pairs).  Those layers turn LAPACK's
-    failure to converge, which the gufunc reports as NaN results, into
-    LinAlgError; a result with NaN is therefore computed again by
-    np.linalg.eigh, which raises then or returns the same NaN (from NaN in
-    ``a``).
-    """
-    evals, evecs = _umath_linalg.eigh_lo(a, signature="d->dd")
-    if evals[0] != evals[0]:
-        evals, evecs = np.linalg.eigh(a)
-    return evals, evecs
-
-
 def analyse(h, middle, sigma2: float, n_corr: int, length_m: float, *, method: str,
             degeneracy_threshold: float, unobservable_sigma_m: float, kappa: float = 1.0,
             points_per_normal: float = 1.0) -> CovarianceEstimate:
@@ -249,7 +229,7 @@ def analyse(h, middle, sigma2: float, n_corr: int, length_m: float, *, method: s
     inv_length = 1.0 / length_m
     per = 1.0 / max(n_corr, 1)
     a, ms = _kernels.scale_both(h, middle if method == "censi" else h, inv_length, per)
-    evals, evecs = _eigh(a)
+    evals, evecs = np.linalg.eigh(a)
     evals, top, degeneracy, weak, d = _kernels.eigen_floor(evals, evecs, degeneracy_threshold)
     degeneracy = float(degeneracy)
 
