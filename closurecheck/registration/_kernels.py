@@ -2519,8 +2519,8 @@ def coarse_search(tops, top_score, top_level, split, half, stack, base, size, hp
     """The branch and bound of correlative.search over its top blocks (rows [angle row, ox, oy, level]).
 
     Each round splits the best ``batch`` open blocks of the finest level
-    that has blocks beating their seed's bar (:func:`live_blocks`,
-    :func:`split_and_bound`): the search dives to full resolution in a few
+    that has blocks beating their seed's bar (:func:`live_blocks`, or
+    :func:`_take_tops` on the top level; :func:`split_and_bound`): the search dives to full resolution in a few
     rounds, and the leaves it finds there set a bar that most coarse blocks
     never clear.  Leaves go to the seeds' lists (:func:`_add_leaves`).
     ``bar[j]`` is the score a leaf of seed j must beat to matter: the

@@ -806,8 +806,9 @@ def test_stacked_rows_and_inlier_rmse_match_numpy(n, p):
 
 def test_small_objects_and_scan_arrays_match_numpy():
     # Reference: icp._point_like's and icp._prepare's steps on a scan with posts: the candidates and
-    # groups (point_candidates, components) and the numpy selection of the small ones, then the beams, the small objects that take a line, the line points, their
-    # normals, and the ranges' root-mean-square (np.add.reduce) and maximum.
+    # groups (point_candidates, components) and the numpy selection of the small ones, then the
+    # beams, the small objects that take a line, the line points, their normals, and the ranges'
+    # root-mean-square (np.add.reduce) and maximum.
     from closurecheck.registration.icp import DEFAULT_OPTIONS, _line_features
 
     rng = np.random.default_rng(13)

@@ -197,4 +197,3 @@ def test_huber_consistency_constants():
     assert kappa * fixed_weights == pytest.approx(1 / 0.95, abs=2e-3)
     # Least squares needs no correction.
     assert kernel_moments(Kernel("l2")) == pytest.approx((1.0, 1.0), abs=1e-6)
-
