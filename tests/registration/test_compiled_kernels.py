@@ -256,16 +256,23 @@ def test_linearised_rows_match_the_numpy_expressions(noise):
             np.testing.assert_array_equal(got, ref)
 
 
+def _line_rows(k, seed):
+    """The line rows of _pair_at(k) associated and linearised at the guess, with random robust weights:
+    (target, jac, omega, source coefficients, target line rows, s along, phi2)."""
+    from closurecheck.registration.icp import _associate, _linearise
+
+    src, tgt, opt, poses = _pair_at(k)
+    pairs = _associate(src, tgt, poses[0], opt, np.cos(opt.max_normal_angle_rad))
+    r, v, jac, (s_al, phi2), sc, _ = _linearise(pairs, poses[0], opt, True)
+    om = np.random.default_rng(seed).uniform(0.2, 1.0, len(r)) / v
+    return tgt, jac, om, sc, pairs[1], s_al, phi2
+
+
 def test_censi_middle_of_line_rows_matches_bincount_version():
     # Reference: covariance.censi_middle, numpy bincounts over the gathered (n, k) sensitivities.
     from closurecheck.registration.covariance import censi_middle, censi_middle_lines
-    from closurecheck.registration.icp import _associate, _linearise
 
-    src, tgt, opt, poses = _pair_at(2)
-    pairs = _associate(src, tgt, poses[0], opt, np.cos(opt.max_normal_angle_rad))
-    r, v, jac, (s_al, phi2), sc, _ = _linearise(pairs, poses[0], opt, True)
-    om = np.random.default_rng(1).uniform(0.2, 1.0, len(r)) / v
-    rows = pairs[1]
+    tgt, jac, om, sc, rows, s_al, phi2 = _line_rows(2, 1)
     got = censi_middle_lines(jac, om, sc, rows, tgt.nbr_index, tgt.nbr_coef, np.column_stack([s_al, phi2]),
                              len(tgt.points))
     w = tgt.nbr_coef[rows]
@@ -933,13 +940,7 @@ def test_all_finite_matches_numpy():
 def test_target_sums_match_the_numpy_rows_and_bincounts():
     # Reference: covariance.censi_middle's numpy steps on the gathered (n, k) sensitivities of a
     # registered pair's line rows: the weighted source rows and three bincounts over the readings.
-    from closurecheck.registration.icp import _associate, _linearise
-
-    src, tgt, opt, poses = _pair_at(1)
-    pairs = _associate(src, tgt, poses[0], opt, np.cos(opt.max_normal_angle_rad))
-    r, v, jac, (s_al, phi2), sc, _ = _linearise(pairs, poses[0], opt, True)
-    om = np.random.default_rng(4).uniform(0.2, 1.0, len(r)) / v
-    rows = pairs[1]
+    tgt, jac, om, sc, rows, s_al, phi2 = _line_rows(1, 4)
     ms, mt = _kernels.target_sums(jac, om, sc, rows, tgt.nbr_index, tgt.nbr_coef, np.column_stack([s_al, phi2]),
                                   len(tgt.points))
     wj = jac * om[:, None]
