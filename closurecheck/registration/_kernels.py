@@ -2514,6 +2514,158 @@ def _take_tops(tops, top_score, order, head, tail, bar, batch):
 
 
 @njit(cache=True, nogil=True)
+def _park(kids, kid_score, zone, rows, r, sep_m, sep_rad, row_seed, parked, parked_score):
+    """Set aside the new blocks whose every leaf its seed's best leaf suppresses (coarse_search).
+
+    ``zone`` (S, 4) rows [score, x, y, theta] of each seed's best leaf so
+    far (NaN while it has none).  A block (rows [angle row, ox, oy, level])
+    is set aside when its bound is below that score and each of its leaves
+    lies within the separation of that leaf as :func:`distinct`'s sure
+    tests decide it (squared distance below ``sep_m^2 (1 - 1e-12)`` at the
+    block's farthest corner, unwrapped angle difference below ``sep_rad -
+    1e-9``): whatever else is found, the seed's list sorts that leaf before
+    all of them and drops them.  Returns (kept blocks, their bounds, parked
+    blocks, their bounds), the parked ones appended to ``parked``.
+    """
+    n = len(kid_score)
+    if n == 0 or not (1e-100 < sep_m < 1e100 and 1e-6 < sep_rad < 1.0):
+        return kids, kid_score, parked, parked_score
+    in2 = sep_m * sep_m * (1.0 - 1e-12)
+    in_rad = sep_rad - 1e-9
+    aside = np.zeros(n, np.bool_)
+    m = 0
+    for t in range(n):
+        a = kids[t, 0]
+        j = row_seed[a]
+        zs = zone[j, 0]
+        if not kid_score[t] < zs:       # also false while the seed has no leaf (NaN)
+            continue
+        if not abs(rows[a, 2] - zone[j, 3]) < in_rad:
+            continue
+        last = (1 << kids[t, 3]) - 1
+        x0 = rows[a, 0] + r * kids[t, 1] - zone[j, 1]
+        x1 = rows[a, 0] + r * (kids[t, 1] + last) - zone[j, 1]
+        y0 = rows[a, 1] + r * kids[t, 2] - zone[j, 2]
+        y1 = rows[a, 1] + r * (kids[t, 2] + last) - zone[j, 2]
+        if max(x0 * x0, x1 * x1) + max(y0 * y0, y1 * y1) < in2:
+            aside[t] = True
+            m += 1
+    if m == 0:
+        return kids, kid_score, parked, parked_score
+    keep = np.empty((n - m, 4), kids.dtype)
+    keep_score = np.empty(n - m, kid_score.dtype)
+    out = np.empty((len(parked) + m, 4), kids.dtype)
+    out_score = np.empty(len(parked) + m, kid_score.dtype)
+    out[:len(parked)] = parked
+    out_score[:len(parked)] = parked_score
+    u = 0
+    v = len(parked)
+    for t in range(n):
+        if aside[t]:
+            out[v] = kids[t]
+            out_score[v] = kid_score[t]
+            v += 1
+        else:
+            keep[u] = kids[t]
+            keep_score[u] = kid_score[t]
+            u += 1
+    return keep, keep_score, out, out_score
+
+
+@njit(cache=True, nogil=True)
+def _move_zones(lists, zone):
+    """Each seed's zone (:func:`_park`) to the first row of its list, in place; returns which zones moved."""
+    moved = np.zeros(len(zone), np.bool_)
+    for j in range(len(zone)):
+        if len(lists[j]) == 0:
+            continue
+        b = lists[j][0]
+        if b[0] == zone[j, 0] and b[1] == zone[j, 1] and b[2] == zone[j, 2] and b[3] == zone[j, 3]:
+            continue
+        moved[j] = zone[j, 0] == zone[j, 0]
+        for c in range(4):
+            zone[j, c] = b[c]
+    return moved
+
+
+@njit(cache=True, nogil=True)
+def _unpark(parked, parked_score, moved, row_seed):
+    """The parked blocks of the seeds whose zone moved, and the others (still parked), in their order."""
+    n = len(parked_score)
+    back = np.zeros(n, np.bool_)
+    m = 0
+    for t in range(n):
+        if moved[row_seed[parked[t, 0]]]:
+            back[t] = True
+            m += 1
+    out = np.empty((m, 4), parked.dtype)
+    out_score = np.empty(m, parked_score.dtype)
+    rest = np.empty((n - m, 4), parked.dtype)
+    rest_score = np.empty(n - m, parked_score.dtype)
+    u = 0
+    v = 0
+    for t in range(n):
+        if back[t]:
+            out[u] = parked[t]
+            out_score[u] = parked_score[t]
+            u += 1
+        else:
+            rest[v] = parked[t]
+            rest_score[v] = parked_score[t]
+            v += 1
+    return out, out_score, rest, rest_score
+
+
+@njit(cache=True, nogil=True)
+def _settle(merged, bar, own, lists, kth, zone, parked, parked_score, open_nodes, open_score, rows, r, row_seed, k,
+            sep_m, sep_rad, max_records):
+    """After new leaves: the zones moved to each seed's best leaf, the blocks parked in a moved zone put back.
+
+    A parked block goes back to its level's open list, a parked leaf into
+    the lists (:func:`_add_leaves`; below the zone's old score, so never a
+    seed's best).  Returns (merged, bar, parked, parked_score).
+    """
+    moved = _move_zones(lists, zone)
+    while moved.any():
+        back, back_score, parked, parked_score = _unpark(parked, parked_score, moved, row_seed)
+        n_leaves = 0
+        for t in range(len(back)):
+            if back[t, 3] == 0:
+                n_leaves += 1
+        for level in range(1, len(open_nodes)):
+            cnt = 0
+            for t in range(len(back)):
+                if back[t, 3] == level:
+                    cnt += 1
+            if cnt == 0:
+                continue
+            more = np.empty((cnt, 4), back.dtype)
+            more_score = np.empty(cnt, back_score.dtype)
+            u = 0
+            for t in range(len(back)):
+                if back[t, 3] == level:
+                    more[u] = back[t]
+                    more_score[u] = back_score[t]
+                    u += 1
+            open_nodes[level], open_score[level] = append_blocks(open_nodes[level], open_score[level], more,
+                                                                 more_score)
+        if n_leaves == 0:
+            break
+        leaves = np.empty((n_leaves, 4), back.dtype)
+        leaf_score = np.empty(n_leaves, back_score.dtype)
+        u = 0
+        for t in range(len(back)):
+            if back[t, 3] == 0:
+                leaves[u] = back[t]
+                leaf_score[u] = back_score[t]
+                u += 1
+        merged, bar = _add_leaves(_leaf_records(leaf_score, leaves, rows, r), own, lists, kth, k, sep_m, sep_rad,
+                                  max_records)
+        moved = _move_zones(lists, zone)
+    return merged, bar, parked, parked_score
+
+
+@njit(cache=True, nogil=True)
 def coarse_search(tops, top_score, top_level, split, half, stack, base, size, hp, rows, r, n_seeds, k, sep_m,
                   sep_rad, batch, max_records):
     """The branch and bound of correlative.search over its top blocks (rows [angle row, ox, oy, level]).
@@ -2549,6 +2701,9 @@ def coarse_search(tops, top_score, top_level, split, half, stack, base, size, hp
     if top_level == 0:
         merged, bar = _add_leaves(_leaf_records(top_score, tops, rows, r), own, lists, kth, k, sep_m, sep_rad,
                                   max_records)
+    zone = np.full((n_seeds, 4), np.nan)
+    parked = tops[:0].copy()
+    parked_score = top_score[:0].copy()
     # The top level, thousands of blocks that only ever shrink, is kept ranked once (_rank_tops) and
     # consumed from both ends (_take_tops); the finer levels, a few hundred blocks that grow with each
     # split, stay lists filtered and cut each round.  The same blocks in the same order as filtering,
@@ -2576,20 +2731,32 @@ def coarse_search(tops, top_score, top_level, split, half, stack, base, size, hp
             parents = _take_tops(tops, top_score, order, head, tail, bar, batch)
             if len(parents) == 0:
                 break
+            parent_score = top_score[:0]
             lvl = top_level
         elif len(nodes) > batch:
-            parents, rest, rest_score = take_rest(nodes, score, _best_rows(score, batch))
+            sel = _best_rows(score, batch)
+            parents, rest, rest_score = take_rest(nodes, score, sel)
+            parent_score = score[sel]
             open_nodes[lvl] = rest
             open_score[lvl] = rest_score
         else:
             parents = nodes
+            parent_score = score
             open_nodes[lvl] = nodes[:0]
             open_score[lvl] = score[:0]
+        if lvl < top_level:
+            parents, parent_score, parked, parked_score = _park(parents, parent_score, zone, rows, r, sep_m, sep_rad,
+                                                                row_seed, parked, parked_score)
         kids, kid_score = split_and_bound(parents, split[lvl], half, lvl == 1, stack, base, size, hp, bar, row_seed)
+        kids, kid_score, parked, parked_score = _park(kids, kid_score, zone, rows, r, sep_m, sep_rad, row_seed,
+                                                      parked, parked_score)
         if lvl == 1:
             if len(kids):
                 merged, bar = _add_leaves(_leaf_records(kid_score, kids, rows, r), own, lists, kth, k, sep_m,
                                           sep_rad, max_records)
+                merged, bar, parked, parked_score = _settle(merged, bar, own, lists, kth, zone, parked,
+                                                            parked_score, open_nodes, open_score, rows, r,
+                                                            row_seed, k, sep_m, sep_rad, max_records)
         else:
             open_nodes[lvl - 1], open_score[lvl - 1] = append_blocks(open_nodes[lvl - 1], open_score[lvl - 1], kids,
                                                                      kid_score)

@@ -951,3 +951,83 @@ def test_target_sums_match_the_numpy_rows_and_bincounts():
                               for d in range(3)])
     np.testing.assert_array_equal(ms, wj * sc[:, None])
     np.testing.assert_array_equal(mt, ref_mt)
+
+
+def test_park_sets_aside_only_blocks_whose_leaves_the_best_leaf_suppresses():
+    # The property _kernels._park relies on, checked with distinct itself: every leaf of every block
+    # set aside comes after the zone's leaf in the seed's sorted list (a lower score) and is suppressed
+    # by it, so dropping the block changes no pick.  Blocks of levels 0-3 scattered around each
+    # seed's best leaf, some straddling the separation's edge in distance and in angle.
+    rng = np.random.default_rng(12)
+    r, sep_m, sep_rad = 0.1, 0.5, 0.15
+    rows = np.array([[0.3, -0.2, 0.01 * a - 0.2, a // 41] for a in range(82)])       # two seeds, 41 angles each
+    row_seed = rows[:, 3].astype(np.int64)
+    zone = np.array([[900.0, 0.73, -0.41, rows[20, 2]], [np.nan] * 4])      # seed 1 has no leaf yet
+    n = 3000
+    kids = np.column_stack([rng.integers(0, 82, n), rng.integers(-3, 12, n), rng.integers(-11, 3, n),
+                            rng.integers(0, 4, n)]).astype(np.int64)
+    kid_score = rng.integers(850, 950, n).astype(np.int64)
+    before = (np.zeros((2, 4), np.int64), np.array([5, 6], np.int64))
+    kept, kept_score, parked, parked_score = _kernels._park(kids, kid_score, zone, rows, r, sep_m, sep_rad,
+                                                            row_seed, *before)
+    np.testing.assert_array_equal(parked[:2], before[0])
+    np.testing.assert_array_equal(parked_score[:2], before[1])
+    aside, aside_score = parked[2:], parked_score[2:]
+    assert len(aside) > 50 and len(kept) > 50 and len(kept) + len(aside) == n
+    # Every block is either kept or set aside, in its order.
+    both = np.concatenate([kept, aside])
+    assert sorted(map(tuple, both)) == sorted(map(tuple, kids))
+    for block, score in zip(aside, aside_score):
+        a, ox, oy, lvl = block
+        assert row_seed[a] == 0 and score < zone[0, 0]
+        span = np.arange(1 << lvl)
+        gx, gy = np.meshgrid(ox + span, oy + span, indexing="ij")
+        leaves = np.column_stack([np.full(gx.size, float(score)), rows[a, 0] + r * gx.ravel(),
+                                  rows[a, 1] + r * gy.ravel(), np.full(gx.size, rows[a, 2])])
+        records = np.vstack([zone[0], leaves])
+        assert list(_kernels.distinct(records, len(records), sep_m, sep_rad)) == [0]
+
+
+def test_settle_puts_back_what_a_zone_set_aside_once_the_zone_moves():
+    # Two seeds, one angle row each.  Their first leaves set the zones; a leaf and a block of seed 0
+    # and a block of seed 1 near those leaves are set aside; a better leaf of seed 0 far away then
+    # moves seed 0's zone, and what seed 0 had set aside comes back (the block to its level's open
+    # list, the leaf to seed 0's leaves) while seed 1's stays aside.
+    from numba.typed import List
+
+    rows = np.array([[0.0, 0.0, 0.0, 0.0], [0.0, 0.0, 0.01, 1.0]])
+    row_seed = np.array([0, 1], np.int64)
+    own = List([np.empty((0, 5)), np.empty((0, 5))])
+    lists = List([np.empty((0, 5)), np.empty((0, 5))])
+    kth = np.full(2, -1.0)
+    open_nodes = List([np.zeros((0, 4), np.int64) for _ in range(4)])
+    open_score = List([np.zeros(0, np.int64) for _ in range(4)])
+    zone = np.full((2, 4), np.nan)
+    parked, parked_score = np.zeros((0, 4), np.int64), np.zeros(0, np.int64)
+    args = (0.1, row_seed, 3, 0.5, 0.15, 4096)
+
+    first = np.array([[100.0, 0.5, 0.5, 0.0, 0.0], [90.0, 0.0, 0.0, 0.01, 1.0]])
+    merged, bar = _kernels._add_leaves(first, own, lists, kth, 3, 0.5, 0.15, 4096)
+    merged, bar, parked, parked_score = _kernels._settle(merged, bar, own, lists, kth, zone, parked, parked_score,
+                                                         open_nodes, open_score, rows, *args)
+    np.testing.assert_array_equal(zone, first[:, :4])
+    assert len(parked) == 0
+
+    kids = np.array([[0, 5, 6, 0], [0, 4, 4, 2], [1, 0, 0, 1]], np.int64)
+    kept, _, parked, parked_score = _kernels._park(kids, np.array([60, 80, 50], np.int64), zone, rows, 0.1, 0.5,
+                                                   0.15, row_seed, parked, parked_score)
+    assert len(kept) == 0 and len(parked) == 3
+
+    better = np.array([[120.0, 3.0, 3.0, 0.0, 0.0]])
+    merged, bar = _kernels._add_leaves(better, own, lists, kth, 3, 0.5, 0.15, 4096)
+    merged, bar, parked, parked_score = _kernels._settle(merged, bar, own, lists, kth, zone, parked, parked_score,
+                                                         open_nodes, open_score, rows, *args)
+    np.testing.assert_array_equal(zone[0], better[0, :4])
+    np.testing.assert_array_equal(parked, kids[2:])
+    np.testing.assert_array_equal(parked_score, [50])
+    np.testing.assert_array_equal(open_nodes[2], kids[1:2])
+    np.testing.assert_array_equal(open_score[2], [80])
+    # The leaf is among seed 0's leaves again (x 0.5, y 0.6); its best list, the new leaf and the old
+    # best, suppresses it as before.
+    assert any(row[0] == 60.0 and abs(row[1] - 0.5) < 1e-12 and abs(row[2] - 0.6) < 1e-12 for row in own[0])
+    np.testing.assert_array_equal(lists[0][:, 0], [120.0, 100.0])

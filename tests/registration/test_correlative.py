@@ -106,6 +106,26 @@ def test_branch_and_bound_equals_exhaustive_search(pair, levels):
     np.testing.assert_allclose(poses[0], ref[keep[0], 1:], atol=1e-9)
 
 
+@pytest.mark.parametrize("levels, window_m, window_rad, sep_m, sep_rad", [
+    (4, 1.5, 0.3, 0.5, 0.15), (16, 1.5, 0.3, 0.5, 0.15), (8, 1.2, 0.2, 0.5, 0.15)])
+def test_every_hypothesis_equals_exhaustive_search(pair, levels, window_m, window_rad, sep_m, sep_rad):
+    # Windows wider than the separation, so that the search sets aside blocks its best leaf suppresses
+    # (_kernels._park: 5-17 blocks in each of these, counted on a build that reported them): all three
+    # hypotheses, not only the best, must be those of the exhaustive lattice.  A block set aside that
+    # held a runner-up (a zone one cell too wide, or a bound test the wrong way) changes one of them.
+    target, source, truth = pair
+    grid = build_grid(target, 0.1, 0.1, levels)
+    pts = downsample(source, 0.2, 60)
+    seed = truth + np.array([0.3, -0.2, 0.05])
+    kw = dict(window_m=window_m, window_rad=window_rad, angle_step_rad=0.02, n_best=3, separation_m=sep_m,
+              separation_rad=sep_rad)
+    poses, scores = search(grid, pts, seed, **kw)
+    ref = brute_force(grid, pts, seed, window_m, window_rad, 0.02)
+    keep = distinct(ref, 3, sep_m, sep_rad)
+    np.testing.assert_allclose(scores, ref[keep, 0] / (255 * len(pts)), rtol=0, atol=1e-12)
+    np.testing.assert_allclose(poses, ref[keep, 1:], atol=1e-9)
+
+
 def test_search_finds_the_true_pose_from_far_away(pair):
     target, source, truth = pair
     grid = build_grid(target, 0.1, 0.1, 16)
