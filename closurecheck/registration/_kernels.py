@@ -2513,45 +2513,6 @@ def _take_tops(tops, top_score, order, head, tail, bar, batch):
     return parents
 
 
-
-@njit(cache=True, nogil=True)
-def split_groups(groups, group_first, group_count, level, stack, base, size, hp, bar, row_seed):
-    """The top blocks of angle groups that can beat the bar, and their bounds (coarse_search).
-
-    ``groups`` (G, 4) rows [group, ox, oy, level + 1]; group g's angle rows
-    are ``group_first[g]`` and the ``group_count[g] - 1`` after it.  Each
-    gives the blocks [angle row, ox, oy, level] of its rows, kept where the
-    bound, the sum over the points of ``stack[base[row, i] + level * size +
-    ox * hp + oy]`` (as :func:`top_sums` and :func:`split_and_bound` take
-    it), exceeds ``bar[row_seed[row]]``.  Returns (blocks (K, 4) int64,
-    bounds (K,) int64).
-    """
-    n_out = 0
-    for p in range(len(groups)):
-        n_out += group_count[groups[p, 0]]
-    n_pts = base.shape[1]
-    kids = np.empty((n_out, 4), np.int64)
-    score = np.empty(n_out, np.int64)
-    m = 0
-    for p in range(len(groups)):
-        g = groups[p, 0]
-        off = level * size + groups[p, 1] * hp + groups[p, 2]
-        for a in range(group_first[g], group_first[g] + group_count[g]):
-            row = base[a]
-            s = 0
-            for i in range(n_pts):
-                s += stack[row[i] + off]
-            if not s > bar[row_seed[a]]:
-                continue
-            kids[m, 0] = a
-            kids[m, 1] = groups[p, 1]
-            kids[m, 2] = groups[p, 2]
-            kids[m, 3] = level
-            score[m] = s
-            m += 1
-    return kids[:m], score[:m]
-
-
 @njit(cache=True, nogil=True)
 def _park(kids, kid_score, zone, rows, r, sep_m, sep_rad, row_seed, parked, parked_score):
     """Set aside the new blocks whose every leaf its seed's best leaf suppresses (coarse_search).
@@ -2706,7 +2667,7 @@ def _settle(merged, bar, own, lists, kth, zone, parked, parked_score, open_nodes
 
 @njit(cache=True, nogil=True)
 def coarse_search(tops, top_score, top_level, split, half, stack, base, size, hp, rows, r, n_seeds, k, sep_m,
-                  sep_rad, batch, max_records, group_first, group_count):
+                  sep_rad, batch, max_records):
     """The branch and bound of correlative.search over its top blocks (rows [angle row, ox, oy, level]).
 
     Each round splits the best ``batch`` open blocks of the finest level
@@ -2730,16 +2691,6 @@ def coarse_search(tops, top_score, top_level, split, half, stack, base, size, hp
     are the leaves.  ``split`` (top_level + 1, 4, 4): the rows added to a
     block of level l for its four children.  Returns the merged best
     leaves (rows [sum score, x, y, theta, seed index]), best first.
-
-    ``group_first``, ``group_count`` (G,): with groups, the ranked blocks
-    are angle groups above the top level (rows [group, ox, oy, top_level +
-    1], correlative._group_tops), split into their rows' top blocks
-    (:func:`split_groups`) only once every open block of the levels below
-    is split or pruned; empty arrays, no groups.  A block whose every leaf
-    its seed's best leaf so far suppresses is set aside (:func:`_park`) and
-    put back if another leaf becomes the seed's best (:func:`_settle`).
-    The leaves' lists order equal scores by (theta, x, y), whatever order
-    the leaves come in, so neither changes the result.
     """
     row_seed = rows[:, 3].astype(np.int64)
     own = [np.empty((0, 5)) for _ in range(n_seeds)]
@@ -2760,21 +2711,14 @@ def coarse_search(tops, top_score, top_level, split, half, stack, base, size, hp
     # 12 visits of about 1,800 blocks a search, most of the 0.5 ms of a 1.9 ms branch and bound that
     # the lists' bookkeeping took.  With _kernels.top_sums, a search 2.56 -> 2.14 ms there, 1.72 ->
     # 1.39 on the warehouse's and 2.33 -> 1.86 on the yard's (one process, both versions, same results).
-    # With angle groups (group_count not empty) the ranked list holds the groups, rows [group, ox, oy,
-    # top_level + 1], above the top level: a group's bound covers its member angles' top blocks at that
-    # offset (correlative.search), and splitting it gives those blocks (split_groups), which then wait
-    # in the top level's open list like the blocks of any finer level.
-    grouped = len(group_count) > 0
-    top = top_level + 1 if grouped else top_level
-    static_seed = row_seed[group_first[tops[:, 0]]] if grouped else row_seed[tops[:, 0]]
-    order, head, tail = _rank_tops(top_score, static_seed, n_seeds)
-    open_nodes = [tops[:0] for _ in range(top)]
-    open_score = [top_score[:0] for _ in range(top)]
+    order, head, tail = _rank_tops(top_score, row_seed[tops[:, 0]], n_seeds)
+    open_nodes = [tops[:0] for _ in range(top_level)]
+    open_score = [top_score[:0] for _ in range(top_level)]
     while top_level > 0:
         lvl = 0
         nodes = tops[:0]
         score = top_score[:0]
-        for level in range(1, top):
+        for level in range(1, top_level):
             if len(open_score[level]) == 0:
                 continue
             nodes, score = live_blocks(open_nodes[level], open_score[level], bar, row_seed)
@@ -2788,7 +2732,7 @@ def coarse_search(tops, top_score, top_level, split, half, stack, base, size, hp
             if len(parents) == 0:
                 break
             parent_score = top_score[:0]
-            lvl = top
+            lvl = top_level
         elif len(nodes) > batch:
             sel = _best_rows(score, batch)
             parents, rest, rest_score = take_rest(nodes, score, sel)
@@ -2803,12 +2747,7 @@ def coarse_search(tops, top_score, top_level, split, half, stack, base, size, hp
         if lvl < top_level:
             parents, parent_score, parked, parked_score = _park(parents, parent_score, zone, rows, r, sep_m, sep_rad,
                                                                 row_seed, parked, parked_score)
-        if lvl > top_level:
-            kids, kid_score = split_groups(parents, group_first, group_count, top_level, stack, base, size, hp, bar,
-                                           row_seed)
-        else:
-            kids, kid_score = split_and_bound(parents, split[lvl], half, lvl == 1, stack, base, size, hp, bar,
-                                              row_seed)
+        kids, kid_score = split_and_bound(parents, split[lvl], half, lvl == 1, stack, base, size, hp, bar, row_seed)
         kids, kid_score, parked, parked_score = _park(kids, kid_score, zone, rows, r, sep_m, sep_rad, row_seed,
                                                       parked, parked_score)
         if lvl == 1:

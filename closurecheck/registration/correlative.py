@@ -191,11 +191,7 @@ def search(grid: LikelihoodGrid, points, seed, *, window_m: float, window_rad: f
     poses : (k, 3) hypotheses [x, y, theta] in the target frame, best first.
     scores : (k,) mean likelihood of the source points, in [0, 1].
 
-    Above the top level, consecutive angle rows of a seed are grouped; a
-    group's bound holds for its rows' top blocks at an offset (the block
-    widened by the cells the points move across the group), and its blocks
-    are bounded one by one only when it is split.  The translation search
-    is branch and bound over a quadtree of blocks:
+    The translation search is branch and bound over a quadtree of blocks:
     a block's bound is the sum over the points of the pyramid level whose
     cells are the maximum over the block, so it is never below the score of
     any translation inside it.  Blocks are split in vectorised batches, the
@@ -220,8 +216,6 @@ def search(grid: LikelihoodGrid, points, seed, *, window_m: float, window_rad: f
     w, h = grid.levels[0].shape
     reach = half + top + 1
     pad = 2 * half + 2 * top + 1
-    dilate, n_group = _angle_groups(pts, r, len(rows) // len(seeds), angle_step_rad, top_level)
-    n_levels = len(grid.levels) + (1 if n_group > 1 else 0)
     c, s = np.cos(rows[:, 2]), np.sin(rows[:, 2])
     rot = np.empty((2, 2, len(rows)))                 # rot[:, 0, a] maps a point to its x, rot[:, 1, a] to y
     rot[0, 0], rot[1, 0], rot[0, 1], rot[1, 1] = c, -s, s, c
@@ -229,112 +223,34 @@ def search(grid: LikelihoodGrid, points, seed, *, window_m: float, window_rad: f
     hp = h + 2 * pad
     size = (w + 2 * pad) * hp
     # 32-bit indices halve the memory traffic of the gathers, the search's main cost.
-    index = np.int32 if size * n_levels < 2 ** 31 else np.int64
+    index = np.int32 if size * len(grid.levels) < 2 ** 31 else np.int64
     # Floor, clip, pad and flatten in one compiled pass (_kernels.cell_bases); the rotation stays a
     # numpy product.
     base = _kernels.cell_bases(cells, np.ascontiguousarray(((rows[:, :2] - grid.origin) / r).T), reach,
                                float(w - 1 + reach), float(h - 1 + reach), float(pad), float(hp),
                                np.empty((len(rows), len(pts)), index))
     # All pyramid levels, zero padded, in one flat array: level l starts at l * size.
-    stack = np.zeros((n_levels, w + 2 * pad, hp), dtype=np.uint8)
-    stack[:len(grid.levels), pad:pad + w, pad:pad + h] = grid.levels
+    stack = np.zeros((len(grid.levels), w + 2 * pad, hp), dtype=np.uint8)
+    stack[:, pad:pad + w, pad:pad + h] = grid.levels
+    stack = stack.ravel()
 
     starts = starts.astype(np.int64)
-    if n_group > 1:
-        # Angle groups above the top level (_group_tops, _kernels.split_groups): a third of the top
-        # blocks' bounds, and a group's own blocks only summed when it is split.  Searches of the default
-        # window 0.74 (yard), 0.81 (warehouse), 0.87 (lot, ring) and 0.98 (hall) of the time without
-        # them (one process, 30 pairs a scene, same hypotheses).
-        tops, top_score, first, count = _group_tops(stack, base, rows, grid, starts, top_level, dilate, n_group,
-                                                    len(seeds), pad, hp, size)
-    else:
-        tops = _kernels.top_blocks(len(rows), starts, top_level)
-        # The top blocks' bounds: the sum over the points of each block's level at its offset (compiled,
-        # _kernels.top_sums: a wide window has thousands of top blocks of N gathers each, for which
-        # numpy's take built two (blocks, N) temporaries; 0.73 -> 0.21 ms per search of the default window).
-        top_score = _kernels.top_sums(base, stack.ravel(), starts, top_level, size, hp)
-        first = count = _NO_GROUPS
-        if top_level == 0:
-            inside = (np.abs(tops[:, 1]) <= half) & (np.abs(tops[:, 2]) <= half)
-            tops, top_score = tops[inside], top_score[inside]
+    tops = _kernels.top_blocks(len(rows), starts, top_level)
+    # The top blocks' bounds: the sum over the points of each block's level at its offset (compiled,
+    # _kernels.top_sums: a wide window has thousands of top blocks of N gathers each, for which
+    # numpy's take built two (blocks, N) temporaries; 0.73 -> 0.21 ms per search of the default window).
+    top_score = _kernels.top_sums(base, stack, starts, top_level, size, hp)
+    if top_level == 0:
+        inside = (np.abs(tops[:, 1]) <= half) & (np.abs(tops[:, 2]) <= half)
+        tops, top_score = tops[inside], top_score[inside]
     split = _splits(top_level)
     # The rounds of splitting and the leaves' lists in one compiled call (_kernels.coarse_search;
     # as a Python loop of kernel calls, the loop's overhead was more than half of a search's time).
-    out = _kernels.coarse_search(tops, top_score, top_level, split, half, stack.ravel(), base, size, hp,
+    out = _kernels.coarse_search(tops, top_score, top_level, split, half, stack, base, size, hp,
                                  np.ascontiguousarray(rows), float(r), len(seeds), int(n_best), float(separation_m),
-                                 float(separation_rad), _BATCH_NODES, _MAX_RECORDS, first, count)
+                                 float(separation_rad), _BATCH_NODES, _MAX_RECORDS)
     poses = out[:, 1:4].copy()
     return poses, out[:, 0] / (_LEVELS * len(pts))
-
-
-_NO_GROUPS = np.zeros(0, np.int64)
-# Angle rows per group above the top level (search).  A group's bound widens each point's block by the
-# cells the farthest point moves between the middle row and the others, so more rows mean fewer but
-# looser bounds.  Searches of the default window, one process, 30 pairs a scene, as a ratio to the
-# same code without groups: 3 rows 0.74 (yard) to 0.98 (hall), 5 rows 0.66 to 1.03 (the hall's runner-up
-# hypotheses score about a fifth of its best, so its bar stays low and half its groups are split).
-_GROUP_ROWS = 3
-
-
-def _angle_groups(pts, r: float, rows_per_seed: int, step: float, top_level: int) -> tuple[int, int]:
-    """(dilation in cells, rows per group) of the angle groups above the top level; (0, 1): no groups.
-
-    ``pts`` (N, 2) source points (metres), ``r`` the grid's cell (metres),
-    ``step`` the angle step (radians).  A group's rows are at most
-    ``delta = (m - 1) // 2`` steps from its middle row; over that a point at
-    range rho moves by at most ``rho delta`` (the chord is shorter than the
-    arc), so its cell by at most ``ceil(rho_max delta / r)`` along each axis,
-    with a margin of 1e-9 relative for the rounding of the rotated
-    coordinates.  Groups are used when each seed has at least two of them and
-    the widened block (top + 2 dilation cells) is at most twice the top
-    block, as the bound's two-window maximum needs (:func:`_group_tops`).
-    """
-    top = 2 ** top_level
-    m = _GROUP_ROWS
-    if m < 2 or top_level == 0 or rows_per_seed < 2 * m or step <= 0:
-        return 0, 1
-    far = float(np.sqrt((pts * pts).sum(axis=1)).max()) / r
-    dilate = int(np.ceil(far * ((m - 1) // 2) * step * (1.0 + 1e-9) + 1e-9))
-    if 2 * dilate > top:
-        return 0, 1
-    return dilate, m
-
-
-def _group_tops(stack, base, rows, grid: LikelihoodGrid, starts, top_level: int, dilate: int, m: int,
-                n_seeds: int, pad: int, hp: int, size: int):
-    """The angle groups above the top level: rows [group, ox, oy, top_level + 1], bounds, first rows, row counts.
-
-    Each seed's angle rows are cut into groups of ``m`` consecutive rows (the
-    last may be shorter).  A group's bound at a top block's offset is the sum
-    over the points, at the group's middle row, of the maximum of the fine
-    grid over the block widened by ``dilate`` cells on each side (top + 2
-    dilate cells): each point's block at any member row lies inside it
-    (:func:`_angle_groups`), so the bound is at least every member block's.
-    That maximum is the larger of two top-level values ``2 dilate`` apart
-    along each axis, written into ``stack[top_level + 1]`` (which must be
-    zero).  A point clipped at the middle row (``base``, :func:`search`) is
-    at least ``reach - dilate`` cells outside the grid at every member row,
-    where every level reads the grid's empty margin (more than top + 1
-    cells), so its member terms are zero.
-    """
-    w, h = grid.levels[0].shape
-    per = len(rows) // n_seeds
-    first = np.concatenate([j * per + np.arange(0, per, m) for j in range(n_seeds)]).astype(np.int64)
-    count = np.minimum(m, (first // per + 1) * per - first).astype(np.int64)
-    middle = base[first + (count - 1) // 2]
-    # Only where the top level is non-zero (the grid and the 2 dilate cells before it) can the widened
-    # one be.  Along y into the new level, then along x in place (numpy buffers the overlapping
-    # operands): 0.055 -> 0.045 ms a hall search against two copies of the grid (a compiled loop was
-    # 0.2 ms: its maximum of uint8 did not vectorise).
-    two = 2 * dilate
-    lo, end_i, end_j = pad - two, pad + w + two, pad + h + two
-    level, wide = stack[top_level], stack[top_level + 1]
-    np.maximum(level[lo:end_i, lo:end_j - two], level[lo:end_i, lo + two:end_j], out=wide[lo:end_i, lo:end_j - two])
-    wide[lo:end_i, end_j - two:end_j] = level[lo:end_i, end_j - two:end_j]
-    np.maximum(wide[lo:end_i - two, lo:end_j], wide[lo + two:end_i, lo:end_j], out=wide[lo:end_i - two, lo:end_j])
-    tops = _kernels.top_blocks(len(first), starts, top_level + 1)
-    top_score = _kernels.top_sums(middle, stack.ravel(), starts - dilate, top_level + 1, size, hp)
-    return tops, top_score, first, count
 
 
 @lru_cache(maxsize=8)
