@@ -2515,7 +2515,7 @@ def _take_tops(tops, top_score, order, head, tail, bar, batch):
 
 @njit(cache=True, nogil=True)
 def _park(kids, kid_score, zone, rows, r, sep_m, sep_rad, row_seed, parked, parked_score):
-    """Set aside the new blocks whose every leaf its seed's best leaf suppresses (coarse_search).
+    """Set aside the blocks whose every leaf their seed's best leaf suppresses (coarse_search).
 
     ``zone`` (S, 4) rows [score, x, y, theta] of each seed's best leaf so
     far (NaN while it has none).  A block (rows [angle row, ox, oy, level])
@@ -2524,8 +2524,9 @@ def _park(kids, kid_score, zone, rows, r, sep_m, sep_rad, row_seed, parked, park
     tests decide it (squared distance below ``sep_m^2 (1 - 1e-12)`` at the
     block's farthest corner, unwrapped angle difference below ``sep_rad -
     1e-9``): whatever else is found, the seed's list sorts that leaf before
-    all of them and drops them.  Returns (kept blocks, their bounds, parked
-    blocks, their bounds), the parked ones appended to ``parked``.
+    all of them and drops them.  Called on the blocks about to be split
+    and on the children just bounded.  Returns (kept blocks, their bounds,
+    parked blocks, their bounds), the new ones appended to ``parked``.
     """
     n = len(kid_score)
     if n == 0 or not (1e-100 < sep_m < 1e100 and 1e-6 < sep_rad < 1.0):
@@ -2552,24 +2553,31 @@ def _park(kids, kid_score, zone, rows, r, sep_m, sep_rad, row_seed, parked, park
             m += 1
     if m == 0:
         return kids, kid_score, parked, parked_score
-    keep = np.empty((n - m, 4), kids.dtype)
-    keep_score = np.empty(n - m, kid_score.dtype)
-    out = np.empty((len(parked) + m, 4), kids.dtype)
-    out_score = np.empty(len(parked) + m, kid_score.dtype)
-    out[:len(parked)] = parked
-    out_score[:len(parked)] = parked_score
-    u = 0
-    v = len(parked)
-    for t in range(n):
-        if aside[t]:
-            out[v] = kids[t]
-            out_score[v] = kid_score[t]
-            v += 1
-        else:
-            keep[u] = kids[t]
-            keep_score[u] = kid_score[t]
-            u += 1
+    out, out_score, keep, keep_score = _split_rows(kids, kid_score, aside, m)
+    out, out_score = append_blocks(parked, parked_score, out, out_score)
     return keep, keep_score, out, out_score
+
+
+@njit(cache=True, nogil=True)
+def _split_rows(nodes, score, mask, m):
+    """(rows where ``mask``, their scores, the other rows, theirs), each in their order; ``m`` = mask.sum()."""
+    n = len(score)
+    out = np.empty((m, nodes.shape[1]), nodes.dtype)
+    out_score = np.empty(m, score.dtype)
+    rest = np.empty((n - m, nodes.shape[1]), nodes.dtype)
+    rest_score = np.empty(n - m, score.dtype)
+    u = 0
+    v = 0
+    for t in range(n):
+        if mask[t]:
+            out[u] = nodes[t]
+            out_score[u] = score[t]
+            u += 1
+        else:
+            rest[v] = nodes[t]
+            rest_score[v] = score[t]
+            v += 1
+    return out, out_score, rest, rest_score
 
 
 @njit(cache=True, nogil=True)
@@ -2591,29 +2599,13 @@ def _move_zones(lists, zone):
 @njit(cache=True, nogil=True)
 def _unpark(parked, parked_score, moved, row_seed):
     """The parked blocks of the seeds whose zone moved, and the others (still parked), in their order."""
-    n = len(parked_score)
-    back = np.zeros(n, np.bool_)
+    back = np.zeros(len(parked_score), np.bool_)
     m = 0
-    for t in range(n):
+    for t in range(len(parked_score)):
         if moved[row_seed[parked[t, 0]]]:
             back[t] = True
             m += 1
-    out = np.empty((m, 4), parked.dtype)
-    out_score = np.empty(m, parked_score.dtype)
-    rest = np.empty((n - m, 4), parked.dtype)
-    rest_score = np.empty(n - m, parked_score.dtype)
-    u = 0
-    v = 0
-    for t in range(n):
-        if back[t]:
-            out[u] = parked[t]
-            out_score[u] = parked_score[t]
-            u += 1
-        else:
-            rest[v] = parked[t]
-            rest_score[v] = parked_score[t]
-            v += 1
-    return out, out_score, rest, rest_score
+    return _split_rows(parked, parked_score, back, m)
 
 
 @njit(cache=True, nogil=True)
@@ -2628,37 +2620,18 @@ def _settle(merged, bar, own, lists, kth, zone, parked, parked_score, open_nodes
     moved = _move_zones(lists, zone)
     while moved.any():
         back, back_score, parked, parked_score = _unpark(parked, parked_score, moved, row_seed)
-        n_leaves = 0
-        for t in range(len(back)):
-            if back[t, 3] == 0:
-                n_leaves += 1
         for level in range(1, len(open_nodes)):
-            cnt = 0
-            for t in range(len(back)):
-                if back[t, 3] == level:
-                    cnt += 1
-            if cnt == 0:
-                continue
-            more = np.empty((cnt, 4), back.dtype)
-            more_score = np.empty(cnt, back_score.dtype)
-            u = 0
-            for t in range(len(back)):
-                if back[t, 3] == level:
-                    more[u] = back[t]
-                    more_score[u] = back_score[t]
-                    u += 1
-            open_nodes[level], open_score[level] = append_blocks(open_nodes[level], open_score[level], more,
-                                                                 more_score)
+            at = back[:, 3] == level
+            cnt = at.sum()
+            if cnt:
+                more, more_score, _, _ = _split_rows(back, back_score, at, cnt)
+                open_nodes[level], open_score[level] = append_blocks(open_nodes[level], open_score[level], more,
+                                                                     more_score)
+        at = back[:, 3] == 0
+        n_leaves = at.sum()
         if n_leaves == 0:
             break
-        leaves = np.empty((n_leaves, 4), back.dtype)
-        leaf_score = np.empty(n_leaves, back_score.dtype)
-        u = 0
-        for t in range(len(back)):
-            if back[t, 3] == 0:
-                leaves[u] = back[t]
-                leaf_score[u] = back_score[t]
-                u += 1
+        leaves, leaf_score, _, _ = _split_rows(back, back_score, at, n_leaves)
         merged, bar = _add_leaves(_leaf_records(leaf_score, leaves, rows, r), own, lists, kth, k, sep_m, sep_rad,
                                   max_records)
         moved = _move_zones(lists, zone)
@@ -2691,6 +2664,12 @@ def coarse_search(tops, top_score, top_level, split, half, stack, base, size, hp
     are the leaves.  ``split`` (top_level + 1, 4, 4): the rows added to a
     block of level l for its four children.  Returns the merged best
     leaves (rows [sum score, x, y, theta, seed index]), best first.
+
+    A block whose every leaf its seed's best leaf so far would suppress is
+    set aside (:func:`_park`) and put back if another leaf becomes the
+    seed's best (:func:`_settle`).  The lists order equal scores by (theta,
+    x, y), not by arrival, so neither the order this changes nor the
+    leaves it leaves out change a pick.
     """
     row_seed = rows[:, 3].astype(np.int64)
     own = [np.empty((0, 5)) for _ in range(n_seeds)]

@@ -110,7 +110,7 @@ def test_branch_and_bound_equals_exhaustive_search(pair, levels):
     (4, 1.5, 0.3, 0.5, 0.15), (16, 1.5, 0.3, 0.5, 0.15), (8, 1.2, 0.2, 0.5, 0.15)])
 def test_every_hypothesis_equals_exhaustive_search(pair, levels, window_m, window_rad, sep_m, sep_rad):
     # Windows wider than the separation, so that the search sets aside blocks its best leaf suppresses
-    # (_kernels._park: 5-17 blocks in each of these, counted on a build that reported them): all three
+    # (_kernels._park: 43-59 blocks at the end of each of these, counted on a build that reported them): all three
     # hypotheses, not only the best, must be those of the exhaustive lattice.  A block set aside that
     # held a runner-up (a zone one cell too wide, or a bound test the wrong way) changes one of them.
     target, source, truth = pair
