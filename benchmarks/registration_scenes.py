@@ -15,6 +15,13 @@ lie 0.4-0.6 m apart; the guess is the true relative pose off by 0.28 m in a
 random direction and 4 degrees either way, as in benchmarks/registration.py.
 The ratio is the total time over the pairs divided by open3d's.
 
+``--floor`` adds a second table, what the two register calls would cost
+with no Python or numpy around the compiled code: the same calls timed
+with every compiled kernel of closurecheck.registration._kernels and the
+coarse search (correlative.search, inside the default call) under a clock,
+as ratios to open3d's time on the same pairs: the time inside the kernels
+(their own argument and result conversion included) and the search alone.
+
 Prints a markdown table; ``--results FILE`` also writes it.
 
 Run from the repository root:  python benchmarks/registration_scenes.py [--pairs N] [--repeats N]
@@ -30,6 +37,7 @@ import argparse  # noqa: E402
 import statistics  # noqa: E402
 import sys  # noqa: E402
 import time  # noqa: E402
+from contextlib import contextmanager  # noqa: E402
 from functools import partial  # noqa: E402
 from pathlib import Path  # noqa: E402
 
@@ -43,6 +51,7 @@ import registration as bench  # noqa: E402  (open3d's call and clouds, the guess
 
 import closurecheck  # noqa: E402
 from closurecheck.core import se2  # noqa: E402
+from closurecheck.registration import _kernels, correlative  # noqa: E402
 from closurecheck.registration.icp import RegistrationOptions, prepare_scan, register_prepared  # noqa: E402
 from closurecheck.simulation.simulate import simulate_log  # noqa: E402
 
@@ -104,6 +113,99 @@ def scene_row(scene, pairs_n, repeats, scans, seed):
             **{f"{k}_err_mm": 1e3 * statistics.median(errs[k]) for k in names}}
 
 
+@contextmanager
+def _clocked(spent):
+    """Every compiled kernel of closurecheck.registration._kernels and correlative.search under a clock.
+
+    ``spent`` (dict) gains seconds under "kernels" and "search".  The modules call kernels as attributes
+    of _kernels (``_kernels.icp_line(...)``) and icp calls ``_coarse.search``, so replacing the attributes
+    times every call from Python; kernels called by other kernels run inside them, uncounted twice.
+    """
+    originals = {name: f for name, f in vars(_kernels).items() if hasattr(f, "py_func") and hasattr(f, "signatures")}
+    search = correlative.search
+
+    def clock(f, key):
+        def timed(*args, **kwargs):
+            t0 = time.perf_counter()
+            try:
+                return f(*args, **kwargs)
+            finally:
+                spent[key] += time.perf_counter() - t0
+        return timed
+
+    for name, f in originals.items():
+        setattr(_kernels, name, clock(f, "kernels"))
+    correlative.search = clock(search, "search")
+    try:
+        yield
+    finally:
+        for name, f in originals.items():
+            setattr(_kernels, name, f)
+        correlative.search = search
+
+
+def floor_row(scene, pairs_n, repeats, scans, seed):
+    """Time inside the compiled kernels and in the coarse search, per call, against open3d (``--floor``)."""
+    log = simulate_log(scene, seed=seed, scans=scans)
+    rng = np.random.default_rng(seed)
+    calls_of = ("coarse_off", "default", "prepared")
+    prepared_opt = RegistrationOptions(coarse=False)
+    sums = {k: 0.0 for k in ("open3d", *[f"{c}_{part}" for c in calls_of for part in ("call", "kernels", "search")])}
+    n = 0
+    for i, j, truth in near_pairs(log, rng, pairs_n):
+        pa, pb = np.ascontiguousarray(log.points(i)), np.ascontiguousarray(log.points(j))
+        ang = rng.uniform(0.0, 2.0 * np.pi)
+        guess = truth + np.array([bench.GUESS_ERROR_M * np.cos(ang), bench.GUESS_ERROR_M * np.sin(ang),
+                                  np.radians(bench.GUESS_ERROR_DEG) * rng.choice([-1.0, 1.0])])
+        ca, cb = bench._cloud(pa), bench._cloud(pb)
+        ta, sb = prepare_scan(pa, prepared_opt), prepare_scan(pb, prepared_opt)
+        calls = {"coarse_off": partial(closurecheck.register, pb, pa, guess, coarse=False),
+                 "default": partial(closurecheck.register, pb, pa, guess),
+                 "prepared": partial(register_prepared, sb, ta, guess, prepared_opt)}
+        per = {k: [] for k in sums}
+        for _ in range(repeats):
+            t0 = time.perf_counter()
+            bench.open3d_icp(cb, ca, guess)
+            per["open3d"].append(time.perf_counter() - t0)
+            for name, call in calls.items():
+                spent = {"kernels": 0.0, "search": 0.0}
+                with _clocked(spent):
+                    t0 = time.perf_counter()
+                    call()
+                    per[f"{name}_call"].append(time.perf_counter() - t0)
+                per[f"{name}_kernels"].append(spent["kernels"])
+                per[f"{name}_search"].append(spent["search"])
+        for k in sums:
+            sums[k] += statistics.median(per[k])
+        n += 1
+    ref = sums["open3d"]
+    return {"scene": scene, "pairs": n, "open3d_ms": 1e3 * ref / n,
+            **{f"{k}_ratio": v / ref for k, v in sums.items() if k != "open3d"},
+            **{f"{k}_ms": 1e3 * v / n for k, v in sums.items() if k != "open3d"}}
+
+
+def floor_table(args):
+    lines = ["| scene | pairs | open3d, ms (mean) | `coarse=False`: call, clocked / in kernels | ICP stage: call, "
+             "clocked / in kernels | default: call, clocked / in kernels / the coarse search alone / the call "
+             "without the search |",
+             "| --- | ---: | ---: | --- | --- | --- |"]
+    for scene in SCENES:
+        r = floor_row(scene, args.pairs, args.repeats, args.scans, args.seed)
+        rest = r["default_call_ratio"] - r["default_search_ratio"]
+        lines.append(f"| {scene} | {r['pairs']} | {r['open3d_ms']:.2f} "
+                     f"| {r['coarse_off_call_ratio']:.2f} / {r['coarse_off_kernels_ratio']:.2f} "
+                     f"| {r['prepared_call_ratio']:.2f} / {r['prepared_kernels_ratio']:.2f} "
+                     f"| {r['default_call_ratio']:.2f} / {r['default_kernels_ratio']:.2f} / "
+                     f"{r['default_search_ratio']:.2f} ({r['default_search_ms']:.2f} ms) / {rest:.2f} |")
+        print(lines[-1], flush=True)
+    return ("\n## Without the glue (`--floor`)\n\nRatios to open3d's time on the same pairs (sums over the pairs "
+            "of each call's median).  \"Call, clocked\": the call with the clocks on (each adds about 0.3 µs a "
+            "kernel call); \"in kernels\": the time inside closurecheck.registration._kernels' compiled "
+            "functions, their conversion of arguments and results included, which is what the call would "
+            "cost with no Python or numpy around them; \"the coarse search alone\": correlative.search "
+            "inside the default call.\n\n" + "\n".join(lines) + "\n")
+
+
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--pairs", type=int, default=40)
@@ -111,6 +213,8 @@ def main(argv=None):
     ap.add_argument("--scans", type=int, default=800, help="scans simulated per scene")
     ap.add_argument("--seed", type=int, default=7)
     ap.add_argument("--results", type=Path)
+    ap.add_argument("--floor", action="store_true", help="also time the compiled kernels and the coarse search "
+                    "inside the calls (a second table)")
     args = ap.parse_args(argv)
     # Compile and warm up on one pair, outside the timing.
     scene_row("ring", 1, 1, 60, args.seed)
@@ -128,9 +232,11 @@ def main(argv=None):
         print(lines[-1], flush=True)
     text = ("# One pair as a user calls it, on every simulated scene\n\n"
             f"`python benchmarks/registration_scenes.py --pairs {args.pairs} --repeats {args.repeats} "
-            f"--scans {args.scans} --seed {args.seed}`; targets (issue 14): `coarse=False` <= 1.0, "
-            "default <= 2.5, the ICP stage on prepared scans <= 0.4 times open3d's point-to-point ICP.\n\n"
+            f"--scans {args.scans} --seed {args.seed}{' --floor' if args.floor else ''}`; targets (issue 14): "
+            "`coarse=False` <= 1.0, default <= 2.5, the ICP stage on prepared scans <= 0.4 times open3d's point-to-point ICP.\n\n"
             + "\n".join(lines) + "\n")
+    if args.floor:
+        text += floor_table(args)
     if args.results:
         args.results.write_text(text, encoding="utf-8")
     print()
