@@ -170,11 +170,7 @@ def main(argv=None):
         rows = scene_rows(scene, args.pairs, args.repeats, args.scans, args.seed)
         print("\n".join(rows), flush=True)
         text += rows
-    out = "\n".join(text) + "\n"
-    if args.results:
-        args.results.write_text(out, encoding="utf-8")
-    print()
-    print(out)
+    scenes.publish("\n".join(text) + "\n", args.results)
 
 
 if __name__ == "__main__":

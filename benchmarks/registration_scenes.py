@@ -184,20 +184,30 @@ def floor_row(scene, pairs_n, repeats, scans, seed):
             **{f"{k}_ms": 1e3 * v / n for k, v in sums.items() if k != "open3d"}}
 
 
+def _scene_lines(row, args, line):
+    """``line(row(scene, ...))`` for every scene, each printed as it comes."""
+    out = []
+    for scene in SCENES:
+        out.append(line(row(scene, args.pairs, args.repeats, args.scans, args.seed)))
+        print(out[-1], flush=True)
+    return out
+
+
 def floor_table(args):
     lines = ["| scene | pairs | open3d, ms (mean) | `coarse=False`: call, clocked / in kernels | ICP stage: call, "
              "clocked / in kernels | default: call, clocked / in kernels / the coarse search alone / the call "
              "without the search |",
              "| --- | ---: | ---: | --- | --- | --- |"]
-    for scene in SCENES:
-        r = floor_row(scene, args.pairs, args.repeats, args.scans, args.seed)
-        rest = r["default_call_ratio"] - r["default_search_ratio"]
-        lines.append(f"| {scene} | {r['pairs']} | {r['open3d_ms']:.2f} "
-                     f"| {r['coarse_off_call_ratio']:.2f} / {r['coarse_off_kernels_ratio']:.2f} "
-                     f"| {r['prepared_call_ratio']:.2f} / {r['prepared_kernels_ratio']:.2f} "
-                     f"| {r['default_call_ratio']:.2f} / {r['default_kernels_ratio']:.2f} / "
-                     f"{r['default_search_ratio']:.2f} ({r['default_search_ms']:.2f} ms) / {rest:.2f} |")
-        print(lines[-1], flush=True)
+    def line(r):
+        ratios = [(f"{c}_call", f"{c}_kernels") for c in ("coarse_off", "prepared")]
+        ratios.append(("default_call", "default_kernels", "default_search"))
+        cells = [r["scene"], str(r["pairs"]), f"{r['open3d_ms']:.2f}"]
+        cells += [" / ".join(f"{r[k + '_ratio']:.2f}" for k in keys) for keys in ratios]
+        cells[-1] += (f" ({r['default_search_ms']:.2f} ms) / "
+                      f"{r['default_call_ratio'] - r['default_search_ratio']:.2f}")
+        return "| " + " | ".join(cells) + " |"
+
+    lines += _scene_lines(floor_row, args, line)
     return ("\n## Without the glue (`--floor`)\n\nRatios to open3d's time on the same pairs (sums over the pairs "
             "of each call's median).  \"Call, clocked\": the call with the clocks on (each adds about 0.3 µs a "
             "kernel call); \"in kernels\": the time inside closurecheck.registration._kernels' compiled "
@@ -222,23 +232,27 @@ def main(argv=None):
              "| ICP stage: ratio (ms) | median error, mm: `coarse=False` / default / open3d "
              "| `coarse=False` not converged or degenerate |",
              "| --- | ---: | ---: | ---: | --- | --- | --- | --- | ---: |"]
-    for scene in SCENES:
-        r = scene_row(scene, args.pairs, args.repeats, args.scans, args.seed)
-        lines.append(f"| {scene} | {r['pairs']} | {r['points']:.0f} | {r['open3d_ms']:.2f} "
-                     f"| {r['coarse_off_ratio']:.2f} ({r['coarse_off_ms']:.2f}) | {r['default_ratio']:.2f} "
-                     f"({r['default_ms']:.2f}) | {r['prepared_ratio']:.2f} ({r['prepared_ms']:.2f}) "
-                     f"| {r['coarse_off_err_mm']:.1f} / {r['default_err_mm']:.1f} / "
-                     f"{r['open3d_err_mm']:.1f} | {r['flagged']:.0%} |")
-        print(lines[-1], flush=True)
+    lines += _scene_lines(scene_row, args, lambda r: (
+        f"| {r['scene']} | {r['pairs']} | {r['points']:.0f} | {r['open3d_ms']:.2f} "
+        f"| {r['coarse_off_ratio']:.2f} ({r['coarse_off_ms']:.2f}) | {r['default_ratio']:.2f} "
+        f"({r['default_ms']:.2f}) | {r['prepared_ratio']:.2f} ({r['prepared_ms']:.2f}) "
+        f"| {r['coarse_off_err_mm']:.1f} / {r['default_err_mm']:.1f} / "
+        f"{r['open3d_err_mm']:.1f} | {r['flagged']:.0%} |"))
     text = ("# One pair as a user calls it, on every simulated scene\n\n"
             f"`python benchmarks/registration_scenes.py --pairs {args.pairs} --repeats {args.repeats} "
             f"--scans {args.scans} --seed {args.seed}{' --floor' if args.floor else ''}`; targets (issue 14): "
-            "`coarse=False` <= 1.0, default <= 2.5, the ICP stage on prepared scans <= 0.4 times open3d's point-to-point ICP.\n\n"
+            "`coarse=False` <= 1.0, default <= 2.5, the ICP stage on prepared scans <= 0.4 times open3d's "
+            "point-to-point ICP.\n\n"
             + "\n".join(lines) + "\n")
     if args.floor:
         text += floor_table(args)
-    if args.results:
-        args.results.write_text(text, encoding="utf-8")
+    publish(text, args.results)
+
+
+def publish(text: str, results: Path | None):
+    """Print the markdown ``text`` after the rows printed as they came, and write it to ``results`` if given."""
+    if results:
+        results.write_text(text, encoding="utf-8")
     print()
     print(text)
 
