@@ -15,7 +15,7 @@ lie 0.4-0.6 m apart; the guess is the true relative pose off by 0.28 m in a
 random direction and 4 degrees either way, as in benchmarks/registration.py.
 The ratio is the total time over the pairs divided by open3d's.
 
-``--floor`` adds a second table, what the two register calls would cost
+``--floor`` adds a second table, what the three calls would cost
 with no Python or numpy around the compiled code: the same calls timed
 with every compiled kernel of closurecheck.registration._kernels and the
 coarse search (correlative.search, inside the default call) under a clock,
@@ -198,6 +198,7 @@ def floor_table(args):
              "clocked / in kernels | default: call, clocked / in kernels / the coarse search alone / the call "
              "without the search |",
              "| --- | ---: | ---: | --- | --- | --- |"]
+
     def line(r):
         ratios = [(f"{c}_call", f"{c}_kernels") for c in ("coarse_off", "prepared")]
         ratios.append(("default_call", "default_kernels", "default_search"))
@@ -209,8 +210,8 @@ def floor_table(args):
 
     lines += _scene_lines(floor_row, args, line)
     return ("\n## Without the glue (`--floor`)\n\nRatios to open3d's time on the same pairs (sums over the pairs "
-            "of each call's median).  \"Call, clocked\": the call with the clocks on (each adds about 0.3 µs a "
-            "kernel call); \"in kernels\": the time inside closurecheck.registration._kernels' compiled "
+            "of each call's median).  \"Call, clocked\": the call with the clocks on (a clock adds 0.2-0.3 µs "
+            "to a kernel call); \"in kernels\": the time inside closurecheck.registration._kernels' compiled "
             "functions, their conversion of arguments and results included, which is what the call would "
             "cost with no Python or numpy around them; \"the coarse search alone\": correlative.search "
             "inside the default call.\n\n" + "\n".join(lines) + "\n")
