@@ -776,6 +776,25 @@ def split_and_bound(parents, split, half, leaf, stack, base, size, hp, bar, row_
 
 
 @njit(cache=True, nogil=True)
+def _sure_tests(sep_m, sep_rad):
+    """The margins within which :func:`distinct`'s separation test is decided without hypot and np.mod.
+
+    A squared distance below ``in2`` is inside ``sep_m`` and one at or above
+    ``out2`` outside, as hypot (error of an ulp or so) would decide; an
+    unwrapped angle difference below ``in_rad`` is inside ``sep_rad`` and
+    one in ``[out_rad, wrap]`` outside, as the wrapped difference (exact to
+    5e-16 there, no wrap) would.  ``box`` and ``ang`` say whether the
+    distance and angle margins apply at all: the ranges keep the squares
+    and the angles clear of overflow, underflow and wrapping.  One home for
+    distinct and for the blocks the coarse search sets aside (:func:`_park`),
+    whose every leaf distinct must drop.
+    Returns (box, in2, out2, ang, in_rad, out_rad, wrap).
+    """
+    return (1e-100 < sep_m < 1e100, sep_m * sep_m * (1.0 - 1e-12), sep_m * sep_m * (1.0 + 1e-12),
+            1e-6 < sep_rad < 1.0, sep_rad - 1e-9, sep_rad + 1e-9, np.pi - 1e-9)
+
+
+@njit(cache=True, nogil=True)
 def distinct(records, k, sep_m, sep_rad):
     """Greedy non-maximum suppression (correlative.distinct): indices of up to k rows, best first.
 
@@ -795,19 +814,12 @@ def distinct(records, k, sep_m, sep_rad):
             ordered = False
             break
     # Most rows are decided without hypot and np.mod (libm calls, most of the cost: on the sparse hall
-    # scene a pick's neighbourhood is nearly every kept leaf).  A squared distance off sep_m^2 by more
+    # scene a pick's neighbourhood is nearly every kept leaf): a squared distance off sep_m^2 by more
     # than 1e-12 relative, or an unwrapped angle difference off sep_rad by more than 1e-9 (and below
-    # pi), decides the test as hypot (error of an ulp or so) and the wrapped difference (exact to
-    # 5e-16 there, no wrap) would; the rest take the exact test.  The ranges keep the squares and
-    # the angles clear of overflow, underflow and wrapping.  With the sorted shortcuts: 0.16 -> 0.05 ms
-    # a search on hall pairs (benchmarks/registration_scenes.py scenes, the same picks on 2,400 searches).
-    box = 1e-100 < sep_m < 1e100
-    in2 = sep_m * sep_m * (1.0 - 1e-12)
-    out2 = sep_m * sep_m * (1.0 + 1e-12)
-    ang = 1e-6 < sep_rad < 1.0
-    in_rad = sep_rad - 1e-9
-    out_rad = sep_rad + 1e-9
-    wrap = np.pi - 1e-9
+    # pi), is decided by the margins of _sure_tests; the rest take the exact test.  With the sorted
+    # shortcuts: 0.16 -> 0.05 ms a search on hall pairs (benchmarks/registration_scenes.py scenes,
+    # the same picks on 2,400 searches).
+    box, in2, out2, ang, in_rad, out_rad, wrap = _sure_tests(sep_m, sep_rad)
     two_pi = 2.0 * np.pi
     m = 0
     left = n
@@ -2521,18 +2533,17 @@ def _park(kids, kid_score, zone, rows, r, sep_m, sep_rad, row_seed, parked, park
     far (NaN while it has none).  A block (rows [angle row, ox, oy, level])
     is set aside when its bound is below that score and each of its leaves
     lies within the separation of that leaf as :func:`distinct`'s sure
-    tests decide it (squared distance below ``sep_m^2 (1 - 1e-12)`` at the
-    block's farthest corner, unwrapped angle difference below ``sep_rad -
-    1e-9``): whatever else is found, the seed's list sorts that leaf before
+    tests (:func:`_sure_tests`) decide it (squared distance below ``in2``
+    at the block's farthest corner, unwrapped angle difference below
+    ``in_rad``): whatever else is found, the seed's list sorts that leaf before
     all of them and drops them.  Called on the blocks about to be split
     and on the children just bounded.  Returns (kept blocks, their bounds,
     parked blocks, their bounds), the new ones appended to ``parked``.
     """
     n = len(kid_score)
-    if n == 0 or not (1e-100 < sep_m < 1e100 and 1e-6 < sep_rad < 1.0):
+    box, in2, _, ang, in_rad, _, _ = _sure_tests(sep_m, sep_rad)
+    if n == 0 or not (box and ang):
         return kids, kid_score, parked, parked_score
-    in2 = sep_m * sep_m * (1.0 - 1e-12)
-    in_rad = sep_rad - 1e-9
     aside = np.zeros(n, np.bool_)
     m = 0
     for t in range(n):
